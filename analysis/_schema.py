@@ -1,0 +1,198 @@
+"""The tables that pass between pipeline stages, defined once.
+
+Every stage takes a pandas DataFrame and returns a new one with more columns. The names, dtypes and units of
+those tables live here and nowhere else; the docs (``docs/data_model.md``) are generated from the same
+definitions, and the tests check that every stage returns exactly these columns (plus any extras listed).
+
+Conventions
+-----------
+* Pixel (row 0, col 0) has its centre at x = 0, y = 0. x runs along image columns (to the right), y along rows
+  (downwards). Angles are measured with ``atan2(dy, dx)`` in this frame (y down), in degrees.
+* ``*_px`` columns are always filled. ``*_nm`` columns are ``px * pixel_size_nm`` and are NaN when the image is
+  uncalibrated; the summary then says ``"calibrated": false``.
+* ``region`` is the integer label of the user region a row belongs to (0 = whole image / no region given).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+__all__ = [
+    "Field",
+    "COLUMNS",
+    "MOTIFS",
+    "LADDER",
+    "PEAKS",
+    "TILES",
+    "NETWORK",
+    "SPOTS",
+    "TABLES",
+    "empty_table",
+    "conform",
+]
+
+
+@dataclass(frozen=True)
+class Field:
+    """One column of a table: name, numpy dtype string, unit ("" if none) and a one-line description."""
+
+    name: str
+    dtype: str
+    unit: str
+    doc: str
+
+
+def _fields(*rows: tuple[str, str, str, str]) -> tuple[Field, ...]:
+    return tuple(Field(*r) for r in rows)
+
+
+#: One row per atomic column (stage: columns -> refine -> species).
+COLUMNS = _fields(
+    ("id", "int64", "", "column id, unique within one analysis, stable across later stages"),
+    ("x_px", "float64", "px", "refined x position (along image columns)"),
+    ("y_px", "float64", "px", "refined y position (along image rows)"),
+    ("x_nm", "float64", "nm", "x_px * pixel size; NaN when uncalibrated"),
+    ("y_nm", "float64", "nm", "y_px * pixel size; NaN when uncalibrated"),
+    ("sigma_px", "float64", "px", "Gaussian standard deviation of the column image"),
+    ("sigma_nm", "float64", "nm", "sigma_px * pixel size; NaN when uncalibrated"),
+    ("amplitude", "float64", "counts", "peak height of the Gaussian above local background (image units)"),
+    ("background", "float64", "counts", "local constant background under the column (image units)"),
+    ("intensity", "float64", "counts", "integrated intensity 2 pi amplitude sigma_px^2 (image units x px^2)"),
+    ("residual", "float64", "", "RMS fit residual divided by amplitude (0 = perfect Gaussian)"),
+    ("pos_err_px", "float64", "px", "1-sigma position uncertainty from the fit covariance (per axis, mean of x and y)"),
+    ("pos_err_nm", "float64", "nm", "pos_err_px * pixel size; NaN when uncalibrated"),
+    ("fit_status", "object", "", "'ok', or why the fit failed ('diverged', 'edge', 'masked', ...): then fit columns are NaN"),
+    ("species", "int64", "", "intensity class, 0 = dimmest; -1 when not classified"),
+    ("species_prob", "float64", "", "posterior probability of the assigned species"),
+    ("region", "int64", "", "region label (0 = whole image)"),
+)
+
+#: One row per motif (ring or pentagon).
+MOTIFS = _fields(
+    ("motif_id", "int64", "", "motif id"),
+    ("kind", "object", "", "'ring10' (ring of order n: 'ring<n>') or 'pentagon'"),
+    ("order", "int64", "", "number of vertices n of the ideal motif"),
+    ("centre_x_px", "float64", "px", "motif centre x"),
+    ("centre_y_px", "float64", "px", "motif centre y"),
+    ("centre_x_nm", "float64", "nm", "motif centre x; NaN when uncalibrated"),
+    ("centre_y_nm", "float64", "nm", "motif centre y; NaN when uncalibrated"),
+    ("radius_px", "float64", "px", "mean distance of members from the centre"),
+    ("radius_nm", "float64", "nm", "radius; NaN when uncalibrated"),
+    ("radial_rms_px", "float64", "px", "RMS spread of member distances about the radius"),
+    ("radial_rms_nm", "float64", "nm", "radial RMS spread; NaN when uncalibrated"),
+    ("psi_n", "float64", "", "|psi_n| n-fold bond-orientational order of members about the centre (1 = ideal)"),
+    ("orientation_deg", "float64", "deg", "arg(psi_n)/n in the image frame (atan2, y down), in [0, 360/n)"),
+    ("edge_px", "float64", "px", "mean edge length between neighbouring members"),
+    ("edge_nm", "float64", "nm", "mean edge length; NaN when uncalibrated"),
+    ("diag_edge_ratio", "float64", "", "pentagon: mean diagonal / mean edge (tau ideal); ring: radius / edge"),
+    ("n_members", "int64", "", "number of member columns found"),
+    ("members", "object", "", "member column ids, space-separated, in angular order"),
+    ("centre_content", "object", "", "'column', 'group' (several columns near the centre) or 'empty'"),
+    ("centre_ids", "object", "", "ids of the columns at the centre, space-separated ('' if none)"),
+    ("species_makeup", "object", "", "member species counts, e.g. '0:5 1:5'"),
+    ("completeness", "float64", "", "n_members / order"),
+    ("complete", "bool", "", "True when all n members were found; False marks an 'incomplete' motif (vacancies)"),
+    ("score", "float64", "", "quality score in [0, 1] combining radial spread, |psi_n| and completeness"),
+    ("overlaps", "int64", "", "number of other motifs of the same kind sharing at least one member"),
+    ("parent_ring", "int64", "", "for pentagons inside a ring: that ring's motif_id; -1 otherwise"),
+    ("region", "int64", "", "region label"),
+)
+
+#: One row per matched ladder rung (file DIR/ladder.csv).
+LADDER = _fields(
+    ("set", "object", "", "'columns' or 'centres': which point set the pair distances come from"),
+    ("rung", "float64", "", "ladder exponent n in d0 * tau^n (half-integers on the half-step ladder)"),
+    ("ideal_ratio", "float64", "", "tau^n"),
+    ("ideal_nm", "float64", "nm", "d0 * tau^n; NaN when uncalibrated"),
+    ("measured_px", "float64", "px", "located peak position"),
+    ("measured_nm", "float64", "nm", "located peak position; NaN when uncalibrated"),
+    ("ratio", "float64", "", "measured / d0"),
+    ("deviation_pct", "float64", "%", "100 * (ratio / ideal_ratio - 1)"),
+    ("uncertainty_pct", "float64", "%", "1-sigma uncertainty of the ratio, in percent of the ideal ratio"),
+    ("peak_weight", "float64", "", "share of pair-distance weight in this peak"),
+)
+
+#: One row per located pair-distribution peak, on or off the ladder (file DIR/pair_peaks.csv).
+PEAKS = _fields(
+    ("set", "object", "", "'columns' or 'centres'"),
+    ("distance_px", "float64", "px", "peak position"),
+    ("distance_nm", "float64", "nm", "peak position; NaN when uncalibrated"),
+    ("ratio_to_d0", "float64", "", "peak position / d0"),
+    ("on_ladder", "bool", "", "True when matched to a rung"),
+    ("rung", "float64", "", "matched rung exponent, NaN when off-ladder"),
+    ("label", "object", "", "e.g. 'tau^1', or a known decagonal distance such as '2 sin 36', or 'unassigned'"),
+    ("height", "float64", "", "peak height of the normalised pair distribution"),
+    ("width_px", "float64", "px", "peak standard deviation"),
+)
+
+#: One row per tile type (file DIR/tiles.csv).
+TILES = _fields(
+    ("tile", "object", "", "'thick_rhombus', 'thin_rhombus', 'pentagon', 'star', 'boat', 'hexagon', 'other'"),
+    ("count", "int64", "", "number of faces of this type"),
+    ("fraction", "float64", "", "count / number of classified faces"),
+    ("region", "int64", "", "region label"),
+)
+
+#: One row per edge of the cluster network (file DIR/network.csv).
+NETWORK = _fields(
+    ("edge_id", "int64", "", "edge id"),
+    ("motif_a", "int64", "", "motif_id of one end"),
+    ("motif_b", "int64", "", "motif_id of the other end"),
+    ("length_px", "float64", "px", "edge length"),
+    ("length_nm", "float64", "nm", "edge length; NaN when uncalibrated"),
+    ("angle_deg", "float64", "deg", "edge direction atan2(dy, dx), y down, in [0, 180)"),
+    ("region", "int64", "", "region label"),
+)
+
+#: One row per Fourier spot (file DIR/spots.csv).
+SPOTS = _fields(
+    ("spot_id", "int64", "", "spot id"),
+    ("kx_per_px", "float64", "1/px", "spatial frequency along x"),
+    ("ky_per_px", "float64", "1/px", "spatial frequency along y"),
+    ("k_per_nm", "float64", "1/nm", "|k|; NaN when uncalibrated"),
+    ("d_nm", "float64", "nm", "lattice-plane spacing 1/|k|; NaN when uncalibrated"),
+    ("d_px", "float64", "px", "1/|k| in pixels"),
+    ("angle_deg", "float64", "deg", "direction of k, atan2(ky, kx), y down"),
+    ("strength", "float64", "", "peak power over local background"),
+    ("shell", "int64", "", "index of the |k| shell the spot belongs to (0 = innermost strong shell)"),
+)
+
+TABLES: dict[str, tuple[Field, ...]] = {
+    "columns": COLUMNS,
+    "motifs": MOTIFS,
+    "ladder": LADDER,
+    "pair_peaks": PEAKS,
+    "tiles": TILES,
+    "network": NETWORK,
+    "spots": SPOTS,
+}
+
+
+def empty_table(fields: tuple[Field, ...]) -> pd.DataFrame:
+    """An empty DataFrame with exactly the given columns and dtypes."""
+    return pd.DataFrame({f.name: pd.Series([], dtype=f.dtype) for f in fields})
+
+
+def conform(df: pd.DataFrame, fields: tuple[Field, ...]) -> pd.DataFrame:
+    """Return ``df`` with the schema columns first, in schema order and dtype, extras kept after them.
+
+    Raises ``KeyError`` naming the missing columns: a stage that forgets one is a bug, not user error.
+    """
+    names = [f.name for f in fields]
+    missing = [n for n in names if n not in df.columns]
+    if missing:
+        raise KeyError(f"table is missing schema columns {missing}")
+    out = df[names + [c for c in df.columns if c not in names]].copy()
+    for f in fields:
+        if f.dtype == "object":
+            continue
+        if f.dtype == "bool":
+            out[f.name] = out[f.name].astype(bool)
+        elif f.dtype.startswith("int"):
+            out[f.name] = np.asarray(out[f.name], dtype=np.int64)
+        else:
+            out[f.name] = np.asarray(out[f.name], dtype=np.float64)
+    return out.reset_index(drop=True)
