@@ -1,0 +1,451 @@
+"""The orchestrator: runs the stages in order on one micrograph and collects an :class:`AnalysisResult`.
+
+Both fronts (the ``tenfold`` command and the napari dock) call :func:`run_pipeline`; after the user edits the
+column positions by hand they call :func:`rerun_from_columns`, which skips detection and refinement.
+
+Stages, each in its own module: columns (detection, refinement, species; ``columns.py``), motifs (``motifs.py``),
+ladders (``ladder.py``), tiling (``tiling.py``), Fourier (``fourier.py``). Export is separate (``export.py``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
+from ._image import ImageMeta, Micrograph
+from ._progress import ProgressCallback, report, sub_progress
+from ._result import AnalysisResult
+from ._schema import COLUMNS, LADDER, MOTIFS, NETWORK, PEAKS, SPOTS, TILES, conform, empty_table
+
+__all__ = ["Parameters", "run_pipeline", "rerun_from_columns", "estimate_defaults", "Cancelled"]
+
+
+@dataclass
+class Parameters:
+    """Every user-settable parameter of one analysis. ``None`` means "choose automatically and report".
+
+    Attributes
+    ----------
+    pixel_size_nm : float or None
+        Override the file's calibration (nm per pixel).
+    dark_columns : bool
+        Columns darker than the background (HRTEM-like contrast) instead of bright (HAADF).
+    column_diameter_nm, column_spacing_nm : float or None
+        Override the automatic column width (full diameter, about 4.5 sigma) and nearest-column spacing.
+    n_species : int or None
+        Number of intensity classes; None chooses by BIC, 0 skips classification.
+    flatten : bool
+        Subtract a large-scale background (uneven illumination) before detection.
+    min_mass : float or None
+        Override the data-driven minimum integrated brightness of a detection (trackpy units).
+    ring_order : int
+        Number of columns in a ring motif (5, 6, 8, 10 or 12).
+    ring_radius_nm : float or None
+        Ring radius; None finds it from the pair distances.
+    radius_tolerance : float
+        Relative tolerance on the ring radius.
+    pentagons : bool
+        Also search for pentagon motifs.
+    ladder_r_max_nm : float or None
+        Largest pair distance in the ladder analysis (default: automatic).
+    half_step : bool
+        Also try the half-step ladder tau^(n/2).
+    d0_nm : float or None
+        Ladder base distance (default: the strongest short-range pair peak).
+    tiling_edge_nm : float or None
+        Cluster-network edge length (default: from the centre pair distances).
+    fourier : bool
+        Run the Fourier stage.
+    rng : int
+        Seed for bootstraps and mixture initialisation.
+    """
+
+    pixel_size_nm: float | None = None
+    dark_columns: bool = False
+    column_diameter_nm: float | None = None
+    column_spacing_nm: float | None = None
+    n_species: int | None = None
+    flatten: bool = False
+    min_mass: float | None = None
+    ring_order: int = 10
+    ring_radius_nm: float | None = None
+    radius_tolerance: float = 0.12
+    pentagons: bool = True
+    ladder_r_max_nm: float | None = None
+    half_step: bool = False
+    d0_nm: float | None = None
+    tiling_edge_nm: float | None = None
+    fourier: bool = True
+    rng: int = 0
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Parameters":
+        names = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise TenfoldInputError(f"unknown parameter(s) {unknown}; known: {sorted(names)}")
+        return cls(**d)
+
+    def validate(self) -> "Parameters":
+        """Check every value; raise :class:`TenfoldInputError` naming the first bad parameter."""
+        for name in ("pixel_size_nm", "column_diameter_nm", "column_spacing_nm", "ring_radius_nm",
+                     "ladder_r_max_nm", "d0_nm", "tiling_edge_nm", "min_mass"):
+            v = getattr(self, name)
+            if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
+                raise TenfoldInputError(f"parameter {name} must be a positive number (or empty for automatic), got {v!r}")
+        if self.n_species is not None and not (isinstance(self.n_species, (int, np.integer)) and 0 <= self.n_species <= 8):
+            raise TenfoldInputError(f"parameter n_species must be empty (automatic), 0 (skip) or 1-8, got {self.n_species!r}")
+        if self.ring_order not in (5, 6, 8, 10, 12):
+            raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
+        if not (0 < self.radius_tolerance < 0.5):
+            raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
+        return self
+
+
+def _nm_to_px(value_nm: float | None, pixel_size_nm: float | None, name: str) -> float | None:
+    if value_nm is None:
+        return None
+    if pixel_size_nm is None:
+        raise TenfoldInputError(
+            f"parameter {name} is given in nm but the image is uncalibrated; give the pixel size too "
+            "(--pixel-size NM) or leave {name} empty"
+        )
+    return float(value_nm) / float(pixel_size_nm)
+
+
+def _with_nm(df: pd.DataFrame, ps: float | None, pairs: dict[str, str]) -> pd.DataFrame:
+    for px, nm in pairs.items():
+        if px in df.columns:
+            df[nm] = df[px] * ps if ps else np.nan
+    return df
+
+
+def _calibrated(micrograph: Micrograph, params: Parameters) -> Micrograph:
+    """The micrograph with the user's pixel size applied (never modifies the caller's record)."""
+    if params.pixel_size_nm is None:
+        return micrograph
+    meta = dataclasses.replace(micrograph.meta, pixel_size_nm=float(params.pixel_size_nm), calibration_source="user",
+                               notes=list(micrograph.meta.notes))
+    return Micrograph(micrograph.data, meta, micrograph.valid)
+
+
+def estimate_defaults(micrograph: Micrograph, *, dark_columns: bool = False) -> dict:
+    """Quick automatic scale for a front end to show next to its fields.
+
+    Returns
+    -------
+    dict
+        ``column_spacing_px``, ``column_diameter_px`` and their ``_nm`` versions (None when uncalibrated).
+    """
+    from .scale import estimate_scale
+
+    est = estimate_scale(micrograph.data, valid=micrograph.valid, dark_columns=dark_columns)
+    ps = micrograph.meta.pixel_size_nm
+    diameter_px = 4.5 * est.sigma_px
+    return {
+        "column_spacing_px": float(est.spacing_px),
+        "column_diameter_px": float(diameter_px),
+        "column_spacing_nm": float(est.spacing_px * ps) if ps else None,
+        "column_diameter_nm": float(diameter_px * ps) if ps else None,
+    }
+
+
+def _region_summaries(result: AnalysisResult, regions) -> list[dict]:
+    cols = result.tables["columns"]
+    motifs = result.tables["motifs"]
+    labels = sorted(set(cols["region"].tolist()) | ({r.label for r in regions} if regions else {0}))
+    out = []
+    for lab in labels:
+        c = cols[cols["region"] == lab]
+        m = motifs[motifs["region"] == lab] if len(motifs) else motifs
+        row = {
+            "region": int(lab),
+            "n_columns": int(len(c)),
+            "n_ring_motifs": int((m["kind"].str.startswith("ring")).sum()) if len(m) else 0,
+            "n_complete_rings": int((m["kind"].str.startswith("ring") & m["complete"]).sum()) if len(m) else 0,
+            "n_pentagons": int((m["kind"] == "pentagon").sum()) if len(m) else 0,
+            "mean_psi_n": float(m["psi_n"].mean()) if len(m) else None,
+            "mean_pos_err_nm": float(c["pos_err_nm"].mean()) if len(c) and c["pos_err_nm"].notna().any() else None,
+        }
+        for sp, n in c["species"].value_counts().sort_index().items():
+            row[f"n_species_{int(sp)}"] = int(n)
+        out.append(row)
+    return out
+
+
+def _structure(result: AnalysisResult, params: Parameters, regions, progress: ProgressCallback | None) -> None:
+    """Motifs, ladders and tiling from the columns table in ``result`` (fills tables, curves and summary)."""
+    from . import ladder as _ladder
+    from . import motifs as _motifs
+    from . import tiling as _tiling
+
+    ps = result.meta.pixel_size_nm
+    cols = result.tables["columns"]
+    ok = cols[cols["fit_status"] == "ok"] if "fit_status" in cols else cols
+    report(progress, 0.0, "searching ring and pentagon motifs")
+    motifs, m_info = _motifs.find_motifs(
+        ok,
+        order=params.ring_order,
+        radius_px=_nm_to_px(params.ring_radius_nm, ps, "ring_radius_nm"),
+        radius_tolerance=params.radius_tolerance,
+        pentagons=params.pentagons,
+        pixel_size_nm=ps,
+        regions=regions,
+        progress=sub_progress(progress, 0.0, 0.45),
+    )
+    result.tables["motifs"] = motifs
+    result.summary["motifs"] = m_info
+    try:
+        result.summary["motifs"]["internal_ratios"] = _ladder.motif_ratios(motifs)
+    except Exception as exc:  # a ratio summary must never kill the run; say why it is missing
+        result.summary["motifs"]["internal_ratios"] = {"error": str(exc)}
+
+    report(progress, 0.5, "pair distances and golden-ratio ladder")
+    rmax = _nm_to_px(params.ladder_r_max_nm, ps, "ladder_r_max_nm")
+    d0 = _nm_to_px(params.d0_nm, ps, "d0_nm")
+    ladders, peaks, l_info = [], [], {}
+    rings = motifs[motifs["kind"].str.startswith("ring")] if len(motifs) else motifs
+    sets = [("columns", ok["x_px"].to_numpy(), ok["y_px"].to_numpy(), d0)]
+    if len(rings) >= 3:
+        sets.append(("centres", rings["centre_x_px"].to_numpy(), rings["centre_y_px"].to_numpy(), None))
+    for name, x, y, base in sets:
+        lt, pk, info = _ladder.fit_ladder(
+            x, y, point_set=name, d0_px=base, r_max_px=rmax, half_step=params.half_step, pixel_size_nm=ps,
+            rng=params.rng,
+        )
+        ladders.append(lt)
+        peaks.append(pk)
+        curve = info.pop("curve", None) if isinstance(info, dict) else None
+        if curve is None:
+            r_hi = rmax if rmax else (info.get("r_max_px") if isinstance(info, dict) else None)
+            if r_hi:
+                curve = _ladder.pair_distribution(x, y, r_max_px=r_hi)
+        if curve is not None:
+            curve = curve.copy()
+            curve["r_nm"] = curve["r_px"] * ps if ps else np.nan
+            result.curves[f"pair_distribution_{name}"] = curve
+        l_info[name] = info
+    result.tables["ladder"] = conform(pd.concat(ladders, ignore_index=True), LADDER) if ladders else empty_table(LADDER)
+    result.tables["pair_peaks"] = conform(pd.concat(peaks, ignore_index=True), PEAKS) if peaks else empty_table(PEAKS)
+    result.summary["ladder"] = l_info
+    report(progress, 0.75, "cluster network and tiling")
+    network, tiles, t_info = _tiling.build_network(
+        motifs, edge_px=_nm_to_px(params.tiling_edge_nm, ps, "tiling_edge_nm"), pixel_size_nm=ps,
+        progress=sub_progress(progress, 0.75, 1.0),
+    )
+    result.tables["network"] = network
+    result.tables["tiles"] = tiles
+    result.summary["tiling"] = t_info
+    report(progress, 1.0, "structure done")
+
+
+def _base_summary(meta: ImageMeta, params: Parameters) -> dict:
+    return {
+        "tenfold_version": __version__,
+        "version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "input": {"file": meta.path, "sha256": meta.sha256, "shape": list(meta.shape), "frames": meta.frames,
+                  "original_dtype": meta.original_dtype, "converted_from_rgb": meta.converted_from_rgb,
+                  "masked_fraction": meta.masked_fraction},
+        "pixel_size_nm": meta.pixel_size_nm,
+        "calibration_source": meta.calibration_source,
+        "calibrated": meta.calibrated,
+        "parameters": params.to_dict(),
+        "notes": list(meta.notes),
+    }
+
+
+def _finish(result: AnalysisResult, regions, caught: list) -> AnalysisResult:
+    notes = result.summary.setdefault("notes", [])
+    for w in caught:
+        msg = str(w.message)
+        if msg not in notes:
+            notes.append(msg)
+    for stage in ("motifs", "tiling", "fourier"):
+        for n in (result.summary.get(stage) or {}).get("notes", []) or []:
+            if n not in notes:
+                notes.append(n)
+    if not result.meta.calibrated:
+        msg = "uncalibrated: no pixel size in the file and none given; positions are in px and every *_nm column is empty"
+        if msg not in notes:
+            notes.insert(0, msg)
+    result.summary["n_columns"] = int(len(result.tables["columns"]))
+    result.summary["n_motifs"] = int(len(result.tables["motifs"]))
+    result.summary["regions"] = _region_summaries(result, regions)
+    for key, fields in (("columns", COLUMNS), ("motifs", MOTIFS), ("ladder", LADDER), ("pair_peaks", PEAKS),
+                        ("tiles", TILES), ("network", NETWORK), ("spots", SPOTS)):
+        result.tables.setdefault(key, empty_table(fields))
+    # Re-issue what the stages warned about, now that it is recorded in the summary too.
+    for w in caught:
+        warnings.warn(str(w.message), TenfoldWarning, stacklevel=3)
+    return result
+
+
+def run_pipeline(
+    micrograph: Micrograph,
+    params: Parameters | None = None,
+    *,
+    regions=None,
+    progress: ProgressCallback | None = None,
+) -> AnalysisResult:
+    """Run every stage on one micrograph.
+
+    Parameters
+    ----------
+    micrograph : Micrograph
+        From :func:`tenfold.analysis.io.read_micrograph` or ``micrograph_from_array``.
+    params : Parameters, optional
+        Defaults: everything automatic.
+    regions : list of region.Region, optional
+        Analyse only inside these regions (labels go to the ``region`` columns); None = whole image (label 0).
+    progress : callable(fraction, message) -> bool | None, optional
+        Called as the run advances; returning False cancels (raises :class:`Cancelled`).
+
+    Returns
+    -------
+    AnalysisResult
+        Tables 'columns', 'motifs', 'ladder', 'pair_peaks', 'tiles', 'network', 'spots'; summary sections
+        'columns' (automatic choices), 'motifs', 'ladder', 'tiling', 'fourier', 'regions', 'notes'.
+    """
+    from .columns import find_columns
+
+    params = (params or Parameters()).validate()
+    micrograph = _calibrated(micrograph, params)
+    meta = micrograph.meta
+    ps = meta.pixel_size_nm
+    result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
+    result.summary = _base_summary(meta, params)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", TenfoldWarning)
+        report(progress, 0.0, "finding atomic columns")
+        cols, c_info = find_columns(
+            micrograph.data,
+            valid=micrograph.valid,
+            pixel_size_nm=ps,
+            regions=regions,
+            dark_columns=params.dark_columns,
+            column_diameter_nm=params.column_diameter_nm,
+            column_spacing_nm=params.column_spacing_nm,
+            min_mass=params.min_mass,
+            flatten=params.flatten,
+            n_species=params.n_species,
+            rng=params.rng,
+            progress=sub_progress(progress, 0.0, 0.55),
+        )
+        result.tables["columns"] = cols
+        result.summary["columns"] = c_info
+        result.summary["automatic"] = c_info.get("automatic", c_info)
+        result.summary["species"] = c_info.get("species")
+        _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
+        if params.fourier:
+            report(progress, 0.9, "power spectrum")
+            from .fourier import analyze_fourier
+
+            spots, f_info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps)
+            result.tables["spots"] = spots
+            result.summary["fourier"] = f_info
+        report(progress, 1.0, "analysis done")
+    kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
+    for w in caught:
+        if w not in kept:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return _finish(result, regions, kept)
+
+
+def rerun_from_columns(
+    result: AnalysisResult,
+    columns: pd.DataFrame,
+    *,
+    params: Parameters | None = None,
+    regions=None,
+    progress: ProgressCallback | None = None,
+) -> AnalysisResult:
+    """Recompute motifs, ladders and tiling from an edited columns table, without re-detecting.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        The run being corrected (its image, calibration and Fourier results are kept).
+    columns : DataFrame
+        Edited columns; needs ``x_px`` and ``y_px``. Rows without an ``id`` (points added by hand) get new ids;
+        missing fit values stay NaN with ``fit_status`` 'manual'; missing species are -1.
+    params : Parameters, optional
+        Defaults to the parameters of ``result``.
+    regions, progress
+        As for :func:`run_pipeline`.
+
+    Returns
+    -------
+    AnalysisResult
+        A new result; ``summary['columns']['hand_edited']`` records how many columns were added and removed.
+    """
+    if not {"x_px", "y_px"} <= set(columns.columns):
+        raise TenfoldInputError("re-run from columns: the edited table needs x_px and y_px columns")
+    params = (params or Parameters.from_dict(result.parameters)).validate()
+    ps = result.meta.pixel_size_nm
+    cols = columns.copy().reset_index(drop=True)
+    old = result.tables.get("columns", empty_table(COLUMNS))
+    if "id" not in cols:
+        cols["id"] = -1
+    ids = pd.to_numeric(cols["id"], errors="coerce").fillna(-1).astype(np.int64).to_numpy()
+    seen = set()
+    dup = np.zeros(len(ids), dtype=bool)
+    for i, v in enumerate(ids):  # short loop over ids only (hand edits), not a per-column computation
+        if v >= 0 and v in seen:
+            dup[i] = True
+        seen.add(v)
+    fresh = (ids < 0) | dup
+    start = int(max(old["id"].max() if len(old) else -1, ids.max() if len(ids) else -1)) + 1
+    ids[fresh] = np.arange(start, start + fresh.sum())
+    cols["id"] = ids
+    defaults = {"fit_status": "manual", "species": -1, "species_prob": np.nan, "region": 0}
+    for f in COLUMNS:
+        if f.name not in cols:
+            cols[f.name] = defaults.get(f.name, np.nan)
+        elif f.name in defaults:
+            cols[f.name] = cols[f.name].fillna(defaults[f.name])
+    if regions:
+        from .region import label_points
+
+        cols["region"] = label_points(cols["x_px"].to_numpy(), cols["y_px"].to_numpy(), regions)
+        cols = cols[cols["region"] > 0]
+    cols.loc[fresh, "fit_status"] = "manual"
+    cols = _with_nm(cols, ps, {"x_px": "x_nm", "y_px": "y_nm", "sigma_px": "sigma_nm", "pos_err_px": "pos_err_nm"})
+    cols = conform(cols, COLUMNS)
+    new = AnalysisResult(meta=result.meta, parameters=params.to_dict(), image=result.image)
+    new.summary = _base_summary(result.meta, params)
+    for key in ("columns", "automatic", "species", "fourier"):
+        if key in result.summary:
+            new.summary[key] = result.summary[key]
+    old_ids = set(old["id"].tolist())
+    new_ids = set(cols["id"].tolist())
+    new.summary["columns"] = dict(new.summary.get("columns") or {})
+    new.summary["columns"]["hand_edited"] = {
+        "added": int(len(new_ids - old_ids)),
+        "removed": int(len(old_ids - new_ids)),
+        "moved_or_kept": int(len(new_ids & old_ids)),
+    }
+    new.tables["columns"] = cols
+    new.tables["spots"] = result.tables.get("spots", empty_table(SPOTS))
+    # Hand-placed columns have no fit; the motif search uses every column the user kept.
+    struct_cols = cols.copy()
+    struct_cols["fit_status"] = "ok"
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", TenfoldWarning)
+        tmp = AnalysisResult(meta=result.meta, tables={"columns": struct_cols}, summary=new.summary, image=result.image)
+        _structure(tmp, params, regions, progress)
+    for key in ("motifs", "ladder", "pair_peaks", "tiles", "network"):
+        new.tables[key] = tmp.tables[key]
+    new.curves = tmp.curves
+    kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
+    return _finish(new, regions, kept)
