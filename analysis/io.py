@@ -6,13 +6,15 @@ functions that need them, so ``import tenfold.analysis.io`` stays light.
 
 from __future__ import annotations
 
+import hashlib
 import math
-import os
+import warnings
 from pathlib import Path
 
 import numpy as np
 
-from ._errors import TenfoldInputError
+from ._errors import TenfoldInputError, TenfoldWarning
+from ._image import ImageMeta, Micrograph
 
 __all__ = ["write_tiff", "read_micrograph", "micrograph_from_array", "supported_suffixes"]
 
@@ -110,11 +112,11 @@ def write_tiff(
     return path
 
 
-def supported_suffixes() -> tuple[str, ...]:
-    """File suffixes :func:`read_micrograph` accepts (lower case, with the dot)."""
-    return tuple(sorted(_SUFFIXES))
 
+# --------------------------------------------------------------------------------------------------------------
+# reading
 
+#: suffix -> reader family. Vendor formats need the optional ``vendor`` extra (rosettasciio, GPL-3.0-or-later).
 _SUFFIXES = {
     ".tif": "tiff",
     ".tiff": "tiff",
@@ -131,12 +133,495 @@ _SUFFIXES = {
     ".ser": "vendor",
 }
 
+#: rosettasciio plug-in module per vendor suffix
+_VENDOR_MODULES = {
+    ".dm3": "rsciio.digitalmicrograph",
+    ".dm4": "rsciio.digitalmicrograph",
+    ".emd": "rsciio.emd",
+    ".ser": "rsciio.tia",
+}
 
-def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None):
-    """Read a micrograph file (not finished yet)."""
-    raise NotImplementedError("read_micrograph is being written")
+#: length unit names (lower case) -> nm. Pixel-like units ('pixel', 'px', '') mean "uncalibrated".
+_UNIT_NM = {
+    "nm": 1.0, "nanometer": 1.0, "nanometers": 1.0, "nanometre": 1.0, "nanometres": 1.0,
+    "um": 1e3, "\u00b5m": 1e3, "\u03bcm": 1e3, "micron": 1e3, "microns": 1e3,
+    "micrometer": 1e3, "micrometers": 1e3, "micrometre": 1e3, "micrometres": 1e3,
+    "\u00e5": 0.1, "\u212b": 0.1, "a": 0.1, "angstrom": 0.1, "angstroms": 0.1, "ang": 0.1,
+    "pm": 1e-3, "picometer": 1e-3, "picometre": 1e-3,
+    "mm": 1e6, "millimeter": 1e6, "millimetre": 1e6,
+    "cm": 1e7, "centimeter": 1e7, "centimetre": 1e7,
+    "m": 1e9, "meter": 1e9, "metre": 1e9,
+    "inch": 2.54e7, "in": 2.54e7,
+}
+_NO_UNIT = {"", "pixel", "pixels", "px", "none"}
+
+#: A pixel larger than this is no micrograph calibration, whatever the source.
+_MAX_PIXEL_NM = 1e6  # 1 mm
+#: Plain TIFF inch/cm resolution tags are mostly dpi values written by image editors (72-1200 dpi = 353-21 um
+#: pixels); a pixel above 1 um from that source is taken as such a tag, not as a microscope calibration.
+_MAX_DPI_PIXEL_NM = 1e3  # 1 um
+#: Relative x/y pixel-size difference above which the calibration counts as anisotropic.
+_ANISO_TOL = 1e-4
+#: Smallest side accepted: anything smaller cannot hold several column spacings.
+_MIN_SIDE = 16
+#: ITU-R BT.709 luma weights for R, G, B (ITU-R Recommendation BT.709-6, 2015, item 3.2).
+_LUMA = np.array([0.2126, 0.7152, 0.0722])
 
 
-def micrograph_from_array(array, *, pixel_size_nm=None, name=""):
-    """Wrap an in-memory array (not finished yet)."""
-    raise NotImplementedError("micrograph_from_array is being written")
+def supported_suffixes() -> tuple[str, ...]:
+    """File suffixes :func:`read_micrograph` accepts (lower case, with the dot).
+
+    The vendor suffixes (.dm3, .dm4, .emd, .ser) are listed even when the optional reader is not installed;
+    reading them then raises a :class:`TenfoldInputError` naming the extra to install.
+    """
+    return tuple(sorted(_SUFFIXES))
+
+
+def _unit_factor(unit) -> float | None:
+    """nm per ``unit``; None for pixel-like or unknown units."""
+    if unit is None:
+        return None
+    u = str(unit).strip()
+    if "\\u" in u:  # ImageJ writes e.g. 'unit=\\u00B5m' into its description
+        try:
+            u = u.encode("ascii", "backslashreplace").decode("unicode_escape")
+        except UnicodeDecodeError:
+            pass
+    u = u.lower()
+    if u in _NO_UNIT:
+        return None
+    return _UNIT_NM.get(u)
+
+
+class _Calib:
+    """Calibration found in a file: pixel size in nm (x, y) and where it came from, plus notes/warnings."""
+
+    def __init__(self) -> None:
+        self.px_x: float | None = None
+        self.px_y: float | None = None
+        self.source = "none"
+        self.notes: list[str] = []
+        self.warnings: list[str] = []
+
+    def set(self, px_x, px_y, source: str) -> None:
+        self.px_x, self.px_y, self.source = float(px_x), float(px_y), source
+
+
+def _resolve_calibration(cal: _Calib, name: str) -> tuple[float | None, str]:
+    """Turn (x, y) pixel sizes into one square pixel size, warning about nonsense or anisotropy."""
+    if cal.px_x is None:
+        return None, "none"
+    px_x, px_y = cal.px_x, cal.px_y if cal.px_y is not None else cal.px_x
+    if not (math.isfinite(px_x) and math.isfinite(px_y) and px_x > 0 and px_y > 0):
+        cal.warnings.append(f"{name}: pixel size in the file ({px_x!r}, {px_y!r} nm) is not positive; treated as uncalibrated")
+        return None, "none"
+    limit = _MAX_DPI_PIXEL_NM if cal.source == "tiff-resolution" else _MAX_PIXEL_NM
+    if max(px_x, px_y) > limit:
+        cal.warnings.append(
+            f"{name}: the file's pixel size ({px_x:.4g} nm, from {cal.source}) is larger than "
+            f"{'1 um' if limit == _MAX_DPI_PIXEL_NM else '1 mm'}, which is no micrograph calibration "
+            "(probably an image-editor dpi tag); treated as uncalibrated, "
+            "give pixel_size_nm to calibrate"
+        )
+        return None, "none"
+    if abs(px_x - px_y) > _ANISO_TOL * 0.5 * (px_x + px_y):
+        mean = 0.5 * (px_x + px_y)
+        cal.warnings.append(
+            f"{name}: anisotropic pixels (x {px_x:.6g} nm, y {px_y:.6g} nm); using their mean {mean:.6g} nm, "
+            "distances along x and y are off by up to "
+            f"{100 * abs(px_x - px_y) / (px_x + px_y):.2g}%"
+        )
+        return mean, cal.source
+    return px_x, cal.source
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _first(x):
+    return x[0] if isinstance(x, (list, tuple)) else x
+
+
+def _tiff_calibration(tf, cal: _Calib, name: str) -> None:
+    """Fill ``cal`` from OME-XML, ImageJ metadata, Thermo/FEI metadata or the plain resolution tags."""
+    import tifffile
+
+    page = tf.pages[0]
+    if tf.is_ome and tf.ome_metadata:
+        try:
+            ome = tifffile.xml2dict(tf.ome_metadata)
+            pixels = _first(ome["OME"]["Image"])["Pixels"]
+        except Exception:  # malformed OME-XML: fall through to the other conventions
+            pixels = {}
+            cal.notes.append(f"{name}: OME-XML present but unreadable; ignored")
+        if "PhysicalSizeX" in pixels:
+            fx = _unit_factor(pixels.get("PhysicalSizeXUnit", "\u00b5m"))  # OME default unit is micrometre
+            fy = _unit_factor(pixels.get("PhysicalSizeYUnit", "\u00b5m"))
+            sx = float(pixels["PhysicalSizeX"])
+            sy = float(pixels.get("PhysicalSizeY", sx))
+            if fx is not None and fy is not None:
+                cal.set(sx * fx, sy * fy, "ome")
+                return
+            cal.notes.append(f"{name}: OME PhysicalSizeX unit {pixels.get('PhysicalSizeXUnit')!r} not a length")
+    xres, yres = page.get_resolution()
+    ij = tf.imagej_metadata if tf.is_imagej else None
+    if ij and "unit" in ij:
+        factor = _unit_factor(ij["unit"])
+        if factor is not None and xres > 0 and yres > 0:
+            cal.set(factor / xres, factor / yres, "imagej")
+            return
+        if factor is None and str(ij["unit"]).strip().lower() not in _NO_UNIT:
+            cal.notes.append(f"{name}: ImageJ unit {ij['unit']!r} is not a length unit; ignored")
+    if getattr(tf, "is_fei", False):
+        fei = tf.fei_metadata or {}
+        width = (fei.get("Scan") or {}).get("PixelWidth")
+        height = (fei.get("Scan") or {}).get("PixelHeight", width)
+        if width:
+            cal.set(float(width) * 1e9, float(height) * 1e9, "vendor")  # metres
+            return
+    unit = int(page.resolutionunit)
+    factor = {2: 2.54e7, 3: 1e7}.get(unit)  # RESUNIT INCH, CENTIMETER; NONE (1) carries no length
+    if factor is not None and "XResolution" in page.tags and xres > 0 and yres > 0:
+        cal.set(factor / xres, factor / yres, "tiff-resolution")
+
+
+def _read_tiff(path: Path, cal: _Calib) -> np.ndarray:
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as tf:
+            if not tf.series:
+                raise TenfoldInputError(f"{path}: TIFF holds no image data; check the file")
+            series = tf.series[0]
+            if len(tf.series) > 1:
+                cal.notes.append(f"{path.name}: file has {len(tf.series)} image series; read the first ({series.axes} {series.shape})")
+            data = series.asarray()
+            _tiff_calibration(tf, cal, path.name)
+            expected = int(np.prod(series.shape))
+    except TenfoldInputError:
+        raise
+    except Exception as exc:  # tifffile raises many kinds for damaged files
+        raise TenfoldInputError(
+            f"{path}: not a readable TIFF ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not a TIFF"
+        ) from None
+    if data is None or data.size != expected:
+        raise TenfoldInputError(f"{path}: TIFF image data is incomplete; the file is truncated or corrupt")
+    return data
+
+
+def _read_mrc(path: Path, cal: _Calib) -> np.ndarray:
+    import mrcfile
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")  # mrcfile warns (RuntimeWarning) about damaged headers/short data
+            with mrcfile.open(path, mode="r") as mrc:
+                data = np.array(mrc.data)
+                vs = mrc.voxel_size
+                vx, vy = float(vs.x), float(vs.y)
+    except Exception as exc:
+        raise TenfoldInputError(
+            f"{path}: not a readable MRC file ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not MRC"
+        ) from None
+    if vx > 0 and vy > 0:
+        cal.set(vx * 0.1, vy * 0.1, "mrc-voxel")  # MRC voxel size is in angstrom
+    elif vx != 0 or vy != 0:
+        cal.notes.append(f"{path.name}: MRC voxel size ({vx}, {vy}) A is not positive; treated as uncalibrated")
+    return data
+
+
+def _read_imageio(path: Path, cal: _Calib) -> np.ndarray:
+    import imageio.v3 as iio
+
+    try:
+        data = np.asarray(iio.imread(path, plugin="pillow"))
+    except Exception as exc:
+        raise TenfoldInputError(
+            f"{path}: not a readable {path.suffix.lstrip('.').upper()} image ({type(exc).__name__}: {exc}); "
+            "the file is corrupt or truncated"
+        ) from None
+    cal.notes.append(f"{path.name}: {path.suffix.lstrip('.').upper()} files carry no calibration")
+    return data
+
+
+def _read_vendor(path: Path, cal: _Calib) -> np.ndarray:
+    import importlib
+
+    modname = _VENDOR_MODULES[path.suffix.lower()]
+    try:
+        module = importlib.import_module(modname)
+    except ImportError as exc:
+        raise TenfoldInputError(
+            f"{path}: reading {path.suffix} files needs the optional vendor-format reader rosettasciio "
+            f"(GPL-3.0-or-later, not installed: {exc.name}); install it with: pip install 'tenfold[vendor]'"
+        ) from None
+    try:
+        signals = module.file_reader(str(path), lazy=False)
+    except ImportError as exc:  # e.g. .emd needs h5py
+        raise TenfoldInputError(
+            f"{path}: the vendor reader needs {exc.name}, which is missing; install: pip install 'tenfold[vendor]'"
+        ) from None
+    except Exception as exc:
+        raise TenfoldInputError(
+            f"{path}: not a readable {path.suffix} file ({type(exc).__name__}: {exc}); the file is corrupt or truncated"
+        ) from None
+    images = []
+    for sig in signals:
+        axes = sorted(sig.get("axes", []), key=lambda a: int(a.get("index_in_array", 0)))
+        signal_axes = [a for a in axes if not a.get("navigate", False)]
+        if len(signal_axes) == 2 and np.ndim(sig["data"]) in (2, 3):
+            images.append((sig, signal_axes))
+    if not images:
+        raise TenfoldInputError(
+            f"{path}: holds no 2-D image (found {len(signals)} signal(s) of other kinds, e.g. spectra); "
+            "export the image you want as TIFF"
+        )
+    sig, (ay, ax) = images[0]
+    if len(images) > 1:
+        titles = [str(s.get("metadata", {}).get("General", {}).get("title", "?")) for s, _ in images]
+        cal.warnings.append(f"{path.name}: holds {len(images)} images {titles}; read the first ({titles[0]!r})")
+    fx, fy = _unit_factor(ax.get("units")), _unit_factor(ay.get("units"))
+    if fx is not None and fy is not None:
+        cal.set(float(ax["scale"]) * fx, float(ay["scale"]) * fy, "vendor")
+    else:
+        cal.notes.append(f"{path.name}: image axes in {ax.get('units')!r}, not a length; treated as uncalibrated")
+    return np.asarray(sig["data"])
+
+
+_READERS = {"tiff": _read_tiff, "mrc": _read_mrc, "imageio": _read_imageio, "vendor": _read_vendor}
+
+
+def _is_rgb(arr: np.ndarray) -> bool:
+    return arr.ndim == 3 and arr.shape[-1] in (3, 4) and arr.shape[0] > 4 and arr.shape[1] > 4
+
+
+def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: str, sha256: str) -> Micrograph:
+    """Validate ``raw`` and turn it into a float32 :class:`Micrograph`; emits the collected warnings."""
+    arr = np.asarray(raw)
+    original_dtype = str(arr.dtype)
+    if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool):
+        raise TenfoldInputError(f"{label}: data type {arr.dtype} is not numeric; give a grey-level image")
+    if np.iscomplexobj(arr):
+        raise TenfoldInputError(
+            f"{label}: complex data (e.g. an exit wave); pass its amplitude or phase as a real image"
+        )
+    # drop length-1 axes (a 1-frame stack, a 1-channel image), never real ones
+    if arr.ndim > 2:
+        arr = arr.reshape([n for n in arr.shape if n != 1] or [1])
+    if arr.ndim < 2:
+        raise TenfoldInputError(f"{label}: data is {arr.ndim}-D (shape {np.shape(raw)}); a micrograph must be 2-D")
+    if override is not None:
+        px, source = override, "user"
+    else:
+        px, source = _resolve_calibration(cal, label)
+    converted = False
+    frames = ""
+    warn: list[str] = list(cal.warnings)
+    notes: list[str] = list(cal.notes)
+    if frame is not None and frame_range is not None:
+        raise TenfoldInputError(f"{label}: give either frame or frame_range, not both")
+    if _is_rgb(arr) and frame is None and frame_range is None:
+        rgb = arr[..., :3].astype(np.float64)
+        data = rgb @ _LUMA
+        converted = True
+        warn.append(
+            f"{label}: RGB{'A' if arr.shape[-1] == 4 else ''} image converted to luminance "
+            "(BT.709 weights); intensities are no longer raw detector counts, use the original grey-level data "
+            "for quantitative work"
+        )
+    elif arr.ndim == 3:
+        n = arr.shape[0]
+        if frame is None and frame_range is None:
+            raise TenfoldInputError(
+                f"{label}: is a stack of {n} frames ({arr.shape[1]} x {arr.shape[2]} px); choose one with "
+                f"frame=K (0..{n - 1}) or average frames a..b-1 with frame_range=(a, b)"
+            )
+        if frame is not None:
+            k = _check_index(frame, n, label)
+            data = arr[k].astype(np.float64)
+            frames = f"frame {k}"
+        else:
+            a, b = _check_range(frame_range, n, label)
+            data = arr[a:b].astype(np.float64).mean(axis=0)
+            frames = f"mean of frames {a}-{b - 1}"
+    elif arr.ndim == 2:
+        if frame is not None or frame_range is not None:
+            raise TenfoldInputError(f"{label}: is a single 2-D image, not a stack; drop frame/frame_range")
+        data = arr.astype(np.float64)
+    else:
+        raise TenfoldInputError(
+            f"{label}: data is {arr.ndim}-D (shape {arr.shape}); only 2-D images and 3-D stacks of frames are "
+            "read, save the image you want as a 2-D file"
+        )
+    rows, cols = data.shape
+    if min(rows, cols) < _MIN_SIDE:
+        raise TenfoldInputError(
+            f"{label}: image is {rows} x {cols} px, too small to hold several column spacings "
+            f"(need at least {_MIN_SIDE} px on a side)"
+        )
+    data32 = data.astype(np.float32)
+    with np.errstate(over="ignore", invalid="ignore"):
+        valid = np.isfinite(data32)
+    n_bad = int(valid.size - np.count_nonzero(valid))
+    if n_bad == valid.size:
+        raise TenfoldInputError(f"{label}: every pixel is NaN or infinite; the image holds no data")
+    good = data32[valid]
+    if good.min() == good.max():
+        raise TenfoldInputError(
+            f"{label}: image is constant (every valid pixel = {float(good[0]):g}); it holds no structure to analyse"
+        )
+    masked_fraction = n_bad / valid.size
+    if n_bad:
+        data32[~valid] = np.median(good)
+        warn.append(
+            f"{label}: {100 * masked_fraction:.3g}% of pixels are NaN/inf; they are masked (no columns there) "
+            "and filled with the median for filtering"
+        )
+    if px is None:
+        notes.append(f"{label}: uncalibrated; all *_nm outputs are NaN (give pixel_size_nm to calibrate)")
+    for message in warn:
+        warnings.warn(message, TenfoldWarning, stacklevel=3)
+    meta = ImageMeta(
+        path=path,
+        pixel_size_nm=px,
+        calibration_source=source,
+        original_dtype=original_dtype,
+        shape=(int(rows), int(cols)),
+        frames=frames,
+        converted_from_rgb=converted,
+        masked_fraction=float(masked_fraction),
+        sha256=sha256,
+        notes=list(dict.fromkeys(warn + notes)),
+    )
+    return Micrograph(data=data32, meta=meta, valid=valid)
+
+
+def _check_index(frame, n: int, label: str) -> int:
+    if isinstance(frame, bool) or not isinstance(frame, (int, np.integer)):
+        raise TenfoldInputError(f"{label}: frame={frame!r} must be an integer in 0..{n - 1}")
+    k = int(frame)
+    if not 0 <= k < n:
+        raise TenfoldInputError(f"{label}: frame={k} out of range; the stack has frames 0..{n - 1}")
+    return k
+
+
+def _check_range(frame_range, n: int, label: str) -> tuple[int, int]:
+    try:
+        a, b = (int(v) for v in frame_range)
+        ok = all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in frame_range)
+    except (TypeError, ValueError):
+        ok = False
+    if not ok:
+        raise TenfoldInputError(f"{label}: frame_range={frame_range!r} must be a pair of integers (a, b)")
+    if not 0 <= a < b <= n:
+        raise TenfoldInputError(
+            f"{label}: frame_range=({a}, {b}) invalid; need 0 <= a < b <= {n} (frames a..b-1 are averaged)"
+        )
+    return a, b
+
+
+def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -> Micrograph:
+    """Read a micrograph file into a 2-D float32 :class:`Micrograph` with its calibration and provenance.
+
+    Parameters
+    ----------
+    path : str or path-like
+        TIFF (.tif/.tiff, incl. ImageJ and OME-TIFF), MRC (.mrc/.mrcs/.st), PNG/JPEG/BMP, or with the optional
+        ``vendor`` extra .dm3/.dm4/.emd/.ser. See :func:`supported_suffixes`.
+    pixel_size_nm : float, optional
+        Pixel size in nm; overrides whatever the file says (``calibration_source='user'``).
+    frame : int, optional
+        For a stack (3-D, not RGB): the frame to read (0-based).
+    frame_range : (int, int), optional
+        For a stack: average frames ``a .. b-1``. Exactly one of ``frame``/``frame_range`` is required for a
+        stack, and neither is allowed for a single image.
+
+    Returns
+    -------
+    Micrograph
+        ``data`` float32 (rows, cols); ``valid`` False where the file had NaN/inf (those pixels hold the median
+        of the valid ones); ``meta`` an :class:`ImageMeta` with every field filled, incl. the file's sha256.
+
+    Raises
+    ------
+    TenfoldInputError
+        Missing file, a directory, unknown suffix, corrupt/truncated file, 1-D or 4-D+ data, a stack without a
+        frame choice, an image smaller than 16 px on a side, a constant or all-NaN image, a bad pixel size.
+
+    Warns
+    -----
+    TenfoldWarning
+        RGB converted to luminance, masked NaN/inf pixels, anisotropic pixels (the mean is used), a pixel size
+        larger than 1 mm in the file (ignored as an image-editor dpi tag). The messages also go to
+        ``meta.notes``.
+
+    Notes
+    -----
+    Calibration sources, in order of preference: OME-XML ``PhysicalSizeX/Y`` with their units ('ome');
+    ImageJ resolution tags with the ImageJ ``unit`` (nm, um/micron/µm, Å/A, cm, m, ...; 'imagej'); Thermo
+    Fisher/FEI TIFF metadata ``PixelWidth`` ('vendor'); TIFF ResolutionUnit inch/cm ('tiff-resolution');
+    the MRC voxel size in Å ('mrc-voxel', 0 = none); vendor-file axis scales ('vendor'). PNG/JPEG/BMP carry
+    none ('none'). A pixel size is never invented.
+
+    Examples
+    --------
+    >>> mg = read_micrograph("scan.tif")                      # doctest: +SKIP
+    >>> mg = read_micrograph("movie.mrc", frame_range=(0, 10))  # doctest: +SKIP
+    """
+    p = Path(path)
+    override = _check_pixel_size(pixel_size_nm)
+    if not p.exists():
+        raise TenfoldInputError(f"{p}: no such file; check the path")
+    if p.is_dir():
+        raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
+    suffix = p.suffix.lower()
+    if suffix not in _SUFFIXES:
+        raise TenfoldInputError(
+            f"{p}: unknown file type {p.suffix or '(no suffix)'!r}; supported: {', '.join(supported_suffixes())}"
+        )
+    try:
+        sha = _sha256(p)
+    except OSError as exc:
+        raise TenfoldInputError(f"{p}: cannot be read ({exc.strerror or exc}); check its permissions") from None
+    if p.stat().st_size == 0:
+        raise TenfoldInputError(f"{p}: file is empty (0 bytes)")
+    cal = _Calib()
+    raw = _READERS[_SUFFIXES[suffix]](p, cal)
+    return _build(
+        raw, label=str(p), cal=cal, override=override, frame=frame, frame_range=frame_range,
+        path=str(p.resolve()), sha256=sha,
+    )
+
+
+def micrograph_from_array(
+    array, *, pixel_size_nm=None, name: str = "", frame=None, frame_range=None
+) -> Micrograph:
+    """Wrap an in-memory array as a :class:`Micrograph`, with the same checks as :func:`read_micrograph`.
+
+    Parameters
+    ----------
+    array : array_like
+        2-D image, RGB(A) image (last axis 3/4) or 3-D stack (frames first). Not modified.
+    pixel_size_nm : float, optional
+        Pixel size in nm (``calibration_source='user'``); None leaves the image uncalibrated ('none').
+    name : str
+        Label used in messages and stored as ``meta.path`` (e.g. the napari layer name).
+    frame, frame_range
+        Frame choice for a stack, as in :func:`read_micrograph`.
+
+    Returns
+    -------
+    Micrograph
+        float32 copy of the data, validity mask and metadata (``sha256`` is '').
+    """
+    override = _check_pixel_size(pixel_size_nm)
+    label = f"array {name!r}" if name else "array"
+    return _build(
+        array, label=label, cal=_Calib(), override=override, frame=frame, frame_range=frame_range,
+        path=str(name), sha256="",
+    )
