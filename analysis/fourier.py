@@ -191,10 +191,11 @@ def _shell_order(angles_rad: np.ndarray, weights: np.ndarray) -> dict[int, float
     return z
 
 
-def _ellipse(kx: np.ndarray, ky: np.ndarray) -> tuple[float, float] | None:
-    """Axis ratio (>= 1) and major-axis angle (deg) of ``k^T M k = 1`` fitted to one shell."""
-    a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1)
-    sol, *_ = np.linalg.lstsq(a, np.ones(len(kx)), rcond=None)
+def _ellipse(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> tuple[float, float] | None:
+    """Axis ratio (>= 1) and major-axis angle (deg) of ``k^T M k = 1`` fitted to spots (weighted least squares)."""
+    sw = np.sqrt(weight)
+    a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1) * sw[:, None]
+    sol, *_ = np.linalg.lstsq(a, sw, rcond=None)
     m = np.array([[sol[0], sol[1]], [sol[1], sol[2]]])
     w, v = np.linalg.eigh(m)
     if w[0] <= 0:
@@ -275,7 +276,7 @@ def analyze_fourier(
         ky = spots["ky_per_px"].to_numpy()[sel] / norm
         directions = np.unique(np.round(np.degrees(np.arctan2(ky, kx)) % 180.0))
         if len(directions) >= 3:
-            fit = _ellipse(kx, ky)
+            fit = _ellipse(kx, ky, w[sel])
     if fit is not None:
         ratio, angle = fit
         warn = ratio - 1.0 > distortion_warn
