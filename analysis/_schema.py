@@ -196,3 +196,30 @@ def conform(df: pd.DataFrame, fields: tuple[Field, ...]) -> pd.DataFrame:
         else:
             out[f.name] = np.asarray(out[f.name], dtype=np.float64)
     return out.reset_index(drop=True)
+
+
+def schema_markdown() -> str:
+    """The data model as Markdown (written to docs/data_model.md; a test keeps the two in step)."""
+    lines = [
+        "# Tenfold data model",
+        "",
+        "Generated from `analysis/_schema.py` by `python -m tenfold.analysis._schema > docs/data_model.md`;",
+        "do not edit by hand. Stages may add further columns after these; the listed ones are a contract.",
+        "",
+        "Conventions: the centre of pixel (row 0, col 0) is at x = 0, y = 0; x runs along image columns, y along",
+        "rows (down); nm = px * pixel size, NaN when the image is uncalibrated; angles are atan2(dy, dx) in this",
+        "frame, in degrees. `region` 0 means the whole image.",
+        "",
+    ]
+    files = {"columns": "columns.csv", "motifs": "motifs.csv", "ladder": "ladder.csv", "pair_peaks": "pair_peaks.csv",
+             "tiles": "tiles.csv", "network": "network.csv", "spots": "spots.csv"}
+    for key, fields in TABLES.items():
+        lines += [f"## {key} (`{files[key]}`, workbook sheet `{key}`)", "", "| column | dtype | unit | meaning |",
+                  "| --- | --- | --- | --- |"]
+        lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in fields]
+        lines.append("")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    print(schema_markdown())
