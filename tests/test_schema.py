@@ -31,8 +31,10 @@ def test_units_in_names_match_units():
     for fields in TABLES.values():
         for f in fields:
             for suffix, unit in (("_nm", "nm"), ("_px", "px"), ("_deg", "deg"), ("_pct", "%")):
-                if f.name.endswith(suffix):
+                if f.name.endswith(suffix) and not f.name.endswith("_per" + suffix):
                     assert f.unit == unit, f.name
+            if "_per_" in f.name:  # spatial frequencies: k_per_nm is in 1/nm
+                assert f.unit == "1/" + f.name.rsplit("_per_", 1)[1], f.name
 
 
 def test_empty_and_conform():
