@@ -1,0 +1,630 @@
+"""Writing an :class:`AnalysisResult` to a results folder: CSV tables, ``results.xlsx``, ``summary.json``, figures.
+
+Layout of ``DIR``::
+
+    columns.csv motifs.csv ladder.csv pair_peaks.csv tiles.csv network.csv spots.csv   one per table
+    curves/<name>.csv                                                                  curves behind the figures
+    summary.json                                                                       result.summary, JSON-safe
+    provenance.json                                                                    input, calibration, parameters, versions
+    results.xlsx                                                                       one sheet per table + 'regions' + 'provenance'
+    figures/<name>.png, figures/<name>.svg                                             every registered figure that applies
+
+Everything is written into a hidden sibling folder first and renamed into place at the end, so a failure or a
+cancellation never leaves a half-written results folder (an old folder replaced with ``overwrite=True`` is only
+removed once the new one is complete).
+
+Figure makers live with the stage that knows the data; they register themselves with :func:`register_figure`
+and receive the whole result. matplotlib is imported only inside figure makers and never switches the global
+backend: figures are built as :class:`matplotlib.figure.Figure` and rendered with the Agg canvas directly.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import importlib
+import json
+import math
+import re
+import shutil
+import uuid
+import warnings
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
+from ._progress import ProgressCallback, report
+from ._result import AnalysisResult
+from ._schema import TABLES, conform
+
+__all__ = [
+    "write_results",
+    "read_workbook",
+    "register_figure",
+    "FIGURES",
+    "SPECIES_COLOURS",
+    "SPECIES_MARKERS",
+]
+
+#: name -> figure maker. A maker takes the result and returns a matplotlib Figure, or None when it does not apply.
+FIGURES: dict[str, Callable[[AnalysisResult], object]] = {}
+
+#: Species colours, dimmest class first. Chosen for this project and checked to stay apart (CIEDE2000) under
+#: simulated protan, deutan and tritan vision (tests/test_export.py); markers differ too, so colour is never the
+#: only cue.
+SPECIES_COLOURS = ("#1b5fad", "#f5a623", "#e23c55", "#63c5e8", "#2a1a10", "#ffffff")
+SPECIES_MARKERS = ("o", "s", "^", "D", "v", "P")
+_UNCLASSIFIED_COLOUR = "#9e9e9e"
+
+#: stage modules that may register figure makers; imported (if present) before figures are drawn
+_FIGURE_MODULES = ("species", "motifs", "ladder", "tiling", "fourier", "region")
+
+#: the versions recorded in the provenance (distribution names)
+_VERSIONED = ("tenfold", "numpy", "scipy", "pandas", "trackpy", "scikit-image", "numba", "tifffile", "openpyxl",
+              "matplotlib")
+
+_SHEET_EXTRA = ("regions", "provenance")
+_UNIT_SUFFIX = {"_nm": "nm", "_px": "px", "_deg": "deg", "_pct": "%"}
+
+
+def register_figure(name: str):
+    """Decorator registering a figure maker under ``name`` (the file stem in ``DIR/figures``).
+
+    Parameters
+    ----------
+    name : str
+        Figure name, letters, digits, ``_`` and ``-`` only.
+
+    Examples
+    --------
+    >>> @register_figure("ladder_plot")                  # doctest: +SKIP
+    ... def _ladder_plot(result):
+    ...     if result.tables["ladder"].empty:
+    ...         return None
+    ...     ...
+    """
+    if not re.fullmatch(r"[A-Za-z0-9_\-]+", name):
+        raise ValueError(f"figure name {name!r} must use letters, digits, '_' and '-' only")
+
+    def deco(func):
+        old = FIGURES.get(name)
+        if old is not None and (old.__module__, old.__qualname__) != (func.__module__, func.__qualname__):
+            raise ValueError(f"figure name {name!r} is already registered by {old.__module__}.{old.__qualname__}")
+        FIGURES[name] = func
+        return func
+
+    return deco
+
+
+# --------------------------------------------------------------------------------------------------------------
+# JSON, provenance
+
+
+def _json_safe(obj):
+    """A copy of ``obj`` that :func:`json.dumps` accepts with ``allow_nan=False`` (NaN/inf -> None)."""
+    if obj is None or isinstance(obj, (bool, str)):
+        return obj
+    if isinstance(obj, (int, np.integer)) and not isinstance(obj, np.bool_):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, (float, np.floating)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    if isinstance(obj, (complex, np.complexfloating)):
+        return [_json_safe(obj.real), _json_safe(obj.imag)]
+    if isinstance(obj, dict):
+        return {str(k): _json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, set, frozenset)):
+        return [_json_safe(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _json_safe(obj.tolist())
+    if isinstance(obj, pd.DataFrame):
+        return _json_safe(obj.to_dict(orient="list"))
+    if isinstance(obj, pd.Series):
+        return _json_safe(obj.tolist())
+    if isinstance(obj, (_dt.datetime, _dt.date)):
+        return obj.isoformat()
+    if isinstance(obj, Path):
+        return str(obj)
+    if hasattr(obj, "to_dict"):
+        return _json_safe(obj.to_dict())
+    return str(obj)
+
+
+def _versions() -> dict[str, str]:
+    from importlib import metadata
+
+    out = {}
+    for dist in _VERSIONED:
+        try:
+            out[dist] = metadata.version(dist)
+        except metadata.PackageNotFoundError:
+            out[dist] = "not installed"
+    return out
+
+
+def _flatten(d: dict, prefix: str = "") -> list[tuple[str, object]]:
+    rows = []
+    for k, v in d.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict) and v:
+            rows.extend(_flatten(v, key + "."))
+        else:
+            rows.append((key, v))
+    return rows
+
+
+def _provenance(result: AnalysisResult) -> dict:
+    meta = result.meta
+    return {
+        "input_file": meta.path,
+        "sha256": meta.sha256,
+        "pixel_size_nm": meta.pixel_size_nm,
+        "calibrated": meta.calibrated,
+        "calibration_source": meta.calibration_source,
+        "frames": meta.frames,
+        "shape_px": list(meta.shape),
+        "original_dtype": meta.original_dtype,
+        "converted_from_rgb": meta.converted_from_rgb,
+        "masked_fraction": meta.masked_fraction,
+        "notes": list(meta.notes),
+        "parameters": _json_safe(result.parameters),
+        "versions": _versions(),
+        "date_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def _provenance_table(prov: dict) -> pd.DataFrame:
+    rows = []
+    for key, value in prov.items():
+        if key == "parameters":
+            rows.extend((f"parameter: {k}", v, _unit_of(k)) for k, v in _flatten(value))
+        elif key == "versions":
+            rows.extend((f"version: {k}", v, "") for k, v in value.items())
+        else:
+            rows.append((key, value, "nm" if key == "pixel_size_nm" else ("px" if key == "shape_px" else "")))
+    cells = [
+        (k, json.dumps(v) if isinstance(v, (list, dict)) else v, u) for k, v, u in rows
+    ]
+    return pd.DataFrame(cells, columns=["item", "value", "unit"])
+
+
+def _unit_of(name: str) -> str:
+    for suffix, unit in _UNIT_SUFFIX.items():
+        if name.endswith(suffix):
+            return unit
+    return ""
+
+
+# --------------------------------------------------------------------------------------------------------------
+# tables
+
+
+def _ordered_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
+    """The tables to write, schema tables first in schema order; schema columns first in each."""
+    out = {}
+    names = [n for n in TABLES if result.tables.get(n) is not None]
+    names += [n for n in result.tables if n not in TABLES and result.tables[n] is not None]
+    for name in names:
+        df = result.tables[name]
+        if name in TABLES:
+            try:
+                df = conform(df, TABLES[name])
+            except KeyError:
+                pass  # a stage bug; still write what is there rather than lose the run
+        out[name] = df
+    return out
+
+
+def _units(name: str, df: pd.DataFrame) -> list[str]:
+    schema = {f.name: f.unit for f in TABLES.get(name, ())}
+    return [schema.get(c, _unit_of(str(c))) for c in df.columns]
+
+
+def _safe_stem(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_\-]+", "_", str(name)).strip("_") or "unnamed"
+
+
+def _write_csv(df: pd.DataFrame, path: Path) -> None:
+    # pandas writes floats with repr(), the shortest string that round-trips: full precision
+    df.to_csv(path, index=False, lineterminator="\n")
+
+
+def _write_json(obj, path: Path) -> None:
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump(_json_safe(obj), fh, indent=2, allow_nan=False, ensure_ascii=False)
+        fh.write("\n")
+
+
+def _column_cells(series: pd.Series) -> list:
+    """Python values for openpyxl: numbers stay numbers, NaN/inf and missing become None (empty cells)."""
+    if pd.api.types.is_bool_dtype(series.dtype):
+        return [bool(v) for v in series.to_numpy()]
+    if pd.api.types.is_integer_dtype(series.dtype):
+        return series.to_numpy().tolist()
+    if pd.api.types.is_float_dtype(series.dtype):
+        return [v if math.isfinite(v) else None for v in series.to_numpy(dtype=np.float64).tolist()]
+    out = []
+    for v in series.tolist():
+        if v is None or (isinstance(v, float) and not math.isfinite(v)):
+            out.append(None)
+        elif isinstance(v, (bool, np.bool_)):
+            out.append(bool(v))
+        elif isinstance(v, (int, float, np.integer, np.floating)):
+            out.append(v.item() if hasattr(v, "item") else v)
+        else:
+            out.append(str(v))
+    return out
+
+
+def _write_workbook(sheets: dict[str, tuple[pd.DataFrame, list[str]]], path: Path) -> None:
+    from openpyxl import Workbook
+    from openpyxl.cell import WriteOnlyCell
+    from openpyxl.cell.cell import ILLEGAL_CHARACTERS_RE
+    from openpyxl.styles import Font
+
+    wb = Workbook(write_only=True)
+    bold, italic = Font(bold=True), Font(italic=True)
+    for name, (df, units) in sheets.items():
+        ws = wb.create_sheet(title=name[:31])
+        ws.freeze_panes = "A3"
+        header = []
+        for col in df.columns:
+            c = WriteOnlyCell(ws, value=str(col))
+            c.font = bold
+            header.append(c)
+        ws.append(header)
+        unit_row = []
+        for unit in units:
+            c = WriteOnlyCell(ws, value=unit or None)
+            c.font = italic
+            unit_row.append(c)
+        ws.append(unit_row)
+        columns = [_column_cells(df[c]) for c in df.columns]
+        for row in zip(*columns):
+            cells = []
+            for v in row:
+                if isinstance(v, str):
+                    v = ILLEGAL_CHARACTERS_RE.sub("", v)
+                    if v.startswith("="):  # text, never a formula
+                        c = WriteOnlyCell(ws, value=v)
+                        c.data_type = "s"
+                        v = c
+                cells.append(v)
+            ws.append(cells)
+    wb.save(path)
+
+
+def read_workbook(path) -> dict[str, pd.DataFrame]:
+    """Read a ``results.xlsx`` written by :func:`write_results` back into DataFrames.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The workbook.
+
+    Returns
+    -------
+    dict of str -> DataFrame
+        One entry per sheet. Row 1 of each sheet gives the column names, row 2 the units (kept in
+        ``df.attrs['units']`` as a name -> unit dict), data from row 3. Schema tables get their schema dtypes
+        back (empty cells -> NaN for floats); object columns such as 'members' come back as strings ('' for
+        empty cells).
+    """
+    from openpyxl import load_workbook
+
+    path = Path(path)
+    if not path.is_file():
+        raise TenfoldInputError(f"{path}: no such workbook; give the results.xlsx written by write_results")
+    try:
+        wb = load_workbook(path, read_only=True, data_only=True)
+    except Exception as exc:
+        raise TenfoldInputError(f"{path}: not a readable .xlsx workbook ({type(exc).__name__}: {exc})") from None
+    out = {}
+    try:
+        for ws in wb.worksheets:
+            rows = list(ws.iter_rows(values_only=True))
+            if not rows:
+                out[ws.title] = pd.DataFrame()
+                continue
+            header = [str(h) for h in rows[0]]
+            units = list(rows[1]) if len(rows) > 1 else [None] * len(header)
+            data = [list(r) + [None] * (len(header) - len(r)) for r in rows[2:]]
+            df = pd.DataFrame(data, columns=header, dtype=object)
+            schema = {f.name: f.dtype for f in TABLES.get(ws.title, ())}
+            for col in header:
+                df[col] = _restore(df[col], schema.get(col))
+            df.attrs["units"] = {h: (u or "") for h, u in zip(header, units)}
+            out[ws.title] = df
+    finally:
+        wb.close()
+    return out
+
+
+def _restore(col: pd.Series, dtype: str | None) -> pd.Series:
+    values = col.tolist()
+    if dtype == "object" or (dtype is None and any(isinstance(v, str) for v in values)):
+        return pd.Series(["" if v is None else str(v) for v in values], index=col.index, dtype=object)
+    if dtype == "bool" or (dtype is None and values and all(isinstance(v, bool) for v in values)):
+        return pd.Series([bool(v) for v in values], index=col.index, dtype=bool)
+    if dtype is not None and dtype.startswith("int") and None not in values:
+        return pd.Series(values, index=col.index, dtype=np.int64)
+    if dtype is None and values and all(isinstance(v, int) and not isinstance(v, bool) for v in values):
+        return pd.Series(values, index=col.index, dtype=np.int64)
+    return pd.Series([np.nan if v is None else v for v in values], index=col.index, dtype=np.float64)
+
+
+# --------------------------------------------------------------------------------------------------------------
+# figures
+
+
+def _load_figure_modules() -> None:
+    for mod in _FIGURE_MODULES:
+        try:
+            importlib.import_module(f"{__package__}.{mod}")
+        except ModuleNotFoundError as exc:
+            if exc.name != f"{__package__}.{mod}":
+                raise
+
+
+def _save_figure(fig, stem: Path) -> list[Path]:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
+    fig.savefig(png, dpi=200)
+    fig.savefig(svg)
+    return [png, svg]
+
+
+def _species_colour(species: int) -> tuple[str, str]:
+    if species < 0:
+        return _UNCLASSIFIED_COLOUR, "x"
+    return SPECIES_COLOURS[species % len(SPECIES_COLOURS)], SPECIES_MARKERS[species % len(SPECIES_MARKERS)]
+
+
+def _species_label(species: int) -> str:
+    return "unclassified" if species < 0 else f"species {species}"
+
+
+@register_figure("species_histogram")
+def species_histogram(result: AnalysisResult):
+    """Histogram of column integrated intensities, stacked by species; None when there are no columns."""
+    cols = result.tables.get("columns")
+    if cols is None or cols.empty or "intensity" not in cols:
+        return None
+    intensity = cols["intensity"].to_numpy(dtype=np.float64)
+    species = cols["species"].to_numpy(dtype=np.int64) if "species" in cols else np.full(len(cols), -1)
+    ok = np.isfinite(intensity)
+    if not ok.any():
+        return None
+    from matplotlib.figure import Figure
+
+    edges = np.histogram_bin_edges(intensity[ok], bins="auto")
+    if len(edges) > 81:
+        edges = np.histogram_bin_edges(intensity[ok], bins=80)
+    fig = Figure(figsize=(6.0, 4.0), layout="constrained")
+    ax = fig.add_subplot()
+    classes = sorted(set(species[ok].tolist()))
+    data = [intensity[ok & (species == s)] for s in classes]
+    ax.hist(data, bins=edges, stacked=True, color=[_species_colour(s)[0] for s in classes],
+            label=[f"{_species_label(s)} (n={len(d)})" for s, d in zip(classes, data)],
+            edgecolor="black", linewidth=0.4)
+    ax.set_xlabel("integrated column intensity (counts px$^2$)")
+    ax.set_ylabel("number of columns")
+    ax.set_title(f"column intensities by species ({int(ok.sum())} columns)")
+    ax.legend(frameon=False)
+    return fig
+
+
+def _nice_length(target: float) -> float:
+    """Largest 1, 2 or 5 x 10^k not above ``target`` (> 0)."""
+    k = math.floor(math.log10(target))
+    for m in (5, 2, 1):
+        if m * 10**k <= target:
+            return m * 10**k
+    return 10**k
+
+
+@register_figure("columns_overlay")
+def columns_overlay(result: AnalysisResult):
+    """The image in grey with the columns marked by species; a nm scale bar when calibrated."""
+    if result.image is None:
+        return None
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Rectangle
+
+    img = np.asarray(result.image, dtype=np.float64)
+    finite = img[np.isfinite(img)]
+    lo, hi = (np.percentile(finite, [0.5, 99.5]) if finite.size else (0.0, 1.0))
+    rows, cols_px = img.shape
+    width_in = 7.0
+    fig = Figure(figsize=(width_in, width_in * rows / cols_px + 0.6), layout="constrained")
+    ax = fig.add_subplot()
+    # default extent puts pixel centres at integer coordinates, as in the table convention
+    ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest")
+    table = result.tables.get("columns")
+    n = 0
+    if table is not None and not table.empty:
+        species = table["species"].to_numpy(dtype=np.int64) if "species" in table else np.full(len(table), -1)
+        x, y = table["x_px"].to_numpy(dtype=float), table["y_px"].to_numpy(dtype=float)
+        size = max(4.0, min(30.0, 2.0e4 / max(len(table), 1)))
+        for s in sorted(set(species.tolist())):
+            sel = species == s
+            colour, marker = _species_colour(s)
+            ax.scatter(x[sel], y[sel], s=size, c=colour, marker=marker, edgecolors="black", linewidths=0.4,
+                       label=f"{_species_label(s)} (n={int(sel.sum())})")
+        n = len(table)
+        ax.legend(loc="upper right", fontsize="small", framealpha=0.8)
+    ax.set_xlim(-0.5, cols_px - 0.5)
+    ax.set_ylim(rows - 0.5, -0.5)
+    ps = result.meta.pixel_size_nm
+    if ps:
+        bar_nm = _nice_length(0.2 * cols_px * ps)
+        bar_px = bar_nm / ps
+        x0, y0 = 0.04 * cols_px, rows - 0.05 * rows
+        h = max(0.012 * rows, 1.0)
+        ax.add_patch(Rectangle((x0, y0 - h), bar_px, h, facecolor="white", edgecolor="black", linewidth=0.6))
+        ax.text(x0 + bar_px / 2, y0 - 1.6 * h, f"{bar_nm:g} nm", color="white", ha="center", va="bottom",
+                fontsize="medium", fontweight="bold",
+                bbox={"facecolor": "black", "alpha": 0.5, "edgecolor": "none", "pad": 1.5})
+        ax.set_xticks([])
+        ax.set_yticks([])
+        ax.set_title(f"{n} columns by species (pixel size {ps:.4g} nm, {result.meta.calibration_source})")
+    else:
+        ax.set_xlabel("x (px)")
+        ax.set_ylabel("y (px)")
+        ax.set_title(f"{n} columns by species, uncalibrated (px)")
+    return fig
+
+
+# --------------------------------------------------------------------------------------------------------------
+# the writer
+
+
+def _check_out_dir(out: Path, overwrite: bool) -> None:
+    if out.exists() and not out.is_dir():
+        raise TenfoldInputError(f"{out}: exists and is a file, not a folder; choose another results folder")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise TenfoldInputError(
+            f"{out}: results folder exists and is not empty; pass overwrite=True (--overwrite) to replace it "
+            "or choose a new folder"
+        )
+
+
+def write_results(
+    result: AnalysisResult,
+    out_dir,
+    *,
+    overwrite: bool = False,
+    figures: bool = True,
+    progress: ProgressCallback | None = None,
+) -> list[Path]:
+    """Write every table, curve, the summary, a workbook and the figures of one analysis into ``out_dir``.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        What :func:`tenfold.analysis.pipeline.run_pipeline` returned.
+    out_dir : str or path-like
+        Results folder. Created (with its parents); must not exist or be empty unless ``overwrite``.
+    overwrite : bool
+        Replace an existing non-empty folder. The old folder is removed only after the new one is complete.
+    figures : bool
+        Draw the registered figures (``FIGURES``) into ``figures/`` as PNG (200 dpi) and SVG.
+    progress : callable, optional
+        ``progress(fraction, message)``, called once per file; returning False cancels (raises
+        :class:`Cancelled`, nothing is left behind).
+
+    Returns
+    -------
+    list of Path
+        Every file written, in the final folder, sorted.
+
+    Notes
+    -----
+    Files: one CSV per table (``columns.csv``, ``motifs.csv``, ``ladder.csv``, ``pair_peaks.csv``,
+    ``tiles.csv``, ``network.csv``, ``spots.csv``; header = schema names, no index, full float precision, NaN
+    as an empty field), ``curves/<name>.csv``, ``summary.json`` (NaN -> null), ``provenance.json``,
+    ``results.xlsx`` (sheets per table, 'regions', 'provenance'; row 1 names, row 2 units, data from row 3,
+    numbers as numeric cells, NaN as empty cells) and ``figures/<name>.png|svg``.
+
+    Raises
+    ------
+    TenfoldInputError
+        ``out_dir`` is a file, or a non-empty folder and ``overwrite`` is False.
+    Cancelled
+        The progress callback returned False.
+    """
+    out = Path(out_dir)
+    _check_out_dir(out, overwrite)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f".{out.name}.writing-{uuid.uuid4().hex[:8]}"
+    tmp.mkdir()
+    try:
+        written = _write_all(result, tmp, figures=figures, progress=progress)
+        _check_out_dir(out, overwrite)  # nobody filled it meanwhile
+        _swap_into_place(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return sorted(out / p.relative_to(tmp) for p in written)
+
+
+def _swap_into_place(tmp: Path, out: Path) -> None:
+    old = None
+    if out.exists():
+        old = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
+        out.rename(old)
+    try:
+        tmp.rename(out)
+    except BaseException:
+        if old is not None:
+            old.rename(out)
+        raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+
+
+def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) -> list[Path]:
+    tables = _ordered_tables(result)
+    curves = {k: v for k, v in (result.curves or {}).items() if v is not None}
+    prov = _provenance(result)
+    jobs: list[tuple[str, Callable[[], list[Path]]]] = []
+
+    def job(label: str, func: Callable[[], list[Path]]) -> None:
+        jobs.append((label, func))
+
+    for name, df in tables.items():
+        path = tmp / f"{_safe_stem(name)}.csv"
+        job(path.name, lambda df=df, path=path: (_write_csv(df, path), [path])[1])
+    if curves:
+        (tmp / "curves").mkdir()
+    for name, df in curves.items():
+        path = tmp / "curves" / f"{_safe_stem(name)}.csv"
+        job(f"curves/{path.name}", lambda df=df, path=path: (_write_csv(pd.DataFrame(df), path), [path])[1])
+    job("summary.json", lambda: (_write_json(result.summary, tmp / "summary.json"), [tmp / "summary.json"])[1])
+    job("provenance.json", lambda: (_write_json(prov, tmp / "provenance.json"), [tmp / "provenance.json"])[1])
+
+    def workbook() -> list[Path]:
+        sheets = {name[:31]: (df, _units(name, df)) for name, df in tables.items()}
+        regions = (result.summary or {}).get("regions")
+        if isinstance(regions, list) and regions and all(isinstance(r, dict) for r in regions):
+            rdf = pd.DataFrame([{k: (json.dumps(_json_safe(v)) if isinstance(v, (list, dict)) else v)
+                                 for k, v in r.items()} for r in regions])
+            sheets["regions"] = (rdf, _units("regions", rdf))
+        pdf = _provenance_table(_json_safe(prov))
+        sheets["provenance"] = (pdf, [""] * pdf.shape[1])
+        _write_workbook(sheets, tmp / "results.xlsx")
+        return [tmp / "results.xlsx"]
+
+    job("results.xlsx", workbook)
+    if figures:
+        _load_figure_modules()
+        for name, maker in list(FIGURES.items()):
+            job(f"figures/{name}", lambda name=name, maker=maker: _figure_job(result, name, maker, tmp))
+
+    written: list[Path] = []
+    for i, (label, func) in enumerate(jobs):
+        report(progress, i / len(jobs), f"writing {label}")
+        written.extend(func())
+    report(progress, 1.0, "results written")
+    return written
+
+
+def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:
+    try:
+        fig = maker(result)
+    except (Cancelled, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # one broken figure must not lose the tables
+        warnings.warn(f"figure {name!r} could not be drawn ({type(exc).__name__}: {exc}); other files are written",
+                      TenfoldWarning, stacklevel=4)
+        return []
+    if fig is None:
+        return []
+    (tmp / "figures").mkdir(exist_ok=True)
+    return _save_figure(fig, tmp / "figures" / _safe_stem(name))
