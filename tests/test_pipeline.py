@@ -1,0 +1,93 @@
+"""The orchestrator: parameters, hand correction, cancellation."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tenfold.analysis import Cancelled, TenfoldInputError
+from tenfold.analysis.io import read_micrograph
+from tenfold.analysis.pipeline import Parameters, rerun_from_columns, run_pipeline
+from pathlib import Path
+
+SAMPLE = Path(__file__).resolve().parents[1] / "sample_images" / "decagonal_haadf_high_dose.tif"
+
+
+@pytest.fixture(scope="module")
+def small():
+    mg = read_micrograph(SAMPLE)
+    from tenfold.analysis.io import micrograph_from_array
+
+    return micrograph_from_array(mg.data[:400, :400].copy(), pixel_size_nm=0.04, name="crop")
+
+
+@pytest.fixture(scope="module")
+def result(small):
+    return run_pipeline(small, Parameters(fourier=True))
+
+
+@pytest.mark.parametrize(
+    "kw, word",
+    [({"column_diameter_nm": -1.0}, "column_diameter_nm"), ({"ring_order": 7}, "ring_order"),
+     ({"n_species": 12}, "n_species"), ({"radius_tolerance": 0.9}, "radius_tolerance")],
+)
+def test_bad_parameters_name_themselves(kw, word):
+    with pytest.raises(TenfoldInputError, match=word):
+        Parameters(**kw).validate()
+    with pytest.raises(TenfoldInputError, match="unknown parameter"):
+        Parameters.from_dict({"ring_size": 3})
+
+
+def test_result_tables_and_summary(result):
+    assert set(result.tables) >= {"columns", "motifs", "ladder", "pair_peaks", "tiles", "network", "spots"}
+    assert result.summary["n_columns"] == len(result.tables["columns"]) > 300
+    rings = result.tables["motifs"].query("kind == 'ring10'")
+    assert len(rings) >= 10
+    assert result.summary["fourier"]["rotational_order"] == 10
+
+
+def test_deleting_a_ring_member_makes_the_ring_incomplete(result):
+    motifs = result.tables["motifs"]
+    ring = motifs[(motifs["kind"] == "ring10") & motifs["complete"]].iloc[0]
+    victim = int(ring["members"].split()[0])
+    cols = result.tables["columns"]
+    edited = cols[cols["id"] != victim]
+    new = rerun_from_columns(result, edited)
+    m = new.tables["motifs"]
+    rings = m[m["kind"] == "ring10"]
+    d = np.hypot(rings["centre_x_px"] - ring["centre_x_px"], rings["centre_y_px"] - ring["centre_y_px"])
+    same = rings[d < 1.0]
+    assert len(same) == 1
+    assert not bool(same["complete"].iloc[0]) and int(same["n_members"].iloc[0]) == 9
+    assert str(victim) not in same["members"].iloc[0].split()
+    assert new.summary["columns"]["hand_edited"]["removed"] == 1
+    # the unedited run is untouched
+    assert victim in set(result.tables["columns"]["id"])
+
+
+def test_added_point_gets_a_fresh_id(result):
+    cols = result.tables["columns"][["id", "x_px", "y_px"]].copy()
+    extra = pd.DataFrame({"x_px": [10.0], "y_px": [10.0]})
+    new = rerun_from_columns(result, pd.concat([cols, extra], ignore_index=True))
+    c = new.tables["columns"]
+    assert c["id"].is_unique
+    assert (c["fit_status"] == "manual").sum() == 1
+    assert new.summary["columns"]["hand_edited"]["added"] == 1
+
+
+def test_cancel_stops_the_run(small):
+    calls = []
+
+    def progress(f, msg):
+        calls.append(f)
+        return False if f > 0.3 else None
+
+    with pytest.raises(Cancelled):
+        run_pipeline(small, progress=progress)
+    assert calls and max(calls) <= 1.0
+
+
+def test_progress_is_monotone_and_reaches_one(small):
+    seen = []
+    run_pipeline(small, Parameters(fourier=False), progress=lambda f, m: seen.append(f))
+    assert seen[-1] == pytest.approx(1.0)
+    assert all(b >= a - 1e-9 for a, b in zip(seen, seen[1:]))
