@@ -1,0 +1,128 @@
+"""Reader, writer, sample data and the manifest."""
+
+from __future__ import annotations
+
+from importlib import resources
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tenfold.napari_plugin._reader import napari_get_reader
+from tenfold.napari_plugin._sample_data import load_sample, sample_names
+
+HIGH_DOSE = "decagonal_haadf_high_dose"
+
+
+def _truth(name: str) -> dict:
+    import json
+
+    return json.loads((resources.files("tenfold.sample_images") / f"{name}_truth.json").read_text())
+
+
+def test_calibrated_sample_opens_in_nm(sample_path, notes):
+    path = str(sample_path(HIGH_DOSE))
+    reader = napari_get_reader(path)
+    assert callable(reader)
+    (data, kwargs, kind), = reader(path)
+    px = _truth(HIGH_DOSE)["pixel_size_nm"]  # the generator's recorded calibration, written into the TIFF
+    assert kind == "image"
+    assert kwargs["scale"] == pytest.approx((px, px))
+    assert kwargs["units"] == ("nm", "nm")
+    assert kwargs["metadata"]["tenfold_meta"]["pixel_size_nm"] == pytest.approx(px)
+    assert kwargs["name"] == HIGH_DOSE
+    assert data.shape == tuple(_truth(HIGH_DOSE)["shape"])
+    assert notes["warning"] == [] and notes["error"] == []
+
+
+def test_viewer_scale_bar_reads_nm(make_napari_viewer, sample_path):
+    viewer = make_napari_viewer()
+    layer, = viewer.open(str(sample_path(HIGH_DOSE)), plugin="tenfold")
+    viewer.canvas.overlays.scale_bar.visible = True
+    assert [str(u) for u in layer.units] == ["nanometer", "nanometer"]
+    assert layer.scale[-1] == pytest.approx(_truth(HIGH_DOSE)["pixel_size_nm"])
+
+
+def test_uncalibrated_png_opens_in_pixels_with_warning(tmp_path, notes):
+    import imageio.v3 as iio
+
+    path = tmp_path / "plain.png"
+    iio.imwrite(path, (np.arange(64 * 64).reshape(64, 64) % 251).astype(np.uint8))
+    reader = napari_get_reader(str(path))
+    (data, kwargs, _), = reader(str(path))
+    assert kwargs["scale"] == (1.0, 1.0)
+    assert kwargs["name"] == "plain (uncalibrated)"
+    assert "units" not in kwargs
+    assert len(notes["warning"]) == 1 and "pixel size" in notes["warning"][0]
+
+
+@pytest.mark.parametrize("name", ["notes.txt", "table.csv", "folder_without_suffix"])
+def test_reader_declines_other_files(tmp_path, name):
+    path = tmp_path / name
+    path.write_text("not an image")
+    assert napari_get_reader(str(path)) is None
+    assert napari_get_reader([str(path), str(path)]) is None
+    assert napari_get_reader(str(tmp_path)) is None
+
+
+def test_bad_tiff_gives_notification_not_traceback(tmp_path, notes):
+    path = tmp_path / "broken.tif"
+    path.write_bytes(b"II*\x00 this is not really a TIFF")
+    reader = napari_get_reader(str(path))
+    assert reader(str(path)) == [(None,)]
+    assert len(notes["error"]) == 1 and "broken.tif" in notes["error"][0]
+
+
+def test_every_bundled_sample_loads():
+    names = sample_names()
+    assert HIGH_DOSE in names
+    for name in names:
+        (data, kwargs, _), = load_sample(name)
+        assert kwargs["scale"][0] == pytest.approx(_truth(name)["pixel_size_nm"])
+
+
+def test_manifest_valid_and_matches_package():
+    from npe2 import PluginManifest
+
+    from tenfold.analysis.io import supported_suffixes
+
+    path = resources.files("tenfold.napari_plugin") / "napari.yaml"
+    manifest = PluginManifest.from_file(str(path))
+    manifest.validate_imports()  # every python_name imports and exists
+    assert manifest.name == "tenfold"
+    patterns = set(manifest.contributions.readers[0].filename_patterns)
+    assert patterns == {f"*{s}" for s in supported_suffixes()}
+    assert {s.key for s in manifest.contributions.sample_data} == set(sample_names())
+
+
+def test_npe2_validate_command():
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, "-m", "npe2", "validate", "tenfold"], capture_output=True, text=True)
+    assert out.returncode == 0, out.stdout + out.stderr
+    assert "valid" in out.stdout
+
+
+def test_writer_round_trip(tmp_path, make_napari_viewer):
+    from tenfold.napari_plugin._writer import write_columns, write_motifs
+
+    viewer = make_napari_viewer()
+    feats = pd.DataFrame({"id": [3, 7, 9], "species": [0, 1, 1], "intensity": [10.5, 20.25, 30.0]})
+    pts = viewer.add_points(np.array([[1.0, 2.0], [3.5, 4.25], [10.0, 0.5]]), features=feats, name="columns")
+    data, attrs, _ = pts.as_layer_data_tuple()
+    out, = write_columns(str(tmp_path / "cols"), data, attrs)
+    back = pd.read_csv(out)
+    assert back["id"].tolist() == [3, 7, 9]
+    assert back["intensity"].tolist() == [10.5, 20.25, 30.0]
+    assert back["x_px"].tolist() == [2.0, 4.25, 0.5] and back["y_px"].tolist() == [1.0, 3.5, 10.0]
+
+    square = np.array([[0.0, 0.0], [0.0, 2.0], [2.0, 2.0], [2.0, 0.0]])
+    shp = viewer.add_shapes([square], shape_type="polygon",
+                            features=pd.DataFrame({"motif_id": [5], "kind": ["ring10"]}), name="motifs")
+    data, attrs, _ = shp.as_layer_data_tuple()
+    out, = write_motifs(str(tmp_path / "motifs.csv"), data, attrs)
+    back = pd.read_csv(out)
+    assert back.loc[0, "motif_id"] == 5 and back.loc[0, "kind"] == "ring10"
+    xy = np.array([p.split() for p in back.loc[0, "vertices_px"].split(";")], float)
+    np.testing.assert_allclose(xy, square[:, ::-1])
