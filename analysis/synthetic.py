@@ -962,7 +962,8 @@ def crystal_columns(atoms, *, axis: str = "z", decimals: int = 4) -> pd.DataFram
     axis : {'x', 'y', 'z'}
         Projection direction. The in-plane coordinates are (y, z) for 'x', (z, x) for 'y', (x, y) for 'z'.
     decimals : int
-        Positions are rounded to this many decimals of a nm to decide which atoms share a column.
+        Positions are rounded to this many decimals of a nm to decide which atoms share a column; the reported
+        position is the mean of the members' exact positions.
 
     Returns
     -------
@@ -980,10 +981,15 @@ def crystal_columns(atoms, *, axis: str = "z", decimals: int = 4) -> pd.DataFram
             "atoms must provide get_positions() and get_atomic_numbers() (e.g. an ase.Atoms)"
         ) from None
     i, j = _AXES[axis]
-    xy = np.round(pos[:, [i, j]], decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
-    uniq, inv, n = np.unique(xy, axis=0, return_inverse=True, return_counts=True)
-    zsum = np.bincount(inv.ravel(), weights=z, minlength=len(uniq)).astype(np.int64)
-    df = pd.DataFrame({"x_nm": uniq[:, 0], "y_nm": uniq[:, 1], "n_atoms": n.astype(np.int64), "z_sum": zsum})
+    xy = pos[:, [i, j]]
+    key = np.round(xy, decimals) + 0.0  # + 0.0 turns -0.0 into 0.0
+    uniq, inv, n = np.unique(key, axis=0, return_inverse=True, return_counts=True)
+    inv = inv.ravel()
+    # Report the mean of the exact positions; the rounded key only decides membership.
+    cx = np.bincount(inv, weights=xy[:, 0], minlength=len(uniq)) / n
+    cy = np.bincount(inv, weights=xy[:, 1], minlength=len(uniq)) / n
+    zsum = np.bincount(inv, weights=z, minlength=len(uniq)).astype(np.int64)
+    df = pd.DataFrame({"x_nm": cx, "y_nm": cy, "n_atoms": n.astype(np.int64), "z_sum": zsum})
     return df.sort_values(["y_nm", "x_nm"], ignore_index=True)
 
 
