@@ -153,6 +153,8 @@ def _motif_geometry(x, y, owner, n_motifs, cx, cy, order):
 
 
 def _member_strings(ids, owner, sort_key, n_motifs) -> list[str]:
+    if n_motifs == 0:
+        return []
     order = np.lexsort((sort_key, owner))
     ids, owner = ids[order], owner[order]
     splits = np.searchsorted(owner, np.arange(1, n_motifs))
@@ -250,6 +252,11 @@ def decagonal_model(
     motif_of_vertex[kept] = np.arange(len(kept))
     cxy = v[kept]
     n_c = len(kept)
+    if n_c == 0:
+        raise TenfoldInputError(
+            f"width_nm={width_nm}, height_nm={height_nm}: no cluster fits in the field; make it a few edge_nm "
+            f"({edge_nm} nm) wide at least"
+        )
 
     # Columns: (cluster, slot) grid, slot -1 = centre, 0..9 ring.
     slot = np.tile(np.arange(-1, _RING), n_c)

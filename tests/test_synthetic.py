@@ -169,6 +169,7 @@ def test_model_deterministic():
     dict(width_nm=10.0, height_nm=10.0, ring_radius_nm=0.7),
     dict(width_nm=10.0, height_nm=10.0, vacancy_fraction=1.0),
     dict(width_nm=10.0, height_nm=10.0, z_eff=(40, 22, 70)),
+    dict(width_nm=0.8, height_nm=0.8),  # no ring of radius 0.45 nm fits
 ])
 def test_model_bad_input(kwargs):
     with pytest.raises(TenfoldInputError):
