@@ -318,12 +318,14 @@ def _read_mrc(path: Path, cal: _Calib) -> np.ndarray:
     import mrcfile
 
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")  # mrcfile warns (RuntimeWarning) about damaged headers/short data
+        # mrcfile raises for damaged files and warns (RuntimeWarning) about odd but readable headers
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             with mrcfile.open(path, mode="r") as mrc:
                 data = np.array(mrc.data)
                 vs = mrc.voxel_size
                 vx, vy = float(vs.x), float(vs.y)
+        cal.notes.extend(f"{path.name}: MRC header: {w.message}" for w in caught)
     except Exception as exc:
         raise TenfoldInputError(
             f"{path}: not a readable MRC file ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not MRC"

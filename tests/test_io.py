@@ -360,12 +360,43 @@ def test_truncated_tiff(tmp_path, compress):
     _raises(["cut.tif", "truncated"], read_micrograph, p)
 
 
+def test_truncated_mrc(tmp_path):
+    import mrcfile
+
+    full = tmp_path / "full.mrc"
+    with mrcfile.new(full) as mrc:
+        mrc.set_data(_image(64, 64))
+    p = tmp_path / "cut.mrc"
+    p.write_bytes(full.read_bytes()[:-5000])
+    _raises(["cut.mrc", "truncated"], read_micrograph, p)
+
+
 def test_unreadable_file(tmp_path):
     if os.geteuid() == 0:
         pytest.skip("root can read files without read permission")
     p = write_tiff(tmp_path / "locked.tif", _image(), pixel_size_nm=None)
     p.chmod(0)
     _raises(["locked.tif", "cannot be read"], read_micrograph, p)
+
+
+def test_unreadable_file_message(tmp_path, monkeypatch):
+    p = write_tiff(tmp_path / "locked.tif", _image(), pixel_size_nm=None)
+
+    def denied(path):
+        raise PermissionError(13, "Permission denied", str(path))
+
+    monkeypatch.setattr(io, "_sha256", denied)
+    _raises(["locked.tif", "cannot be read", "Permission denied"], read_micrograph, p)
+
+
+def test_thermo_fei_tiff_metadata(tmp_path):
+    # Thermo Fisher/FEI TIFFs carry an INI-style text block in private tag 34682; PixelWidth is in metres
+    ini = "[User]\r\nDate=12/01/2026\r\n[Scan]\r\nPixelWidth=1.5e-11\r\nPixelHeight=1.5e-11\r\n"
+    path = tmp_path / "fei.tif"
+    tifffile.imwrite(path, _image(), extratags=[(34682, "s", 0, ini, True)])
+    mg = read_micrograph(path)
+    assert mg.meta.calibration_source == "vendor"
+    assert mg.meta.pixel_size_nm == pytest.approx(0.015, rel=1e-9)
 
 
 def test_supported_suffixes():
