@@ -427,7 +427,12 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
     notes: list[str] = list(cal.notes)
     if frame is not None and frame_range is not None:
         raise TenfoldInputError(f"{label}: give either frame or frame_range, not both")
-    if _is_rgb(arr) and frame is None and frame_range is None:
+    if _is_rgb(arr):
+        if frame is not None or frame_range is not None:
+            raise TenfoldInputError(
+                f"{label}: is an RGB{'A' if arr.shape[-1] == 4 else ''} image ({arr.shape[0]} x {arr.shape[1]} "
+                "px), not a stack; drop frame/frame_range"
+            )
         rgb = arr[..., :3].astype(np.float64)
         data = rgb @ _LUMA
         converted = True
