@@ -72,6 +72,17 @@ def result():
     return _demo_result()
 
 
+@pytest.fixture
+def own_figures(monkeypatch):
+    """Only this module's figure makers: other stages' makers are tested with their own data."""
+    mine = {k: FIGURES[k] for k in ("species_histogram", "columns_overlay")}
+    monkeypatch.setattr(export, "_load_figure_modules", lambda: None)
+    for k in list(FIGURES):
+        if k not in mine:
+            monkeypatch.delitem(FIGURES, k)
+    return FIGURES
+
+
 # ---------------------------------------------------------------------------------------------------------------
 # folder safety
 
@@ -143,7 +154,7 @@ def test_failure_with_overwrite_keeps_old_folder(tmp_path, result, monkeypatch):
     assert [p.name for p in tmp_path.iterdir()] == ["res"]
 
 
-def test_progress_per_file_and_cancel(tmp_path, result):
+def test_progress_per_file_and_cancel(tmp_path, result, own_figures):
     calls = []
     write_results(result, tmp_path / "a", figures=False, progress=lambda f, m: calls.append((f, m)))
     fractions = [f for f, _ in calls]
@@ -279,7 +290,7 @@ def test_json_safe():
 # figures
 
 
-def test_figures_written_as_png_and_svg(tmp_path, result):
+def test_figures_written_as_png_and_svg(tmp_path, result, own_figures):
     out = tmp_path / "res"
     files = write_results(result, out)
     for name in ("species_histogram", "columns_overlay"):
@@ -311,7 +322,7 @@ def test_nice_length():
     assert [export._nice_length(v) for v in (0.24, 0.6, 1.0, 3.9, 7.0, 120.0)] == [0.2, 0.5, 1, 2, 5, 100]
 
 
-def test_registered_figure_makers(tmp_path, result, monkeypatch):
+def test_registered_figure_makers(tmp_path, result, monkeypatch, own_figures):
     from matplotlib.figure import Figure
 
     def maker(res):
@@ -325,6 +336,20 @@ def test_registered_figure_makers(tmp_path, result, monkeypatch):
     write_results(result, out)
     assert (out / "figures" / "demo_line.png").is_file()
     assert not list((out / "figures").glob("not_applicable.*"))
+
+
+def test_broken_figure_warns_and_keeps_tables(tmp_path, result, monkeypatch, own_figures):
+    from tenfold.analysis._errors import TenfoldWarning
+
+    def broken(res):
+        raise ZeroDivisionError("demo")
+
+    monkeypatch.setitem(FIGURES, "broken_demo", broken)
+    out = tmp_path / "res"
+    with pytest.warns(TenfoldWarning, match="broken_demo"):
+        write_results(result, out)
+    assert (out / "columns.csv").is_file() and (out / "figures" / "columns_overlay.png").is_file()
+    assert not list((out / "figures").glob("broken_demo.*"))
 
 
 def test_register_figure_rejects_clash(monkeypatch):
