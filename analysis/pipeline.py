@@ -397,7 +397,7 @@ def rerun_from_columns(
     old = result.tables.get("columns", empty_table(COLUMNS))
     if "id" not in cols:
         cols["id"] = -1
-    ids = pd.to_numeric(cols["id"], errors="coerce").fillna(-1).astype(np.int64).to_numpy()
+    ids = pd.to_numeric(cols["id"], errors="coerce").fillna(-1).astype(np.int64).to_numpy(copy=True)  # writable under copy-on-write
     seen = set()
     dup = np.zeros(len(ids), dtype=bool)
     for i, v in enumerate(ids):  # short loop over ids only (hand edits), not a per-column computation
