@@ -55,3 +55,11 @@ def sample_path():
         return resources.files("tenfold.sample_images") / f"{name}.tif"
 
     return _path
+
+
+@pytest.hookimpl(tryfirst=True, hookwrapper=True)
+def pytest_runtest_makereport(item, call):
+    # napari's viewer fixture reads item.rep_call in its teardown; napari's own test suite sets it in a conftest
+    outcome = yield
+    report = outcome.get_result()
+    setattr(item, "rep_" + report.when, report)

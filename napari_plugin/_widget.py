@@ -1,0 +1,519 @@
+"""The analysis dock: pick an image and regions, set parameters, run, correct by hand, export.
+
+It only wires fields to :mod:`tenfold.analysis.pipeline`. Runs go to a napari worker thread; the pipeline's
+progress callback feeds the progress bar and reads the cancel flag; the result layers are built in the worker
+too, so the GUI thread only inserts finished layers.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from qtpy.QtCore import QObject, Qt, Signal
+from qtpy.QtWidgets import (
+    QCheckBox,
+    QComboBox,
+    QDoubleSpinBox,
+    QFileDialog,
+    QFormLayout,
+    QGroupBox,
+    QHBoxLayout,
+    QLabel,
+    QLineEdit,
+    QMessageBox,
+    QProgressBar,
+    QPushButton,
+    QSpinBox,
+    QVBoxLayout,
+    QWidget,
+)
+
+from ._layers import colour_kwargs, columns_from_points, frame_of, micrograph_from_layer, regions_from_shapes
+from ._layers import result_layers
+from ._session import session_for
+
+__all__ = ["PipelineWidget", "PREVIEW_SIZE_PX"]
+
+#: Side of the central square a preview analyses.
+PREVIEW_SIZE_PX = 256
+_WHOLE_IMAGE = "(whole image)"
+_COLOUR_PROPS = ("species", "intensity", "pos_err_nm", "sigma_px", "residual", "species_prob", "region",
+                 "fit_status")
+_NM_FIELDS = (  # (Parameters name, label, estimate key)
+    ("column_spacing_nm", "Column spacing (nm)", "column_spacing"),
+    ("column_diameter_nm", "Column diameter (nm)", "column_diameter"),
+    ("ring_radius_nm", "Ring radius (nm)", None),
+    ("d0_nm", "Ladder base d0 (nm)", None),
+)
+
+
+@dataclass
+class _Outcome:
+    """What a worker hands back: never raises, so no traceback dialog can appear."""
+
+    status: str  # 'ok' | 'cancelled' | 'error'
+    message: str = ""
+    result: object = None
+    layers: list = field(default_factory=list)
+    kind: str = "run"
+
+
+class _Bridge(QObject):
+    """Carries progress from the worker thread to the GUI thread (queued signal)."""
+
+    progress = Signal(float, str)
+
+
+def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outcome:
+    """Worker body: run ``compute(progress)``, build the result layers, report every failure as text."""
+    from tenfold.analysis._errors import Cancelled, TenfoldInputError
+
+    def progress(fraction: float, message: str) -> bool:
+        emit(float(fraction), str(message))
+        return not cancel.is_set()
+
+    try:
+        result = compute(progress)
+        if frame is None:  # export: the body returns its message
+            return _Outcome("ok", message=str(result), kind=kind)
+        emit(1.0, "building layers")
+        layers = result_layers(result, frame, columns=build_columns, colour_by=colour_by)
+        if cancel.is_set():
+            raise Cancelled("cancelled")
+        return _Outcome("ok", result=result, layers=layers, kind=kind)
+    except Cancelled:
+        return _Outcome("cancelled", "cancelled", kind=kind)
+    except TenfoldInputError as exc:
+        return _Outcome("error", str(exc), kind=kind)
+    except Exception as exc:  # anything else is shown as a notification with its message, not a dialog
+        return _Outcome("error", f"{kind} failed: {type(exc).__name__}: {exc}", kind=kind)
+
+
+def _nm_text(value) -> str:
+    return "-" if value is None or not math.isfinite(value) else f"{value:.3g}"
+
+
+class PipelineWidget(QWidget):
+    """Tenfold analysis dock.
+
+    Attributes usable from scripts and tests: ``run()``, ``preview()``, ``cancel()``, ``rerun_from_columns()``,
+    ``export(folder=None)``, ``estimate()``; ``choose_folder`` and ``confirm_overwrite`` are replaceable
+    callables (the defaults open a QFileDialog / QMessageBox); ``worker`` is the running worker or None.
+    """
+
+    def __init__(self, napari_viewer) -> None:
+        super().__init__()
+        self.viewer = napari_viewer
+        self.session = session_for(napari_viewer)
+        self.worker = None
+        self._cancel = threading.Event()
+        self._bridge = _Bridge()
+        self._bridge.progress.connect(self._on_progress)
+        self.choose_folder = self._ask_folder
+        self.confirm_overwrite = self._ask_overwrite
+        self._build()
+        for ev in (napari_viewer.layers.events.inserted, napari_viewer.layers.events.removed,
+                   napari_viewer.layers.events.moved):
+            ev.connect(self._refresh_layers)
+        self._refresh_layers()
+        self._set_busy(False)
+
+    # ---------------------------------------------------------------- layout
+    def _build(self) -> None:
+        root = QVBoxLayout(self)
+
+        box = QGroupBox("Input")
+        form = QFormLayout(box)
+        self.image_combo = QComboBox()
+        self.regions_combo = QComboBox()
+        self.pixel_size = QLineEdit()
+        self.pixel_size.setPlaceholderText("from file")
+        self.pixel_size.setToolTip("Override the pixel size (nm per pixel); empty = calibration of the file")
+        form.addRow("Image", self.image_combo)
+        form.addRow("Regions", self.regions_combo)
+        form.addRow("Pixel size (nm)", self.pixel_size)
+        root.addWidget(box)
+
+        box = QGroupBox("Columns")
+        form = QFormLayout(box)
+        self.contrast = QComboBox()
+        self.contrast.addItems(["bright columns (HAADF)", "dark columns (HRTEM, ABF)"])
+        form.addRow("Contrast", self.contrast)
+        self.nm_fields: dict[str, QLineEdit] = {}
+        self.estimate_labels: dict[str, QLabel] = {}
+        for name, label, key in _NM_FIELDS:
+            edit = QLineEdit()
+            edit.setPlaceholderText("auto")
+            row = QHBoxLayout()
+            row.addWidget(edit, 1)
+            if key is not None:
+                est = QLabel("")
+                est.setToolTip("automatic estimate used when the field is empty")
+                row.addWidget(est)
+                self.estimate_labels[key] = est
+            self.nm_fields[name] = edit
+            form.addRow(label, row)
+        self.species = QSpinBox()
+        self.species.setRange(-1, 8)
+        self.species.setValue(-1)
+        self.species.setSpecialValueText("auto")
+        self.species.setToolTip("number of intensity classes: auto (by BIC), 0 = skip, or 1-8")
+        form.addRow("Species", self.species)
+        self.flatten = QCheckBox("flatten uneven background")
+        form.addRow("", self.flatten)
+        root.addWidget(box)
+
+        box = QGroupBox("Motifs, ladder, tiling")
+        form = QFormLayout(box)
+        self.ring_order = QComboBox()
+        self.ring_order.addItems(["10", "12", "8", "6", "5"])
+        form.addRow("Ring order", self.ring_order)
+        self.radius_tolerance = QDoubleSpinBox()
+        self.radius_tolerance.setRange(0.01, 0.49)
+        self.radius_tolerance.setSingleStep(0.01)
+        self.radius_tolerance.setValue(0.12)
+        form.addRow("Radius tolerance", self.radius_tolerance)
+        self.pentagons = QCheckBox("pentagons")
+        self.pentagons.setChecked(True)
+        self.half_step = QCheckBox("half-step ladder")
+        self.fourier = QCheckBox("Fourier spots")
+        self.fourier.setChecked(True)
+        row = QHBoxLayout()
+        for w in (self.pentagons, self.half_step, self.fourier):
+            row.addWidget(w)
+        form.addRow(row)
+        root.addWidget(box)
+
+        row = QHBoxLayout()
+        self.estimate_button = QPushButton("Estimate")
+        self.estimate_button.setToolTip("quick automatic scale, shown next to the fields")
+        self.preview_button = QPushButton("Preview")
+        self.preview_button.setToolTip(f"analyse the central {PREVIEW_SIZE_PX} x {PREVIEW_SIZE_PX} px only")
+        self.run_button = QPushButton("Run")
+        self.cancel_button = QPushButton("Cancel")
+        for w in (self.estimate_button, self.preview_button, self.run_button, self.cancel_button):
+            row.addWidget(w)
+        root.addLayout(row)
+        self.progress_bar = QProgressBar()
+        self.progress_bar.setRange(0, 1000)
+        self.status = QLabel("")
+        self.status.setWordWrap(True)
+        root.addWidget(self.progress_bar)
+        root.addWidget(self.status)
+
+        box = QGroupBox("Results")
+        form = QFormLayout(box)
+        self.colour_by = QComboBox()
+        self.colour_by.addItems(list(_COLOUR_PROPS))
+        form.addRow("Colour columns by", self.colour_by)
+        row = QHBoxLayout()
+        self.rerun_button = QPushButton("Re-run from columns")
+        self.rerun_button.setToolTip("recompute motifs, ladder and tiling from the edited 'columns' layer")
+        self.export_button = QPushButton("Export...")
+        row.addWidget(self.rerun_button)
+        row.addWidget(self.export_button)
+        form.addRow(row)
+        root.addWidget(box)
+        root.addStretch(1)
+
+        self.estimate_button.clicked.connect(self.estimate)
+        self.preview_button.clicked.connect(self.preview)
+        self.run_button.clicked.connect(self.run)
+        self.cancel_button.clicked.connect(self.cancel)
+        self.rerun_button.clicked.connect(self.rerun_from_columns)
+        self.export_button.clicked.connect(lambda: self.export())
+        self.colour_by.currentTextChanged.connect(self._recolour)
+
+    # ---------------------------------------------------------------- layer choice
+    def _refresh_layers(self, event=None) -> None:
+        from napari.layers import Image, Shapes
+
+        images = [ly.name for ly in self.viewer.layers if isinstance(ly, Image) and ly.name != "power spectrum"]
+        shapes = [ly.name for ly in self.viewer.layers
+                  if isinstance(ly, Shapes) and ly.name not in ("motifs", "network")]
+        for combo, names in ((self.image_combo, images), (self.regions_combo, [_WHOLE_IMAGE] + shapes)):
+            current = combo.currentText()
+            combo.blockSignals(True)
+            combo.clear()
+            combo.addItems(names)
+            added = getattr(event, "value", None) if event is not None and event.type == "inserted" else None
+            if combo is self.regions_combo and isinstance(added, Shapes) and added.name in names:
+                combo.setCurrentText(added.name)  # a Shapes layer just added is meant to mark regions
+            elif current in names:
+                combo.setCurrentText(current)
+            combo.blockSignals(False)
+
+    def _layer(self, name: str):
+        return self.viewer.layers[name] if name in self.viewer.layers else None
+
+    # ---------------------------------------------------------------- parameters
+    def parameters(self):
+        """The :class:`Parameters` the fields describe (validated); raises TenfoldInputError naming the field."""
+        from tenfold.analysis._errors import TenfoldInputError
+        from tenfold.analysis.pipeline import Parameters
+
+        values: dict = {}
+        for name, edit in [("pixel_size_nm", self.pixel_size)] + list(self.nm_fields.items()):
+            text = edit.text().strip()
+            if not text:
+                values[name] = None
+                continue
+            try:
+                values[name] = float(text)
+            except ValueError:
+                raise TenfoldInputError(
+                    f"parameter {name}: {text!r} is not a number; give a value in nm or leave it empty for auto"
+                ) from None
+        n = self.species.value()
+        values.update(
+            dark_columns=self.contrast.currentIndex() == 1,
+            n_species=None if n < 0 else n,
+            flatten=self.flatten.isChecked(),
+            ring_order=int(self.ring_order.currentText()),
+            radius_tolerance=float(self.radius_tolerance.value()),
+            pentagons=self.pentagons.isChecked(),
+            half_step=self.half_step.isChecked(),
+            fourier=self.fourier.isChecked(),
+        )
+        return Parameters(**values).validate()
+
+    def _inputs(self, *, preview: bool = False):
+        """(image layer, micrograph, params, regions, frame) for a run; raises TenfoldInputError."""
+        from tenfold.analysis._errors import TenfoldInputError
+        from tenfold.analysis.region import Region
+
+        image_layer = self._layer(self.image_combo.currentText())
+        if image_layer is None:
+            raise TenfoldInputError("no image layer chosen: open a micrograph first (File > Open, or a sample)")
+        params = self.parameters()
+        micrograph = micrograph_from_layer(image_layer, pixel_size_nm=params.pixel_size_nm)
+        regions_layer = self._layer(self.regions_combo.currentText())
+        regions = regions_from_shapes(regions_layer, image_layer) if regions_layer is not None else []
+        offset = (0, 0)
+        if preview:
+            rows, cols = micrograph.data.shape
+            r0, c0 = max(0, (rows - PREVIEW_SIZE_PX) // 2), max(0, (cols - PREVIEW_SIZE_PX) // 2)
+            sl = np.s_[r0:r0 + PREVIEW_SIZE_PX, c0:c0 + PREVIEW_SIZE_PX]
+            micrograph.data = np.ascontiguousarray(micrograph.data[sl])
+            micrograph.valid = np.ascontiguousarray(micrograph.valid[sl])
+            micrograph.meta.shape = micrograph.data.shape
+            micrograph.meta.notes = micrograph.meta.notes + [
+                f"preview: central {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px from row {r0}, col {c0}"
+            ]
+            offset, regions = (r0, c0), []
+        regions = [Region(label=r.label, kind=r.kind, vertices_px=r.vertices_px) for r in regions]
+        return image_layer, micrograph, params, regions or None, frame_of(image_layer, offset_px=offset)
+
+    # ---------------------------------------------------------------- actions
+    def estimate(self) -> None:
+        """Show the automatic column spacing and diameter next to their fields (quick, on the GUI thread)."""
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis.pipeline import estimate_defaults
+
+        try:
+            _, micrograph, params, _, _ = self._inputs()
+            est = estimate_defaults(micrograph, dark_columns=params.dark_columns)
+        except Exception as exc:  # shown, never raised into Qt
+            show_error(str(exc))
+            return
+        for key, label in self.estimate_labels.items():
+            nm, px = est.get(f"{key}_nm"), est.get(f"{key}_px")
+            label.setText(f"auto {_nm_text(nm)} nm" if nm is not None and math.isfinite(nm)
+                          else f"auto {_nm_text(px)} px")
+        self.estimates = est
+
+    def run(self) -> None:
+        """Analyse the chosen image (inside the regions, if a regions layer is chosen) in a worker."""
+        self._start_analysis(preview=False)
+
+    def preview(self) -> None:
+        """Analyse only the central PREVIEW_SIZE_PX square, for a quick check of the parameters."""
+        self._start_analysis(preview=True)
+
+    def _start_analysis(self, *, preview: bool) -> None:
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis.pipeline import run_pipeline
+
+        if self.worker is not None:
+            return
+        try:
+            image_layer, micrograph, params, regions, frame = self._inputs(preview=preview)
+        except Exception as exc:
+            show_error(str(exc))
+            return
+
+        def compute(progress):
+            return run_pipeline(micrograph, params, regions=regions, progress=progress)
+
+        context = (image_layer, frame, regions)
+        self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)
+
+    def rerun_from_columns(self) -> None:
+        """Recompute motifs, ladder and tiling from the (edited) 'columns' layer, without re-detecting."""
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis import pipeline
+
+        session = self.session
+        points = self._layer("columns")
+        if self.worker is not None:
+            return
+        if session.result is None or points is None:
+            show_error("re-run from columns: run an analysis first; there is no 'columns' layer to start from")
+            return
+        try:
+            params = self.parameters()
+            columns = columns_from_points(points, session.frame)
+        except Exception as exc:
+            show_error(str(exc))
+            return
+        result, regions = session.result, session.regions or None
+
+        def compute(progress):
+            return pipeline.rerun_from_columns(result, columns, params=params, regions=regions, progress=progress)
+
+        context = (session.image_layer, session.frame, session.regions)
+        self._launch("re-run", compute, session.frame, context, build_columns=False)
+
+    def cancel(self) -> None:
+        """Ask the running worker to stop at the next progress report."""
+        self._cancel.set()
+        self.status.setText("cancelling...")
+
+    def _launch(self, kind, compute, frame, context, *, build_columns: bool) -> None:
+        from napari.qt.threading import create_worker
+
+        self._cancel = threading.Event()
+        self._context = context
+        worker = create_worker(
+            _job, kind, compute, frame, self._cancel, self._bridge.progress.emit, build_columns,
+            self.colour_by.currentText(), _start_thread=False,
+        )
+        worker.returned.connect(self._on_returned)
+        worker.finished.connect(self._on_finished)
+        self.worker = worker
+        self._set_busy(True)
+        self.progress_bar.setValue(0)
+        self.status.setText(f"{kind}: starting")
+        worker.start()
+
+    # ---------------------------------------------------------------- worker callbacks (GUI thread)
+    def _on_progress(self, fraction: float, message: str) -> None:
+        self.progress_bar.setValue(int(round(1000 * min(max(fraction, 0.0), 1.0))))
+        if not self._cancel.is_set():
+            self.status.setText(message)
+
+    def _on_returned(self, outcome: _Outcome) -> None:
+        from napari.utils.notifications import show_error, show_info
+
+        if outcome.status == "error":
+            show_error(outcome.message)
+            self.status.setText(outcome.message)
+            return
+        if outcome.status == "cancelled":
+            self.status.setText(f"{outcome.kind} cancelled; layers unchanged")
+            self.progress_bar.setValue(0)
+            return
+        if outcome.kind == "export":
+            show_info(outcome.message)
+            self.status.setText(outcome.message)
+            return
+        image_layer, frame, regions = self._context
+        self._put_layers(outcome.layers)
+        self.session.set_result(outcome.result, frame, image_layer, regions or [])
+        self._show_scale_bar(image_layer)
+        summary = outcome.result.summary
+        tables = outcome.result.tables
+        n_rings = int(tables["motifs"]["kind"].astype(str).str.startswith("ring").sum()) if len(tables["motifs"]) else 0
+        self.status.setText(f"{outcome.kind}: {len(tables['columns'])} columns, {n_rings} rings, "
+                            f"{len(tables['network'])} network edges"
+                            + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
+
+    def _on_finished(self) -> None:
+        self.worker = None
+        self._set_busy(False)
+
+    def _set_busy(self, busy: bool) -> None:
+        for w in (self.estimate_button, self.preview_button, self.run_button, self.rerun_button,
+                  self.export_button):
+            w.setEnabled(not busy)
+        self.cancel_button.setEnabled(busy)
+
+    def _put_layers(self, layers: list) -> None:
+        """Insert finished layers; a layer of the same name is replaced in place (same position, visibility)."""
+        for new in layers:
+            old = self._layer(new.name)
+            if old is None:
+                self.viewer.add_layer(new)
+                continue
+            new.visible, new.opacity = old.visible, old.opacity
+            index = self.viewer.layers.index(old)
+            self.viewer.layers.remove(old)
+            self.viewer.layers.insert(index, new)
+        points = self._layer("columns")
+        if points is not None:
+            self.viewer.layers.selection.active = points
+
+    def _show_scale_bar(self, image_layer) -> None:
+        self.viewer.canvas.overlays.scale_bar.visible = True
+
+    def _recolour(self, prop: str) -> None:
+        points = self._layer("columns")
+        if points is None or prop not in points.features:
+            return
+        kwargs = colour_kwargs(points.features, prop)
+        if "face_colormap" in kwargs:
+            points.face_colormap = kwargs["face_colormap"]
+        if "face_color_cycle" in kwargs:
+            points.face_color_cycle = kwargs["face_color_cycle"]
+        points.face_color = kwargs["face_color"]
+
+    # ---------------------------------------------------------------- export
+    def _ask_folder(self) -> str | None:
+        folder = QFileDialog.getExistingDirectory(self, "Export Tenfold results to folder")
+        return folder or None
+
+    def _ask_overwrite(self, folder: Path) -> bool:
+        answer = QMessageBox.question(
+            self, "Overwrite results?", f"{folder} already holds files. Overwrite the Tenfold results there?",
+            QMessageBox.Yes | QMessageBox.No, QMessageBox.No,
+        )
+        return answer == QMessageBox.Yes
+
+    def export(self, folder=None) -> None:
+        """Write the current result (tables, summary, figures) with ``export.write_results``, in a worker.
+
+        An existing non-empty folder is only overwritten when ``confirm_overwrite(folder)`` says yes.
+        """
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis.export import write_results
+
+        if self.worker is not None:
+            return
+        result = self.session.result
+        if result is None:
+            show_error("export: nothing to export yet; run an analysis first")
+            return
+        folder = folder or self.choose_folder()
+        if not folder:
+            return
+        folder = Path(folder)
+        overwrite = False
+        if folder.exists() and any(folder.iterdir()):
+            if not self.confirm_overwrite(folder):
+                self.status.setText(f"export cancelled: {folder} left as it was")
+                return
+            overwrite = True
+
+        def compute(progress):
+            write_results(result, folder, overwrite=overwrite, figures=True, progress=progress)
+            return f"results written to {folder}"
+
+        self._launch("export", compute, None, None, build_columns=False)
