@@ -1,0 +1,709 @@
+"""Golden-ratio distance ladders: pair distributions, their peaks, and the fit d_n = d0 tau^n.
+
+A decagonal point set has strong pair distances in the ratios tau^n (n integer; tau = (1 + sqrt 5) / 2) to a base
+distance d0, but not only those. The other strong distances are the chords of the regular decagon and pentagon.
+A chord of a regular decagon of circumradius R spanning k edges is ``2 R sin(k pi / 10)``; with R = 1:
+
+=====  ===============  ============  ==============================================
+k      2 sin(k pi/10)   value         relation
+=====  ===============  ============  ==============================================
+1      2 sin 18         0.6180        1 / tau (a rung)
+2      2 sin 36         1.1756        sqrt(3 - tau); thick-rhombus short diagonal
+3      2 sin 54         1.6180        tau (a rung)
+4      2 sin 72         1.9021        2 cos 18 = sqrt(2 + tau); thin-rhombus long diagonal
+5      2 sin 90         2             the diameter
+=====  ===============  ============  ==============================================
+
+So besides the rungs the table of known decagonal distance ratios holds ``c tau^m`` for c in {2 sin 36, 2 sin 72,
+2} (pentagon chords are the even-k decagon chords, so they are already in it); e.g. 2 sin 72 tau = 3.078 and
+2 tau = 3.236 between the columns of one ten-membered ring. A peak close to one of these is reported off-ladder
+with that label and is never forced onto a rung.
+
+Whether the ladder holds is decided by a likelihood-ratio comparison of all located peak positions against the
+decagonal model (rungs plus chords, scale d0) and against periodic alternatives (integer multiples; square lattice
+sqrt(h^2 + k^2); hexagonal lattice sqrt(h^2 + hk + k^2)), each with its scale fitted, over the peaks between
+0.5 and 4.5 d0. Each model says "a peak sits at one of my K values in the range, each equally likely, with a
+Gaussian spread of the peak's width, or is an outlier (share 0.1, uniform)": a dense sequence explains more peaks
+by chance but pays log K for every one, so the likelihood ratio is fair between sparse and dense models. The
+ladder holds when at least three distinct rungs are matched and the decagonal model wins
+by 2 ln LR >= 10 ("very strong" on the scale of Kass & Raftery, J. Am. Stat. Assoc. 90 (1995) 773; common practice).
+
+References
+----------
+Pair-correlation edge correction for a rectangular window: J. Ohser and D. Stoyan, Biom. J. 23 (1981) 523;
+D. Stoyan, W. S. Kendall and J. Mecke, "Stochastic Geometry and its Applications", 2nd ed., Wiley (1995).
+Bootstrap: B. Efron and R. J. Tibshirani, "An Introduction to the Bootstrap", Chapman & Hall (1993).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy.spatial import cKDTree
+
+from ._errors import TenfoldInputError
+from ._schema import LADDER, PEAKS, conform, empty_table
+
+__all__ = ["TAU", "KNOWN_RATIOS", "pair_distribution", "locate_peaks", "fit_ladder", "motif_ratios",
+           "ladder_figure"]
+
+TAU = (1.0 + np.sqrt(5.0)) / 2.0
+_MAX_REF = 20000  # reference points for pair statistics: the cost stays O(N log N) + O(_MAX_REF k)
+
+
+def _known_ratios() -> list[tuple[float, str]]:
+    """Known off-ladder decagonal distance ratios c tau^m (see the module table), m = -2 .. 4."""
+    base = [(2 * np.sin(np.deg2rad(36.0)), "2 sin 36"), (2 * np.sin(np.deg2rad(72.0)), "2 sin 72"), (2.0, "2")]
+    out = []
+    for c, name in base:
+        for m in range(-2, 5):
+            out.append((c * TAU ** m, name if m == 0 else f"{name} tau^{m}"))
+    return sorted(out)
+
+
+KNOWN_RATIOS = _known_ratios()
+
+
+def _module_lengths() -> list[tuple[float, str]]:
+    """Lengths sqrt(a + b tau) (small integers a, b) of the decagonal module: every distance between vertices of
+    a Penrose tiling has a squared length in Z[tau]; used only to label otherwise unassigned peaks."""
+    out = []
+    for a in range(-5, 11):
+        for b in range(0, 8):
+            v = a + b * TAU
+            if v > 0.2 and not (b == 0 and a < 0):
+                out.append((float(np.sqrt(v)), f"sqrt({a}{'+' if b >= 0 else ''}{b} tau)" if b else f"sqrt({a})"))
+    return sorted(out)
+
+
+MODULE_LENGTHS = _module_lengths()
+
+
+# --------------------------------------------------------------------------------------------- pair statistics
+def _clean_xy(x_px, y_px, name: str) -> np.ndarray:
+    x = np.asarray(x_px, dtype=float).ravel()
+    y = np.asarray(y_px, dtype=float).ravel()
+    if x.shape != y.shape:
+        raise TenfoldInputError(f"{name}: x_px and y_px differ in length ({len(x)} vs {len(y)}); pass matching arrays")
+    xy = np.stack([x, y], axis=1)
+    return xy[np.isfinite(xy).all(axis=1)]
+
+
+def _pairs(xy: np.ndarray, r_max: float, gen: np.random.Generator, max_ref: int = _MAX_REF):
+    """Distances from a reference subset (all points when N <= max_ref) to every other point within r_max.
+
+    Returns (ref index into the reference subset, distance, n_ref).
+    """
+    n = len(xy)
+    ref = np.arange(n) if n <= max_ref else np.sort(gen.choice(n, max_ref, replace=False))
+    sdm = cKDTree(xy[ref]).sparse_distance_matrix(cKDTree(xy), r_max, output_type="ndarray")
+    keep = ref[sdm["i"]] != sdm["j"]
+    return sdm["i"][keep].astype(np.int64), sdm["v"][keep], len(ref)
+
+
+def _set_covariance(r: np.ndarray, w: float, h: float) -> np.ndarray:
+    """Isotropised set covariance of a w x h rectangle (Ohser & Stoyan 1981), valid for r <= min(w, h)."""
+    return w * h - 2.0 * r * (w + h) / np.pi + r * r / np.pi
+
+
+def _histogram(d: np.ndarray, n_ref: int, xy: np.ndarray, r_max: float, bin_px: float, edge_correction: bool):
+    n = len(xy)
+    edges = np.arange(0.0, r_max + 0.5 * bin_px, bin_px)
+    if len(edges) < 3:
+        edges = np.linspace(0.0, r_max, 3)
+    cnt, edges = np.histogram(d, bins=edges)
+    r = 0.5 * (edges[1:] + edges[:-1])
+    dr = np.diff(edges)
+    w, h = np.ptp(xy[:, 0]), np.ptp(xy[:, 1])
+    area = w * h
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if area > 0:
+            gam = _set_covariance(r, w, h) if edge_correction else np.full_like(r, area)
+            gam = np.where(gam > 0.05 * area, gam, np.nan)
+            expected = n_ref * (n - 1) / area * 2 * np.pi * r * dr * gam / area
+            g = cnt / expected
+        else:
+            g = np.full_like(r, np.nan)
+    scale = n / (2.0 * n_ref)  # ordered reference pairs -> unordered pairs of the whole set
+    return pd.DataFrame({"r_px": r, "g": g, "count": cnt * scale})
+
+
+def pair_distribution(x_px, y_px, *, r_max_px: float, bin_px: float | None = None, edge_correction: bool = True,
+                      rng: np.random.Generator | int | None = 0) -> pd.DataFrame:
+    """Pair distribution function g(r) of a point set, from one KD-tree query.
+
+    Parameters
+    ----------
+    x_px, y_px : arrays
+        Point positions in px (non-finite entries are dropped).
+    r_max_px : float
+        Largest pair distance in px.
+    bin_px : float, optional
+        Histogram bin width in px; default 1/40 of the median nearest-neighbour distance.
+    edge_correction : bool
+        Divide by the isotropised set covariance of the bounding rectangle (Ohser & Stoyan 1981), so g -> 1 for
+        a Poisson pattern at every r; otherwise by the window area only.
+    rng : Generator or int
+        Chooses the reference subset (20 000 points) for large sets; all points are used below that.
+
+    Returns
+    -------
+    DataFrame
+        r_px (bin centre), g (pair distribution; NaN where undefined), count (number of unordered pairs in the
+        bin; scaled from the reference subset for large sets).
+
+    References
+    ----------
+    J. Ohser and D. Stoyan, Biom. J. 23 (1981) 523.
+    """
+    if not (r_max_px is not None and np.isfinite(r_max_px) and r_max_px > 0):
+        raise TenfoldInputError(f"pair_distribution: r_max_px={r_max_px!r} must be a positive number of pixels")
+    if bin_px is not None and not (np.isfinite(bin_px) and 0 < bin_px < r_max_px):
+        raise TenfoldInputError(f"pair_distribution: bin_px={bin_px!r} must be positive and below r_max_px")
+    xy = _clean_xy(x_px, y_px, "pair_distribution")
+    if len(xy) < 2:
+        return pd.DataFrame({"r_px": pd.Series([], dtype=float), "g": pd.Series([], dtype=float),
+                             "count": pd.Series([], dtype=float)})
+    if bin_px is None:
+        d_nn = float(np.median(cKDTree(xy).query(xy, k=2)[0][:, 1]))
+        bin_px = d_nn / 40.0 if d_nn > 0 else r_max_px / 400.0
+    _, d, n_ref = _pairs(xy, float(r_max_px), np.random.default_rng(rng))
+    return _histogram(d, n_ref, xy, float(r_max_px), float(bin_px), edge_correction)
+
+
+def _gauss_bg(r, a, mu, s, c0, c1):
+    return a * np.exp(-0.5 * ((r - mu) / s) ** 2) + c0 + c1 * (r - mu)
+
+
+def locate_peaks(curve: pd.DataFrame, *, min_prominence: float | None = None, max_peaks: int = 40) -> pd.DataFrame:
+    """Peaks of a pair distribution with sub-bin positions and widths.
+
+    Local maxima of g smoothed by a 1.5-bin Gaussian, kept when their prominence exceeds ``min_prominence``
+    (default: the larger of 4 x the Poisson noise of g near the peak and 3 % of the highest g). Each is then fitted
+    by a Gaussian on a linear background (scipy ``curve_fit``) over +-2.5 widths; a failed fit falls back to the
+    parabola through the three highest bins of log g.
+
+    Parameters
+    ----------
+    curve : DataFrame
+        From :func:`pair_distribution` (r_px, g, count).
+    min_prominence : float, optional
+        Smallest peak prominence in units of g.
+    max_peaks : int
+        Keep at most this many peaks (the most prominent).
+
+    Returns
+    -------
+    DataFrame
+        distance_px, height (g at the peak), width_px (Gaussian standard deviation), prominence, fit ('gauss'
+        or 'parabola'), sorted by distance.
+    """
+    from scipy.ndimage import gaussian_filter1d
+    import warnings
+
+    from scipy.optimize import OptimizeWarning, curve_fit
+    from scipy.signal import find_peaks, peak_widths
+
+    cols = ["distance_px", "height", "width_px", "prominence", "fit"]
+    if len(curve) < 5:
+        return pd.DataFrame({c: pd.Series([], dtype=float if c != "fit" else object) for c in cols})
+    r = curve["r_px"].to_numpy(dtype=float)
+    g = np.nan_to_num(curve["g"].to_numpy(dtype=float), nan=0.0)
+    cnt = curve["count"].to_numpy(dtype=float)
+    bw = float(r[1] - r[0])
+    gs = gaussian_filter1d(g, 1.5)
+    noise = np.where(cnt > 0, g / np.sqrt(np.maximum(cnt, 1.0)), 0.0)
+    noise_s = gaussian_filter1d(noise, 5.0)
+    prom_min = 0.03 * float(gs.max()) if min_prominence is None else float(min_prominence)
+    idx, props = find_peaks(gs, prominence=prom_min)
+    if min_prominence is None:
+        ok = props["prominences"] >= 4.0 * noise_s[idx]
+        idx, props = idx[ok], {k: v[ok] for k, v in props.items()}
+    if len(idx) == 0:
+        return pd.DataFrame({c: pd.Series([], dtype=float if c != "fit" else object) for c in cols})
+    if len(idx) > max_peaks:
+        top = np.sort(np.argsort(-props["prominences"])[:max_peaks])
+        idx, props = idx[top], {k: v[top] for k, v in props.items()}
+    wid = peak_widths(gs, idx, rel_height=0.5)[0] * bw / 2.3548
+    rows = []
+    for k, i in enumerate(idx):  # a few dozen peaks at most
+        s0 = max(wid[k], bw)
+        lo = np.searchsorted(r, r[i] - 2.5 * s0)
+        hi = np.searchsorted(r, r[i] + 2.5 * s0) + 1
+        lo, hi = max(lo, 0), min(hi, len(r))
+        mu, s, a, how = np.nan, np.nan, np.nan, "gauss"
+        if hi - lo >= 6:
+            try:
+                with warnings.catch_warnings():  # an ill-conditioned covariance is judged by the checks below
+                    warnings.simplefilter("ignore", OptimizeWarning)
+                    p, _ = curve_fit(_gauss_bg, r[lo:hi], g[lo:hi], p0=[g[i] - gs[lo:hi].min(), r[i], s0, gs[lo:hi].min(), 0.0],
+                                     maxfev=2000)
+                if abs(p[1] - r[i]) < 2 * s0 and 0 < abs(p[2]) < 5 * s0 and p[0] > 0:
+                    mu, s, a = p[1], abs(p[2]), p[0] + p[3]
+            except (RuntimeError, ValueError):
+                pass
+        if not np.isfinite(mu):
+            how = "parabola"
+            j = int(np.clip(i, 1, len(r) - 2))
+            lg = np.log(np.maximum(gs[j - 1:j + 2], 1e-12))
+            den = lg[0] - 2 * lg[1] + lg[2]
+            off = 0.5 * (lg[0] - lg[2]) / den if den < 0 else 0.0
+            mu = r[j] + np.clip(off, -1, 1) * bw
+            s = np.sqrt(-bw * bw / den) if den < 0 else s0
+            a = gs[j]
+        rows.append((float(mu), float(a), float(s), float(props["prominences"][k]), how))
+    out = pd.DataFrame(rows, columns=cols).sort_values("distance_px").reset_index(drop=True)
+    return out
+
+
+# --------------------------------------------------------------------------------------------- ladder fit
+def _periodic_sequences(upto: float) -> dict[str, np.ndarray]:
+    m = int(np.ceil(upto)) + 1
+    h, k = np.meshgrid(np.arange(0, m + 1), np.arange(-m, m + 1), indexing="ij")
+    sq = np.unique(np.sqrt(h * h + k * k).ravel())
+    hx = np.unique(np.sqrt(np.abs(h * h + h * k + k * k)).ravel())
+    ints = np.arange(1, m + 1, dtype=float)
+    return {"integer": ints, "square": sq[(sq > 0) & (sq <= upto)], "hexagonal": hx[(hx > 0) & (hx <= upto)]}
+
+
+def _unique_values(v: np.ndarray, rel: float = 1e-6) -> np.ndarray:
+    v = np.sort(v)
+    keep = np.ones(len(v), bool)
+    keep[1:] = np.diff(v) > rel * v[1:]
+    return v[keep]
+
+
+def _loglik(p: np.ndarray, sig: np.ndarray, values: np.ndarray, span: tuple[float, float]) -> tuple[float, int, np.ndarray]:
+    """Log-likelihood of peak positions under 'peaks sit at one of these K values' with an outlier share.
+
+    f(p) = (1 - eps) (1/K) sum_j N(p; v_j, sig) + eps / L over the range L; eps = 0.1 (common practice for a
+    robust mixture). A denser sequence explains more peaks but pays log K for each: the likelihood ratio is fair
+    between sparse and dense models. Returns (log L, peaks within 3 sig of a value, nearest value index or -1).
+    """
+    eps = 0.1
+    width = max(span[1] - span[0], 1e-9)
+    vals = values[(values >= span[0] - 3 * sig.max()) & (values <= span[1] + 3 * sig.max())]
+    if len(vals) == 0:
+        return float(len(p) * np.log(eps / width)), 0, np.full(len(p), -1)
+    z = (p[:, None] - vals[None, :]) / sig[:, None]
+    dens = np.exp(-0.5 * z * z).sum(axis=1) / (np.sqrt(2 * np.pi) * sig * len(vals))
+    ll = np.log((1 - eps) * dens + eps / width).sum()
+    j = np.argmin(np.abs(z), axis=1)
+    hit = np.abs(z[np.arange(len(p)), j]) <= 3.0
+    idx = np.flatnonzero((values >= span[0] - 3 * sig.max()) & (values <= span[1] + 3 * sig.max()))
+    return float(ll), int(hit.sum()), np.where(hit, idx[j], -1)
+
+
+def _best_periodic(p, sig, seq, span):
+    """Best scale for a periodic sequence: anchored on each of the first three peaks, then least squares."""
+    best = (-np.inf, 0, np.nan)
+    for anchor in p[:3]:  # three anchors
+        a = anchor
+        for _ in range(3):
+            _, _, j = _loglik(p, sig, a * seq, span)
+            hit = j >= 0
+            if hit.sum() == 0:
+                break
+            w = 1 / sig[hit] ** 2
+            a = float((w * p[hit] * seq[j[hit]]).sum() / (w * seq[j[hit]] ** 2).sum())
+        ll, n_ok, _ = _loglik(p, sig, a * seq, span)
+        if ll > best[0]:
+            best = (ll, n_ok, a)
+    return best
+
+
+def _evidence(peaks: pd.DataFrame, sig_pos: np.ndarray, d0: float, rungs: np.ndarray, matched_rungs: np.ndarray,
+              rung_share: float) -> tuple[dict, bool]:
+    # Compare within 0.5 .. 4.5 d0: further out every family is dense enough for chance coincidences to dominate.
+    sel = (peaks["distance_px"] >= 0.5 * d0) & (peaks["distance_px"] <= 4.5 * d0)
+    p = peaks.loc[sel, "distance_px"].to_numpy()
+    if len(p) == 0:
+        return {"verdict": "ladder does not hold: no peaks between 0.5 and 4.5 d0"}, False
+    sig = sig_pos[sel.to_numpy()]
+    span = (0.5 * d0, 4.5 * d0)
+    known = np.array([v for v, _ in KNOWN_RATIOS])
+    dec_vals = _unique_values(np.concatenate([TAU ** rungs, known])) * d0
+    ll_dec, n_dec, _ = _loglik(p, sig, dec_vals, span)
+    alts = {}
+    upto = 4.6 * d0 / max(p.min(), 1e-9) * 1.2
+    for name, seq in _periodic_sequences(upto).items():
+        ll, n_ok, a = _best_periodic(p, sig, seq, span)
+        alts[name] = {"log_likelihood": float(ll), "peaks_explained": int(n_ok), "scale_px": float(a),
+                      "sequence_values_in_range": int(((a * seq >= span[0]) & (a * seq <= span[1])).sum())}
+    best_alt = max(alts, key=lambda k: alts[k]["log_likelihood"])
+    two_ln_lr = 2.0 * (ll_dec - alts[best_alt]["log_likelihood"])
+    n_rungs = int(len(np.unique(matched_rungs)))
+    holds = bool(n_rungs >= 3 and two_ln_lr >= 10.0)
+    if holds:
+        verdict = (f"ladder holds: {n_rungs} rungs matched, decagonal model beats the best periodic alternative "
+                   f"({best_alt}) by 2 ln LR = {two_ln_lr:.1f}")
+    else:
+        why = (f"only {n_rungs} distinct rungs matched" if n_rungs < 3 else
+               f"decagonal model does not beat the {best_alt} alternative decisively (2 ln LR = {two_ln_lr:.1f} < 10)")
+        verdict = f"ladder does not hold: {why}"
+    return {"n_peaks_compared": int(len(p)), "compared_range_d0": [0.5, 4.5], "n_rungs_matched": n_rungs,
+            "rung_weight_share": float(rung_share), "log_likelihood_decagonal": float(ll_dec),
+            "peaks_explained_decagonal": int(n_dec),
+            "decagonal_values_in_range": int(((dec_vals >= span[0]) & (dec_vals <= span[1])).sum()),
+            "alternatives": alts, "best_alternative": best_alt, "two_ln_likelihood_ratio": float(two_ln_lr),
+            "threshold_two_ln_lr": 10.0, "outlier_share": 0.1, "verdict": verdict}, holds
+
+
+def _match(p, sig_rel, d0, rungs, half_step):
+    """Nearest rung or known ratio for each peak; on the ladder only when a rung is the closest within tolerance."""
+    ratio = p / d0
+    rr = TAU ** rungs
+    known = np.array([v for v, _ in KNOWN_RATIOS])
+    names = np.array([n for _, n in KNOWN_RATIOS], dtype=object)
+    jr = np.argmin(np.abs(np.log(ratio[:, None] / rr[None, :])), axis=1)
+    er = np.abs(np.log(ratio / rr[jr]))
+    jk = np.argmin(np.abs(np.log(ratio[:, None] / known[None, :])), axis=1)
+    ek = np.abs(np.log(ratio / known[jk]))
+    on = (er <= sig_rel) & (er <= ek)
+    lab_known = (~on) & (ek <= sig_rel)
+    rung = np.where(on, rungs[jr], np.nan)
+    fmt = (lambda v: f"tau^{v:g}")
+    label = np.where(on, [fmt(v) for v in rungs[jr]], np.where(lab_known, names[jk], "unassigned"))
+    # Still unassigned: a short decagonal-module length sqrt(a + b tau) within a tenth of the tolerance, if any.
+    mod = np.array([v for v, _ in MODULE_LENGTHS])
+    mnames = np.array([n for _, n in MODULE_LENGTHS], dtype=object)
+    jm = np.argmin(np.abs(np.log(ratio[:, None] / mod[None, :])), axis=1)
+    em = np.abs(np.log(ratio / mod[jm]))
+    use = (label == "unassigned") & (em <= 0.2 * sig_rel)
+    label = np.where(use, mnames[jm], label)
+    return on, rung, label.astype(object)
+
+
+def fit_ladder(
+    x_px,
+    y_px,
+    *,
+    point_set: str = "columns",
+    d0_px: float | None = None,
+    r_max_px: float | None = None,
+    half_step: bool = False,
+    pixel_size_nm: float | None = None,
+    n_boot: int = 200,
+    rng: np.random.Generator | int | None = 0,
+) -> tuple[pd.DataFrame, pd.DataFrame, dict]:
+    """Fit the golden-ratio ladder d_n = d0 tau^n to the peaks of a point set's pair distribution.
+
+    Parameters
+    ----------
+    x_px, y_px : arrays
+        Point positions in px (columns or motif centres).
+    point_set : {'columns', 'centres'}
+        Which point set this is (written to the 'set' column).
+    d0_px : float, optional
+        Base distance in px; default: the strongest short-range peak (highest g among the peaks closer than twice
+        the first peak).
+    r_max_px : float, optional
+        Largest pair distance; default max(8 x median nearest-neighbour distance, 1.1 d0 tau^4).
+    half_step : bool
+        Also allow half-integer rungs tau^(n/2).
+    pixel_size_nm : float, optional
+        For the ``*_nm`` columns; None leaves them NaN (uncalibrated).
+    n_boot : int
+        Bootstrap resamples of the reference points for the rung uncertainties (0: from peak width / sqrt(pairs)).
+    rng : Generator or int
+        Reference-subset choice and bootstrap.
+
+    Returns
+    -------
+    ladder : DataFrame
+        ``_schema.LADDER``: set, rung, ideal_ratio, ideal_nm, measured_px, measured_nm, ratio, deviation_pct,
+        uncertainty_pct, peak_weight.
+    peaks : DataFrame
+        ``_schema.PEAKS``: set, distance_px, distance_nm, ratio_to_d0, on_ladder, rung, label, height, width_px.
+    info : dict
+        'd0_px', 'd0_nm', 'd0_source', 'r_max_px', 'n_points', 'holds', 'evidence' (numbers and a one-line
+        'verdict'), 'rung_weight_share', 'message' when nothing could be fitted, and 'curve' (the pair
+        distribution DataFrame; not JSON: the pipeline pops it into ``result.curves``).
+
+    References
+    ----------
+    J. Ohser and D. Stoyan, Biom. J. 23 (1981) 523; R. E. Kass and A. E. Raftery, J. Am. Stat. Assoc. 90 (1995) 773.
+    """
+    if point_set not in ("columns", "centres"):
+        raise TenfoldInputError(f"fit_ladder: point_set={point_set!r} must be 'columns' or 'centres'")
+    for name, v in (("d0_px", d0_px), ("r_max_px", r_max_px)):
+        if v is not None and not (np.isfinite(v) and v > 0):
+            raise TenfoldInputError(f"fit_ladder: {name}={v!r} must be a positive number of pixels (or None)")
+    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
+        raise TenfoldInputError(f"fit_ladder: pixel_size_nm={pixel_size_nm!r} must be positive or None")
+    if n_boot < 0:
+        raise TenfoldInputError(f"fit_ladder: n_boot={n_boot!r} must be >= 0")
+    xy = _clean_xy(x_px, y_px, "fit_ladder")
+    gen = np.random.default_rng(rng)
+    scale = pixel_size_nm if pixel_size_nm else np.nan
+    info: dict = {"set": point_set, "n_points": int(len(xy)), "calibrated": pixel_size_nm is not None,
+                  "half_step": bool(half_step), "holds": False, "d0_px": None, "d0_nm": None}
+
+    def _none(msg):
+        info["message"] = msg
+        info["evidence"] = {"verdict": f"ladder not evaluated: {msg}"}
+        return empty_table(LADDER), empty_table(PEAKS), info
+
+    if len(xy) < 3:
+        return _none(f"too few points ({len(xy)}) for pair distances")
+    span = np.ptp(xy, axis=0)
+    if np.linalg.matrix_rank(xy - xy.mean(axis=0), tol=1e-9 * max(span.max(), 1.0)) < 2:
+        return _none("all points are collinear: no two-dimensional pair distribution")
+    d_nn = float(np.median(cKDTree(xy).query(xy, k=2)[0][:, 1]))
+    if not d_nn > 0:
+        return _none("points coincide (median nearest-neighbour distance 0 px)")
+    if r_max_px is None:
+        r_max = max(8.0 * d_nn, 1.1 * d0_px * TAU ** 4 if d0_px else 0.0)
+    else:
+        r_max = float(r_max_px)
+    r_max = min(r_max, 0.5 * float(span.min())) if span.min() > 0 else r_max
+    info["r_max_px"] = float(r_max)
+    if r_max <= d_nn:
+        return _none(f"point set too small: r_max {r_max:.3g} px is not above the nearest-neighbour distance")
+    ref_i, d, n_ref = _pairs(xy, r_max, gen)
+    bin_px = d_nn / 40.0
+    curve = _histogram(d, n_ref, xy, r_max, bin_px, True)
+    curve["r_nm"] = curve["r_px"] * scale
+    info["curve"] = curve
+    pk = locate_peaks(curve)
+    pk = pk[(pk["distance_px"] > 0.3 * d_nn) & (pk["distance_px"] < r_max)].reset_index(drop=True)
+    if len(pk) == 0:
+        return _none("no peaks in the pair distribution")
+    pk = _refine_narrow(pk, np.sort(d), bin_px)
+    p = pk["distance_px"].to_numpy()
+    wpx = np.maximum(pk["width_px"].to_numpy(), bin_px)
+    if d0_px is None:
+        short = pk[pk["distance_px"] <= 2.0 * p[0]]
+        d0 = float(short.loc[short["height"].idxmax(), "distance_px"])
+        info["d0_source"] = (f"automatic: strongest pair-distribution peak closer than twice the first peak "
+                             f"({p[0]:.4g} px)")
+    else:
+        d0 = float(d0_px)
+        info["d0_source"] = "given"
+    step = 0.5 if half_step else 1.0
+    rungs = np.arange(np.floor(np.log(p.min() / d0) / np.log(TAU)) - 1, np.ceil(np.log(r_max / d0) / np.log(TAU)) + 1,
+                      step)
+    sig_rel = np.clip(np.maximum(1.5 * wpx, 2 * bin_px) / p, 0.01, 0.05)
+    for _ in range(2):  # match, refit d0 on the matched rungs, match again
+        on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
+        if not on.any():
+            break
+        w = 1.0 / wpx[on] ** 2
+        q = TAU ** rung[on]
+        d0 = float((w * p[on] * q).sum() / (w * q * q).sum())
+    on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
+    info["d0_px"] = float(d0)
+    info["d0_nm"] = float(d0 * pixel_size_nm) if pixel_size_nm else None
+    # Pairs per peak window (+-2 widths), for weights and the bootstrap.
+    lo, hi = p - 2 * wpx, p + 2 * wpx
+    jn = np.clip(np.searchsorted(p, d), 0, len(p) - 1)
+    jp = np.clip(jn - 1, 0, len(p) - 1)
+    jbest = np.where(np.abs(d - p[jn]) < np.abs(d - p[jp]), jn, jp)
+    inwin = (d >= lo[jbest]) & (d <= hi[jbest])
+    weight = np.bincount(jbest[inwin], minlength=len(p)) / max(len(d), 1)
+    rung_share = float(weight[on].sum())
+    ladder_rows = pd.DataFrame()
+    if on.any():
+        # Keep one peak per rung: the one closest to its ideal position.
+        idx = np.flatnonzero(on)
+        dev = np.abs(np.log(p[idx] / (d0 * TAU ** rung[idx])))
+        order = np.lexsort((dev, rung[idx]))
+        first = np.ones(len(order), bool)
+        first[1:] = rung[idx][order][1:] != rung[idx][order][:-1]
+        idx = np.sort(idx[order[first]])
+        unc = _uncertainty(ref_i, d, jbest, inwin, idx, rung, wpx, p, n_ref, n_boot, gen)
+        q = TAU ** rung[idx]
+        ratio = p[idx] / d0
+        ladder_rows = pd.DataFrame({
+            "set": point_set, "rung": rung[idx], "ideal_ratio": q, "ideal_nm": d0 * q * scale,
+            "measured_px": p[idx], "measured_nm": p[idx] * scale, "ratio": ratio,
+            "deviation_pct": 100.0 * (ratio / q - 1.0), "uncertainty_pct": unc, "peak_weight": weight[idx],
+            "ideal_px": d0 * q,
+        })
+        dup = np.setdiff1d(np.flatnonzero(on), idx)
+        on[dup] = False  # a second peak near an already matched rung is not a rung
+        label[dup] = "unassigned"
+        rung[dup] = np.nan
+    peaks = pd.DataFrame({
+        "set": point_set, "distance_px": p, "distance_nm": p * scale, "ratio_to_d0": p / d0, "on_ladder": on,
+        "rung": rung, "label": label, "height": pk["height"].to_numpy(), "width_px": pk["width_px"].to_numpy(),
+        "peak_weight": weight,
+    })
+    # Position uncertainty of each peak: width / sqrt(pairs), with a 0.2 % floor for systematic effects
+    # (finite-size and overlap shifts; common practice).
+    n_pairs = np.maximum(weight * len(d), 1.0)
+    sig_pos = np.sqrt((wpx / np.sqrt(n_pairs)) ** 2 + (0.002 * p) ** 2)
+    ev, holds = _evidence(pk, sig_pos, d0, rungs, rung[on], rung_share)
+    info["holds"] = holds
+    info["evidence"] = ev
+    info["rung_weight_share"] = rung_share
+    info["n_rungs"] = int(on.sum())
+    if len(ladder_rows):
+        dv = ladder_rows["deviation_pct"].to_numpy()
+        info["max_abs_deviation_pct"] = float(np.abs(dv).max())
+        info["rms_deviation_pct"] = float(np.sqrt((dv ** 2).mean()))
+        ladder = conform(ladder_rows, LADDER)
+    else:
+        ladder = empty_table(LADDER)
+    return ladder, conform(peaks, PEAKS), info
+
+
+def _refine_narrow(pk: pd.DataFrame, d_sorted: np.ndarray, bin_px: float) -> pd.DataFrame:
+    """Peaks narrower than 1.5 bins: position and width from the raw pair distances within +-1.5 bins
+    (iterated windowed mean), since a histogram fit cannot resolve them."""
+    pk = pk.copy()
+    narrow = (pk["width_px"].to_numpy() < 1.5 * bin_px)
+    mu = pk["distance_px"].to_numpy().copy()
+    wid = pk["width_px"].to_numpy().copy()
+    if not narrow.any():
+        return pk
+    cs = np.concatenate([[0.0], np.cumsum(d_sorted)])
+    cs2 = np.concatenate([[0.0], np.cumsum(d_sorted ** 2)])
+    m = mu[narrow]
+    for _ in range(4):  # windowed mean, all narrow peaks at once
+        lo = np.searchsorted(d_sorted, m - 1.5 * bin_px)
+        hi = np.searchsorted(d_sorted, m + 1.5 * bin_px)
+        cnt = hi - lo
+        ok = cnt >= 3
+        m = np.where(ok, (cs[hi] - cs[lo]) / np.maximum(cnt, 1), m)
+    var = (cs2[hi] - cs2[lo]) / np.maximum(cnt, 1) - m ** 2
+    mu[narrow] = m
+    wid[narrow] = np.where(ok, np.sqrt(np.maximum(var, 0.0)), wid[narrow])
+    pk["distance_px"] = mu
+    pk["width_px"] = wid
+    return pk.sort_values("distance_px").reset_index(drop=True)
+
+
+def _uncertainty(ref_i, d, jbest, inwin, idx, rung, wpx, p, n_ref, n_boot, gen) -> np.ndarray:
+    """1-sigma uncertainty (% of the ideal ratio) of measured / d0 for the rungs ``idx``.
+
+    Bootstrap over reference points: per point and peak the sums of distances and counts in the peak window are
+    aggregated once, so every resample is a (n_boot x n_ref) @ (n_ref x K) product.
+    """
+    q = TAU ** rung[idx]
+    k = len(idx)
+    slot = np.full(len(p), -1)
+    slot[idx] = np.arange(k)
+    sel = inwin & (slot[jbest] >= 0)
+    flat = ref_i[sel] * k + slot[jbest[sel]]
+    cnt = np.bincount(flat, minlength=n_ref * k).reshape(n_ref, k).astype(float)
+    tot = np.bincount(flat, weights=d[sel], minlength=n_ref * k).reshape(n_ref, k)
+    n_pk = cnt.sum(axis=0)
+    if n_boot == 0 or k == 0:
+        return 100.0 * wpx[idx] / np.sqrt(np.maximum(n_pk, 1)) / p[idx] * np.sqrt(2.0)
+    wts = gen.multinomial(n_ref, np.full(n_ref, 1.0 / n_ref), size=n_boot).astype(float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean_b = (wts @ tot) / (wts @ cnt)  # (n_boot, k)
+        w = 1.0 / wpx[idx] ** 2
+        d0_b = np.nansum(w * mean_b * q, axis=1) / (w * q * q).sum()
+        ratio_b = mean_b / d0_b[:, None]
+    unc = 100.0 * np.nanstd(ratio_b, axis=0) / q
+    if k == 1:  # the single rung is d0 itself: its ratio is 1 by construction; quote its position error
+        unc = 100.0 * np.nanstd(mean_b[:, 0]) / np.nanmean(mean_b[:, 0]) * np.ones(1)
+    return unc
+
+
+def motif_ratios(motifs: pd.DataFrame) -> dict:
+    """Motif-internal ratios: ring radius / ring edge and pentagon diagonal / edge, against their ideal values.
+
+    For a regular n-gon the circumradius / edge is 1 / (2 sin(pi / n)), which is tau for the decagon; the
+    diagonal / edge of a regular pentagon is tau (Euclid, Elements XIII).
+
+    Parameters
+    ----------
+    motifs : DataFrame
+        Motifs table (``_schema.MOTIFS``).
+
+    Returns
+    -------
+    dict
+        'ring_radius_over_edge' and 'pentagon_diag_over_edge', each with 'mean', 'std', 'n', 'ideal',
+        'deviation_from_ideal_pct' (and 'deviation_from_tau_pct'); None values when there are no such motifs.
+    """
+    if not isinstance(motifs, pd.DataFrame):
+        raise TenfoldInputError(f"motif_ratios: motifs must be a pandas DataFrame, got {type(motifs).__name__}")
+    out = {}
+    if len(motifs) == 0 or "kind" not in motifs:
+        rings = pents = motifs.iloc[0:0] if isinstance(motifs, pd.DataFrame) else None
+    else:
+        rings = motifs[motifs["kind"].astype(str).str.startswith("ring")]
+        pents = motifs[motifs["kind"] == "pentagon"]
+    for key, df in (("ring_radius_over_edge", rings), ("pentagon_diag_over_edge", pents)):
+        v = df["diag_edge_ratio"].to_numpy(dtype=float) if len(df) else np.zeros(0)
+        v = v[np.isfinite(v)]
+        if key.startswith("ring") and len(df):
+            n = int(df["order"].iloc[0])
+            ideal = 1.0 / (2.0 * np.sin(np.pi / n))
+        else:
+            ideal = TAU
+        if len(v) == 0:
+            out[key] = {"mean": None, "std": None, "n": 0, "ideal": float(ideal), "deviation_from_ideal_pct": None,
+                        "deviation_from_tau_pct": None}
+            continue
+        m = float(v.mean())
+        out[key] = {"mean": m, "std": float(v.std()), "n": int(len(v)), "ideal": float(ideal),
+                    "deviation_from_ideal_pct": 100.0 * (m / ideal - 1.0),
+                    "deviation_from_tau_pct": 100.0 * (m / TAU - 1.0)}
+    return out
+
+
+def ladder_figure(result):
+    """Pair distributions with the ladder rungs marked, deviations annotated and off-ladder peaks labelled.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        Reads ``curves['pair_distribution_columns']`` / ``['pair_distribution_centres']`` (r_px, r_nm, g) and
+        ``tables['ladder']``, ``tables['pair_peaks']``; ``meta.pixel_size_nm`` decides the axis unit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None when there is no pair distribution to draw.
+    """
+    sets = [s for s in ("columns", "centres") if f"pair_distribution_{s}" in getattr(result, "curves", {})]
+    if not sets:
+        return None
+    from matplotlib.figure import Figure
+
+    ps = getattr(getattr(result, "meta", None), "pixel_size_nm", None)
+    s = ps if ps else 1.0
+    unit = "nm" if ps else "px"
+    lad = result.tables.get("ladder", empty_table(LADDER))
+    pk = result.tables.get("pair_peaks", empty_table(PEAKS))
+    fig = Figure(figsize=(7.5, 3.2 * len(sets)), dpi=120)
+    for k, name in enumerate(sets):
+        ax = fig.add_subplot(len(sets), 1, k + 1)
+        c = result.curves[f"pair_distribution_{name}"]
+        ax.plot(c["r_px"] * s, c["g"], color="#333333", lw=1.0)
+        ax.axhline(1.0, color="#999999", lw=0.6, ls=":")
+        top = float(np.nanmax(c["g"])) if len(c) else 1.0
+        lr = lad[lad["set"] == name]
+        for row in lr.itertuples():
+            ideal = row.measured_px / (1 + row.deviation_pct / 100.0)
+            ax.axvline(ideal * s, color="#1f5fa8", lw=0.8, ls="--")
+            ax.annotate(f"tau^{row.rung:g}\n{row.deviation_pct:+.2f}%", (ideal * s, top * 0.95), fontsize=6,
+                        color="#1f5fa8", ha="center", va="top")
+        off = pk[(pk["set"] == name) & (~pk["on_ladder"].astype(bool))]
+        for row in off.itertuples():
+            ax.plot([row.distance_px * s], [row.height], "v", color="#e8962e", ms=4)
+            if row.label != "unassigned":
+                ax.annotate(str(row.label), (row.distance_px * s, row.height), fontsize=6, color="#b35f00",
+                            xytext=(0, 4), textcoords="offset points", ha="center")
+        ax.set_ylabel("g(r)")
+        ax.set_title(f"pair distribution, {name}" + ("" if ps else " (uncalibrated)"), fontsize=9)
+    ax.set_xlabel(f"r ({unit})")
+    fig.tight_layout()
+    return fig
+
+
+def _register_figures() -> None:
+    """Register the figure maker with export's registry when that module is there."""
+    try:
+        from .export import register_figure
+    except ImportError:  # export not available: the function stays usable on its own
+        return
+    register_figure("pair_distribution_ladder")(ladder_figure)
+
+
+_register_figures()

@@ -1,0 +1,786 @@
+"""Cluster motifs: rings of n columns on a circle about a centre point, and near-regular pentagons.
+
+A ring motif of order n is n columns lying on a circle of radius r about a centre point, at angles close to a
+regular n-gon. The centre is a point, not necessarily a column: decagonal clusters are often empty-centred or hold
+a small group of columns. The search is vectorised throughout:
+
+1. A KD-tree of the columns is built once. Candidate centres are every column plus the circumcentres of the
+   triangles (column, two neighbours at the ring-edge distance) whose circumradius is close to r: three
+   consecutive columns of one ring have their circumcentre at the ring centre, so empty-centred rings get a
+   candidate exactly where they need one.
+2. All candidates' shells ``r (1 +- radius_tolerance)`` are collected with one ``sparse_distance_matrix`` call
+   into padded (candidates x shell) arrays; at most n members per shell are kept (those closest to r).
+3. The centre is refined by a least-squares circle fit of the members (algebraic fit, then Gauss-Newton on the
+   geometric distances), the shell is collected again about the refined centre and fitted once more.
+4. Members get angular slots ``round((theta - phi) / (360/n))`` about the orientation phi = arg(psi_n)/n; a ring
+   is kept when it has at least ``min_members`` members in distinct slots, |psi_n| >= ``psi_min`` and a radial
+   spread below half the shell tolerance. Candidates that converged onto one ring (centres closer than a third of
+   the ring edge) are merged, keeping the best score.
+
+Radius, when not given, comes from a ring-shell scan: for a sample of candidate centres, every trial radius on a
+geometric grid from 0.8 to 6 nearest-neighbour distances is tested and the radius holding the most n-fold regular
+shells wins; it is then set to the median member distance of those shells.
+
+Pentagons are (a) the same-species five-column subsets in alternate slots of every complete ten-membered ring
+(``parent_ring`` set), and (b) free pentagons: five columns alone in a shell about a point, found by the same
+engine with n = 5 and its own radius scan, kept when their edges agree within the tolerance and diagonal / edge is
+within the tolerance of tau.
+
+References
+----------
+Bond-orientational order psi_n: D. R. Nelson and B. I. Halperin, Phys. Rev. B 19 (1979) 2457.
+Circle fit: I. Kasa, IEEE Trans. Instrum. Meas. 25 (1976) 8; N. Chernov, "Circular and linear regression" (2010).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy.spatial import cKDTree
+
+from ._errors import TenfoldInputError
+from ._progress import ProgressCallback, report
+from ._schema import MOTIFS, conform, empty_table
+
+__all__ = ["TAU", "find_motifs", "ring_search"]
+
+TAU = (1.0 + np.sqrt(5.0)) / 2.0
+_ORDERS = (5, 6, 8, 10, 12)
+_SCAN_SAMPLE = 2000  # candidate centres used by the radius scan (independent of N, keeps it O(1))
+
+
+# --------------------------------------------------------------------------------------------- padded shells
+def _padded(i: np.ndarray, j: np.ndarray, d: np.ndarray, n_rows: int) -> tuple[np.ndarray, np.ndarray]:
+    """Group (row i, column j, distance d) triples into padded (n_rows x K) arrays; padding j = -1, d = inf."""
+    if len(i) == 0:
+        return np.full((n_rows, 0), -1, dtype=np.int64), np.full((n_rows, 0), np.inf)
+    order = np.lexsort((d, i))
+    i, j, d = i[order], j[order], d[order]
+    counts = np.bincount(i, minlength=n_rows)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    rank = np.arange(len(i)) - starts[i]
+    k = int(counts.max())
+    jj = np.full((n_rows, k), -1, dtype=np.int64)
+    dd = np.full((n_rows, k), np.inf)
+    jj[i, rank] = j
+    dd[i, rank] = d
+    return jj, dd
+
+
+def _shell_pairs(tree: cKDTree, centres: np.ndarray, r_lo: float, r_hi: float):
+    """All (centre, column, distance) with r_lo <= distance <= r_hi, from one dual-tree query."""
+    if len(centres) == 0:
+        e = np.zeros(0, dtype=np.int64)
+        return e, e, np.zeros(0)
+    sdm = cKDTree(centres).sparse_distance_matrix(tree, r_hi, output_type="ndarray")
+    keep = sdm["v"] >= r_lo
+    return sdm["i"][keep].astype(np.int64), sdm["j"][keep].astype(np.int64), sdm["v"][keep]
+
+
+def _keep_closest(jj: np.ndarray, dd: np.ndarray, r: float, n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Keep at most n members per row, those whose distance is closest to r; also return the shell count."""
+    count = (jj >= 0).sum(axis=1)
+    if jj.shape[1] > n:
+        key = np.where(jj >= 0, np.abs(dd - r), np.inf)
+        sel = np.argsort(key, axis=1, kind="stable")[:, :n]
+        jj = np.take_along_axis(jj, sel, axis=1)
+        dd = np.take_along_axis(dd, sel, axis=1)
+    return jj, dd, count
+
+
+def _fit_circles(px: np.ndarray, py: np.ndarray, valid: np.ndarray, n_iter: int = 3):
+    """Least-squares circles through the valid points of every row: Kasa algebraic fit, then Gauss-Newton.
+
+    Rows with fewer than 3 valid points get NaN. Returns (cx, cy, r) arrays.
+    """
+    w = valid.astype(float)
+    m = w.sum(axis=1)
+    ok = m >= 3
+    safe = np.where(ok, m, 1.0)
+    # Centre the coordinates per row for conditioning.
+    x0 = (np.where(valid, px, 0.0)).sum(axis=1) / safe
+    y0 = (np.where(valid, py, 0.0)).sum(axis=1) / safe
+    u = np.where(valid, px - x0[:, None], 0.0)
+    v = np.where(valid, py - y0[:, None], 0.0)
+    z = u * u + v * v
+    # Kasa: z = 2 a u + 2 b v + c (least squares).
+    a_mat = np.empty((len(px), 3, 3))
+    rhs = np.empty((len(px), 3))
+    cols = (2 * u, 2 * v, w)
+    for p in range(3):
+        rhs[:, p] = (cols[p] * z).sum(axis=1)
+        for q in range(3):
+            a_mat[:, p, q] = (cols[p] * cols[q]).sum(axis=1)
+    a_mat[~ok] = np.eye(3)
+    rhs[~ok] = 0.0
+    sol = np.linalg.solve(a_mat, rhs[..., None])[..., 0]
+    a, b = sol[:, 0], sol[:, 1]
+    rr = np.sqrt(np.maximum(sol[:, 2] + a * a + b * b, 0.0))
+    for _ in range(n_iter):  # geometric refinement: minimise sum (|p - c| - r)^2
+        du = np.where(valid, u - a[:, None], 0.0)
+        dv = np.where(valid, v - b[:, None], 0.0)
+        dist = np.hypot(du, dv)
+        dist_s = np.where(dist > 0, dist, 1.0)
+        res = np.where(valid, dist - rr[:, None], 0.0)
+        ja = np.where(valid, -du / dist_s, 0.0)
+        jb = np.where(valid, -dv / dist_s, 0.0)
+        jr = -w
+        jac = (ja, jb, jr)
+        for p in range(3):
+            rhs[:, p] = -(jac[p] * res).sum(axis=1)
+            for q in range(3):
+                a_mat[:, p, q] = (jac[p] * jac[q]).sum(axis=1)
+        a_mat[~ok] = np.eye(3)
+        rhs[~ok] = 0.0
+        det = np.linalg.det(a_mat)
+        good = np.abs(det) > 1e-12
+        a_mat[~good] = np.eye(3)
+        rhs[~good] = 0.0
+        step = np.linalg.solve(a_mat, rhs[..., None])[..., 0]
+        a, b, rr = a + step[:, 0], b + step[:, 1], rr + step[:, 2]
+    cx, cy = x0 + a, y0 + b
+    cx[~ok] = np.nan
+    cy[~ok] = np.nan
+    rr = np.where(ok, np.abs(rr), np.nan)
+    return cx, cy, rr
+
+
+def _slots(theta: np.ndarray, valid: np.ndarray, n: int):
+    """psi_n, orientation (rad, in [0, 2 pi / n)), integer slot per member and whether the slots are distinct."""
+    m = valid.sum(axis=1)
+    ph = np.where(valid, np.exp(1j * n * theta), 0.0).sum(axis=1) / np.maximum(m, 1)
+    phi = np.mod(np.angle(ph) / n, 2 * np.pi / n)
+    step = 2 * np.pi / n
+    rel = np.mod(theta - phi[:, None], 2 * np.pi)
+    slot = np.mod(np.rint(rel / step).astype(np.int64), n)
+    slot = np.where(valid, slot, n + np.arange(theta.shape[1])[None, :])  # padding never collides
+    s = np.sort(slot, axis=1)
+    distinct = ~(np.diff(s, axis=1) == 0).any(axis=1) if s.shape[1] > 1 else np.ones(len(s), bool)
+    return np.abs(ph), phi, slot, distinct
+
+
+def ring_search(
+    xy: np.ndarray,
+    tree: cKDTree,
+    candidates: np.ndarray,
+    *,
+    order: int,
+    radius_px: float,
+    radius_tolerance: float,
+    min_members: int,
+    psi_min: float,
+    exact: bool = False,
+) -> dict:
+    """Vectorised ring search about candidate centres (the engine behind :func:`find_motifs`).
+
+    Parameters
+    ----------
+    xy : (N, 2) float array
+        Column positions in px.
+    tree : cKDTree
+        KD-tree of ``xy`` (built once by the caller).
+    candidates : (M, 2) float array
+        Candidate centre positions in px.
+    order : int
+        Ring order n.
+    radius_px, radius_tolerance : float
+        Shell radius r in px and relative half width of the shell.
+    min_members : int
+        Fewest members for a ring (rings with fewer than n are flagged incomplete).
+    psi_min : float
+        Smallest accepted |psi_n|.
+    exact : bool
+        Require exactly n columns in the shell and no others (used for free pentagons).
+
+    Returns
+    -------
+    dict
+        'cx', 'cy' refined centres (px), 'slots' (R x n) member column indices in slot order (-1 missing),
+        'psi', 'phi' (rad), 'radius', 'rms' arrays, one entry per accepted, de-duplicated ring.
+    """
+    n, r, tol = order, float(radius_px), float(radius_tolerance)
+    lo, hi = r * (1 - tol), r * (1 + tol)
+    cand = np.asarray(candidates, dtype=float)
+    shell_count = np.zeros(len(cand), dtype=np.int64)
+    for it in range(2):  # collect, fit, re-collect about the refined centre, fit again
+        i, j, d = _shell_pairs(tree, cand, lo, hi)
+        jj, dd = _padded(i, j, d, len(cand))
+        jj, dd, shell_count = _keep_closest(jj, dd, r, n)
+        valid = jj >= 0
+        px = np.where(valid, xy[np.maximum(jj, 0), 0], 0.0)
+        py = np.where(valid, xy[np.maximum(jj, 0), 1], 0.0)
+        enough = valid.sum(axis=1) >= max(3, min_members)
+        cand, jj, px, py, valid, shell_count = (cand[enough], jj[enough], px[enough], py[enough], valid[enough],
+                                                shell_count[enough])
+        cx, cy, _ = _fit_circles(px, py, valid)
+        fin = np.isfinite(cx) & np.isfinite(cy)
+        cand = np.stack([cx, cy], axis=1)[fin]
+        jj, px, py, valid, shell_count = jj[fin], px[fin], py[fin], valid[fin], shell_count[fin]
+    if len(cand) == 0:
+        return _empty_search(n)
+    cx, cy = cand[:, 0], cand[:, 1]
+    dist = np.where(valid, np.hypot(px - cx[:, None], py - cy[:, None]), np.nan)
+    m = valid.sum(axis=1)
+    radius = np.nanmean(dist, axis=1)
+    rms = np.sqrt(np.nanmean((dist - radius[:, None]) ** 2, axis=1))
+    theta = np.where(valid, np.arctan2(py - cy[:, None], px - cx[:, None]), 0.0)
+    psi, phi, slot, distinct = _slots(theta, valid, n)
+    good = (m >= min_members) & (m <= n) & distinct & (psi >= psi_min) & (rms <= 0.5 * tol * r)
+    good &= np.abs(radius - r) <= tol * r
+    if exact:
+        good &= (shell_count == n) & (m == n)
+    idx = np.flatnonzero(good)
+    if len(idx) == 0:
+        return _empty_search(n)
+    score = _score(psi[idx], m[idx] / n, rms[idx], tol * r)
+    # Merge candidates that converged onto the same ring: centres closer than a third of the ring edge.
+    edge = 2 * r * np.sin(np.pi / n)
+    keep = _dedupe(cand[idx], score, edge / 3.0)
+    idx = idx[keep]
+    slots = np.full((len(idx), n), -1, dtype=np.int64)
+    rows = np.repeat(np.arange(len(idx)), jj.shape[1])
+    s = slot[idx].ravel()
+    mem = jj[idx].ravel()
+    ok = (mem >= 0) & (s < n)
+    slots[rows[ok], s[ok]] = mem[ok]
+    return {"cx": cx[idx], "cy": cy[idx], "slots": slots, "psi": psi[idx], "phi": phi[idx],
+            "radius": radius[idx], "rms": rms[idx]}
+
+
+def _empty_search(n: int) -> dict:
+    z = np.zeros(0)
+    return {"cx": z, "cy": z, "slots": np.zeros((0, n), dtype=np.int64), "psi": z, "phi": z, "radius": z, "rms": z}
+
+
+def _score(psi, completeness, rms, rms_scale):
+    return np.clip(psi, 0, 1) * completeness * np.clip(1.0 - rms / rms_scale, 0.0, 1.0)
+
+
+def _dedupe(centres: np.ndarray, score: np.ndarray, radius: float) -> np.ndarray:
+    """Indices of the best-scoring centre of every cluster of centres closer than ``radius``."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    pairs = cKDTree(centres).query_pairs(radius, output_type="ndarray")
+    n = len(centres)
+    g = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n)) if len(pairs) else \
+        coo_matrix((n, n))
+    _, lab = connected_components(g, directed=False)
+    order = np.lexsort((-score, lab))
+    first = np.ones(len(order), bool)
+    first[1:] = lab[order][1:] != lab[order][:-1]
+    return np.sort(order[first])
+
+
+# --------------------------------------------------------------------------------------------- candidates, scan
+def _triangle_centres(xy: np.ndarray, tree: cKDTree, sel: np.ndarray, *, k: int = 6,
+                      edge_range: tuple[float, float] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Circumcentres and circumradii of the triangles (column, neighbour a, neighbour b) for the k nearest
+    neighbours of the columns ``sel``.
+
+    Three consecutive members of a ring have their circumcentre at the ring centre, so these are the candidate
+    centres of empty-centred rings. With ``edge_range`` only neighbours at a ring-edge distance are used.
+    """
+    if len(xy) < 3 or len(sel) == 0:
+        return np.zeros((0, 2)), np.zeros(0)
+    k = min(k, len(xy) - 1)
+    d, nb = tree.query(xy[sel], k=k + 1)
+    d, nb = d[:, 1:], nb[:, 1:]
+    valid = np.isfinite(d) & (nb < len(xy))
+    if edge_range is not None:
+        valid &= (d >= edge_range[0]) & (d <= edge_range[1])
+    ia, ib = np.triu_indices(k, 1)
+    ok = (valid[:, ia] & valid[:, ib]).ravel()
+    c = np.repeat(xy[sel], len(ia), axis=0)[ok]
+    pa = xy[np.minimum(nb[:, ia], len(xy) - 1)].reshape(-1, 2)[ok]
+    pb = xy[np.minimum(nb[:, ib], len(xy) - 1)].reshape(-1, 2)[ok]
+    bx, by = pa[:, 0] - c[:, 0], pa[:, 1] - c[:, 1]
+    qx, qy = pb[:, 0] - c[:, 0], pb[:, 1] - c[:, 1]
+    den = 2 * (bx * qy - by * qx)
+    fine = np.abs(den) > 1e-9 * np.maximum(bx * bx + by * by, 1e-30)
+    den = np.where(fine, den, 1.0)
+    ux = (qy * (bx * bx + by * by) - by * (qx * qx + qy * qy)) / den
+    uy = (bx * (qx * qx + qy * qy) - qx * (bx * bx + by * by)) / den
+    cc = np.stack([c[:, 0] + ux, c[:, 1] + uy], axis=1)[fine]
+    return cc, np.hypot(ux, uy)[fine]
+
+
+def _ring_candidates(xy, tree, r, tol, n):
+    """Centres of empty-centred rings: circumcentres of a column and two neighbours at the ring edge distance."""
+    edge = 2 * r * np.sin(np.pi / n)
+    cc, cr = _triangle_centres(xy, tree, np.arange(len(xy)), edge_range=(edge * (1 - tol), edge * (1 + tol)))
+    pick = (cr >= r * (1 - tol)) & (cr <= r * (1 + tol))
+    return _merge_close(cc[pick], 0.2 * edge)
+
+
+def _merge_close(points: np.ndarray, cell: float) -> np.ndarray:
+    """Thin a candidate list: one point per grid cell of size ``cell`` (many triangles share one circumcentre)."""
+    if len(points) == 0:
+        return points
+    key = np.floor(points / cell).astype(np.int64)
+    _, first = np.unique(key, axis=0, return_index=True)
+    return points[np.sort(first)]
+
+
+def _scan_radius(xy, tree, cand, *, order, tol, min_members, psi_min, d_nn, rng, exact=False):
+    """Ring-shell scan: the trial radius at which the most candidate shells look like regular n-gons."""
+    n = order
+    if len(cand) > _SCAN_SAMPLE:
+        cand = cand[rng.choice(len(cand), _SCAN_SAMPLE, replace=False)]
+    radii = np.exp(np.arange(np.log(0.8 * d_nn), np.log(6.0 * d_nn), np.log1p(tol / 3.0)))
+    if len(radii) == 0 or len(cand) == 0:
+        return None, {"method": "ring-shell scan", "trial_radii": 0, "best_count": 0}
+    i, j, d = _shell_pairs(tree, cand, radii[0] * (1 - tol), radii[-1] * (1 + tol))
+    jj, dd = _padded(i, j, d, len(cand))
+    valid = jj >= 0
+    theta = np.arctan2(xy[np.maximum(jj, 0), 1] - cand[:, 1:2], xy[np.maximum(jj, 0), 0] - cand[:, 0:1])
+    counts = np.zeros(len(radii), dtype=np.int64)
+
+    rot = np.where(valid, np.exp(1j * n * theta), 0.0)
+
+    def _good(r):
+        ins = valid & (dd >= r * (1 - tol)) & (dd <= r * (1 + tol))
+        m = ins.sum(axis=1)
+        rows = np.flatnonzero((m == n) if exact else ((m >= min_members) & (m <= n)))
+        psi = np.abs(np.where(ins[rows], rot[rows], 0.0).sum(axis=1)) / np.maximum(m[rows], 1)
+        rows = rows[psi >= psi_min]
+        sub, dsub, msub = ins[rows], dd[rows], m[rows][:, None]
+        _, _, _, distinct = _slots(theta[rows], sub, n)
+        mean = np.where(sub, dsub, 0.0).sum(axis=1, keepdims=True) / msub
+        rms = np.sqrt(np.where(sub, (dsub - mean) ** 2, 0.0).sum(axis=1) / msub[:, 0])
+        ok = np.zeros(len(m), bool)
+        ok[rows[distinct & (rms <= 0.5 * tol * r)]] = True
+        return ok, ins
+
+    for k, r in enumerate(radii):  # a fixed number (~50) of vectorised passes, independent of N
+        counts[k] = _good(r)[0].sum()
+    best = int(np.argmax(counts))
+    info = {"method": "ring-shell scan", "trial_radii": int(len(radii)),
+            "scan_range_px": [float(radii[0]), float(radii[-1])], "sample_centres": int(len(cand)),
+            "best_count": int(counts[best])}
+    if counts[best] < 3:
+        return None, info
+    r = radii[best]
+    good, ins = _good(r)
+    r_med = float(np.median(dd[ins & good[:, None]]))
+    info["best_trial_px"] = float(r)
+    return r_med, info
+
+
+# --------------------------------------------------------------------------------------------- motif rows
+def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None):
+    """Turn a ring_search-style result into MOTIFS rows (vectorised over motifs, loops over the n slots)."""
+    slots = res["slots"]
+    k = len(slots)
+    valid = slots >= 0
+    px = np.where(valid, xy[np.maximum(slots, 0), 0], np.nan)
+    py = np.where(valid, xy[np.maximum(slots, 0), 1], np.nan)
+    nxt = np.roll(np.arange(n), -1)
+    adj = valid & valid[:, nxt]
+    e = np.where(adj, np.hypot(px[:, nxt] - px, py[:, nxt] - py), np.nan)
+    edge = _nanmean_rows(e)
+    if n == 5:
+        nn2 = np.roll(np.arange(n), -2)
+        dg = np.where(valid & valid[:, nn2], np.hypot(px[:, nn2] - px, py[:, nn2] - py), np.nan)
+        ratio = _nanmean_rows(dg) / edge
+    else:
+        ratio = res["radius"] / edge
+    m = valid.sum(axis=1)
+    members = _join_ids(ids, slots)
+    sp = np.where(valid, species[np.maximum(slots, 0)], np.iinfo(np.int64).min)
+    makeup = pd.Series([""] * k, dtype=object)
+    for s in (np.unique(sp[valid]) if valid.any() else []):  # a handful of species classes
+        c = (sp == s).sum(axis=1)
+        piece = (f"{int(s)}:" + pd.Series(c.astype(str), dtype=object)).where(c > 0, "")
+        sep = pd.Series(np.where((makeup != "") & (c > 0), " ", ""), dtype=object)
+        makeup = makeup + sep + piece
+    # Region: of the member column closest to the centre.
+    dist = np.where(valid, np.hypot(px - res["cx"][:, None], py - res["cy"][:, None]), np.inf)
+    near = slots[np.arange(k), np.argmin(dist, axis=1)] if k else np.zeros(0, dtype=np.int64)
+    ps = pixel_size_nm
+    scale = ps if ps else np.nan
+    out = pd.DataFrame({
+        "motif_id": np.zeros(k, dtype=np.int64),
+        "kind": kind,
+        "order": n,
+        "centre_x_px": res["cx"], "centre_y_px": res["cy"],
+        "centre_x_nm": res["cx"] * scale, "centre_y_nm": res["cy"] * scale,
+        "radius_px": res["radius"], "radius_nm": res["radius"] * scale,
+        "radial_rms_px": res["rms"], "radial_rms_nm": res["rms"] * scale,
+        "psi_n": res["psi"],
+        "orientation_deg": np.mod(np.rad2deg(res["phi"]), 360.0 / n),
+        "edge_px": edge, "edge_nm": edge * scale,
+        "diag_edge_ratio": ratio,
+        "n_members": m,
+        "members": members,
+        "centre_content": "empty",
+        "centre_ids": "",
+        "species_makeup": makeup.to_numpy(dtype=object),
+        "completeness": m / n,
+        "complete": m == n,
+        "score": np.nan,
+        "overlaps": 0,
+        "parent_ring": -1 if parent is None else parent,
+        "region": region[near] if k else np.zeros(0, dtype=np.int64),
+    })
+    return out
+
+
+def _nanmean_rows(a: np.ndarray) -> np.ndarray:
+    c = np.isfinite(a).sum(axis=1)
+    s = np.where(np.isfinite(a), a, 0.0).sum(axis=1)
+    return np.where(c > 0, s / np.maximum(c, 1), np.nan)
+
+
+def _join_ids(ids: np.ndarray, slots: np.ndarray) -> np.ndarray:
+    """Space-separated member ids per row, in slot (angular) order; one vectorised pass per slot."""
+    out = pd.Series([""] * len(slots), dtype=object)
+    for s in range(slots.shape[1]):
+        present = slots[:, s] >= 0
+        txt = pd.Series(np.where(present, ids[np.maximum(slots[:, s], 0)].astype(str), ""), dtype=object)
+        sep = pd.Series(np.where(present & (out != ""), " ", ""), dtype=object)
+        out = out + sep + txt
+    return out.to_numpy(dtype=object)
+
+
+def _centre_content(tree, ids, centres, radius):
+    """'column' / 'group' / 'empty' and the centre ids, from columns within 0.25 r of each centre."""
+    k = len(centres)
+    content = np.full(k, "empty", dtype=object)
+    cids = np.full(k, "", dtype=object)
+    if k == 0:
+        return content, cids
+    sdm = cKDTree(centres).sparse_distance_matrix(tree, float(np.nanmax(0.25 * radius)), output_type="ndarray")
+    i, j, v = sdm["i"], sdm["j"], sdm["v"]
+    keep = v <= 0.25 * radius[i]
+    i, j = i[keep], j[keep]
+    cnt = np.bincount(i, minlength=k)
+    content[cnt == 1] = "column"
+    content[cnt >= 2] = "group"
+    if len(i):
+        jj, _ = _padded(i.astype(np.int64), j.astype(np.int64), v[keep], k)
+        cids = _join_ids(ids, jj)
+    return content, cids
+
+
+def _overlaps(slots: np.ndarray, n_cols: int) -> np.ndarray:
+    """Number of other motifs sharing at least one member, from a sparse motif x column incidence matrix."""
+    from scipy.sparse import csr_matrix
+
+    k = len(slots)
+    if k == 0:
+        return np.zeros(0, dtype=np.int64)
+    rows = np.repeat(np.arange(k), slots.shape[1])
+    cols = slots.ravel()
+    ok = cols >= 0
+    inc = csr_matrix((np.ones(ok.sum()), (rows[ok], cols[ok])), shape=(k, n_cols))
+    share = (inc @ inc.T).tocsr()
+    share.setdiag(0)
+    share.eliminate_zeros()
+    return np.diff(share.indptr).astype(np.int64)
+
+
+def _inner_pentagons(rings: dict, species: np.ndarray, xy: np.ndarray) -> tuple[dict, np.ndarray]:
+    """Alternate-slot same-species pentagons inside complete ten-membered rings; returns (search dict, parent)."""
+    slots = rings["slots"]
+    if slots.shape[1] != 10 or len(slots) == 0:
+        return _empty_search(5), np.zeros(0, dtype=np.int64)
+    sub = np.concatenate([slots[:, 0::2], slots[:, 1::2]])
+    parent = np.concatenate([np.arange(len(slots))] * 2)
+    full = (sub >= 0).all(axis=1)
+    sp = species[np.maximum(sub, 0)]
+    same = (sp == sp[:, :1]).all(axis=1) | (sp < 0).all(axis=1)
+    ok = full & same
+    sub, parent = sub[ok], parent[ok]
+    res = _describe_fixed(sub, xy, 5)
+    return res, parent
+
+
+def _describe_fixed(slots: np.ndarray, xy: np.ndarray, n: int) -> dict:
+    """Circle fit, psi_n and slot ordering for given member sets (rows of column indices, -1 = missing)."""
+    if len(slots) == 0:
+        return _empty_search(n)
+    valid = slots >= 0
+    px = np.where(valid, xy[np.maximum(slots, 0), 0], 0.0)
+    py = np.where(valid, xy[np.maximum(slots, 0), 1], 0.0)
+    cx, cy, _ = _fit_circles(px, py, valid)
+    dist = np.where(valid, np.hypot(px - cx[:, None], py - cy[:, None]), np.nan)
+    radius = np.nanmean(dist, axis=1)
+    rms = np.sqrt(np.nanmean((dist - radius[:, None]) ** 2, axis=1))
+    theta = np.where(valid, np.arctan2(py - cy[:, None], px - cx[:, None]), 0.0)
+    psi, phi, slot, distinct = _slots(theta, valid, n)
+    out = np.full((len(slots), n), -1, dtype=np.int64)
+    rows = np.repeat(np.arange(len(slots)), slots.shape[1])
+    s = slot.ravel()
+    mem = slots.ravel()
+    ok = (mem >= 0) & (s < n) & np.repeat(distinct, slots.shape[1])
+    out[rows[ok], s[ok]] = mem[ok]
+    return {"cx": cx, "cy": cy, "slots": out, "psi": psi, "phi": phi, "radius": radius, "rms": rms}
+
+
+def _pentagon_ok(df: pd.DataFrame, xy: np.ndarray, slots: np.ndarray, tol: float) -> np.ndarray:
+    """Near-regular pentagon test: edges equal within ``tol`` (relative std) and diagonal / edge within tol of tau."""
+    valid = (slots >= 0).all(axis=1)
+    px = xy[np.maximum(slots, 0), 0]
+    py = xy[np.maximum(slots, 0), 1]
+    nxt = np.roll(np.arange(5), -1)
+    e = np.hypot(px[:, nxt] - px, py[:, nxt] - py)
+    rel = e.std(axis=1) / np.maximum(e.mean(axis=1), 1e-12)
+    ratio = df["diag_edge_ratio"].to_numpy()
+    return valid & (rel <= tol) & (np.abs(ratio / TAU - 1.0) <= tol)
+
+
+# --------------------------------------------------------------------------------------------- public
+def find_motifs(
+    columns: pd.DataFrame,
+    *,
+    order: int = 10,
+    radius_px: float | None = None,
+    radius_tolerance: float = 0.12,
+    min_members: int | None = None,
+    pentagons: bool = True,
+    pixel_size_nm: float | None = None,
+    regions=None,
+    psi_min: float = 0.8,
+    rng: np.random.Generator | int | None = 0,
+    progress: ProgressCallback | None = None,
+) -> tuple[pd.DataFrame, dict]:
+    """Find ring motifs of order n and near-regular pentagons in a columns table.
+
+    Parameters
+    ----------
+    columns : DataFrame
+        Columns table (``_schema.COLUMNS``); needs ``id``, ``x_px``, ``y_px``; ``species`` and ``region`` are used
+        when present. Rows with non-finite positions are ignored (and counted in the info).
+    order : int
+        Ring order n: 5, 6, 8, 10 (default) or 12.
+    radius_px : float, optional
+        Ring radius r in px. Default: automatic ring-shell scan (see Notes); the info says which.
+    radius_tolerance : float
+        Relative half width of the shell r (1 +- tolerance) in which members are looked for (0 < tol < 0.5).
+    min_members : int, optional
+        Fewest members for a ring, default n - 2; rings with fewer than n members are kept with
+        ``complete=False`` (vacancies).
+    pentagons : bool
+        Also report pentagon motifs (inside rings and free-standing).
+    pixel_size_nm : float, optional
+        Pixel size for the ``*_nm`` columns; None leaves them NaN (uncalibrated).
+    regions : optional
+        Region shapes for ``tenfold.analysis.region.label_points``; default: the region of the member column
+        nearest the centre.
+    psi_min : float
+        Smallest accepted |psi_n| of a ring (1 = ideal n-gon).
+    rng : Generator or int
+        Seeds the sample of candidate centres used by the radius scan.
+    progress : callable, optional
+        ``progress(fraction, message)``; returning False stops the run (``Cancelled``).
+
+    Returns
+    -------
+    motifs : DataFrame
+        ``_schema.MOTIFS`` columns: motif_id, kind ('ring<n>' or 'pentagon'), order, centre_x/y_px/nm,
+        radius_px/nm, radial_rms_px/nm, psi_n, orientation_deg, edge_px/nm, diag_edge_ratio, n_members, members,
+        centre_content, centre_ids, species_makeup, completeness, complete, score, overlaps, parent_ring, region.
+    info : dict
+        JSON-safe summary: 'n_columns', counts per kind, 'complete'/'incomplete', 'radius_px', 'radius_source',
+        'radius_scan', 'mean_psi_n', 'orientation_domains', 'message' (when nothing was found), 'warnings'.
+
+    Notes
+    -----
+    Orientation: ``arg(psi_n) / n`` with ``theta = atan2(dy, dx)`` in the image frame (y down), in
+    [0, 360/n) degrees. Rings sharing columns are all reported; ``overlaps`` counts the others.
+
+    References
+    ----------
+    D. R. Nelson and B. I. Halperin, Phys. Rev. B 19 (1979) 2457 (psi_n). I. Kasa, IEEE Trans. Instrum. Meas. 25
+    (1976) 8 (circle fit).
+
+    Examples
+    --------
+    >>> import pandas as pd, numpy as np
+    >>> a = np.deg2rad(np.arange(10) * 36.0)
+    >>> cols = pd.DataFrame({"id": np.arange(10), "x_px": 50 + 10 * np.cos(a), "y_px": 50 + 10 * np.sin(a)})
+    >>> m, info = find_motifs(cols, radius_px=10.0, pentagons=False)
+    >>> int(m["n_members"].iloc[0])
+    10
+    """
+    if not isinstance(columns, pd.DataFrame):
+        raise TenfoldInputError(f"find_motifs: columns must be a pandas DataFrame, got {type(columns).__name__}")
+    missing = [c for c in ("id", "x_px", "y_px") if c not in columns.columns]
+    if missing:
+        raise TenfoldInputError(f"find_motifs: columns table lacks {missing}; pass the columns table from refine/species")
+    if order not in _ORDERS:
+        raise TenfoldInputError(f"find_motifs: order={order!r} is not supported; use one of {_ORDERS}")
+    if radius_px is not None and not (np.isfinite(radius_px) and radius_px > 0):
+        raise TenfoldInputError(f"find_motifs: radius_px={radius_px!r} must be a positive number of pixels (or None for automatic)")
+    if not (0 < radius_tolerance < 0.5):
+        raise TenfoldInputError(f"find_motifs: radius_tolerance={radius_tolerance!r} must lie in (0, 0.5)")
+    if min_members is None:
+        min_members = order - 2
+    if not (3 <= int(min_members) <= order):
+        raise TenfoldInputError(f"find_motifs: min_members={min_members!r} must lie between 3 and order={order}")
+    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
+        raise TenfoldInputError(f"find_motifs: pixel_size_nm={pixel_size_nm!r} must be positive or None")
+    min_members = int(min_members)
+    gen = np.random.default_rng(rng)
+    info: dict = {"order": int(order), "kind": f"ring{order}", "radius_tolerance": float(radius_tolerance),
+                  "min_members": min_members, "calibrated": pixel_size_nm is not None, "warnings": []}
+
+    xy_all = columns[["x_px", "y_px"]].to_numpy(dtype=float)
+    fin = np.isfinite(xy_all).all(axis=1)
+    if (~fin).any():
+        info["warnings"].append(f"{int((~fin).sum())} columns with non-finite positions ignored")
+    xy = xy_all[fin]
+    ids = columns["id"].to_numpy()[fin].astype(np.int64)
+    species = (columns["species"].to_numpy()[fin].astype(np.int64) if "species" in columns
+               else np.full(len(xy), -1, dtype=np.int64))
+    region = (columns["region"].to_numpy()[fin].astype(np.int64) if "region" in columns
+              else np.zeros(len(xy), dtype=np.int64))
+    info["n_columns"] = int(len(xy))
+    _set_counts(info, None, order)
+
+    def _nothing(msg: str):
+        info["message"] = msg
+        info["radius_px"] = float(radius_px) if radius_px is not None else None
+        info["radius_nm"] = float(radius_px * pixel_size_nm) if (radius_px and pixel_size_nm) else None
+        info.setdefault("radius_source", "given" if radius_px is not None else "automatic (failed)")
+        return empty_table(MOTIFS), info
+
+    if len(xy) < min_members + 1:
+        return _nothing(f"too few columns ({len(xy)}) for ring motifs of order {order} "
+                        f"(need at least {min_members + 1}); no motifs reported")
+    report(progress, 0.0, "motifs: KD-tree and candidate centres")
+    tree = cKDTree(xy)
+    d_nn_all, _ = tree.query(xy, k=2)
+    d_nn = float(np.median(d_nn_all[:, 1]))
+    if not d_nn > 0:
+        return _nothing("columns coincide (median nearest-neighbour distance 0 px); no motifs reported")
+    scan_sel = gen.choice(len(xy), min(len(xy), _SCAN_SAMPLE // 2), replace=False)
+    cc, cr = _triangle_centres(xy, tree, scan_sel)
+
+    report(progress, 0.1, "motifs: ring radius")
+    if radius_px is None:
+        scan_c = np.concatenate([xy, cc[(cr > 0.5 * d_nn) & (cr < 7 * d_nn)]])
+        r, scan = _scan_radius(xy, tree, scan_c, order=order, tol=radius_tolerance, min_members=min_members,
+                               psi_min=psi_min, d_nn=d_nn, rng=gen)
+        info["radius_scan"] = scan
+        if r is None:
+            return _nothing(f"ring-shell scan found no radius with regular {order}-membered shells "
+                            f"(best trial held {scan.get('best_count', 0)}); no motifs reported")
+        info["radius_source"] = (f"automatic: ring-shell scan of {scan['trial_radii']} radii "
+                                 f"{scan['scan_range_px'][0]:.3g}-{scan['scan_range_px'][1]:.3g} px on "
+                                 f"{scan['sample_centres']} sample centres; most regular {order}-fold shells at "
+                                 f"{scan['best_trial_px']:.4g} px, median member distance {r:.4g} px")
+    else:
+        r = float(radius_px)
+        info["radius_source"] = "given"
+    info["radius_px"] = float(r)
+    info["radius_nm"] = float(r * pixel_size_nm) if pixel_size_nm else None
+
+    report(progress, 0.3, "motifs: ring search")
+    tol = radius_tolerance
+    edge = 2 * r * np.sin(np.pi / order)
+    cand = np.concatenate([xy, _ring_candidates(xy, tree, r, tol, order)])
+    rings = ring_search(xy, tree, cand, order=order, radius_px=r, radius_tolerance=tol,
+                        min_members=min_members, psi_min=psi_min)
+    kind = f"ring{order}"
+    tables = []
+    ring_df = _rows(xy, ids, species, region, rings, n=order, kind=kind, pixel_size_nm=pixel_size_nm)
+    ring_df["score"] = _score(rings["psi"], ring_df["completeness"].to_numpy(), rings["rms"], tol * r)
+    ring_df["overlaps"] = _overlaps(rings["slots"], len(xy))
+    tables.append(ring_df)
+
+    report(progress, 0.7, "motifs: pentagons")
+    if pentagons:
+        pent_tables = []
+        if order == 10 and len(ring_df):
+            ip, parent = _inner_pentagons(rings, species, xy)
+            pdf = _rows(xy, ids, species, region, ip, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
+            ok = _pentagon_ok(pdf, xy, ip["slots"], tol)
+            pdf["parent_ring"] = parent  # ring row index for now; turned into a motif_id below
+            pdf = pdf[ok]
+            ip_slots = ip["slots"][ok]
+            pdf["score"] = _score(pdf["psi_n"].to_numpy(), 1.0, pdf["radial_rms_px"].to_numpy(),
+                                  tol * np.maximum(pdf["radius_px"].to_numpy(), 1e-9))
+            pent_tables.append((pdf, ip_slots))
+        free_df, free_slots, free_info = _free_pentagons(xy, tree, cc, cr, ids, species, region, d_nn, tol,
+                                                         pixel_size_nm, gen)
+        info["free_pentagons"] = free_info
+        if len(free_df):
+            known = set()
+            for pdf, sl in pent_tables:
+                known |= {tuple(sorted(s)) for s in sl.tolist()}
+            # Per-pentagon set lookup over at most a few thousand pentagons, to avoid double reporting.
+            fresh = np.array([tuple(sorted(s)) not in known for s in free_slots.tolist()], dtype=bool)
+            pent_tables.append((free_df[fresh], free_slots[fresh]))
+        if pent_tables:
+            pdf = pd.concat([p for p, _ in pent_tables], ignore_index=True)
+            psl = np.concatenate([s for _, s in pent_tables]) if len(pdf) else np.zeros((0, 5), dtype=np.int64)
+            pdf["overlaps"] = _overlaps(psl, len(xy))
+            tables.append(pdf)
+
+    out = pd.concat([t for t in tables if len(t)], ignore_index=True) if any(len(t) for t in tables) else None
+    if out is None:
+        return _nothing(f"no {kind} motifs at radius {r:.4g} px (tolerance {tol:.2f}); "
+                        f"no motifs reported")
+    out["motif_id"] = np.arange(len(out), dtype=np.int64)
+    is_p = (out["kind"] == "pentagon").to_numpy() & (out["parent_ring"].to_numpy() >= 0)
+    out.loc[is_p, "parent_ring"] = out["motif_id"].to_numpy()[:len(ring_df)][out.loc[is_p, "parent_ring"].to_numpy()]
+    centres = out[["centre_x_px", "centre_y_px"]].to_numpy()
+    content, cids = _centre_content(tree, ids, centres, out["radius_px"].to_numpy())
+    out["centre_content"] = content
+    out["centre_ids"] = cids
+    if regions is not None:
+        try:
+            from .region import label_points
+        except ImportError:
+            info["warnings"].append("region.label_points not available: region taken from the member column "
+                                    "nearest the centre")
+        else:
+            out["region"] = np.asarray(label_points(centres[:, 0], centres[:, 1], regions), dtype=np.int64)
+    out = conform(out, MOTIFS)
+    _set_counts(info, out, order)
+    if info["counts"].get(kind, 0) == 0:
+        info["message"] = f"no {kind} motifs at radius {r:.4g} px (tolerance {tol:.2f})"
+    from .tiling import orientation_domains
+
+    rr = out[out["kind"] == kind]
+    info["orientation_domains"] = orientation_domains(rr["orientation_deg"].to_numpy(), period_deg=360.0 / order)
+    report(progress, 1.0, "motifs: done")
+    return out, info
+
+
+def _free_pentagons(xy, tree, cc, cr, ids, species, region, d_nn, tol, pixel_size_nm, gen):
+    """Five columns alone on a circle (exact shell), found with the ring engine at n = 5 and its own scan."""
+    scan_c = np.concatenate([xy, cc[(cr > 0.5 * d_nn) & (cr < 7 * d_nn)]])
+    r5, scan = _scan_radius(xy, tree, scan_c, order=5, tol=tol, min_members=5, psi_min=0.9, d_nn=d_nn, rng=gen,
+                            exact=True)
+    empty = empty_table(MOTIFS), np.zeros((0, 5), dtype=np.int64)
+    if r5 is None:
+        return (*empty, {"radius_px": None, "scan": scan, "count": 0})
+    cand = np.concatenate([xy, _ring_candidates(xy, tree, r5, tol, 5)])
+    res = ring_search(xy, tree, cand, order=5, radius_px=r5, radius_tolerance=tol, min_members=5, psi_min=0.9,
+                      exact=True)
+    df = _rows(xy, ids, species, region, res, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
+    ok = _pentagon_ok(df, xy, res["slots"], tol) if len(df) else np.zeros(0, bool)
+    df = df[ok]
+    df["score"] = _score(df["psi_n"].to_numpy(), 1.0, df["radial_rms_px"].to_numpy(), tol * r5)
+    return df, res["slots"][ok], {"radius_px": float(r5), "scan": scan, "count": int(ok.sum())}
+
+
+def _set_counts(info: dict, df: pd.DataFrame | None, order: int) -> None:
+    kind = f"ring{order}"
+    if df is None or len(df) == 0:
+        info["counts"] = {kind: 0, "pentagon": 0}
+        info["complete"] = 0
+        info["incomplete"] = 0
+        info["mean_psi_n"] = None
+        info["orientation_domains"] = []
+        return
+    rings = df[df["kind"] == kind]
+    info["counts"] = {kind: int(len(rings)), "pentagon": int((df["kind"] == "pentagon").sum()),
+                      "pentagon_in_ring": int(((df["kind"] == "pentagon") & (df["parent_ring"] >= 0)).sum())}
+    info["complete"] = int(rings["complete"].sum())
+    info["incomplete"] = int((~rings["complete"]).sum())
+    info["mean_psi_n"] = float(rings["psi_n"].mean()) if len(rings) else None
+    info["centre_content"] = {k: int(v) for k, v in rings["centre_content"].value_counts().items()}
