@@ -590,7 +590,8 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
     job("provenance.json", lambda: (_write_json(prov, tmp / "provenance.json"), [tmp / "provenance.json"])[1])
 
     def workbook() -> list[Path]:
-        sheets = {name[:31]: (df, _units(name, df)) for name, df in tables.items()}
+        sheets = {_safe_stem(name)[:31]: (df, _units(name, df)) for name, df in tables.items()
+                  if name not in _SHEET_EXTRA}
         regions = (result.summary or {}).get("regions")
         if isinstance(regions, list) and regions and all(isinstance(r, dict) for r in regions):
             rdf = pd.DataFrame([{k: (json.dumps(_json_safe(v)) if isinstance(v, (list, dict)) else v)
