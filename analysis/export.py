@@ -403,9 +403,9 @@ def species_histogram(result: AnalysisResult):
         return None
     from matplotlib.figure import Figure
 
-    edges = np.histogram_bin_edges(intensity[ok], bins="auto")
-    if len(edges) > 81:
-        edges = np.histogram_bin_edges(intensity[ok], bins=80)
+    # square-root rule for the bin count (common practice), bounded so sparse and huge tables both read well
+    n_bins = int(np.clip(np.sqrt(ok.sum()), 10, 100))
+    edges = np.histogram_bin_edges(intensity[ok], bins=n_bins)
     fig = Figure(figsize=(6.0, 4.0), layout="constrained")
     ax = fig.add_subplot()
     classes = sorted(set(species[ok].tolist()))
