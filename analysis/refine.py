@@ -467,7 +467,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     if patch_radius_px is None:
         rad = math.ceil(3.5 * s0)
         if n >= 2:
-            dnn = cKDTree(xy).query(xy, k=2)[0][:, 1]
+            fin = xy[np.all(np.isfinite(xy), axis=1)]
+            dnn = cKDTree(fin).query(fin, k=2)[0][:, 1] if fin.shape[0] >= 2 else np.zeros(0)
             dnn = dnn[np.isfinite(dnn)]
             if dnn.size:
                 rad = min(rad, max(int(round(0.6 * np.median(dnn))), math.ceil(1.5 * s0)))

@@ -143,7 +143,13 @@ def _analyse(r, a, a0, nvalid):
     if not prom > 5 * noise:
         info["reason"] = f"neighbour peak prominence {prom:.3g} below 5 x white-noise level {noise:.3g}"
         return None, info
-    spacing = _parabolic(ri, si, i_pk)
+    # annulus weight r: the distance histogram of a blurred neighbour ring peaks at its distance (Rice), while
+    # the plain radial mean is pulled inwards by about s^2 / d
+    rw = ri * si
+    j = i_pk
+    while 0 < j < rw.size - 1 and rw[j + 1] > rw[j]:
+        j += 1
+    spacing = _parabolic(ri, rw, j)
     # central width: Gaussian exp(-r^2 / (4 s^2)) above the first-minimum baseline, fitted on the upper part
     base = si[i_min]
     y = ai[: i_min + 1] - base
