@@ -221,9 +221,9 @@ def columns_layer_kwargs(columns: pd.DataFrame, frame: dict, *, colour_by: str =
 
 
 def _point_size(frame: dict) -> float:
-    # napari sizes points in data units of the points layer, i.e. pixels here; a few pixels, growing with the
-    # image so that points stay visible when the whole field is shown
-    return float(max(3.0, min(frame["shape"]) / 170.0))
+    """Marker size in px: 0.6 x the median nearest-neighbour column distance of the result (set by
+    :func:`result_layers`), else a few pixels."""
+    return float(frame.get("marker_px") or max(3.0, min(frame["shape"]) / 170.0))
 
 
 def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
@@ -294,8 +294,8 @@ def motifs_layer_kwargs(motifs: pd.DataFrame, columns: pd.DataFrame, frame: dict
 
         edge[incomplete] = to_rgba(PALETTE[4])
     face = edge.copy()
-    face[:, 3] = 0.12
-    width = 0.25 * _point_size(frame)
+    face[:, 3] = 0.08
+    width = 0.18 * _point_size(frame)
     return dict(
         data=polys,
         shape_type="polygon",
@@ -340,7 +340,8 @@ def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dic
         shape_type="line",
         features=network.reset_index(drop=True),
         edge_color=PALETTE[3],
-        edge_width=0.2 * _point_size(frame),
+        edge_width=0.12 * _point_size(frame),
+        opacity=0.8,
         name="network",
         **_frame_kwargs(frame),
     )
@@ -370,8 +371,14 @@ def result_layers(result, frame: dict, *, columns: bool = True, colour_by: str =
     """
     from napari.layers import Points, Shapes
 
+    from scipy.spatial import cKDTree
+
     cols = result.tables["columns"]
     motifs = result.tables["motifs"]
+    if len(cols) >= 2 and "marker_px" not in frame:
+        xy = cols[["x_px", "y_px"]].to_numpy(float)
+        d, _ = cKDTree(xy).query(xy, k=2)
+        frame = {**frame, "marker_px": max(2.0, 0.6 * float(np.median(d[:, 1])))}
     out = []
     if columns:
         out.append(Points(**columns_layer_kwargs(cols, frame, colour_by=colour_by)))

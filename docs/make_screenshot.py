@@ -1,0 +1,90 @@
+"""Screenshot of the Tenfold napari plugin on a bundled sample: docs/images/viewer.png.
+
+Run ``xvfb-run -a python docs/make_screenshot.py`` (or with a display). It opens the high-dose sample, marks a
+region, runs the analysis dock, opens the plots dock and saves a window screenshot.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+
+os.environ.setdefault("QT_API", "pyside6")
+
+OUT = Path(__file__).resolve().parent / "images" / "viewer.png"
+SAMPLE = "decagonal_haadf_high_dose"
+#: analysed region (row0, col0, row1, col1) in px, and the view shown (a zoom on part of it)
+REGION_PX = (256, 256, 768, 768)
+ZOOM = 3.0
+
+
+def _default_wait(widget) -> None:
+    import time
+
+    from qtpy.QtWidgets import QApplication
+
+    while widget.worker is not None:
+        QApplication.processEvents()
+        time.sleep(0.01)
+
+
+def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900)) -> Path:
+    """Analyse a region of the sample in a viewer and save a screenshot of the window.
+
+    Parameters
+    ----------
+    path : str or Path
+        PNG to write.
+    viewer : napari.Viewer, optional
+        Viewer to use (tests pass their own); a new one is made otherwise.
+    wait : callable(widget), optional
+        Blocks until ``widget.worker`` is None (tests pass a pytest-qt wait); default: a processEvents loop.
+    size : (int, int)
+        Window size in pixels.
+
+    Returns
+    -------
+    Path
+        The written file.
+    """
+    import napari
+
+    from tenfold.napari_plugin._plots import PlotsWidget
+    from tenfold.napari_plugin._sample_data import load_sample
+    from tenfold.napari_plugin._widget import PipelineWidget
+
+    viewer = viewer or napari.Viewer()
+    wait = wait or _default_wait
+    data, kwargs, _ = load_sample(SAMPLE)[0]
+    image = viewer.add_image(data, **kwargs)
+    r0, c0, r1, c1 = REGION_PX
+    px = image.scale[-1]
+    corners = np.array([[r0, c0], [r0, c1], [r1, c1], [r1, c0]], float) * px
+    viewer.add_shapes([corners], shape_type="rectangle", name="regions", edge_color="white",
+                      face_color="transparent", edge_width=0.08, units=("nm", "nm"))
+    widget = PipelineWidget(viewer)
+    plots = PlotsWidget(viewer)
+    viewer.window.add_dock_widget(widget, name="Tenfold analysis", area="right")
+    viewer.window.add_dock_widget(plots, name="Tenfold plots", area="right")
+    widget.regions_combo.setCurrentText("regions")
+    widget.run()
+    wait(widget)
+    viewer.layers["network"].visible = True
+    viewer.canvas.overlays.scale_bar.visible = True
+    viewer.canvas.overlays.scale_bar.font_size = 14
+    viewer.window._qt_window.resize(*size)
+    centre = np.array([(r0 + r1) / 2, (c0 + c1) / 2]) * px
+    viewer.reset_view()
+    viewer.scene.camera.zoom *= ZOOM
+    viewer.scene.camera.center = tuple(centre)
+    viewer.layers.selection.active = viewer.layers["columns"]
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    viewer.screenshot(str(path), canvas_only=False, flash=False)
+    return path
+
+
+if __name__ == "__main__":
+    print(make_screenshot())
