@@ -549,25 +549,35 @@ def fit_ladder(
 
 
 def _refine_narrow(pk: pd.DataFrame, d_sorted: np.ndarray, bin_px: float) -> pd.DataFrame:
-    """Peaks narrower than 1.5 bins: position and width from the raw pair distances within +-1.5 bins
-    (iterated windowed mean), since a histogram fit cannot resolve them."""
+    """Peaks narrower than 3 bins: position from the raw pair distances, since a histogram fit cannot resolve them.
+
+    Iterated windowed harmonic mean of the distances within +-max(1.5 bins, 1 width): the harmonic mean weights
+    each pair by 1/r, which undoes the 2 pi r growth of the pair count and so estimates the centre of the peak
+    in g(r). Width: the larger of the fitted width and the raw standard deviation in the window.
+    """
     pk = pk.copy()
-    narrow = (pk["width_px"].to_numpy() < 1.5 * bin_px)
-    mu = pk["distance_px"].to_numpy().copy()
-    wid = pk["width_px"].to_numpy().copy()
+    narrow = pk["width_px"].to_numpy() < 3.0 * bin_px
     if not narrow.any():
         return pk
+    mu = pk["distance_px"].to_numpy().copy()
+    wid = pk["width_px"].to_numpy().copy()
+    inv = 1.0 / np.maximum(d_sorted, 1e-12)
+    cs_inv = np.concatenate([[0.0], np.cumsum(inv)])
     cs = np.concatenate([[0.0], np.cumsum(d_sorted)])
     cs2 = np.concatenate([[0.0], np.cumsum(d_sorted ** 2)])
-    m = mu[narrow]
-    for _ in range(4):  # windowed mean, all narrow peaks at once
-        lo = np.searchsorted(d_sorted, m - 1.5 * bin_px)
-        hi = np.searchsorted(d_sorted, m + 1.5 * bin_px)
+    m0 = mu[narrow]
+    m = m0.copy()
+    h = np.maximum(1.5 * bin_px, wid[narrow])
+    for _ in range(5):  # windowed mean, all narrow peaks at once
+        lo = np.searchsorted(d_sorted, m - h)
+        hi = np.searchsorted(d_sorted, m + h)
         cnt = hi - lo
         ok = cnt >= 3
-        m = np.where(ok, (cs[hi] - cs[lo]) / np.maximum(cnt, 1), m)
-    var = (cs2[hi] - cs2[lo]) / np.maximum(cnt, 1) - m ** 2
-    mu[narrow] = m
+        m = np.where(ok, cnt / np.maximum(cs_inv[hi] - cs_inv[lo], 1e-300), m)
+    ok &= np.abs(m - m0) <= h
+    mean = (cs[hi] - cs[lo]) / np.maximum(cnt, 1)
+    var = (cs2[hi] - cs2[lo]) / np.maximum(cnt, 1) - mean ** 2
+    mu[narrow] = np.where(ok, m, m0)
     wid[narrow] = np.where(ok, np.sqrt(np.maximum(var, 0.0)), wid[narrow])
     pk["distance_px"] = mu
     pk["width_px"] = wid

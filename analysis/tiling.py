@@ -157,9 +157,10 @@ def faces(xy: np.ndarray, edges: np.ndarray) -> dict:
     area = 0.5 * np.bincount(face, weights=cross, minlength=n_f)
     turn = np.angle(np.exp(1j * (ang[nxt] - ang)))
     interior_angle = np.rad2deg(np.pi - turn)
-    # Interior faces share one orientation sign; the outer face of every component has the other.
-    sign = np.sign(np.median(area[sides >= 3])) if (sides >= 3).any() else 1.0
-    interior = (np.sign(area) == sign) & (sides >= 3)
+    # With next = the half-edge before the twin in ascending angle, every face lies to the left of its half-edges:
+    # bounded faces come out with positive shoelace area, the outer face of every component with negative area
+    # (in any frame, since angles and areas use the same coordinates).
+    interior = (area > 0) & (sides >= 3)
     return {"face": face, "next": nxt, "n_faces": int(n_f), "sides": sides, "area": area, "interior": interior,
             "angles_deg": interior_angle, "origin": org}
 
