@@ -408,6 +408,22 @@ def rerun_from_columns(
     start = int(max(old["id"].max() if len(old) else -1, ids.max() if len(ids) else -1)) + 1
     ids[fresh] = np.arange(start, start + fresh.sum())
     cols["id"] = ids
+    # Columns the user kept keep their fitted values (looked up by id); moved ones are marked 'moved'.
+    known = ~fresh & np.isin(ids, old["id"].to_numpy())
+    if known.any():
+        ref = old.set_index("id").loc[ids[known]]
+        for f in COLUMNS:
+            if f.name in ("id", "x_px", "y_px", "x_nm", "y_nm") or f.name not in ref:
+                continue
+            if f.name not in cols:
+                cols[f.name] = pd.Series([None] * len(cols), dtype=object if f.dtype == "object" else float)
+            cols.loc[known, f.name] = np.where(
+                cols.loc[known, f.name].isna().to_numpy(), ref[f.name].to_numpy(), cols.loc[known, f.name].to_numpy()
+            )
+        shift = np.hypot(cols.loc[known, "x_px"].to_numpy() - ref["x_px"].to_numpy(),
+                         cols.loc[known, "y_px"].to_numpy() - ref["y_px"].to_numpy())
+        moved = np.flatnonzero(known)[shift > 0.01]
+        cols.loc[moved, "fit_status"] = "moved"
     defaults = {"fit_status": "manual", "species": -1, "species_prob": np.nan, "region": 0}
     for f in COLUMNS:
         if f.name not in cols:
@@ -433,7 +449,8 @@ def rerun_from_columns(
     new.summary["columns"]["hand_edited"] = {
         "added": int(len(new_ids - old_ids)),
         "removed": int(len(old_ids - new_ids)),
-        "moved_or_kept": int(len(new_ids & old_ids)),
+        "moved": int((cols["fit_status"] == "moved").sum()),
+        "kept": int(len(new_ids & old_ids)),
     }
     new.tables["columns"] = cols
     new.tables["spots"] = result.tables.get("spots", empty_table(SPOTS))
