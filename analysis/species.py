@@ -32,7 +32,8 @@ def _logsumexp(a):
     return (m + np.log(np.exp(a - m).sum(axis=1, keepdims=True)))[:, 0]
 
 
-def _em(x, mean, var, weight, var_floor, n_iter=500, tol=1e-10):
+def _em(x, mean, var, weight, var_floor, n_iter=300, tol=1e-8):
+    # tol is relative to |log L|: 1e-8 of a log-likelihood of ~1e4-1e5 nats is far below any BIC gap that matters.
     ll_old = -np.inf
     n = x.size
     for _ in range(n_iter):
