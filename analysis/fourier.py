@@ -162,12 +162,7 @@ def find_spots(
     k = np.hypot(kx, ky)
     strength = np.exp(excess[py, px])
 
-    # Shells: sort by |k| and split where consecutive radii differ by more than 3 % (and one pixel).
-    srt = np.argsort(k)
-    gaps = np.diff(k[srt]) > np.maximum(0.03 * k[srt][1:], 1.0 / n)
-    shell_sorted = np.concatenate([[0], np.cumsum(gaps)])
-    shell = np.empty_like(shell_sorted)
-    shell[srt] = shell_sorted
+    shell = _split_shells(k, 1.0 / n)
 
     ps = pixel_size_nm
     df = pd.DataFrame(
@@ -186,17 +181,56 @@ def find_spots(
     return conform(df, SPOTS)
 
 
+def _split_shells(q: np.ndarray, min_gap: float) -> np.ndarray:
+    """Shell index per spot: sort radii and split where neighbours differ by more than 3 % and ``min_gap``."""
+    srt = np.argsort(q)
+    gaps = np.diff(q[srt]) > np.maximum(0.03 * q[srt][1:], min_gap)
+    shell = np.empty(len(q), dtype=np.int64)
+    shell[srt] = np.concatenate([[0], np.cumsum(gaps)])
+    return shell
+
+
 def _shell_order(angles_rad: np.ndarray, weights: np.ndarray) -> dict[int, float]:
     z = {m: float(np.abs(np.sum(weights * np.exp(1j * m * angles_rad))) / np.sum(weights)) for m in _ORDERS}
     return z
 
 
-def _ellipse(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> tuple[float, float] | None:
-    """Axis ratio (>= 1) and major-axis angle (deg) of ``k^T M k = 1`` fitted to spots (weighted least squares)."""
+def _describe_shells(shell_ids, ang, w, q, pixel_size_nm) -> tuple[list[dict], dict[int, float]]:
+    """Per-shell radius, |psi_m| and rotational order, and the strength-weighted votes for each order."""
+    shells, votes = [], {}
+    for s in np.unique(shell_ids):
+        sel = shell_ids == s
+        psi = _shell_order(ang[sel], w[sel])
+        order = next((m for m in _ORDERS if psi[m] > 0.7), 0) if sel.sum() >= 4 else 0
+        kk = float(np.average(q[sel], weights=w[sel]))
+        shells.append(
+            {
+                "shell": int(s),
+                "k_per_px": kk,
+                "d_px": 1.0 / kk,
+                "d_nm": (pixel_size_nm / kk) if pixel_size_nm else None,
+                "n_spots": int(sel.sum()),
+                "strength": float(w[sel].sum()),
+                "psi": {str(m): psi[m] for m in _ORDERS},
+                "order": int(order),
+            }
+        )
+        if order:
+            votes[order] = votes.get(order, 0.0) + float(w[sel].sum())
+    return shells, votes
+
+
+def _ellipse_matrix(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """``M`` of ``k^T M k = 1`` fitted to spots by weighted least squares."""
     sw = np.sqrt(weight)
     a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1) * sw[:, None]
     sol, *_ = np.linalg.lstsq(a, sw, rcond=None)
-    m = np.array([[sol[0], sol[1]], [sol[1], sol[2]]])
+    return np.array([[sol[0], sol[1]], [sol[1], sol[2]]])
+
+
+def _ellipse(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> tuple[float, float] | None:
+    """Axis ratio (>= 1) and major-axis angle (deg) of ``k^T M k = 1`` fitted to spots (weighted least squares)."""
+    m = _ellipse_matrix(kx, ky, weight)
     w, v = np.linalg.eigh(m)
     if w[0] <= 0:
         return None
@@ -242,41 +276,38 @@ def analyze_fourier(
     ang = np.radians(spots["angle_deg"].to_numpy())
     w = spots["strength"].to_numpy()
     k = np.hypot(spots["kx_per_px"].to_numpy(), spots["ky_per_px"].to_numpy())
-    shell_ids = spots["shell"].to_numpy()
-    votes: dict[int, float] = {}
-    for s in np.unique(shell_ids):
-        sel = shell_ids == s
-        psi = _shell_order(ang[sel], w[sel])
-        order = next((m for m in _ORDERS if psi[m] > 0.7), 0) if sel.sum() >= 4 else 0
-        kk = float(np.average(k[sel], weights=w[sel]))
-        info["shells"].append(
-            {
-                "shell": int(s),
-                "k_per_px": kk,
-                "d_px": 1.0 / kk,
-                "d_nm": (pixel_size_nm / kk) if pixel_size_nm else None,
-                "n_spots": int(sel.sum()),
-                "strength": float(w[sel].sum()),
-                "psi": {str(m): psi[m] for m in _ORDERS},
-                "order": int(order),
-            }
-        )
-        if order:
-            votes[order] = votes.get(order, 0.0) + float(w[sel].sum())
-    if votes:
-        info["rotational_order"] = int(max(votes, key=votes.get))
-    # One ellipse for all shells of the dominant order, each shell scaled to unit mean radius: a single shell of
-    # a square lattice has only two spot directions, too few for the three parameters of M.
-    used = [sh for sh in info["shells"] if sh["order"] == info["rotational_order"] and sh["order"] > 0]
+    kx_all = spots["kx_per_px"].to_numpy()
+    ky_all = spots["ky_per_px"].to_numpy()
+    min_gap = 1.0 / (min(np.shape(image)) // 2 * 2)  # one frequency step of the square spectrum
+    # A distortion turns shells into ellipses and smears them in |k|, so shells are re-split in the metric the
+    # current ellipse fit corrects (q^2 = k^T M k with det M = 1), and the fit repeated until it settles.
+    metric = np.eye(2)
     fit = None
-    if used:
-        sel = np.isin(shell_ids, [sh["shell"] for sh in used])
-        norm = np.array([next(sh["k_per_px"] for sh in used if sh["shell"] == s) for s in shell_ids[sel]])
-        kx = spots["kx_per_px"].to_numpy()[sel] / norm
-        ky = spots["ky_per_px"].to_numpy()[sel] / norm
-        directions = np.unique(np.round(np.degrees(np.arctan2(ky, kx)) % 180.0))
-        if len(directions) >= 3:
-            fit = _ellipse(kx, ky, w[sel])
+    for _ in range(4):
+        q = np.sqrt(np.einsum("ni,ij,nj->n", np.stack([kx_all, ky_all], 1), metric, np.stack([kx_all, ky_all], 1)))
+        shell_ids = _split_shells(q, min_gap)
+        shells, votes = _describe_shells(shell_ids, ang, w, q, pixel_size_nm)
+        order = int(max(votes, key=votes.get)) if votes else 0
+        used = [sh for sh in shells if sh["order"] == order and sh["order"] > 0]
+        new_fit = None
+        if used:
+            sel = np.isin(shell_ids, [sh["shell"] for sh in used])
+            radius = {sh["shell"]: sh["k_per_px"] for sh in used}
+            norm = np.array([radius[v] for v in shell_ids[sel]])
+            kx, ky = kx_all[sel] / norm, ky_all[sel] / norm
+            if len(np.unique(np.round(np.degrees(np.arctan2(ky, kx)) % 180.0))) >= 3:
+                new_fit = _ellipse(kx, ky, w[sel])
+        if new_fit is None:
+            break
+        fit = new_fit
+        m = _ellipse_matrix(kx, ky, w[sel])
+        metric_new = m / np.sqrt(np.linalg.det(m))
+        if np.allclose(metric_new, metric, atol=1e-5):
+            break
+        metric = metric_new
+    spots["shell"] = shell_ids
+    info["shells"] = shells
+    info["rotational_order"] = order
     if fit is not None:
         ratio, angle = fit
         warn = ratio - 1.0 > distortion_warn

@@ -98,3 +98,22 @@ def test_bad_input():
         power_spectrum(np.zeros((8, 8)))
     with pytest.raises(TenfoldInputError, match="masked"):
         power_spectrum(np.ones((32, 32)), valid=np.zeros((32, 32), bool))
+
+
+def test_bundled_sheared_sample_against_its_recorded_shear():
+    import json
+    from pathlib import Path
+
+    from tenfold.analysis.io import read_micrograph
+
+    here = Path(__file__).resolve().parents[1] / "sample_images"
+    shear = json.loads((here / "decagonal_haadf_sheared_truth.json").read_text())["shear"]
+    sv = np.linalg.svd(np.array([[1.0, shear], [0.0, 1.0]]), compute_uv=False)
+    mg = read_micrograph(here / "decagonal_haadf_sheared.tif")
+    _, info = analyze_fourier(mg.data, valid=mg.valid, pixel_size_nm=mg.meta.pixel_size_nm)
+    assert info["rotational_order"] == 10
+    assert info["distortion"]["axis_ratio"] == pytest.approx(sv[0] / sv[1], abs=0.003)
+    assert info["distortion"]["warning"]
+    mg = read_micrograph(here / "decagonal_haadf_vacancies.tif")
+    _, info = analyze_fourier(mg.data, valid=mg.valid)
+    assert info["rotational_order"] == 10 and not info["distortion"]["warning"]
