@@ -57,8 +57,14 @@ def _known_ratios() -> list[tuple[float, str]]:
     out = []
     for c, name in base:
         for m in range(-2, 5):
-            out.append((c * TAU ** m, name if m == 0 else f"{name} tau^{m}"))
-    return sorted(out)
+            out.append((abs(m), c * TAU ** m, name if m == 0 else f"{name} tau^{m}"))
+    # 2 sin 36 tau = 2 sin 72 (and so on): one value, one label, the one with the smallest power of tau.
+    out.sort()
+    kept: list[tuple[float, str]] = []
+    for _, v, name in out:
+        if all(abs(v / k - 1) > 1e-9 for k, _ in kept):
+            kept.append((v, name))
+    return sorted(kept)
 
 
 KNOWN_RATIOS = _known_ratios()
@@ -695,10 +701,14 @@ def ladder_figure(result):
             ax.annotate(f"tau^{row.rung:g}\n{row.deviation_pct:+.2f}%", (ideal * s, top * 0.95), fontsize=6,
                         color="#1f5fa8", ha="center", va="top")
         off = pk[(pk["set"] == name) & (~pk["on_ladder"].astype(bool))]
+        rr, gg = c["r_px"].to_numpy(), np.nan_to_num(c["g"].to_numpy())
+        bw = float(rr[1] - rr[0]) if len(rr) > 1 else 1.0
         for row in off.itertuples():
-            ax.plot([row.distance_px * s], [row.height], "v", color="#e8962e", ms=4)
+            near = np.abs(rr - row.distance_px) <= 1.5 * bw
+            h = float(gg[near].max()) if near.any() else float(row.height)
+            ax.plot([row.distance_px * s], [h], "v", color="#e8962e", ms=4)
             if row.label != "unassigned":
-                ax.annotate(str(row.label), (row.distance_px * s, row.height), fontsize=6, color="#b35f00",
+                ax.annotate(str(row.label), (row.distance_px * s, h), fontsize=6, color="#b35f00",
                             xytext=(0, 4), textcoords="offset points", ha="center")
         ax.set_ylabel("g(r)")
         ax.set_title(f"pair distribution, {name}" + ("" if ps else " (uncalibrated)"), fontsize=9)

@@ -51,10 +51,13 @@ _SCAN_SAMPLE = 2000  # candidate centres used by the radius scan (independent of
 
 # --------------------------------------------------------------------------------------------- padded shells
 def _padded(i: np.ndarray, j: np.ndarray, d: np.ndarray, n_rows: int) -> tuple[np.ndarray, np.ndarray]:
-    """Group (row i, column j, distance d) triples into padded (n_rows x K) arrays; padding j = -1, d = inf."""
+    """Group (row i, column j, distance d) triples into padded (n_rows x K) arrays; padding j = -1, d = inf.
+
+    Within a row the order is that of the input; callers select by distance themselves.
+    """
     if len(i) == 0:
         return np.full((n_rows, 0), -1, dtype=np.int64), np.full((n_rows, 0), np.inf)
-    order = np.lexsort((d, i))
+    order = np.argsort(i, kind="stable")  # radix sort on integer keys: O(n)
     i, j, d = i[order], j[order], d[order]
     counts = np.bincount(i, minlength=n_rows)
     starts = np.concatenate([[0], np.cumsum(counts)[:-1]])

@@ -407,8 +407,28 @@ def _edge_orientation(ang_deg: np.ndarray) -> dict:
             "phase_deg": float(phase), "histogram_5deg": hist.astype(int).tolist()}
 
 
+def _face_polygons(xy: np.ndarray, fc: dict, kind: np.ndarray, max_sides: int = 12):
+    """Vertex polygons of the interior faces (vectorised over faces, one step per side) and their types."""
+    polys, types = [], []
+    first = np.full(fc["n_faces"], -1, dtype=np.int64)
+    hs = np.arange(len(fc["face"]))[::-1]
+    first[fc["face"][hs]] = hs
+    for s_ in np.unique(fc["sides"][fc["interior"]]):
+        if s_ > max_sides:
+            continue
+        fid = np.flatnonzero(fc["interior"] & (fc["sides"] == s_))
+        h = first[fid]
+        ring = np.empty((len(fid), s_), dtype=np.int64)
+        for k in range(s_):  # at most max_sides steps
+            ring[:, k] = fc["origin"][h]
+            h = fc["next"][h]
+        polys.extend(xy[ring])
+        types.extend(kind[fid])
+    return polys, types
+
+
 def tiling_figure(result):
-    """Cluster network over the ring centres, edges coloured by the tile type on their sides.
+    """Cluster network over the ring centres, faces filled by tile type, edges drawn on top.
 
     Parameters
     ----------
@@ -424,34 +444,34 @@ def tiling_figure(result):
     mot = result.tables.get("motifs")
     if net is None or mot is None or len(net) == 0:
         return None
-    from matplotlib.collections import LineCollection
+    from matplotlib.collections import LineCollection, PolyCollection
     from matplotlib.figure import Figure
-    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
 
     ps = getattr(getattr(result, "meta", None), "pixel_size_nm", None)
     s = ps if ps else 1.0
-    pos = mot.set_index("motif_id")[["centre_x_px", "centre_y_px"]]
-    a = pos.loc[net["motif_a"]].to_numpy() * s
-    b = pos.loc[net["motif_b"]].to_numpy() * s
-    tl = net["tile_left"] if "tile_left" in net else pd.Series(["other"] * len(net))
-    tr = net["tile_right"] if "tile_right" in net else pd.Series(["other"] * len(net))
-    tile = np.where(tl.isin(["other", "outer"]).to_numpy(), tr.to_numpy(), tl.to_numpy())
-    tile = np.where(pd.Series(tile).isin(["outer"]).to_numpy(), "other", tile)
+    used = np.unique(np.concatenate([net["motif_a"].to_numpy(), net["motif_b"].to_numpy()]))
+    pos = mot.set_index("motif_id").loc[used, ["centre_x_px", "centre_y_px"]].to_numpy() * s
+    lut = pd.Series(np.arange(len(used)), index=used)
+    e = np.stack([lut[net["motif_a"]].to_numpy(), lut[net["motif_b"]].to_numpy()], axis=1)
+    fc = faces(pos, e)
+    kind = _classify(fc)
+    polys, types = _face_polygons(pos, fc, kind)
     fig = Figure(figsize=(6.5, 6.0), dpi=120)
     ax = fig.add_subplot(1, 1, 1)
-    cols = [TILE_COLOURS.get(t, TILE_COLOURS["other"]) for t in tile]
-    ax.add_collection(LineCollection(np.stack([a, b], axis=1), colors=cols, linewidths=1.2))
-    ax.plot(pos.to_numpy()[:, 0] * s, pos.to_numpy()[:, 1] * s, ".", ms=2, color="#222222")
+    ax.add_collection(PolyCollection(polys, facecolors=[TILE_COLOURS.get(t, TILE_COLOURS["other"]) for t in types],
+                                     edgecolors="none", alpha=0.85))
+    ax.add_collection(LineCollection(pos[e], colors="#222222", linewidths=0.6))
     ax.set_aspect("equal")
+    ax.autoscale_view()
     ax.invert_yaxis()
     unit = "nm" if ps else "px"
     ax.set_xlabel(f"x ({unit})")
     ax.set_ylabel(f"y ({unit})")
-    present = [t for t in TILE_TYPES if (tile == t).any()]
-    ax.legend([Line2D([0], [0], color=TILE_COLOURS[t], lw=2) for t in present], [t.replace("_", " ") for t in present],
-              loc="upper right", fontsize=7, framealpha=0.8)
-    ax.set_title("cluster network" + ("" if ps else " (uncalibrated)"))
-    ax.autoscale_view()
+    present = [t for t in TILE_TYPES if t in set(types)]
+    ax.legend([Patch(facecolor=TILE_COLOURS[t]) for t in present], [t.replace("_", " ") for t in present],
+              loc="upper right", fontsize=7, framealpha=0.85)
+    ax.set_title("cluster network and tiles" + ("" if ps else " (uncalibrated)"))
     return fig
 
 
