@@ -5,9 +5,8 @@ regular n-gon. The centre is a point, not necessarily a column: decagonal cluste
 a small group of columns. The search is vectorised throughout:
 
 1. A KD-tree of the columns is built once. Candidate centres are every column plus the circumcentres of the
-   triangles (column, two neighbours at the ring-edge distance) whose circumradius is close to r: three
-   consecutive columns of one ring have their circumcentre at the ring centre, so empty-centred rings get a
-   candidate exactly where they need one.
+   corners (column, two neighbours at the ring-edge distance, at the n-gon's interior angle): the centre lies at
+   r along the corner's bisector, so empty-centred rings get a candidate where they need one.
 2. All candidates' shells ``r (1 +- radius_tolerance)`` are collected with one ``sparse_distance_matrix`` call
    into padded (candidates x shell) arrays; at most n members per shell are kept (those closest to r).
 3. The centre is refined by a least-squares circle fit of the members (algebraic fit, then Gauss-Newton on the
@@ -206,7 +205,9 @@ def ring_search(
     cand = np.asarray(candidates, dtype=float)
     shell_count = np.zeros(len(cand), dtype=np.int64)
     for it in range(2):  # collect, fit, re-collect about the refined centre, fit again
-        i, j, d = _shell_pairs(tree, cand, lo, hi)
+        # The first pass takes a 1.5x wider shell so that a candidate a little off the centre still sees the ring.
+        wide = 1.5 if it == 0 else 1.0
+        i, j, d = _shell_pairs(tree, cand, r * (1 - wide * tol), r * (1 + wide * tol))
         jj, dd = _padded(i, j, d, len(cand))
         jj, dd, shell_count = _keep_closest(jj, dd, r, n)
         valid = jj >= 0
@@ -308,21 +309,46 @@ def _triangle_centres(xy: np.ndarray, tree: cKDTree, sel: np.ndarray, *, k: int 
     return cc, np.hypot(ux, uy)[fine]
 
 
-def _ring_candidates(xy, tree, r, tol, n):
-    """Centres of empty-centred rings: circumcentres of a column and two neighbours at the ring edge distance."""
+def _ring_candidates(xy, tree, r, tol, n, k: int = 6):
+    """Centres of empty-centred rings, one per (column, two neighbours at the ring-edge distance) corner.
+
+    A ring member c with its two ring neighbours a and b sees the centre along the bisector of (a - c) and (b - c)
+    at distance r, and the corner angle is the n-gon's interior angle 180 - 360/n. Stepping r along the bisector
+    is far less sensitive to jitter than the circumcentre of the three points (which spans only 2/n of the circle).
+    """
+    if len(xy) < 3:
+        return np.zeros((0, 2))
     edge = 2 * r * np.sin(np.pi / n)
-    cc, cr = _triangle_centres(xy, tree, np.arange(len(xy)), edge_range=(edge * (1 - tol), edge * (1 + tol)))
-    pick = (cr >= r * (1 - tol)) & (cr <= r * (1 + tol))
-    return _merge_close(cc[pick], 0.2 * edge)
+    k = min(k, len(xy) - 1)
+    d, nb = tree.query(xy, k=k + 1)
+    d, nb = d[:, 1:], nb[:, 1:]
+    valid = np.isfinite(d) & (nb < len(xy)) & (d >= edge * (1 - tol)) & (d <= edge * (1 + tol))
+    ia, ib = np.triu_indices(k, 1)
+    ok = valid[:, ia] & valid[:, ib]
+    rows, pair = np.nonzero(ok)
+    c = xy[rows]
+    ua = xy[nb[rows, ia[pair]]] - c
+    ub = xy[nb[rows, ib[pair]]] - c
+    ua /= np.hypot(ua[:, 0], ua[:, 1])[:, None]
+    ub /= np.hypot(ub[:, 0], ub[:, 1])[:, None]
+    corner = np.degrees(np.arccos(np.clip((ua * ub).sum(axis=1), -1.0, 1.0)))
+    bis = ua + ub
+    norm = np.hypot(bis[:, 0], bis[:, 1])
+    good = (np.abs(corner - (180.0 - 360.0 / n)) <= 25.0) & (norm > 1e-9)
+    cand = c[good] + r * bis[good] / norm[good, None]
+    return _merge_close(cand, 0.2 * edge)
 
 
 def _merge_close(points: np.ndarray, cell: float) -> np.ndarray:
-    """Thin a candidate list: one point per grid cell of size ``cell`` (many triangles share one circumcentre)."""
+    """Thin a candidate list: the mean of the points in every grid cell of size ``cell`` (many triangles of one
+    ring share one circumcentre, up to jitter, and their mean is the better estimate)."""
     if len(points) == 0:
         return points
     key = np.floor(points / cell).astype(np.int64)
-    _, first = np.unique(key, axis=0, return_index=True)
-    return points[np.sort(first)]
+    _, inv = np.unique(key, axis=0, return_inverse=True)
+    inv = inv.ravel()
+    cnt = np.bincount(inv)
+    return np.stack([np.bincount(inv, weights=points[:, 0]) / cnt, np.bincount(inv, weights=points[:, 1]) / cnt], axis=1)
 
 
 def _scan_radius(xy, tree, cand, *, order, tol, min_members, psi_min, d_nn, rng, exact=False):
