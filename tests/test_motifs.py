@@ -325,3 +325,25 @@ def test_circle_fit_against_least_squares():
     ref = np.array(rows)
     assert np.allclose(cx, ref[:, 0], atol=1e-6) and np.allclose(cy, ref[:, 1], atol=1e-6)
     assert np.allclose(rr, ref[:, 2], atol=1e-6)
+
+
+# --------------------------------------------------------------------------------------------- regions, progress
+def test_regions_label_the_centres():
+    region = pytest.importorskip("tenfold.analysis.region")
+    cols, truth = decorated_pentagrid(6.0, rng=12)
+    x0 = float(np.median(truth["centres"][:, 0]))
+    left = region.parse_region(f"-100000,-100000,{x0},100000", unit="px", label=3)
+    motifs, _ = find_motifs(cols, regions=[left], pentagons=False)
+    is_left = motifs["centre_x_px"].to_numpy() < x0
+    assert (motifs["region"].to_numpy()[is_left] == 3).all() and (motifs["region"].to_numpy()[~is_left] == 0).all()
+
+
+def test_progress_and_cancel():
+    from tenfold.analysis._errors import Cancelled
+
+    cols, _ = decorated_pentagrid(4.0, rng=13)
+    seen = []
+    find_motifs(cols, progress=lambda f, msg: seen.append(f))
+    assert seen[0] == 0.0 and seen[-1] == 1.0 and seen == sorted(seen)
+    with pytest.raises(Cancelled):
+        find_motifs(cols, progress=lambda f, msg: f < 0.2)
