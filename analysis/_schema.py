@@ -106,6 +106,7 @@ LADDER = _fields(
     ("set", "object", "", "'columns' or 'centres': which point set the pair distances come from"),
     ("rung", "float64", "", "ladder exponent n in d0 * tau^n (half-integers on the half-step ladder)"),
     ("ideal_ratio", "float64", "", "tau^n"),
+    ("ideal_px", "float64", "px", "d0 * tau^n"),
     ("ideal_nm", "float64", "nm", "d0 * tau^n; NaN when uncalibrated"),
     ("measured_px", "float64", "px", "located peak position"),
     ("measured_nm", "float64", "nm", "located peak position; NaN when uncalibrated"),
@@ -126,6 +127,7 @@ PEAKS = _fields(
     ("label", "object", "", "e.g. 'tau^1', or a known decagonal distance such as '2 sin 36', or 'unassigned'"),
     ("height", "float64", "", "peak height of the normalised pair distribution"),
     ("width_px", "float64", "px", "peak standard deviation"),
+    ("peak_weight", "float64", "", "share of pair-distance weight in this peak"),
 )
 
 #: One row per tile type (file DIR/tiles.csv).
@@ -144,6 +146,8 @@ NETWORK = _fields(
     ("length_px", "float64", "px", "edge length"),
     ("length_nm", "float64", "nm", "edge length; NaN when uncalibrated"),
     ("angle_deg", "float64", "deg", "edge direction atan2(dy, dx), y down, in [0, 180)"),
+    ("tile_left", "object", "", "type of the face on one side of the edge ('' for the outer face)"),
+    ("tile_right", "object", "", "type of the face on the other side ('' for the outer face)"),
     ("region", "int64", "", "region label"),
 )
 
