@@ -486,6 +486,16 @@ def fit_ladder(
     else:
         d0 = float(d0_px)
         info["d0_source"] = "given"
+    # Pairs per peak window (+-2 widths), for weights and the bootstrap.
+    lo, hi = p - 2 * wpx, p + 2 * wpx
+    jn = np.clip(np.searchsorted(p, d), 0, len(p) - 1)
+    jp = np.clip(jn - 1, 0, len(p) - 1)
+    jbest = np.where(np.abs(d - p[jn]) < np.abs(d - p[jp]), jn, jp)
+    inwin = (d >= lo[jbest]) & (d <= hi[jbest])
+    weight = np.bincount(jbest[inwin], minlength=len(p)) / max(len(d), 1)
+    # d0 is fitted with each peak weighted by its position variance width^2 / pairs, so a narrow peak made of a
+    # few coincidental pairs cannot pull the whole ladder.
+    fit_w = np.maximum(weight * len(d), 1.0) / wpx**2
     step = 0.5 if half_step else 1.0
     rungs = np.arange(np.floor(np.log(p.min() / d0) / np.log(TAU)) - 1, np.ceil(np.log(r_max / d0) / np.log(TAU)) + 1,
                       step)
@@ -494,19 +504,18 @@ def fit_ladder(
         on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
         if not on.any():
             break
-        w = 1.0 / wpx[on] ** 2
-        q = TAU ** rung[on]
-        d0 = float((w * p[on] * q).sum() / (w * q * q).sum())
+        # The scale comes from the short rungs (|n| <= 2), where pairs are many and specific; longer rungs are then
+        # tested against it instead of pulling it (a coincidental long distance near tau^4 would otherwise shift
+        # every short rung by its own error).
+        use = on & (np.abs(np.nan_to_num(rung, nan=99.0)) <= 2)
+        if use.sum() < 2:
+            use = on
+        w = fit_w[use]
+        q = TAU ** rung[use]
+        d0 = float((w * p[use] * q).sum() / (w * q * q).sum())
     on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
     info["d0_px"] = float(d0)
     info["d0_nm"] = float(d0 * pixel_size_nm) if pixel_size_nm else None
-    # Pairs per peak window (+-2 widths), for weights and the bootstrap.
-    lo, hi = p - 2 * wpx, p + 2 * wpx
-    jn = np.clip(np.searchsorted(p, d), 0, len(p) - 1)
-    jp = np.clip(jn - 1, 0, len(p) - 1)
-    jbest = np.where(np.abs(d - p[jn]) < np.abs(d - p[jp]), jn, jp)
-    inwin = (d >= lo[jbest]) & (d <= hi[jbest])
-    weight = np.bincount(jbest[inwin], minlength=len(p)) / max(len(d), 1)
     rung_share = float(weight[on].sum())
     ladder_rows = pd.DataFrame()
     if on.any():
