@@ -36,27 +36,19 @@ from scipy.spatial import cKDTree
 from . import _schema
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._progress import report, sub_progress
-from .refine import refine_columns, warm_up
+from .refine import matched_significance, refine_columns, significance_with_neighbours, warm_up
 from .region import label_points
 from .scale import estimate_scale
 from .species import classify_species
 
-__all__ = ["find_columns", "polarity_skewness", "SNR_CUT_RANGE"]
+__all__ = ["find_columns", "polarity_skewness", "false_alarm_threshold", "pixel_noise_sd", "FALSE_ALARMS",
+           "PRESCREEN_Z"]
 
-#: Clamp of the automatic significance cut A / sigma_A (common practice: < 2 sigma noise, > 5 sigma real).
-SNR_CUT_RANGE = (2.0, 5.0)
-
-
-def _valley(x: np.ndarray, lo: float, hi: float, width: float = 0.04) -> float:
-    """Lowest point of the smoothed histogram of ``x`` between ``lo`` and ``hi`` (the noise/column valley)."""
-    edges = np.arange(min(x.min(), lo) - width, max(x.max(), hi) + 2 * width, width)
-    hist = ndimage.gaussian_filter1d(np.histogram(x, bins=edges)[0].astype(np.float64), 1.5)
-    centres = 0.5 * (edges[1:] + edges[:-1])
-    inside = np.flatnonzero((centres >= lo) & (centres <= hi))
-    if inside.size == 0:
-        return lo
-    best = inside[hist[inside] == hist[inside].min()]
-    return float(centres[best].mean())
+#: Expected number of noise maxima per image that pass the significance threshold (see false_alarm_threshold).
+FALSE_ALARMS = 0.05
+#: Pre-screen before refinement (free local background, neighbours not yet modelled, so a dim column next to a
+#: bright one scores well below its final significance): only candidates with no excess at all are dropped.
+PRESCREEN_Z = 1.0
 
 
 def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
@@ -72,20 +64,66 @@ def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
     return float(np.mean(v**3) / sd**3) if sd > 0 else 0.0
 
 
-def _locate(work, valid, diameter, separation, min_mass):
+def _locate(smooth, valid, diameter, separation, min_mass):
+    """trackpy.locate on the already Gaussian-filtered image (``preprocess=False``: no second band-pass)."""
     import trackpy as tp
 
-    lo, hi = float(work[valid].min()), float(work[valid].max())
-    scaled = np.where(valid, (work - lo) * (60000.0 / (hi - lo)), 0.0).astype(np.uint16)
+    lo, hi = float(smooth[valid].min()), float(smooth[valid].max())
+    if not hi > lo:
+        return np.zeros(0), np.zeros(0), np.zeros(0), 0
+    scaled = np.where(valid, (smooth - lo) * (60000.0 / (hi - lo)), 0.0).astype(np.uint16)
     with warnings.catch_warnings():
         # trackpy warns about tiny images (3 or 4 px), no survivors and max_iterations=1 (the intended
         # setting), and uses pandas' deprecated inplace keyword: none of it is actionable for the user
         warnings.simplefilter("ignore")
         f = tp.locate(scaled, diameter, separation=separation, percentile=0, characterize=False, engine="numba",
-                      max_iterations=1, minmass=0)
+                      max_iterations=1, minmass=0, preprocess=False)
     mass = f["mass"].to_numpy() * (hi - lo) / 60000.0 if len(f) else np.zeros(0)
     keep = mass > (min_mass or 0.0)
     return f["x"].to_numpy()[keep], f["y"].to_numpy()[keep], mass[keep], int(len(f))
+
+
+def false_alarm_threshold(area_px: float, sigma_px: float, expected_false: float = FALSE_ALARMS) -> float:
+    """Significance threshold (in standard deviations) for ``expected_false`` noise maxima over the image.
+
+    The matched-filter image of white noise (Gaussian kernel of width s) is a smooth random field with
+    correlation exp(-r^2 / 4 s^2), i.e. gradient variance 1 / (2 s^2) per axis for unit variance. By random-field
+    theory the expected number of its local maxima above a high level t over an area S (the Euler characteristic
+    density) is
+
+        E(t) = S / (2 s^2) * t exp(-t^2 / 2) / (2 pi)^(3/2),
+
+    and t solves E(t) = ``expected_false``. For 1024^2 px and s = 1.5 px that is about 5.0 sigma, for 4096^2 px
+    about 5.5 sigma: the threshold follows the image size, not a hand-tuned number.
+
+    References
+    ----------
+    Adler, The Geometry of Random Fields (1981), ch. 6; Worsley et al., Hum. Brain Mapp. 4 (1996) 58, eq. (2)
+    (2-D Euler characteristic density), from memory.
+    """
+    k = max(area_px, 1.0) / (2.0 * sigma_px**2) / (2.0 * math.pi) ** 1.5 / expected_false
+    t = 3.0
+    for _ in range(50):  # solve ln k + ln t - t^2 / 2 = 0 by Newton's method, from t = 3 (the large root)
+        f = math.log(k) + math.log(t) - 0.5 * t * t
+        t_new = t - f / (1.0 / t - t)
+        if abs(t_new - t) < 1e-9:
+            break
+        t = max(t_new, 1.5)
+    return float(max(t, 3.0))
+
+
+def pixel_noise_sd(image, valid) -> float:
+    """Robust per-pixel noise standard deviation: MAD of horizontal neighbour differences / sqrt(2).
+
+    Column structure a few px wide changes little between neighbouring pixels, white noise fully; the median
+    absolute deviation (x 1.4826 for a normal distribution) ignores the minority of steep pixels.
+    """
+    d = np.diff(image, axis=1)
+    both = valid[:, 1:] & valid[:, :-1]
+    v = d[both]
+    if v.size == 0:
+        return float("nan")
+    return float(1.4826 * np.median(np.abs(v - np.median(v))) / math.sqrt(2.0))
 
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
@@ -220,39 +258,58 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
                        "max_iterations": 1, "min_mass": min_mass, "engine": "numba"}
     report(progress, 0.1, "detecting columns (trackpy)")
     t0 = time.perf_counter()
-    xs, ys, mass, n_raw = _locate(detect, ok, diameter, separation, min_mass)
-    t_detect = time.perf_counter() - t0
+    # the one image-sized filter: the Gaussian matched filter (column width); trackpy finds its maxima
+    smooth = ndimage.gaussian_filter(detect.astype(np.float32), sigma)
+    xs, ys, mass, n_raw = _locate(smooth, ok, diameter, separation, min_mass)
+    del smooth
     counts_tab = {"trackpy_maxima": n_raw, "after_min_mass": int(xs.size)}
+    fit_counts = counts_like and not dark_columns
+    noise_sd = None if fit_counts else pixel_noise_sd(work, ok)
+    if not fit_counts and not (noise_sd and noise_sd > 0):
+        noise_sd = float(np.std(work[ok])) or 1.0
+    area = float(ok.sum())
+    z_cut = false_alarm_threshold(area, sigma)
+    rad = int(min(max(round(0.6 * spacing), math.ceil(2.5 * sigma)), math.ceil(3.0 * sigma)))
+    t_compile = warm_up()
+    amp0, amp0_err = matched_significance(work, np.c_[xs, ys], sigma_px=sigma, patch_radius_px=rad, valid=ok,
+                                          counts=fit_counts, noise_sd=noise_sd)
+    z0 = amp0 / amp0_err
+    pre = np.isfinite(z0) & (z0 >= PRESCREEN_Z)
+    xs, ys, mass = xs[pre], ys[pre], mass[pre]
+    counts_tab["after_prescreen"] = int(xs.size)
+    t_detect = time.perf_counter() - t0 - t_compile
+    auto["significance"] = {
+        "z_cut": z_cut, "prescreen_z": PRESCREEN_Z, "expected_false_maxima": FALSE_ALARMS,
+        "noise": "Poisson variance of the model (raw counts)" if fit_counts else
+                 f"per-pixel sd {noise_sd:.4g} (MAD of neighbour differences)",
+        "how": "matched filter (Gaussian of the column width + local background, neighbours subtracted) "
+               "A / sigma_A >= z_cut; z_cut from the random-field false-alarm rate for the image area"}
 
     report(progress, 0.3, f"refining {xs.size} candidates")
-    t_compile = warm_up()
     t0 = time.perf_counter()
-    rad = int(min(max(round(0.6 * spacing), math.ceil(2.5 * sigma)), math.ceil(3.0 * sigma)))
-    fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=counts_like and not dark_columns,
-                         patch_radius_px=rad, neighbour_passes=2, progress=sub_progress(progress, 0.3, 0.85))
+    fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
+                         neighbour_passes=1, noise_sd=noise_sd, progress=sub_progress(progress, 0.3, 0.85))
     auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
     t_refine = time.perf_counter() - t0
     fit["mass"] = mass
     status = fit["fit_status"].value_counts().to_dict()
     counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
     fit = fit[fit["fit_status"] == "ok"].copy()
-    fit["snr"] = fit["amplitude"] / fit["amplitude_err"]
-    fit = fit[np.isfinite(fit["snr"]) & (fit["snr"] > 0)]
-    if len(fit) >= 20:
-        # noise maxima fitted with a free width wander off the common column width
-        s_med = float(fit["sigma_px"].median())
-        fit = fit[(fit["sigma_px"] > 0.5 * s_med) & (fit["sigma_px"] < 2.0 * s_med)]
-        auto["width_window_px"] = [0.5 * s_med, 2.0 * s_med]
-    counts_tab["after_width_window"] = int(len(fit))
-    lo_cut, hi_cut = SNR_CUT_RANGE
-    if len(fit) >= 20:
-        ls = np.log10(fit["snr"].to_numpy())
-        cut = float(10 ** _valley(ls, math.log10(lo_cut), math.log10(hi_cut)))
-        how = f"valley of the smoothed log10(A/sigma_A) histogram (0.04-dex bins) within {list(SNR_CUT_RANGE)}"
+    # final significance: background held at the median fitted background of the 12 nearest fits (a smooth
+    # background is far better determined than a free one per patch), neighbours' models subtracted
+    if len(fit) > 1:
+        xy_f = fit[["x_px", "y_px"]].to_numpy()
+        _, nn = cKDTree(xy_f).query(xy_f, k=min(13, len(fit)))
+        b_ref = np.median(fit["background"].to_numpy()[nn], axis=1)
+        amp_f, amp_e = significance_with_neighbours(work, fit, sigma_px=sigma, patch_radius_px=rad, background=b_ref,
+                                                    valid=ok, counts=fit_counts, noise_sd=noise_sd)
+        fit["snr"] = amp_f / amp_e
     else:
-        cut, how = lo_cut, "too few fits for a histogram: lower end of the range"
-    auto["significance"] = {"snr_cut": cut, "how": how}
-    fit = fit[fit["snr"] >= cut]
+        fit["snr"] = fit["mf_amplitude"] / fit["mf_amplitude_err"]
+    # and the free-background matched filter (neighbours subtracted) must show an excess too (>= 2 sigma, common
+    # practice), which rejects background structure that a constant local background cannot describe
+    free_z = (fit["mf_amplitude"] / fit["mf_amplitude_err"]).to_numpy()
+    fit = fit[np.isfinite(fit["snr"]) & (fit["snr"] >= z_cut) & (free_z >= 2.0)]
     counts_tab["after_significance"] = int(len(fit))
     # duplicates: candidates that converged on the same column
     if len(fit) > 1:
@@ -298,7 +355,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt",
             "weighting": "Poisson 1/max(model,1)" if (counts_like and not dark_columns) else "unweighted",
             "image_is_counts": counts_like,
-            "neighbour_passes": 2,
+            "neighbour_passes": 1,
             "median_sigma_px": float(table.loc[ok_fit, "sigma_px"].median()) if ok_fit.any() else None,
             "median_pos_err_px": float(table.loc[ok_fit, "pos_err_px"].median()) if ok_fit.any() else None,
             "median_residual": float(table.loc[ok_fit, "residual"].median()) if ok_fit.any() else None,

@@ -31,7 +31,7 @@ from scipy.spatial import cKDTree
 from ._errors import TenfoldInputError
 from ._progress import report
 
-__all__ = ["refine_columns", "warm_up", "STATUS_CODES"]
+__all__ = ["refine_columns", "matched_significance", "warm_up", "STATUS_CODES"]
 
 #: fit_status strings by kernel code.
 STATUS_CODES = ("ok", "diverged", "edge", "masked")
@@ -39,7 +39,7 @@ _OK, _DIVERGED, _EDGE, _MASKED = 0, 1, 2, 3
 _SQRT2 = math.sqrt(2.0)
 _SQRT_PI_2 = math.sqrt(math.pi / 2.0)
 #: number of values the kernel writes per column.
-_NOUT = 15
+_NOUT = 17
 
 
 @njit(cache=True, inline="always")
@@ -170,10 +170,71 @@ def _solve5(a, rhs, out):
     return True
 
 
+@njit(cache=True)
+def _matched_amplitude(d, msk, off, nx, ny, u0, v0, x, y, s, counts, noise_var, gx, dgx, dsx, gy, dgy, dsy,
+                       b_fix=np.nan):
+    """Matched filter with a local background: amplitude A of a fixed Gaussian (x, y, s) plus constant B.
+
+    Weighted linear least squares for (A, B) on the patch with the neighbours' model ``off`` held fixed. With
+    ``noise_var > 0`` the pixels are weighted equally and var(A) = noise_var (J^T J)^-1_AA; otherwise the Poisson
+    variance of the model is used (two reweighting steps, w = 1 / max(m, 1)) and var(A) = (J^T W J)^-1_AA, the
+    inverse Fisher information. With a finite ``b_fix`` the background is held at that value (one parameter:
+    a free background on a patch a few sigma wide nearly doubles sigma_A). Returns (A, sigma_A); NaN when the
+    patch cannot support the fit.
+    """
+    _profile(u0, nx, x, s, gx, dgx, dsx)
+    _profile(v0, ny, y, s, gy, dgy, dsy)
+    a = 0.0
+    b = 0.0
+    var_a = np.nan
+    n_rounds = 1 if noise_var > 0 else 3
+    for rnd in range(n_rounds):
+        sgg = 0.0
+        sg = 0.0
+        s1 = 0.0
+        sgd = 0.0
+        sd = 0.0
+        for r in range(ny):
+            for c in range(nx):
+                kk = r * nx + c
+                if msk[kk]:
+                    gg = gx[c] * gy[r]
+                    w = 1.0
+                    if rnd > 0:
+                        m = b + a * gg + off[kk]
+                        w = 1.0 / (m if m > 1.0 else 1.0)
+                    dd = d[kk] - off[kk]
+                    sgg += w * gg * gg
+                    sg += w * gg
+                    s1 += w
+                    sgd += w * gg * dd
+                    sd += w * dd
+        if math.isfinite(b_fix):
+            if not sgg > 0:
+                return np.nan, np.nan
+            b = b_fix
+            a = (sgd - b * sg) / sgg
+            var_a = 1.0 / sgg
+            continue
+        det = sgg * s1 - sg * sg
+        if not det > 0:
+            return np.nan, np.nan
+        a = (s1 * sgd - sg * sd) / det
+        b = (sgg * sd - sg * sgd) / det
+        var_a = s1 / det
+    if noise_var > 0:
+        var_a *= noise_var
+    return a, math.sqrt(var_a)
+
+
 @njit(parallel=True, cache=True)
 def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             out):
-    """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``."""
+             start, s_ref, noise_var, b_fix, out):
+    """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``.
+
+    ``start[k]`` (x, y, s, A, B), when finite, is a warm start (a previous pass); ``n_iter = 0`` skips the fit and
+    only evaluates the matched-filter amplitude (width ``s_ref``) at ``(x0, y0)``.
+    """
     n = x0.shape[0]
     h, w = img.shape
     side = 2 * rad + 1
@@ -242,6 +303,13 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         tj = np.empty((5, 5))
         tr = np.empty(5)
         damp = np.empty((5, 5))
+        if n_iter == 0:
+            a_m, sa_m = _matched_amplitude(d, msk, off, nx, ny, u0, v0, xi, yi, s_ref, counts, noise_var, gx, dgx,
+                                           dsx, gy, dgy, dsy, b_fix[k])
+            out[k, 15] = a_m
+            out[k, 16] = sa_m
+            out[k, 8] = _OK
+            continue
         p[0] = xi
         p[1] = yi
         p[2] = s0
@@ -273,6 +341,9 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         if not p[3] > 0:
             p[3] = max(dmax - dmin, 1e-6)
             p[4] = dmin
+        if math.isfinite(start[k, 0]) and math.isfinite(start[k, 3]) and start[k, 3] > 0 and start[k, 2] > 0.05:
+            for i in range(5):
+                p[i] = start[k, i]
         obj, rss, npx = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
                                   True)
         lam = 1e-3
@@ -337,8 +408,16 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         out[k, 12] = xi
         out[k, 13] = yi
         out[k, 14] = math.sqrt(va * scale) if oka and va > 0 else np.nan
+        if math.isfinite(p[0]) and math.isfinite(p[1]):
+            a_m, sa_m = _matched_amplitude(d, msk, off, nx, ny, u0, v0, p[0], p[1], s_ref, counts, noise_var, gx,
+                                           dgx, dsx, gy, dgy, dsy)
+            out[k, 15] = a_m
+            out[k, 16] = sa_m
         status = _OK
         if not (math.isfinite(p[0]) and math.isfinite(p[1]) and math.isfinite(p[2]) and math.isfinite(p[3])):
+            status = _DIVERGED
+        elif not (p[3] > out[k, 14]):
+            # amplitude within one standard error of zero (e.g. a constant patch): no column was fitted
             status = _DIVERGED
         elif abs(p[0] - xi) > max_shift or abs(p[1] - yi) > max_shift:
             status = _DIVERGED
@@ -358,12 +437,100 @@ def warm_up() -> float:
     return time.perf_counter() - t0
 
 
-def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par):
-    out = np.empty((x0.shape[0], _NOUT))
+def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
+         s_ref=None, noise_var=0.0, b_fix=None):
+    n = x0.shape[0]
+    out = np.empty((n, _NOUT))
     touch2 = (2.0 * s0 + 0.5) ** 2
+    if start is None:
+        start = np.full((max(n, 1), 5), np.nan)
+    if b_fix is None:
+        b_fix = np.full(max(n, 1), np.nan)
     _fit_all(img, valid, x0, y0, float(s0), int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
-             float(s_hi), touch2, nb_ptr, nb_idx, nb_par, out)
+             float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64),
+             float(s0 if s_ref is None else s_ref), float(noise_var),
+             np.ascontiguousarray(b_fix, dtype=np.float64), out)
     return out
+
+
+def _prepare(image, valid):
+    img = np.asarray(image)
+    if img.ndim != 2:
+        raise TenfoldInputError(f"refine_columns: image must be 2-D, got shape {img.shape}; pass one frame")
+    if not np.issubdtype(img.dtype, np.floating):
+        img = img.astype(np.float64)
+    img = np.ascontiguousarray(img)
+    if valid is None:
+        vmask = np.ones(img.shape, dtype=bool)
+    else:
+        vmask = np.ascontiguousarray(np.asarray(valid, dtype=bool))
+        if vmask.shape != img.shape:
+            raise TenfoldInputError(f"refine_columns: valid mask shape {vmask.shape} differs from image {img.shape}")
+    return img, vmask
+
+
+def matched_significance(image, xy_px, *, sigma_px, patch_radius_px, valid=None, counts=True, noise_sd=None):
+    """Matched-filter amplitude of a Gaussian column of fixed width at fixed positions, with a local background.
+
+    Parameters
+    ----------
+    image : (H, W) array
+        Bright columns on a darker background. Not modified.
+    xy_px : (N, 2) array
+        Positions (x, y), px.
+    sigma_px : float
+        Column width (Gaussian standard deviation), px.
+    patch_radius_px : int
+        Half-size of the square patch (side 2 r + 1) on which A and B are fitted.
+    valid : (H, W) bool array, optional
+        False for masked pixels (left out).
+    counts : bool
+        Poisson variance of the model (raw counts); otherwise ``noise_sd`` is needed.
+    noise_sd : float, optional
+        Per-pixel noise standard deviation for non-count images.
+
+    Returns
+    -------
+    amplitude, amplitude_err : (N,) arrays
+        Peak height A of the pixel-integrated Gaussian above the fitted local background, and its standard error
+        (inverse Fisher information). Their ratio is the detection significance in standard deviations.
+
+    References
+    ----------
+    Kay, Fundamentals of Statistical Signal Processing, Vol. II: Detection Theory (1998), ch. 4 and 7
+    (matched filter / generalised likelihood-ratio detector), from memory.
+    """
+    img, vmask = _prepare(image, valid)
+    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
+    n = xy.shape[0]
+    nvar = 0.0 if counts else float(noise_sd or 0.0) ** 2
+    if not counts and not nvar > 0:
+        raise TenfoldInputError("matched_significance: noise_sd must be a positive number when counts=False")
+    out = _run(img, vmask, np.ascontiguousarray(xy[:, 0]), np.ascontiguousarray(xy[:, 1]), float(sigma_px),
+               int(patch_radius_px), counts, 0, 0.0, 0.0, np.inf, np.zeros(n + 1, np.int64), np.zeros(0, np.int64),
+               np.zeros((max(n, 1), 4)), noise_var=nvar)
+    return out[:, 15].copy(), out[:, 16].copy()
+
+
+def significance_with_neighbours(image, fit, *, sigma_px, patch_radius_px, background, valid=None, counts=True,
+                                 noise_sd=None):
+    """Matched-filter amplitude at the fitted positions of ``fit`` (a ``refine_columns`` table), every other ok
+    column's fitted model subtracted and the background held at ``background`` (per column).
+
+    Returns (amplitude, amplitude_err) arrays; see ``matched_significance``.
+    """
+    img, vmask = _prepare(image, valid)
+    n = len(fit)
+    out = np.full((n, _NOUT), np.nan)
+    cols = ["x_px", "y_px", "sigma_px", "amplitude", "background"]
+    out[:, :5] = fit[cols].to_numpy(np.float64)
+    out[:, 8] = np.where(fit["fit_status"].to_numpy() == "ok", _OK, _DIVERGED)
+    ptr, idx, par = _neighbours(out, int(patch_radius_px), 4.0 * sigma_px)
+    nvar = 0.0 if counts else float(noise_sd) ** 2
+    res = _run(img, vmask, np.ascontiguousarray(out[:, 0]), np.ascontiguousarray(out[:, 1]), float(sigma_px),
+               int(patch_radius_px), counts, 0, 0.0, 0.0, np.inf, ptr, idx, par, noise_var=nvar,
+               b_fix=np.asarray(background, dtype=np.float64))
+    return res[:, 15].copy(), res[:, 16].copy()
 
 
 def _neighbours(out, rad, s_hi):
@@ -393,7 +560,7 @@ def _neighbours(out, rad, s_hi):
 
 
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
-                   neighbour_passes=1, max_shift_px=None, progress=None) -> pd.DataFrame:
+                   neighbour_passes=1, max_shift_px=None, noise_sd=None, progress=None) -> pd.DataFrame:
     """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
 
     Parameters
@@ -421,6 +588,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     max_shift_px : float, optional
         A fit that moves farther than this from its start (per axis) is 'diverged'. Default: the patch radius
         (about half the column spacing).
+    noise_sd : float, optional
+        Per-pixel noise standard deviation of a non-count image (``counts=False``), used for the matched-filter
+        significance; without it that significance is NaN for non-count images.
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
 
@@ -429,13 +599,15 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     DataFrame
         One row per input position, in input order: ``x_px, y_px, sigma_px, amplitude, background, intensity,
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
-        ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``, ``n_pixels``, ``n_iter``.
+        ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``, ``n_pixels``, ``n_iter``, and ``mf_amplitude``, ``mf_amplitude_err``: the matched-filter
+        amplitude at the fitted position with the width fixed at ``sigma_px`` and the neighbours subtracted
+        (see ``matched_significance``).
         Fit columns are NaN unless ``fit_status == 'ok'``.
 
     Notes
     -----
     ``fit_status``: 'ok'; 'diverged' (non-finite, moved more than ``max_shift_px``, width outside
-    [0.25, 4] x ``sigma_px`` or non-positive amplitude); 'edge' (centre closer than ``sigma_px`` to the image
+    [0.25, 4] x ``sigma_px``, or an amplitude not above its own standard error, e.g. a constant patch); 'edge' (centre closer than ``sigma_px`` to the image
     border, or outside it); 'masked' (see ``valid``).
 
     References
@@ -447,21 +619,15 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     --------
     >>> table = refine_columns(img, candidates[["x", "y"]].to_numpy(), sigma_px=2.0)  # doctest: +SKIP
     """
-    img = np.asarray(image)
-    if img.ndim != 2:
-        raise TenfoldInputError(f"refine_columns: image must be 2-D, got shape {img.shape}; pass one frame")
-    if not np.issubdtype(img.dtype, np.floating):
-        img = img.astype(np.float64)
-    img = np.ascontiguousarray(img)
+    img, vmask = _prepare(image, valid)
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2) if np.size(xy_px) else np.zeros((0, 2))
     if not (np.isfinite(sigma_px) and sigma_px > 0):
         raise TenfoldInputError(f"refine_columns: sigma_px must be a positive number, got {sigma_px!r}")
-    if valid is None:
-        vmask = np.ones(img.shape, dtype=bool)
-    else:
-        vmask = np.ascontiguousarray(np.asarray(valid, dtype=bool))
-        if vmask.shape != img.shape:
-            raise TenfoldInputError(f"refine_columns: valid mask shape {vmask.shape} differs from image {img.shape}")
+    nvar = 0.0
+    if not counts and noise_sd is not None:
+        if not (np.isfinite(noise_sd) and noise_sd > 0):
+            raise TenfoldInputError(f"refine_columns: noise_sd must be a positive number, got {noise_sd!r}")
+        nvar = float(noise_sd) ** 2
     s0 = float(sigma_px)
     n = xy.shape[0]
     if patch_radius_px is None:
@@ -480,14 +646,17 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     x0 = np.ascontiguousarray(xy[:, 0])
     y0 = np.ascontiguousarray(xy[:, 1])
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
-               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)))
+               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), noise_var=nvar)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), "refitting with neighbours subtracted")
         ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
         if idx.size == 0:
             break
         first = out
-        out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0, ptr, idx, par)
+        # warm start from the previous pass (ok fits only): a few Gauss-Newton steps suffice
+        start = np.where((first[:, 8] == _OK)[:, None], first[:, :5], np.nan)
+        out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0, ptr, idx, par,
+                   start=start, noise_var=nvar)
         out[:, 10] += first[:, 10]
     report(progress, 1.0, "refinement done")
     return _columns_out(out, x0, y0)
@@ -517,4 +686,6 @@ def _columns_out(out, x0, y0) -> pd.DataFrame:
         "y_init_px": y0,
         "n_pixels": np.nan_to_num(out[:, 9]).astype(np.int64),
         "n_iter": np.nan_to_num(out[:, 10]).astype(np.int64),
+        "mf_amplitude": np.where(ok, out[:, 15], np.nan),
+        "mf_amplitude_err": np.where(ok, out[:, 16], np.nan),
     })

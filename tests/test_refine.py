@@ -104,8 +104,8 @@ def test_edge_cases():
     np.testing.assert_array_equal(img, before)
 
 
-@pytest.mark.xfail(strict=True, reason="a constant patch is reported 'ok' (needs a significance check in refine)")
 def test_constant_patch_is_not_a_column():
     flat = np.full((40, 40), 7.0, np.float32)
     df = refine_columns(flat, [[20.0, 20.0]], sigma_px=1.5)
     assert df["fit_status"].iloc[0] == "diverged"
+    assert df[["x_px", "y_px", "sigma_px", "amplitude", "intensity"]].isna().all().all()
