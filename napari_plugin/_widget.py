@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from qtpy.QtCore import QObject, Qt, Signal
+from qtpy.QtCore import QObject, QTimer, Signal
 from qtpy.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -348,8 +348,14 @@ class PipelineWidget(QWidget):
             show_error(str(exc))
             return
 
+        from ._crop import crop_to_regions, shift_result
+
+        work, work_regions, offset = crop_to_regions(micrograph, regions) if regions else (micrograph, None, (0, 0))
+
         def compute(progress):
-            return run_pipeline(micrograph, params, regions=regions, progress=progress)
+            result = run_pipeline(work, params, regions=work_regions, progress=progress)
+            shift_result(result, micrograph, offset)
+            return result
 
         context = (image_layer, frame, regions)
         self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)
@@ -398,6 +404,7 @@ class PipelineWidget(QWidget):
         worker.returned.connect(self._on_returned)
         worker.finished.connect(self._on_finished)
         self.worker = worker
+        self._worker_done = False
         self._set_busy(True)
         self.progress_bar.setValue(0)
         self.status.setText(f"{kind}: starting")
@@ -424,20 +431,39 @@ class PipelineWidget(QWidget):
             show_info(outcome.message)
             self.status.setText(outcome.message)
             return
+        # one layer per event-loop turn, so the GUI never stalls for the sum of all insertions
+        self._pending = list(outcome.layers)
+        self._pending_outcome = outcome
+        QTimer.singleShot(0, self._insert_next)
+
+    def _insert_next(self) -> None:
+        if self._pending:
+            self._put_layer(self._pending.pop(0))
+            QTimer.singleShot(0, self._insert_next)
+            return
+        outcome, self._pending_outcome = self._pending_outcome, None
         image_layer, frame, regions = self._context
-        self._put_layers(outcome.layers)
+        points = self._layer("columns")
+        if points is not None:
+            self.viewer.layers.selection.active = points
         self.session.set_result(outcome.result, frame, image_layer, regions or [])
-        self._show_scale_bar(image_layer)
+        self.viewer.canvas.overlays.scale_bar.visible = True
         summary = outcome.result.summary
         tables = outcome.result.tables
         n_rings = int(tables["motifs"]["kind"].astype(str).str.startswith("ring").sum()) if len(tables["motifs"]) else 0
         self.status.setText(f"{outcome.kind}: {len(tables['columns'])} columns, {n_rings} rings, "
                             f"{len(tables['network'])} network edges"
                             + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
+        self._go_idle()
 
     def _on_finished(self) -> None:
-        self.worker = None
-        self._set_busy(False)
+        self._worker_done = True
+        self._go_idle()
+
+    def _go_idle(self) -> None:
+        if getattr(self, "_worker_done", False) and getattr(self, "_pending_outcome", None) is None:
+            self.worker = None
+            self._set_busy(False)
 
     def _set_busy(self, busy: bool) -> None:
         for w in (self.estimate_button, self.preview_button, self.run_button, self.rerun_button,
@@ -445,23 +471,16 @@ class PipelineWidget(QWidget):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
-    def _put_layers(self, layers: list) -> None:
-        """Insert finished layers; a layer of the same name is replaced in place (same position, visibility)."""
-        for new in layers:
-            old = self._layer(new.name)
-            if old is None:
-                self.viewer.add_layer(new)
-                continue
-            new.visible, new.opacity = old.visible, old.opacity
-            index = self.viewer.layers.index(old)
-            self.viewer.layers.remove(old)
-            self.viewer.layers.insert(index, new)
-        points = self._layer("columns")
-        if points is not None:
-            self.viewer.layers.selection.active = points
-
-    def _show_scale_bar(self, image_layer) -> None:
-        self.viewer.canvas.overlays.scale_bar.visible = True
+    def _put_layer(self, new) -> None:
+        """Insert a finished layer; one of the same name is replaced in place (same position, visibility)."""
+        old = self._layer(new.name)
+        if old is None:
+            self.viewer.add_layer(new)
+            return
+        new.visible, new.opacity = old.visible, old.opacity
+        index = self.viewer.layers.index(old)
+        self.viewer.layers.remove(old)
+        self.viewer.layers.insert(index, new)
 
     def _recolour(self, prop: str) -> None:
         points = self._layer("columns")
