@@ -126,3 +126,26 @@ def test_writer_round_trip(tmp_path, make_napari_viewer):
     assert back.loc[0, "motif_id"] == 5 and back.loc[0, "kind"] == "ring10"
     xy = np.array([p.split() for p in back.loc[0, "vertices_px"].split(";")], float)
     np.testing.assert_allclose(xy, square[:, ::-1])
+
+
+def test_singleton_guard_survives_many_signals(qapp):
+    """PySide6 6.12 on Python 3.11 drops a reference to True/None per emit; the guard keeps them alive."""
+    import sys
+
+    from qtpy.QtCore import QObject, Signal
+
+    from tenfold.napari_plugin._compat import protect_singletons
+
+    class Emitter(QObject):
+        ping = Signal(float, str)
+
+    e = Emitter()
+    got = []
+    e.ping.connect(lambda f, m: got.append(f))
+    applied = protect_singletons()
+    before = sys.getrefcount(True)
+    for _ in range(20_000):
+        e.ping.emit(0.5, "x")
+    assert len(got) == 20_000
+    if applied:
+        assert sys.getrefcount(True) > 2**39 and before - sys.getrefcount(True) < 10**6
