@@ -171,9 +171,14 @@ def columns_from_points(points_layer, frame: dict) -> pd.DataFrame:
     table["y_px"] = rc[:, 0]
     if "id" in table:
         ids = pd.to_numeric(table["id"], errors="coerce")
-        # points copied in napari duplicate their features, id included: keep the first, renumber the copies
-        ids[ids.duplicated()] = np.nan
-        table["id"] = ids
+        # napari gives an added point the feature defaults of an existing one, id included: keep the first
+        # row of each id and clear everything measured on the others, which rerun_from_columns then fills
+        added = ids.duplicated().to_numpy()
+        if added.any():
+            measured = [c for c in table.columns if c not in ("x_px", "y_px")]
+            table[measured] = table[measured].astype(object)
+            table.loc[added, measured] = np.nan
+        table["id"] = pd.to_numeric(table["id"], errors="coerce")
     return table
 
 

@@ -229,3 +229,20 @@ def test_plots_dock_follows_results(analysed, qtbot):
     n = min(image.data.shape)
     assert spec.scale[-1] == pytest.approx(1.0 / (n * image.scale[-1]))  # 1/(N px) per step, in 1/nm
     assert [str(u) for u in spec.units] == ["1 / nanometer"] * 2
+
+
+def test_added_point_gets_a_new_id_on_rerun(analysed, qtbot, notes):
+    viewer, widget, image = analysed
+    points = viewer.layers["columns"]
+    n = len(points.data)
+    old_ids = set(points.features["id"].astype(int))
+    points.add(np.array([[500.0, 500.0]]))  # data coordinates of the points layer are image px
+    _run(qtbot, widget, "rerun_from_columns")
+    assert notes["error"] == [], notes["error"]
+    cols = widget.session.result.tables["columns"]
+    assert len(cols) == n + 1
+    assert cols["id"].is_unique
+    new = cols[~cols["id"].isin(old_ids)]
+    assert len(new) == 1
+    assert new["x_px"].iloc[0] == pytest.approx(500.0) and new["y_px"].iloc[0] == pytest.approx(500.0)
+    assert new["fit_status"].iloc[0] == "manual" and new["species"].iloc[0] == -1
