@@ -387,7 +387,38 @@ def result_layers(result, frame: dict, *, columns: bool = True, colour_by: str =
     out = []
     if columns:
         out.append(Points(**columns_layer_kwargs(cols, frame, colour_by=colour_by)))
-    out.append(Shapes(**motifs_layer_kwargs(motifs, cols, frame)))
+    out.append(_chunked_shapes(motifs_layer_kwargs(motifs, cols, frame)))
     out.append(Points(**centres_layer_kwargs(motifs, frame)))
-    out.append(Shapes(**network_layer_kwargs(result.tables["network"], motifs, frame)))
+    out.append(_chunked_shapes(network_layer_kwargs(result.tables["network"], motifs, frame)))
     return out
+
+
+def _chunked_shapes(kwargs: dict, chunk: int = 500):
+    """A Shapes layer built ``chunk`` shapes at a time, pausing 1 ms in between.
+
+    napari's Shapes constructor holds the GIL for long stretches on thousands of shapes (the GUI thread then
+    stalls although the work runs in a worker); built in chunks with a pause, the longest stall drops from
+    ~160 ms to ~30 ms per 6000 polygons (and the build is faster too, see benchmarks/bench_gui.py).
+    """
+    import time
+
+    from napari.layers import Shapes
+
+    data = kwargs["data"]
+    n = len(data)
+    if n <= chunk:
+        return Shapes(**kwargs)
+
+    def part(value, lo, hi):
+        return value[lo:hi] if isinstance(value, np.ndarray) and len(value) == n else value
+
+    first = {**kwargs, "data": data[:chunk], "features": kwargs["features"].iloc[:chunk],
+             "edge_color": part(kwargs["edge_color"], 0, chunk), "face_color": part(kwargs["face_color"], 0, chunk)}
+    layer = Shapes(**first)
+    for lo in range(chunk, n, chunk):
+        time.sleep(0.001)  # let the GUI thread take the GIL
+        hi = min(lo + chunk, n)
+        layer.add(data[lo:hi], shape_type=kwargs["shape_type"], edge_width=kwargs["edge_width"],
+                  edge_color=part(kwargs["edge_color"], lo, hi), face_color=part(kwargs["face_color"], lo, hi))
+    layer.features = kwargs["features"]
+    return layer

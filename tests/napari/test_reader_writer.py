@@ -149,3 +149,23 @@ def test_singleton_guard_survives_many_signals(qapp):
     assert len(got) == 20_000
     if applied:
         assert sys.getrefcount(True) > 2**39 and before - sys.getrefcount(True) < 10**6
+
+
+def test_chunked_shapes_equal_one_piece_build():
+    from napari.layers import Shapes
+
+    from tenfold.napari_plugin._layers import _chunked_shapes
+
+    rng = np.random.default_rng(0)
+    t = np.linspace(0, 2 * np.pi, 10, endpoint=False)
+    centres = rng.uniform(0, 500, (23, 2))
+    polys = [np.c_[cy + 5 * np.sin(t), cx + 5 * np.cos(t)] for cy, cx in centres]
+    edge = rng.uniform(0, 1, (23, 4))
+    kwargs = dict(data=polys, shape_type="polygon", features=pd.DataFrame({"motif_id": np.arange(23)}),
+                  edge_color=edge, face_color="transparent", edge_width=0.5, name="motifs")
+    whole, parts = Shapes(**kwargs), _chunked_shapes(kwargs, chunk=5)
+    assert len(parts.data) == 23
+    for a, b in zip(whole.data, parts.data):
+        np.testing.assert_allclose(a, b)
+    np.testing.assert_allclose(parts.edge_color, whole.edge_color)
+    assert parts.features["motif_id"].tolist() == list(range(23))
