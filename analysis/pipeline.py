@@ -191,7 +191,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
 
     ps = result.meta.pixel_size_nm
     cols = result.tables["columns"]
-    ok = cols[cols["fit_status"] == "ok"] if "fit_status" in cols else cols
+    ok = cols[cols["fit_status"].isin(["ok", "fixed_width"])] if "fit_status" in cols else cols
     report(progress, 0.0, "searching ring and pentagon motifs")
     motifs, m_info = _motifs.find_motifs(
         ok,

@@ -34,8 +34,8 @@ from ._progress import report
 __all__ = ["refine_columns", "matched_significance", "warm_up", "STATUS_CODES"]
 
 #: fit_status strings by kernel code.
-STATUS_CODES = ("ok", "diverged", "edge", "masked")
-_OK, _DIVERGED, _EDGE, _MASKED = 0, 1, 2, 3
+STATUS_CODES = ("ok", "diverged", "edge", "masked", "fixed_width")
+_OK, _DIVERGED, _EDGE, _MASKED, _FIXED = 0, 1, 2, 3, 4
 _SQRT2 = math.sqrt(2.0)
 _SQRT_PI_2 = math.sqrt(math.pi / 2.0)
 #: number of values the kernel writes per column.
@@ -348,12 +348,21 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
                                   True)
         lam = 1e-3
         it = 0
+        fix_s = s_hi <= s_lo  # fixed-width fit: sigma held at s0, four free parameters
+        rhs = np.empty(5)
         for it in range(n_iter):
             for i in range(5):
                 for j in range(5):
                     damp[i, j] = jtj[i, j]
                 damp[i, i] = jtj[i, i] * (1.0 + lam)
-            if not _solve5(damp, jtr, delta):
+                rhs[i] = jtr[i]
+            if fix_s:
+                for i in range(5):
+                    damp[2, i] = 0.0
+                    damp[i, 2] = 0.0
+                damp[2, 2] = 1.0
+                rhs[2] = 0.0
+            if not _solve5(damp, rhs, delta):
                 lam *= 10.0
                 continue
             for i in range(5):
@@ -384,6 +393,11 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         scale = 1.0
         if not counts:
             scale = rss / max(npx - 5, 1)
+        if fix_s:  # covariance of the four free parameters
+            for i in range(5):
+                jtj[2, i] = 0.0
+                jtj[i, 2] = 0.0
+            jtj[2, 2] = 1.0
         e0 = np.zeros(5)
         col = np.empty(5)
         e0[0] = 1.0
@@ -560,7 +574,8 @@ def _neighbours(out, rad, s_hi):
 
 
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
-                   neighbour_passes=1, max_shift_px=None, noise_sd=None, progress=None) -> pd.DataFrame:
+                   neighbour_passes=1, max_shift_px=None, noise_sd=None, fixed_width_fallback=True,
+                   progress=None) -> pd.DataFrame:
     """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
 
     Parameters
@@ -602,11 +617,12 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``, ``n_pixels``, ``n_iter``, and ``mf_amplitude``, ``mf_amplitude_err``: the matched-filter
         amplitude at the fitted position with the width fixed at ``sigma_px`` and the neighbours subtracted
         (see ``matched_significance``).
-        Fit columns are NaN unless ``fit_status == 'ok'``.
+        Fit columns are NaN unless ``fit_status`` is 'ok' or 'fixed_width'.
 
     Notes
     -----
-    ``fit_status``: 'ok'; 'diverged' (non-finite, moved more than ``max_shift_px``, width outside
+    ``fit_status``: 'ok'; 'fixed_width' (the five-parameter fit failed, a fit with the width held at the median
+    width of the good fits succeeded: low-signal columns; only with ``fixed_width_fallback``); 'diverged' (non-finite, moved more than ``max_shift_px``, width outside
     [0.25, 4] x ``sigma_px``, or an amplitude not above its own standard error, e.g. a constant patch); 'edge' (centre closer than ``sigma_px`` to the image
     border, or outside it); 'masked' (see ``valid``).
 
@@ -658,13 +674,31 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0, ptr, idx, par,
                    start=start, noise_var=nvar)
         out[:, 10] += first[:, 10]
+    # Low-signal columns whose five-parameter fit wandered get a fixed-width fit (sigma = median of the good
+    # fits: every column is imaged by the same probe); they are marked 'fixed_width' so the user can tell.
+    redo = np.flatnonzero(out[:, 8] == _DIVERGED)
+    good = out[:, 8] == _OK
+    if fixed_width_fallback and redo.size and good.sum() >= 5:
+        s_med = float(np.nanmedian(out[good, 2]))
+        ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
+        sub_ptr = np.zeros(redo.size + 1, np.int64)
+        counts_nb = ptr[redo + 1] - ptr[redo]
+        sub_ptr[1:] = np.cumsum(counts_nb)
+        # gather each redo column's neighbour list from the CSR arrays (vectorised)
+        pos = np.repeat(ptr[redo] - sub_ptr[:-1], counts_nb) + np.arange(sub_ptr[-1])
+        sub_idx = idx[pos] if idx.size else np.zeros(0, np.int64)
+        again = _run(img, vmask, x0[redo], y0[redo], s_med, rad, counts, n_iter, max_shift, s_med, s_med, sub_ptr,
+                     sub_idx.astype(np.int64), par, noise_var=nvar)
+        fixed = again[:, 8] == _OK
+        again[fixed, 8] = _FIXED
+        out[redo[fixed]] = again[fixed]
     report(progress, 1.0, "refinement done")
     return _columns_out(out, x0, y0)
 
 
 def _columns_out(out, x0, y0) -> pd.DataFrame:
     status = out[:, 8].astype(np.int64) if out.shape[0] else np.zeros(0, np.int64)
-    ok = status == _OK
+    ok = (status == _OK) | (status == _FIXED)
     vals = out.copy()
     vals[~ok, :8] = np.nan
     sigma = vals[:, 2]

@@ -18,6 +18,8 @@ __all__ = ["classify_species", "fit_gmm_1d", "MIN_COLUMNS_PER_CLASS"]
 
 #: A class needs at least this many columns on average to be fitted (fewer: one class, with a note).
 MIN_COLUMNS_PER_CLASS = 5
+#: smallest share of the columns an automatically chosen class may hold (common practice, not a published value)
+MIN_WEIGHT = 0.01
 _LOG_2PI = math.log(2.0 * math.pi)
 
 
@@ -152,7 +154,7 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
     inten = out["intensity"].to_numpy(dtype=np.float64) if n else np.zeros(0)
     use = np.isfinite(inten)
     if "fit_status" in out:
-        use &= (out["fit_status"].to_numpy() == "ok")
+        use &= np.isin(out["fit_status"].to_numpy(), ("ok", "fixed_width"))
     x = inten[use]
     info["n_used"] = int(x.size)
     if x.size < 2 * MIN_COLUMNS_PER_CLASS or np.ptp(x) == 0:
@@ -177,7 +179,14 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
         fit = fit_gmm_1d(x, k, rng=gen)
         fits[k] = fit
         bic[k] = -2.0 * fit["log_likelihood"] + (3 * k - 1) * math.log(x.size)
-    k_best = min(bic, key=bic.get)
+    # A class holding under MIN_WEIGHT of the columns is a handful of outliers (false detections, damaged
+    # columns), not a species: such mixtures are not eligible when the number is chosen automatically.
+    eligible = {k: v for k, v in bic.items() if n_species is not None or fits[k]["weights"].min() >= MIN_WEIGHT}
+    k_best = min(eligible or bic, key=(eligible or bic).get)
+    rejected = sorted(k for k in bic if k not in eligible)
+    if rejected and n_species is None:
+        info["notes"].append(f"species: mixtures with {rejected} classes have a class under {100 * MIN_WEIGHT:g} % "
+                             "of the columns (outliers, not a species) and were not chosen; set n_species to force")
     fit = fits[k_best]
     var = fit["stds"] ** 2
     ld = _log_dens(x, fit["means"], var, fit["weights"])
