@@ -220,6 +220,25 @@ def _analyse(r, a, a0, nvalid):
     return (spacing, sigma), info
 
 
+def _central_width(r, a, a0, nvalid):
+    """Column width from the central autocorrelation peak alone (baseline 0 after the high-pass), or None.
+
+    The peak must stand above 10 white-noise standard errors at the first lag (white noise only lives at r = 0),
+    the same test as for a full profile.
+    """
+    noise = a0 / math.sqrt(nvalid)
+    pos = r > 0
+    ri, ai = r[pos], a[pos]
+    if ai.size < 3 or not ai[0] > 10 * noise:
+        return None
+    above = ai > 0.2 * ai[0]
+    n_run = int(np.argmin(above)) if not above.all() else above.size  # contiguous run from the first lag
+    if n_run < 2:
+        return None
+    slope = np.polyfit(ri[:n_run] ** 2, np.log(ai[:n_run]), 1)[0]
+    return math.sqrt(-1.0 / (4.0 * slope)) if slope < 0 else None
+
+
 def estimate_scale(image, *, valid=None, dark_columns=False) -> ScaleEstimate:
     """Find the typical nearest-column spacing and the column width of an atomic-resolution image.
 
@@ -288,8 +307,23 @@ def estimate_scale(image, *, valid=None, dark_columns=False) -> ScaleEstimate:
         hp = 4.0 * result[0]
         r_max = min(min(c) / 2.5, max(r_max, 3 * result[0]))
     if result is None:
-        raise TenfoldInputError(f"estimate_scale: no column scale found ({info.get('reason', 'no peak')}); the image "
-                                "looks like featureless noise; give the column spacing and diameter by hand")
+        # No neighbour peak: a disordered or strongly jittered arrangement (or noise). The central peak still
+        # gives the column width when it stands clear of white noise, and the maxima then give the spacing.
+        sigma = _central_width(r, a, a0, nv)
+        nn, n_max = (nearest_maxima_spacing(-sub if dark_columns else sub, okc, sigma) if sigma else (None, 0))
+        if sigma is None or nn is None or not nn > 1.8 * sigma:
+            raise TenfoldInputError(f"estimate_scale: no column scale found ({info.get('reason', 'no peak')}); the "
+                                    "image looks like featureless noise; give the column spacing and diameter by hand")
+        details["provisional_maxima"] = n_max
+        details["no_neighbour_peak"] = info.get("reason", "")
+        return ScaleEstimate(
+            spacing_px=float(nn),
+            sigma_px=float(sigma),
+            spacing_method="median nearest-neighbour distance of the significant maxima of the Gaussian-smoothed "
+                           "image (no neighbour peak in the autocorrelation: disordered arrangement)",
+            sigma_method="Gaussian fit exp(-r^2/4s^2) to the autocorrelation central peak (baseline 0)",
+            details=details,
+        )
     spacing, sigma = result
     sigma = float(min(max(sigma, 0.3), spacing / 2.0))
     details["sigma_clipped_to"] = [0.3, float(spacing / 2.0)]
