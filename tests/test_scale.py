@@ -45,3 +45,25 @@ def test_featureless_noise_and_constant_raise():
         estimate_scale(np.ones((64, 64)))
     with pytest.raises(TenfoldInputError):
         estimate_scale(np.ones((8, 8)))
+
+
+def test_disordered_arrangement_still_gives_a_scale():
+    # Columns at random positions (minimum distance 9 px, no lattice): the autocorrelation has no neighbour peak,
+    # but the central peak gives the width (Gaussian of width s -> autocorrelation of width sqrt(2) s) and the
+    # maxima the spacing.
+    from scipy.spatial import cKDTree
+
+    from tenfold.analysis.synthetic import render_image
+
+    rng = np.random.default_rng(5)
+    pts = rng.uniform(8, 248, size=(4000, 2))
+    tree_pts = []
+    for p in pts:  # dart throwing on a small test set (setup only, not code under test)
+        if not tree_pts or np.min(np.hypot(*(np.array(tree_pts) - p).T)) >= 9.0:
+            tree_pts.append(p)
+    xy = np.array(tree_pts)
+    img = render_image(xy[:, 0], xy[:, 1], 3000.0, shape=(256, 256), sigma_px=1.6, background=20.0, rng=6)
+    est = estimate_scale(img)
+    assert est.sigma_px == pytest.approx(1.6, rel=0.15)
+    nn = cKDTree(xy).query(xy, k=2)[0][:, 1]
+    assert est.spacing_px == pytest.approx(np.median(nn), rel=0.05)
