@@ -412,13 +412,14 @@ def _chunked_shapes(kwargs: dict, chunk: int = 500):
     def part(value, lo, hi):
         return value[lo:hi] if isinstance(value, np.ndarray) and len(value) == n else value
 
+    colours = {k: kwargs[k] for k in ("edge_color", "face_color") if k in kwargs}
     first = {**kwargs, "data": data[:chunk], "features": kwargs["features"].iloc[:chunk],
-             "edge_color": part(kwargs["edge_color"], 0, chunk), "face_color": part(kwargs["face_color"], 0, chunk)}
+             **{k: part(v, 0, chunk) for k, v in colours.items()}}
     layer = Shapes(**first)
     for lo in range(chunk, n, chunk):
         time.sleep(0.001)  # let the GUI thread take the GIL
         hi = min(lo + chunk, n)
         layer.add(data[lo:hi], shape_type=kwargs["shape_type"], edge_width=kwargs["edge_width"],
-                  edge_color=part(kwargs["edge_color"], lo, hi), face_color=part(kwargs["face_color"], lo, hi))
+                  **{k: part(v, lo, hi) for k, v in colours.items()})
     layer.features = kwargs["features"]
     return layer

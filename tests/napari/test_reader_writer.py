@@ -169,3 +169,6 @@ def test_chunked_shapes_equal_one_piece_build():
         np.testing.assert_allclose(a, b)
     np.testing.assert_allclose(parts.edge_color, whole.edge_color)
     assert parts.features["motif_id"].tolist() == list(range(23))
+    lines = dict(data=[p[:2] for p in polys], shape_type="line", features=pd.DataFrame({"edge_id": range(23)}),
+                 edge_color="#f2d64b", edge_width=0.3, name="network")  # one colour, no face colour
+    assert len(_chunked_shapes(lines, chunk=4).data) == 23

@@ -246,3 +246,19 @@ def test_added_point_gets_a_new_id_on_rerun(analysed, qtbot, notes):
     assert len(new) == 1
     assert new["x_px"].iloc[0] == pytest.approx(500.0) and new["y_px"].iloc[0] == pytest.approx(500.0)
     assert new["fit_status"].iloc[0] == "manual" and new["species"].iloc[0] == -1
+
+
+def test_uncalibrated_image_runs_in_pixels_with_nan_nm(make_napari_viewer, qtbot, notes, sample_path):
+    from tenfold.analysis.io import read_micrograph
+
+    viewer = make_napari_viewer()
+    data = read_micrograph(str(sample_path(NAME))).data
+    viewer.add_image(data, name="bare")  # no Tenfold metadata, napari's default scale 1 px: uncalibrated
+    widget = PipelineWidget(viewer)
+    _run(qtbot, widget, "preview")
+    assert notes["error"] == [], notes["error"]
+    feats = viewer.layers["columns"].features
+    assert len(feats) > 100
+    assert feats["pos_err_nm"].isna().all() and feats["x_nm"].isna().all()
+    assert "uncalibrated" in widget.status.text()
+    assert widget.session.result.summary["calibrated"] is False
