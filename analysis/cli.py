@@ -42,6 +42,20 @@ def _positive(text: str) -> float:
     return v
 
 
+def _length(text: str) -> tuple[float, str]:
+    """A length in nm (plain number or '0.28nm') or in pixels ('7px', for uncalibrated images)."""
+    t = text.strip().lower()
+    unit = "px" if t.endswith("px") else "nm"
+    num = t[:-2] if t.endswith(("px", "nm")) else t
+    try:
+        v = float(num)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a length such as 0.28 (nm), 0.28nm or 7px, got {text!r}") from None
+    if not (v > 0 and v < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a positive length, got {text!r}")
+    return v, unit
+
+
 def _species(text: str) -> int | None:
     if text.lower() == "auto":
         return None
@@ -95,26 +109,32 @@ def build_parser() -> argparse.ArgumentParser:
     col = a.add_argument_group("atomic columns")
     col.add_argument("--dark-columns", action="store_true",
                      help="columns darker than the background (HRTEM-like contrast); default: bright (HAADF)")
-    col.add_argument("--column-diameter", type=_positive, metavar="NM",
-                     help="column diameter in nm (about 4.5 x the Gaussian sigma); default: from the image")
-    col.add_argument("--column-spacing", type=_positive, metavar="NM",
-                     help="typical nearest-column spacing in nm; default: from the image")
-    col.add_argument("--min-mass", type=_positive, metavar="M",
-                     help="minimum integrated brightness of a detection; default: from the mass histogram")
+    col.add_argument("--column-diameter", type=_length, metavar="LEN",
+                     help="column diameter (about 4.5 x the Gaussian sigma), in nm or with a px suffix (e.g. 7px) for "
+                     "uncalibrated images; default: from the image")
+    col.add_argument("--column-spacing", type=_length, metavar="LEN",
+                     help="typical nearest-column spacing, nm or px suffix; default: from the image")
+    col.add_argument("--min-intensity", type=_positive, metavar="I", dest="min_mass",
+                     help="drop columns whose integrated intensity (image units x px^2) is below I; default: none, "
+                     "the significance cut decides")
     col.add_argument("--flatten", action="store_true", help="subtract a large-scale background (uneven illumination)")
     col.add_argument("--species", type=_species, default=None, metavar="N|auto",
                      help="number of column species by intensity ('auto' = by BIC, 0 = skip); default auto")
     mot = a.add_argument_group("motifs, ladders and tiling")
     mot.add_argument("--ring-order", type=int, default=10, choices=(5, 6, 8, 10, 12),
                      help="columns per ring motif (default 10)")
-    mot.add_argument("--ring-radius", type=_positive, metavar="NM", help="ring radius in nm; default: from pair distances")
+    mot.add_argument("--ring-radius", type=_length, metavar="LEN",
+                     help="ring radius, nm or px suffix; default: from the pair distances")
     mot.add_argument("--radius-tolerance", type=float, default=0.12, metavar="FRAC",
                      help="relative tolerance on the ring radius (default 0.12)")
     mot.add_argument("--no-pentagons", action="store_true", help="skip the pentagon motif search")
-    mot.add_argument("--ladder-range", type=_positive, metavar="NM", help="largest pair distance for the ladder fit")
-    mot.add_argument("--ladder-base", type=_positive, metavar="NM", help="ladder base distance d0; default: strongest peak")
+    mot.add_argument("--ladder-range", type=_length, metavar="LEN",
+                     help="largest pair distance for the ladder fit, nm or px suffix; default: automatic")
+    mot.add_argument("--ladder-base", type=_length, metavar="LEN",
+                     help="ladder base distance d0, nm or px suffix; default: the strongest short-range peak")
     mot.add_argument("--half-step", action="store_true", help="also test the half-step ladder tau^(n/2)")
-    mot.add_argument("--tiling-edge", type=_positive, metavar="NM", help="cluster-network edge length; default: automatic")
+    mot.add_argument("--tiling-edge", type=_length, metavar="LEN",
+                     help="cluster-network edge length, nm or px suffix; default: automatic")
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=int, default=0, help="seed for bootstraps and mixture fits (default 0)")
@@ -153,24 +173,25 @@ class _Progress:
 def _params(args) -> "object":
     from .pipeline import Parameters
 
+    lengths = {}
+    for base, value in (("column_diameter", args.column_diameter), ("column_spacing", args.column_spacing),
+                        ("ring_radius", args.ring_radius), ("ladder_r_max", args.ladder_range),
+                        ("d0", args.ladder_base), ("tiling_edge", args.tiling_edge)):
+        if value is not None:
+            lengths[f"{base}_{value[1]}"] = value[0]
     return Parameters(
         pixel_size_nm=args.pixel_size,
         dark_columns=args.dark_columns,
-        column_diameter_nm=args.column_diameter,
-        column_spacing_nm=args.column_spacing,
         n_species=args.species,
         flatten=args.flatten,
         min_mass=args.min_mass,
         ring_order=args.ring_order,
-        ring_radius_nm=args.ring_radius,
         radius_tolerance=args.radius_tolerance,
         pentagons=not args.no_pentagons,
-        ladder_r_max_nm=args.ladder_range,
         half_step=args.half_step,
-        d0_nm=args.ladder_base,
-        tiling_edge_nm=args.tiling_edge,
         fourier=not args.no_fourier,
         rng=args.seed,
+        **lengths,
     )
 
 

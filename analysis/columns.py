@@ -15,7 +15,7 @@ Steps (every automatic choice is recorded in the returned info dict):
    >= 4.5 sigma, separation = 0.5 x spacing, no band-pass of its own, one centroid step: trackpy's centroids are
    pixel-locked, the refinement removes that). The significance cut is chosen from the data: the mirrored minima
    of the same detector estimate the noise detections (``mirror_threshold``), bounded by 3.5 sigma and the
-   random-field threshold for the image area (``false_alarm_threshold``). ``min_mass`` can be added.
+   random-field threshold for the image area (``false_alarm_threshold``).
 6. Refinement of every significant candidate at once (``refine.refine_columns``), Poisson-weighted for counts,
    one neighbour-subtracted pass, a fixed-width fit for faint columns whose free fit fails ('fixed_width').
 7. Significance given the neighbours: the other fitted columns' smoothed light is subtracted from each
@@ -77,7 +77,7 @@ def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
     return float(np.mean(v**3) / sd**3) if sd > 0 else 0.0
 
 
-def _locate(smooth, valid, diameter, separation, min_mass):
+def _locate(smooth, valid, diameter, separation):
     """trackpy.locate on the already Gaussian-filtered image (``preprocess=False``: no second band-pass)."""
     import trackpy as tp
 
@@ -92,8 +92,7 @@ def _locate(smooth, valid, diameter, separation, min_mass):
         f = tp.locate(scaled, diameter, separation=separation, percentile=0, characterize=False, engine="numba",
                       max_iterations=1, minmass=0, preprocess=False)
     mass = f["mass"].to_numpy() * (hi - lo) / 60000.0 if len(f) else np.zeros(0)
-    keep = mass > (min_mass or 0.0)
-    return f["x"].to_numpy()[keep], f["y"].to_numpy()[keep], mass[keep], int(len(f))
+    return f["x"].to_numpy(), f["y"].to_numpy(), mass, int(len(f))
 
 
 def false_alarm_threshold(area_px: float, sigma_px: float, expected_false: float = FALSE_ALARMS) -> float:
@@ -308,7 +307,8 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float) -> np.
 
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
-                 column_diameter_nm=None, column_spacing_nm=None, min_mass=None, flatten=False, n_species=None,
+                 column_diameter_nm=None, column_spacing_nm=None, column_diameter_px=None, column_spacing_px=None,
+                 min_mass=None, flatten=False, n_species=None,
                  rng=0, progress=None) -> tuple[pd.DataFrame, dict]:
     """Find and refine the atomic columns of an image.
 
@@ -329,8 +329,11 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         Overrides the automatic width: sigma = diameter / 4.5. Needs ``pixel_size_nm``.
     column_spacing_nm : float, optional
         Overrides the automatic nearest-column spacing. Needs ``pixel_size_nm``.
+    column_diameter_px, column_spacing_px : float, optional
+        The same overrides in pixels (for uncalibrated images); give each length in one unit only.
     min_mass : float, optional
-        Extra minimum trackpy mass (image units x px^2) applied to the candidates before refinement.
+        Minimum integrated intensity of a column (``intensity``: image units x px^2, i.e. counts x px^2 for raw
+        counts), applied after refinement; default: none (the significance cut decides).
     flatten : bool
         Subtract a large-scale Gaussian blur (3 x spacing) before detection (uneven illumination).
     n_species : int, optional
@@ -381,15 +384,22 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         ok &= v
     if ok.sum() < 16:
         raise TenfoldInputError("find_columns: fewer than 16 valid pixels; nothing to analyse")
-    for name, val in (("column_diameter_nm", column_diameter_nm), ("column_spacing_nm", column_spacing_nm)):
-        if val is not None:
-            if pixel_size_nm is None:
-                raise TenfoldInputError(f"{name}={val} is in nm but the image has no pixel size; give pixel_size_nm "
-                                        "or leave it automatic")
-            if not (np.isfinite(val) and val > 0):
-                raise TenfoldInputError(f"{name}={val!r} must be a positive number of nm")
     if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
         raise TenfoldInputError(f"pixel_size_nm={pixel_size_nm!r} must be a positive number or None")
+    lengths = {}
+    for what, nm, px in (("diameter", column_diameter_nm, column_diameter_px),
+                         ("spacing", column_spacing_nm, column_spacing_px)):
+        if nm is not None and px is not None:
+            raise TenfoldInputError(f"column_{what}: give it in nm or in px, not both")
+        val, unit = (nm, "nm") if nm is not None else (px, "px")
+        if val is None:
+            continue
+        if not (np.isfinite(val) and val > 0):
+            raise TenfoldInputError(f"column_{what}_{unit}={val!r} must be a positive number")
+        if unit == "nm" and pixel_size_nm is None:
+            raise TenfoldInputError(f"column_{what}_nm={val} is in nm but the image has no pixel size; give the pixel "
+                                    f"size, or column_{what}_px instead")
+        lengths[what] = (float(val) / pixel_size_nm if unit == "nm" else float(val), f"given (column_{what}_{unit})")
     notes: list[str] = []
     data = np.where(ok, img, np.median(img[ok][::7]) if not ok.all() else 0.0).astype(np.float64)
     counts_like = bool(np.all(data[ok] >= 0) and np.all(np.mod(data[ok], 1.0) == 0))
@@ -397,25 +407,23 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     report(progress, 0.0, "column scale")
 
     auto: dict = {}
-    need_scale = column_spacing_nm is None or column_diameter_nm is None
+    need_scale = len(lengths) < 2
     est = estimate_scale(data, valid=ok, dark_columns=dark_columns) if need_scale else None
-    if column_spacing_nm is None:
-        spacing = est.spacing_px
-        auto["spacing"] = {"value_px": spacing, "how": est.spacing_method}
+    if "spacing" in lengths:
+        spacing, how = lengths["spacing"]
     else:
-        spacing = column_spacing_nm / pixel_size_nm
-        auto["spacing"] = {"value_px": spacing, "how": "given (column_spacing_nm)"}
-    if column_diameter_nm is None:
-        sigma = est.sigma_px
-        auto["sigma"] = {"value_px": sigma, "how": est.sigma_method}
+        spacing, how = est.spacing_px, est.spacing_method
+    auto["spacing"] = {"value_px": spacing, "how": how}
+    if "diameter" in lengths:
+        sigma, how = lengths["diameter"][0] / 4.5, lengths["diameter"][1] + " / 4.5"
     else:
-        sigma = column_diameter_nm / pixel_size_nm / 4.5
-        auto["sigma"] = {"value_px": sigma, "how": "given (column_diameter_nm / 4.5)"}
+        sigma, how = est.sigma_px, est.sigma_method
+    auto["sigma"] = {"value_px": sigma, "how": how}
     if est is not None:
         auto["scale_details"] = est.details
     if not (sigma > 0.3 and spacing > 2 * sigma * 0.9):
         raise TenfoldInputError(f"find_columns: column width {sigma:.2f} px and spacing {spacing:.2f} px are not "
-                                "usable (need sigma > 0.3 px and spacing > 1.8 sigma); check the nm overrides")
+                                "usable (need sigma > 0.3 px and spacing > 1.8 sigma); check the column diameter / spacing overrides")
 
     skew = polarity_skewness(work, ok, spacing_px=spacing)
     polarity = {"skewness": skew, "dark_columns": bool(dark_columns), "looks_wrong": bool(skew < -0.1)}
@@ -438,7 +446,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     separation = max(0.5 * spacing, 1.5)
     auto["trackpy"] = {"diameter_px": diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
                        "separation_px": separation, "separation_how": "0.5 x spacing", "percentile": 0,
-                       "max_iterations": 1, "min_mass": min_mass, "engine": "numba"}
+                       "max_iterations": 1, "engine": "numba"}
     report(progress, 0.1, "detecting columns (trackpy)")
     t0 = time.perf_counter()
     fit_counts = counts_like and not dark_columns
@@ -454,20 +462,20 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     # column on the flank of a bright neighbour is a maximum there, while in the plain smoothed image it is only a
     # shoulder.
     blob = -ndimage.gaussian_laplace(detect.astype(np.float32), sigma) * np.float32(sigma**2)
-    xs, ys, mass, n_raw = _locate(blob, ok, diameter, separation, min_mass)
+    xs, ys, _, n_raw = _locate(blob, ok, diameter, separation)
     # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
     # noise minima come at about the density of noise maxima
     side = 2 * max(int(round(separation * math.sqrt(math.pi) / 2.0)), 1) + 1
     mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
     del blob
-    counts_tab = {"trackpy_maxima": n_raw, "after_min_mass": int(xs.size)}
+    counts_tab = {"trackpy_maxima": n_raw}
     z_cand = ndimage.map_coordinates(z_map, [ys, xs], order=1, mode="nearest") if xs.size else np.zeros(0)
     area = float(ok.sum())
     z_rft = false_alarm_threshold(area, sigma)
     z_cut, cut_info = mirror_threshold(z_cand, -z_map[mins], z_max=z_rft)
     del mins
     sig = z_cand >= z_cut
-    xs, ys, mass, z_cand = xs[sig], ys[sig], mass[sig], z_cand[sig]
+    xs, ys, z_cand = xs[sig], ys[sig], z_cand[sig]
     counts_tab["after_significance"] = int(xs.size)
     t_detect = time.perf_counter() - t0
     auto["significance"] = {
@@ -487,7 +495,6 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
                          neighbour_passes=1, noise_sd=noise_sd, progress=sub_progress(progress, 0.3, 0.85))
     auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
     t_refine = time.perf_counter() - t0
-    fit["mass"] = mass
     fit["z_detect"] = z_cand
     status = fit["fit_status"].value_counts().to_dict()
     counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
@@ -524,6 +531,9 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             lose = np.where(snr[pairs[:, 0]] < snr[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
             fit = fit.drop(fit.index[np.unique(lose)])
     counts_tab["after_duplicates"] = int(len(fit))
+    if min_mass is not None:
+        fit = fit[fit["intensity"].to_numpy() >= float(min_mass)]
+        counts_tab["after_min_mass"] = int(len(fit))
     if dark_columns:
         # back to image units: the fitted background was measured on the inverted image
         fit["background"] = data.max() - fit["background"]
@@ -548,7 +558,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     notes.extend(sp_info.get("notes", []))
     if len(fit) == 0:
         notes.append("no columns survived the filters")
-    extras = ["x_err_px", "y_err_px", "amplitude_err", "snr", "mass"]
+    extras = ["x_err_px", "y_err_px", "amplitude_err", "snr"]
     table = _schema.conform(fit[[f.name for f in _schema.COLUMNS] + extras], _schema.COLUMNS)
     ok_fit = table["fit_status"] == "ok"
     info = {

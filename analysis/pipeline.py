@@ -39,12 +39,14 @@ class Parameters:
         Columns darker than the background (HRTEM-like contrast) instead of bright (HAADF).
     column_diameter_nm, column_spacing_nm : float or None
         Override the automatic column width (full diameter, about 4.5 sigma) and nearest-column spacing.
+    column_diameter_px, column_spacing_px, ring_radius_px, ladder_r_max_px, d0_px, tiling_edge_px : float or None
+        The same lengths in pixels, for uncalibrated images (each length in one unit only).
     n_species : int or None
         Number of intensity classes; None chooses by BIC, 0 skips classification.
     flatten : bool
         Subtract a large-scale background (uneven illumination) before detection.
     min_mass : float or None
-        Override the data-driven minimum integrated brightness of a detection (trackpy units).
+        Minimum integrated intensity of a column (image units x px^2); default none (the significance cut decides).
     ring_order : int
         Number of columns in a ring motif (5, 6, 8, 10 or 12).
     ring_radius_nm : float or None
@@ -84,6 +86,12 @@ class Parameters:
     tiling_edge_nm: float | None = None
     fourier: bool = True
     rng: int = 0
+    column_diameter_px: float | None = None
+    column_spacing_px: float | None = None
+    ring_radius_px: float | None = None
+    ladder_r_max_px: float | None = None
+    d0_px: float | None = None
+    tiling_edge_px: float | None = None
 
     def to_dict(self) -> dict:
         return dataclasses.asdict(self)
@@ -99,10 +107,13 @@ class Parameters:
     def validate(self) -> "Parameters":
         """Check every value; raise :class:`TenfoldInputError` naming the first bad parameter."""
         for name in ("pixel_size_nm", "column_diameter_nm", "column_spacing_nm", "ring_radius_nm",
-                     "ladder_r_max_nm", "d0_nm", "tiling_edge_nm", "min_mass"):
+                     "ladder_r_max_nm", "d0_nm", "tiling_edge_nm", "min_mass", *(f"{b}_px" for b in _LENGTHS)):
             v = getattr(self, name)
             if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
                 raise TenfoldInputError(f"parameter {name} must be a positive number (or empty for automatic), got {v!r}")
+        for base in _LENGTHS:
+            if getattr(self, f"{base}_nm") is not None and getattr(self, f"{base}_px") is not None:
+                raise TenfoldInputError(f"parameters {base}_nm and {base}_px both given; give the length in one unit")
         if self.n_species is not None and not (isinstance(self.n_species, (int, np.integer)) and 0 <= self.n_species <= 8):
             raise TenfoldInputError(f"parameter n_species must be empty (automatic), 0 (skip) or 1-8, got {self.n_species!r}")
         if self.ring_order not in (5, 6, 8, 10, 12):
@@ -112,15 +123,23 @@ class Parameters:
         return self
 
 
-def _nm_to_px(value_nm: float | None, pixel_size_nm: float | None, name: str) -> float | None:
-    if value_nm is None:
+_LENGTHS = ("column_diameter", "column_spacing", "ring_radius", "ladder_r_max", "d0", "tiling_edge")
+
+
+def _length_px(params: "Parameters", base: str, pixel_size_nm: float | None) -> float | None:
+    """A length parameter in px, from its ``_px`` or ``_nm`` field (None when automatic)."""
+    px = getattr(params, f"{base}_px")
+    if px is not None:
+        return float(px)
+    nm = getattr(params, f"{base}_nm")
+    if nm is None:
         return None
     if pixel_size_nm is None:
         raise TenfoldInputError(
-            f"parameter {name} is given in nm but the image is uncalibrated; give the pixel size too "
-            "(--pixel-size NM) or leave {name} empty"
+            f"parameter {base}_nm is given in nm but the image is uncalibrated; give the pixel size too, "
+            f"or the length in pixels ({base}_px), or leave it empty for automatic"
         )
-    return float(value_nm) / float(pixel_size_nm)
+    return float(nm) / float(pixel_size_nm)
 
 
 def _with_nm(df: pd.DataFrame, ps: float | None, pairs: dict[str, str]) -> pd.DataFrame:
@@ -196,7 +215,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     motifs, m_info = _motifs.find_motifs(
         ok,
         order=params.ring_order,
-        radius_px=_nm_to_px(params.ring_radius_nm, ps, "ring_radius_nm"),
+        radius_px=_length_px(params, "ring_radius", ps),
         radius_tolerance=params.radius_tolerance,
         pentagons=params.pentagons,
         pixel_size_nm=ps,
@@ -211,8 +230,8 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
         result.summary["motifs"]["internal_ratios"] = {"error": str(exc)}
 
     report(progress, 0.5, "pair distances and golden-ratio ladder")
-    rmax = _nm_to_px(params.ladder_r_max_nm, ps, "ladder_r_max_nm")
-    d0 = _nm_to_px(params.d0_nm, ps, "d0_nm")
+    rmax = _length_px(params, "ladder_r_max", ps)
+    d0 = _length_px(params, "d0", ps)
     ladders, peaks, l_info = [], [], {}
     rings = motifs[motifs["kind"].str.startswith("ring")] if len(motifs) else motifs
     sets = [("columns", ok["x_px"].to_numpy(), ok["y_px"].to_numpy(), d0)]
@@ -240,7 +259,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     result.summary["ladder"] = l_info
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
-        motifs, edge_px=_nm_to_px(params.tiling_edge_nm, ps, "tiling_edge_nm"), pixel_size_nm=ps,
+        motifs, edge_px=_length_px(params, "tiling_edge", ps), pixel_size_nm=ps,
         progress=sub_progress(progress, 0.75, 1.0),
     )
     result.tables["network"] = network
@@ -336,6 +355,8 @@ def run_pipeline(
             dark_columns=params.dark_columns,
             column_diameter_nm=params.column_diameter_nm,
             column_spacing_nm=params.column_spacing_nm,
+            column_diameter_px=params.column_diameter_px,
+            column_spacing_px=params.column_spacing_px,
             min_mass=params.min_mass,
             flatten=params.flatten,
             n_species=params.n_species,

@@ -227,7 +227,7 @@ def _matched_amplitude(d, msk, off, nx, ny, u0, v0, x, y, s, counts, noise_var, 
     return a, math.sqrt(var_a)
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
 def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
              start, s_ref, noise_var, b_fix, out):
     """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``.
@@ -671,8 +671,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         first = out
         # warm start from the previous pass (ok fits only): a few Gauss-Newton steps suffice
         start = np.where((first[:, 8] == _OK)[:, None], first[:, :5], np.nan)
-        out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0, ptr, idx, par,
-                   start=start, noise_var=nvar)
+        # warm-started: the neighbours' models only nudge a converged fit, a few steps suffice
+        out = _run(img, vmask, x0, y0, s0, rad, counts, min(n_iter, 6), max_shift, 0.25 * s0, 4.0 * s0, ptr, idx,
+                   par, start=start, noise_var=nvar)
         out[:, 10] += first[:, 10]
     # Low-signal columns whose five-parameter fit wandered get a fixed-width fit (sigma = median of the good
     # fits: every column is imaged by the same probe); they are marked 'fixed_width' so the user can tell.

@@ -127,3 +127,21 @@ def test_info_reports_calibration(capsys):
     info = json.loads(capsys.readouterr().out)
     assert info["pixel_size_nm"] == pytest.approx(0.04) and info["calibration_source"] == "imagej"
     assert info["automatic_scale"]["column_spacing_nm"] > 0
+
+
+def test_pixel_lengths_work_on_uncalibrated_images(tmp_path):
+    import imageio.v3 as iio
+    import tifffile
+
+    img = tifffile.imread(SAMPLE)[:384, :384]
+    png = tmp_path / "crop.png"
+    iio.imwrite(png, (255 * (img / img.max())).astype(np.uint8))
+    out = tmp_path / "res"
+    # ring radius of the bundled model: 0.45 nm at 0.04 nm/px = 11.25 px (sample_images/README.md)
+    rc = main(["analyze", str(png), "--out", str(out), "--quiet", "--no-figures", "--ring-radius", "11.25px",
+               "--column-diameter", "6.75px"])
+    assert rc == 0
+    s = json.loads((out / "summary.json").read_text())
+    assert s["parameters"]["ring_radius_px"] == 11.25 and s["parameters"]["ring_radius_nm"] is None
+    assert s["motifs"]["radius_px"] == pytest.approx(11.25, rel=0.02)
+    assert s["columns"]["automatic"]["sigma"]["value_px"] == pytest.approx(1.5)
