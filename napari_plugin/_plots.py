@@ -14,11 +14,9 @@ from qtpy.QtWidgets import (
     QWidget,
 )
 
-from ._compat import protect_singletons
 from ._layers import PALETTE, data_to_data, spectrum_layer_kwargs
 from ._session import session_for
 
-protect_singletons()
 
 __all__ = ["PlotsWidget", "MAX_TABLE_ROWS"]
 

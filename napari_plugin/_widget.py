@@ -32,12 +32,10 @@ from qtpy.QtWidgets import (
     QWidget,
 )
 
-from ._compat import protect_singletons
 from ._layers import colour_kwargs, columns_from_points, frame_of, micrograph_from_layer, regions_from_shapes
 from ._layers import result_layers
 from ._session import session_for
 
-protect_singletons()
 
 __all__ = ["PipelineWidget", "PREVIEW_SIZE_PX"]
 

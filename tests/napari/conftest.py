@@ -15,10 +15,6 @@ import pytest  # noqa: E402
 pytest.importorskip("napari")
 pytest.importorskip("qtpy")
 
-from tenfold.napari_plugin._compat import protect_singletons  # noqa: E402
-
-protect_singletons()  # before any Qt signal fires: see the module docstring (PySide6 6.12 on Python 3.11)
-
 if os.environ.get("PYTEST_DISABLE_PLUGIN_AUTOLOAD"):
     pytest_plugins = ["napari.utils._testsupport", "pytestqt.plugin"]
 

@@ -128,13 +128,16 @@ def test_writer_round_trip(tmp_path, make_napari_viewer):
     np.testing.assert_allclose(xy, square[:, ::-1])
 
 
-def test_singleton_guard_survives_many_signals(qapp):
-    """PySide6 6.12 on Python 3.11 drops a reference to True/None per emit; the guard keeps them alive."""
+def test_qt_binding_keeps_python_singletons_alive(qapp):
+    """Emitting Qt signals from Python must not drain the reference counts of True / None.
+
+    PySide6 6.12 on Python 3.11 drops one reference per emit (immortal singletons only arrived in Python 3.12),
+    which aborts the interpreter after enough signals; pyproject.toml therefore pins PySide6 < 6.12. This test
+    fails on an affected binding.
+    """
     import sys
 
     from qtpy.QtCore import QObject, Signal
-
-    from tenfold.napari_plugin._compat import protect_singletons
 
     class Emitter(QObject):
         ping = Signal(float, str)
@@ -142,13 +145,12 @@ def test_singleton_guard_survives_many_signals(qapp):
     e = Emitter()
     got = []
     e.ping.connect(lambda f, m: got.append(f))
-    applied = protect_singletons()
-    before = sys.getrefcount(True)
+    before_true, before_none = sys.getrefcount(True), sys.getrefcount(None)
     for _ in range(20_000):
         e.ping.emit(0.5, "x")
     assert len(got) == 20_000
-    if applied:
-        assert sys.getrefcount(True) > 2**39 and before - sys.getrefcount(True) < 10**6
+    if sys.version_info < (3, 12):
+        assert sys.getrefcount(True) > before_true - 1000 and sys.getrefcount(None) > before_none - 1000
 
 
 def test_chunked_shapes_equal_one_piece_build():
