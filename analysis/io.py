@@ -133,13 +133,6 @@ _SUFFIXES = {
     ".ser": "vendor",
 }
 
-#: rosettasciio plug-in module per vendor suffix
-_VENDOR_MODULES = {
-    ".dm3": "rsciio.digitalmicrograph",
-    ".dm4": "rsciio.digitalmicrograph",
-    ".emd": "rsciio.emd",
-    ".ser": "rsciio.tia",
-}
 
 #: length unit names (lower case) -> nm. Pixel-like units ('pixel', 'px', '') mean "uncalibrated".
 _UNIT_NM = {
@@ -354,9 +347,16 @@ def _read_imageio(path: Path, cal: _Calib) -> np.ndarray:
 def _read_vendor(path: Path, cal: _Calib) -> np.ndarray:
     import importlib
 
-    modname = _VENDOR_MODULES[path.suffix.lower()]
     try:
+        import rsciio
+
+        # the library's own registry says which of its plug-ins reads this suffix
+        suffix = path.suffix.lower().lstrip(".")
+        modname = next(p["api"] for p in rsciio.IO_PLUGINS if suffix in [e.lower() for e in p["file_extensions"]])
         module = importlib.import_module(modname)
+    except StopIteration:
+        raise TenfoldInputError(f"{path}: the installed vendor-format reader has no plug-in for {path.suffix} files; "
+                                "convert the file to TIFF") from None
     except ImportError as exc:
         raise TenfoldInputError(
             f"{path}: reading {path.suffix} files needs the optional vendor-format reader rosettasciio "

@@ -736,11 +736,13 @@ def find_motifs(
                                                          pixel_size_nm, gen)
         info["free_pentagons"] = free_info
         if len(free_df):
-            known = set()
-            for pdf, sl in pent_tables:
-                known |= {tuple(sorted(s)) for s in sl.tolist()}
-            # Per-pentagon set lookup over at most a few thousand pentagons, to avoid double reporting.
-            fresh = np.array([tuple(sorted(s)) not in known for s in free_slots.tolist()], dtype=bool)
+            # a free pentagon already reported inside a ring (same five members) is not reported twice: compare
+            # the sorted member rows as one structured key each (vectorised)
+            known = np.concatenate([np.sort(sl, axis=1) for _, sl in pent_tables]) if pent_tables else \
+                np.zeros((0, 5), dtype=np.int64)
+            key = np.dtype([(f"m{i}", np.int64) for i in range(5)])
+            as_key = lambda a: np.ascontiguousarray(a.astype(np.int64)).view(key).ravel()  # noqa: E731
+            fresh = ~np.isin(as_key(np.sort(free_slots, axis=1)), as_key(known))
             pent_tables.append((free_df[fresh], free_slots[fresh]))
         if pent_tables:
             pdf = pd.concat([p for p, _ in pent_tables], ignore_index=True)

@@ -240,6 +240,13 @@ def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
     if numeric and (prop != "species" and values.nunique() > len(PALETTE)):
         return {"face_color": prop, "face_colormap": "viridis"}
     cats = sorted(pd.unique(values.astype(str)))
+    if prop == "species":
+        # the same species colours as the exported figures (tenfold.analysis.export.SPECIES_COLOURS, checked for
+        # colour-blind separation there); unclassified (-1) grey
+        from tenfold.analysis.export import SPECIES_COLOURS
+
+        cycle = [SPECIES_COLOURS[int(c) % len(SPECIES_COLOURS)] if int(c) >= 0 else PALETTE[7] for c in cats]
+        return {"face_color": prop, "face_color_cycle": cycle}
     cycle = [PALETTE[i % len(PALETTE)] for i in range(len(cats))]
     return {"face_color": prop, "face_color_cycle": cycle}
 

@@ -51,6 +51,9 @@ def read_layers(path) -> list[tuple]:
     except TenfoldInputError as exc:
         show_error(str(exc))
         return [(None,)]
+    except Exception as exc:  # never a traceback for a file the user chose; say what failed
+        show_error(f"{os.path.basename(path)}: could not be read ({type(exc).__name__}: {exc})")
+        return [(None,)]
     name = os.path.splitext(os.path.basename(path))[0]
     if not micrograph.meta.calibrated:
         show_warning(

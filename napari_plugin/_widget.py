@@ -455,6 +455,12 @@ class PipelineWidget(QWidget):
         self.status.setText(f"{outcome.kind}: {len(tables['columns'])} columns, {n_rings} rings, "
                             f"{len(tables['network'])} network edges"
                             + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
+        # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not hidden
+        from napari.utils.notifications import show_warning
+
+        for note in summary.get("notes", []):
+            if not note.startswith("uncalibrated"):
+                show_warning(note)
         self._go_idle()
 
     def _on_finished(self) -> None:
@@ -526,6 +532,9 @@ class PipelineWidget(QWidget):
             return
         folder = Path(folder)
         overwrite = False
+        if folder.exists() and not folder.is_dir():
+            show_error(f"export: {folder} is a file, not a folder; choose a folder for the results")
+            return
         if folder.exists() and any(folder.iterdir()):
             if not self.confirm_overwrite(folder):
                 self.status.setText(f"export cancelled: {folder} left as it was")

@@ -42,15 +42,22 @@ def shapes_table(data, attributes: dict) -> pd.DataFrame:
     return feats
 
 
+def _write(table, out: str) -> list[str]:
+    try:
+        table.to_csv(out, index=False)
+    except OSError as exc:  # a notification, not a traceback: which file and why
+        from napari.utils.notifications import show_error
+
+        show_error(f"could not write {out}: {exc.strerror or exc}; choose another folder or file name")
+        return []
+    return [out]
+
+
 def write_columns(path, data, attributes: dict) -> list[str]:
     """Write a Points layer as a CSV: its features plus the point positions (x_px, y_px)."""
-    out = _csv_path(path)
-    points_table(data, attributes).to_csv(out, index=False)
-    return [out]
+    return _write(points_table(data, attributes), _csv_path(path))
 
 
 def write_motifs(path, data, attributes: dict) -> list[str]:
     """Write a Shapes layer (motifs) as a CSV: its features plus the polygon vertices."""
-    out = _csv_path(path)
-    shapes_table(data, attributes).to_csv(out, index=False)
-    return [out]
+    return _write(shapes_table(data, attributes), _csv_path(path))

@@ -64,7 +64,8 @@ def test_fcc_al_001_nearest_neighbour_spacing():
     tree = cKDTree(xy)
     pairs = tree.query_pairs(0.6 * AL_LATTICE_NM, output_type="ndarray")
     d = np.linalg.norm(xy[pairs[:, 0]] - xy[pairs[:, 1]], axis=1)
-    # projected fcc [001] column spacing a/2; Al a = 0.40495 nm (handbook value, see synthetic.AL_LATTICE_NM)
+    # projected fcc [001] column spacing a/2; Al a = 0.40495 nm at room temperature (handbook value from memory,
+    # e.g. CRC Handbook / Wyckoff; see synthetic.AL_LATTICE_NM)
     assert d.mean() == pytest.approx(AL_LATTICE_NM / 2, rel=1e-3)
     assert info["automatic"]["spacing"]["value_px"] * ps == pytest.approx(AL_LATTICE_NM / 2, rel=0.05)
     assert len(cols) == len(c)

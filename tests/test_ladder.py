@@ -122,10 +122,13 @@ def test_centre_ladder(decorated):
     assert "2 sin 72" in labels or "2 sin 72 tau^-1" in labels  # 1.902 edge, the thin long diagonal
 
 
-def test_half_step_ladder_runs(decorated):
+def test_half_step_ladder_finds_no_half_rungs_in_a_decagonal_set(decorated):
+    # tau^(1/2) = 1.272 is not a chord ratio of the regular decagon (2 sin(k pi / 10) x tau^m: 0.618, 1.176,
+    # 1.618, 1.902, 2; Euclid XIII), so on a decagonal point set the half-step ladder must match whole rungs only.
     cols, _ = decorated
     lad, _, info = fit_ladder(cols["x_px"], cols["y_px"], half_step=True, r_max_px=25.0)
-    assert info["half_step"] is True and len(lad)
+    assert info["half_step"] is True and len(lad) >= 2
+    assert np.all(lad["rung"].to_numpy() % 1.0 == 0.0)
 
 
 def test_motif_ratios_on_rings(decorated):
@@ -218,5 +221,5 @@ def test_ladder_figure(decorated):
 
 
 def test_figure_registered():
-    export = pytest.importorskip("tenfold.analysis.export")
+    from tenfold.analysis import export
     assert export.FIGURES.get("pair_distribution_ladder") is ladder_figure

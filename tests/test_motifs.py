@@ -177,7 +177,7 @@ def test_uncalibrated_nm_columns_are_nan():
 
 
 def test_decagonal_model_ground_truth():
-    synthetic = pytest.importorskip("tenfold.analysis.synthetic")
+    from tenfold.analysis import synthetic
     model = synthetic.decagonal_model(width_nm=16.0, height_nm=16.0, rng=5)
     c = model.columns
     g = np.random.default_rng(5)
@@ -215,7 +215,7 @@ def test_no_ten_membered_rings_in_periodic_lattices(maker):
 
 
 def test_fcc_al_from_synthetic_has_no_rings():
-    synthetic = pytest.importorskip("tenfold.analysis.synthetic")
+    from tenfold.analysis import synthetic
     c = synthetic.fcc_al_001_columns(width_nm=8.0, height_nm=8.0)
     cols = pd.DataFrame({"id": np.arange(len(c)), "x_px": c["x_nm"] / PX_NM, "y_px": c["y_nm"] / PX_NM})
     motifs, _ = find_motifs(cols)
@@ -329,7 +329,7 @@ def test_circle_fit_against_least_squares():
 
 # --------------------------------------------------------------------------------------------- regions, progress
 def test_regions_label_the_centres():
-    region = pytest.importorskip("tenfold.analysis.region")
+    from tenfold.analysis import region
     cols, truth = decorated_pentagrid(6.0, rng=12)
     x0 = float(np.median(truth["centres"][:, 0]))
     left = region.parse_region(f"-100000,-100000,{x0},100000", unit="px", label=3)

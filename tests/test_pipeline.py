@@ -17,7 +17,7 @@ def small():
     mg = read_micrograph(SAMPLE)
     from tenfold.analysis.io import micrograph_from_array
 
-    return micrograph_from_array(mg.data[:400, :400].copy(), pixel_size_nm=0.04, name="crop")
+    return micrograph_from_array(mg.data[:400, :400].copy(), pixel_size_nm=mg.meta.pixel_size_nm, name="crop")
 
 
 @pytest.fixture(scope="module")
@@ -39,9 +39,18 @@ def test_bad_parameters_name_themselves(kw, word):
 
 def test_result_tables_and_summary(result):
     assert set(result.tables) >= {"columns", "motifs", "ladder", "pair_peaks", "tiles", "network", "spots"}
-    assert result.summary["n_columns"] == len(result.tables["columns"]) > 300
+    # ground truth of the bundled sample, restricted to the 400 x 400 px crop
+    truth = pd.read_csv(SAMPLE.with_name("decagonal_haadf_high_dose_columns.csv"))
+    inside = truth["x_px"].between(-0.5, 399.5) & truth["y_px"].between(-0.5, 399.5)
+    assert result.summary["n_columns"] == len(result.tables["columns"])
+    assert len(result.tables["columns"]) == pytest.approx(int(inside.sum()), rel=0.02)
+    rings_t = pd.read_csv(SAMPLE.with_name("decagonal_haadf_high_dose_motifs.csv")).query("kind == 'ring10'")
+    r = rings_t["radius_px"] + 3.0
+    whole = (rings_t["centre_x_px"] - r >= 0) & (rings_t["centre_x_px"] + r < 400) & \
+            (rings_t["centre_y_px"] - r >= 0) & (rings_t["centre_y_px"] + r < 400)
     rings = result.tables["motifs"].query("kind == 'ring10'")
-    assert len(rings) >= 10
+    assert len(rings) >= 0.98 * int(whole.sum())
+    # a decagonal pattern seen down its ten-fold axis gives ten-fold Fourier spot stars (Bendersky 1985)
     assert result.summary["fourier"]["rotational_order"] == 10
 
 

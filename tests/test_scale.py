@@ -22,7 +22,9 @@ def _square(a_px=9.0, sigma=1.5, counts=2000.0, bg=20.0, dark=False, rng=0, n=40
 def test_square_lattice_spacing(dark, counts, bg):
     est = estimate_scale(_square(counts=counts, bg=bg, dark=dark), dark_columns=dark)
     assert est.spacing_px == pytest.approx(9.0, rel=0.03)
-    assert 1.0 < est.sigma_px < 2.0
+    # rendered width 1.5 px (pixel-integrated: sqrt(1.5^2 + 1/12) = 1.53 px); the autocorrelation estimate is only
+    # the starting value of the per-column fit and reads ~15 % low on this dense lattice, hence 20 %
+    assert est.sigma_px == pytest.approx(1.53, rel=0.20)
     assert est.details["dark_columns"] is dark
 
 
@@ -33,7 +35,7 @@ def test_fcc_al_001_spacing_within_5_percent():
                        background=30.0, rng=1)
     est = estimate_scale(img)
     assert est.spacing_method.startswith("median nearest-neighbour")
-    # projected fcc [001]: square column lattice of side a/2 (Al a = 0.40495 nm, handbook value via synthetic)
+    # projected fcc [001]: square column lattice of side a/2 (Al a = 0.40495 nm, handbook value from memory, via synthetic)
     assert est.spacing_px * ps == pytest.approx(AL_LATTICE_NM / 2, rel=0.05)
 
 

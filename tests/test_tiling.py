@@ -177,5 +177,5 @@ def test_tiling_figure(penrose):
 
 
 def test_figure_registered():
-    export = pytest.importorskip("tenfold.analysis.export")
+    from tenfold.analysis import export
     assert export.FIGURES.get("cluster_network") is tiling_figure
