@@ -34,15 +34,16 @@ def _logsumexp(a):
     return (m + np.log(np.exp(a - m).sum(axis=1, keepdims=True)))[:, 0]
 
 
-def _em(x, mean, var, weight, var_floor, n_iter=300, tol=1e-8):
+def _em(x, mean, var, weight, var_floor, cnt, n_iter=300, tol=1e-8):
+    """EM on values ``x`` with multiplicities ``cnt`` (histogram bins, or ones)."""
     # tol is relative to |log L|: 1e-8 of a log-likelihood of ~1e4-1e5 nats is far below any BIC gap that matters.
     ll_old = -np.inf
-    n = x.size
+    n = cnt.sum()
     for _ in range(n_iter):
         ld = _log_dens(x, mean, var, weight)
         norm = _logsumexp(ld)
-        ll = float(norm.sum())
-        resp = np.exp(ld - norm[:, None])
+        ll = float((cnt * norm).sum())
+        resp = np.exp(ld - norm[:, None]) * cnt[:, None]
         nk = resp.sum(axis=0) + 1e-12
         weight = nk / n
         mean = (resp * x[:, None]).sum(axis=0) / nk
@@ -50,8 +51,11 @@ def _em(x, mean, var, weight, var_floor, n_iter=300, tol=1e-8):
         if ll - ll_old <= tol * abs(ll):
             break
         ll_old = ll
-    ld = _log_dens(x, mean, var, weight)
-    return mean, var, weight, float(_logsumexp(ld).sum())
+    return mean, var, weight
+
+
+#: above this many values EM runs on a histogram of BINS bins (bin width << any class width), 20-50x faster
+BIN_ABOVE, BINS = 2000, 1024
 
 
 def fit_gmm_1d(x, k, *, rng=0, n_init=4):
@@ -82,6 +86,14 @@ def fit_gmm_1d(x, k, *, rng=0, n_init=4):
     spread = float(np.var(x)) if x.size > 1 else 1.0
     spread = spread if spread > 0 else 1.0
     var_floor = 1e-6 * spread
+    if x.size > BIN_ABOVE and np.ptp(x) > 0:
+        cnt, edges = np.histogram(x, bins=BINS)
+        centres = 0.5 * (edges[1:] + edges[:-1])
+        xs, cs = centres[cnt > 0], cnt[cnt > 0].astype(np.float64)
+        # the binning adds width^2 / 12 to every class variance; the floor keeps a class from collapsing into a bin
+        var_floor = max(var_floor, (edges[1] - edges[0]) ** 2 / 12.0)
+    else:
+        xs, cs = x, np.ones_like(x)
     best = None
     for start in range(max(1, n_init)):
         if start == 0:
@@ -90,9 +102,10 @@ def fit_gmm_1d(x, k, *, rng=0, n_init=4):
             mean = np.sort(gen.choice(x, size=k, replace=x.size < k))
         var = np.full(k, spread / k**2)
         weight = np.full(k, 1.0 / k)
-        fit = _em(x, mean, var, weight, var_floor)
-        if best is None or fit[3] > best[3]:
-            best = fit
+        m, v, wt = _em(xs, mean, var, weight, var_floor, cs)
+        ll = float(_logsumexp(_log_dens(x, m, v, wt)).sum())  # exact log-likelihood of the raw values
+        if best is None or ll > best[3]:
+            best = (m, v, wt, ll)
     mean, var, weight, ll = best
     order = np.argsort(mean)
     return {"means": mean[order], "stds": np.sqrt(var[order]), "weights": weight[order], "log_likelihood": ll}
