@@ -243,10 +243,16 @@ def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
     if prop == "species":
         # the same species colours as the exported figures (tenfold.analysis.export.SPECIES_COLOURS, checked for
         # colour-blind separation there); unclassified (-1) grey
+        from matplotlib.colors import to_rgba_array
+
         from tenfold.analysis.export import SPECIES_COLOURS
 
-        cycle = [SPECIES_COLOURS[int(c) % len(SPECIES_COLOURS)] if int(c) >= 0 else PALETTE[7] for c in cats]
-        return {"face_color": prop, "face_color_cycle": cycle}
+        # one explicit colour per point: a colour cycle would be assigned in order of first appearance, so
+        # species 0 would not always get the first colour
+        table_colours = np.array(list(SPECIES_COLOURS) + [PALETTE[7]])
+        sp = values.to_numpy().astype(np.int64)
+        idx = np.where(sp >= 0, sp % len(SPECIES_COLOURS), len(SPECIES_COLOURS))
+        return {"face_color": to_rgba_array(table_colours[idx])}
     cycle = [PALETTE[i % len(PALETTE)] for i in range(len(cats))]
     return {"face_color": prop, "face_color_cycle": cycle}
 

@@ -96,9 +96,12 @@ class PlotsWidget(QWidget):
             ok = np.isfinite(inten)
             bins = np.histogram_bin_edges(inten[ok], bins=60) if ok.any() else 10
             species = cols["species"].to_numpy()
-            for k, s in enumerate(np.unique(species[ok])):
+            from tenfold.analysis.export import SPECIES_COLOURS  # the same colours as the columns layer
+
+            for s in np.unique(species[ok]):
                 sel = ok & (species == s)
-                ax_h.hist(inten[sel], bins=bins, color=PALETTE[k % len(PALETTE)], alpha=0.8,
+                colour = SPECIES_COLOURS[int(s) % len(SPECIES_COLOURS)] if s >= 0 else PALETTE[7]
+                ax_h.hist(inten[sel], bins=bins, color=colour, alpha=0.8,
                           label="unclassified" if s < 0 else f"species {s}")
             ax_h.legend(fontsize=7, frameon=False)
         ax_h.set_xlabel("integrated intensity (counts px\u00b2)")
