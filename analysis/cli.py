@@ -287,6 +287,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("tenfold: interrupted; no results written", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
+        return 0
     except Exception as exc:  # the one-line rule: no traceback for users unless they ask
         if debug:
             raise
