@@ -31,7 +31,7 @@ from scipy.spatial import cKDTree
 from ._errors import TenfoldInputError
 from ._progress import report
 
-__all__ = ["refine_columns", "matched_significance", "warm_up", "STATUS_CODES"]
+__all__ = ["refine_columns", "warm_up", "STATUS_CODES"]
 
 #: fit_status strings by kernel code.
 STATUS_CODES = ("ok", "diverged", "edge", "masked", "fixed_width")
@@ -483,70 +483,6 @@ def _prepare(image, valid):
     return img, vmask
 
 
-def matched_significance(image, xy_px, *, sigma_px, patch_radius_px, valid=None, counts=True, noise_sd=None):
-    """Matched-filter amplitude of a Gaussian column of fixed width at fixed positions, with a local background.
-
-    Parameters
-    ----------
-    image : (H, W) array
-        Bright columns on a darker background. Not modified.
-    xy_px : (N, 2) array
-        Positions (x, y), px.
-    sigma_px : float
-        Column width (Gaussian standard deviation), px.
-    patch_radius_px : int
-        Half-size of the square patch (side 2 r + 1) on which A and B are fitted.
-    valid : (H, W) bool array, optional
-        False for masked pixels (left out).
-    counts : bool
-        Poisson variance of the model (raw counts); otherwise ``noise_sd`` is needed.
-    noise_sd : float, optional
-        Per-pixel noise standard deviation for non-count images.
-
-    Returns
-    -------
-    amplitude, amplitude_err : (N,) arrays
-        Peak height A of the pixel-integrated Gaussian above the fitted local background, and its standard error
-        (inverse Fisher information). Their ratio is the detection significance in standard deviations.
-
-    References
-    ----------
-    Kay, Fundamentals of Statistical Signal Processing, Vol. II: Detection Theory (1998), ch. 4 and 7
-    (matched filter / generalised likelihood-ratio detector), from memory.
-    """
-    img, vmask = _prepare(image, valid)
-    xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2)
-    n = xy.shape[0]
-    nvar = 0.0 if counts else float(noise_sd or 0.0) ** 2
-    if not counts and not nvar > 0:
-        raise TenfoldInputError("matched_significance: noise_sd must be a positive number when counts=False")
-    out = _run(img, vmask, np.ascontiguousarray(xy[:, 0]), np.ascontiguousarray(xy[:, 1]), float(sigma_px),
-               int(patch_radius_px), counts, 0, 0.0, 0.0, np.inf, np.zeros(n + 1, np.int64), np.zeros(0, np.int64),
-               np.zeros((max(n, 1), 4)), noise_var=nvar)
-    return out[:, 15].copy(), out[:, 16].copy()
-
-
-def significance_with_neighbours(image, fit, *, sigma_px, patch_radius_px, background, valid=None, counts=True,
-                                 noise_sd=None):
-    """Matched-filter amplitude at the fitted positions of ``fit`` (a ``refine_columns`` table), every other ok
-    column's fitted model subtracted and the background held at ``background`` (per column).
-
-    Returns (amplitude, amplitude_err) arrays; see ``matched_significance``.
-    """
-    img, vmask = _prepare(image, valid)
-    n = len(fit)
-    out = np.full((n, _NOUT), np.nan)
-    cols = ["x_px", "y_px", "sigma_px", "amplitude", "background"]
-    out[:, :5] = fit[cols].to_numpy(np.float64)
-    out[:, 8] = np.where(fit["fit_status"].to_numpy() == "ok", _OK, _DIVERGED)
-    ptr, idx, par = _neighbours(out, int(patch_radius_px), 4.0 * sigma_px)
-    nvar = 0.0 if counts else float(noise_sd) ** 2
-    res = _run(img, vmask, np.ascontiguousarray(out[:, 0]), np.ascontiguousarray(out[:, 1]), float(sigma_px),
-               int(patch_radius_px), counts, 0, 0.0, 0.0, np.inf, ptr, idx, par, noise_var=nvar,
-               b_fix=np.asarray(background, dtype=np.float64))
-    return res[:, 15].copy(), res[:, 16].copy()
-
-
 def _neighbours(out, rad, s_hi):
     """CSR arrays of the ok neighbours whose model reaches into each column's patch (one KD-tree, one query)."""
     n = out.shape[0]
@@ -616,7 +552,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
         ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``, ``n_pixels``, ``n_iter``, and ``mf_amplitude``, ``mf_amplitude_err``: the matched-filter
         amplitude at the fitted position with the width fixed at ``sigma_px`` and the neighbours subtracted
-        (see ``matched_significance``).
+        (the kernel's ``_matched_amplitude``).
         Fit columns are NaN unless ``fit_status`` is 'ok' or 'fixed_width'.
 
     Notes
