@@ -336,10 +336,23 @@ def run_pipeline(
         Tables 'columns', 'motifs', 'ladder', 'pair_peaks', 'tiles', 'network', 'spots'; summary sections
         'columns' (automatic choices), 'motifs', 'ladder', 'tiling', 'fourier', 'regions', 'notes'.
     """
-    from .columns import find_columns
-
     params = (params or Parameters()).validate()
     micrograph = _calibrated(micrograph, params)
+    if regions:
+        # small regions of a large image: analyse their bounding box (with a margin) and shift the tables back
+        from ._crop import crop_to_regions, shift_result
+
+        work, work_regions, offset = crop_to_regions(micrograph, regions)
+        if work is not micrograph:
+            result = _run(work, params, work_regions, progress)
+            shift_result(result, micrograph, offset)
+            return result
+    return _run(micrograph, params, regions, progress)
+
+
+def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:
+    from .columns import find_columns
+
     meta = micrograph.meta
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)

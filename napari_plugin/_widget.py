@@ -349,14 +349,8 @@ class PipelineWidget(QWidget):
             show_error(str(exc))
             return
 
-        from ._crop import crop_to_regions, shift_result
-
-        work, work_regions, offset = crop_to_regions(micrograph, regions) if regions else (micrograph, None, (0, 0))
-
         def compute(progress):
-            result = run_pipeline(work, params, regions=work_regions, progress=progress)
-            shift_result(result, micrograph, offset)
-            return result
+            return run_pipeline(micrograph, params, regions=regions or None, progress=progress)
 
         context = (image_layer, frame, regions)
         self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)

@@ -100,3 +100,23 @@ def test_progress_is_monotone_and_reaches_one(small):
     run_pipeline(small, Parameters(fourier=False), progress=lambda f, m: seen.append(f))
     assert seen[-1] == pytest.approx(1.0)
     assert all(b >= a - 1e-9 for a, b in zip(seen, seen[1:]))
+
+
+def test_regions_of_a_large_image_are_analysed_in_their_box_and_shifted_back():
+    from tenfold.analysis.region import Region
+
+    mg = read_micrograph(SAMPLE)
+    reg = [Region(1, "rectangle", np.array([[600.0, 500.0], [900.0, 800.0]]))]
+    res = run_pipeline(mg, Parameters(fourier=False), regions=reg)
+    cols = res.tables["columns"]
+    truth = pd.read_csv(SAMPLE.with_name("decagonal_haadf_high_dose_columns.csv"))
+    inside = truth["x_px"].between(600, 900) & truth["y_px"].between(500, 800)
+    assert len(cols) == pytest.approx(int(inside.sum()), abs=3)
+    # positions are whole-image pixels: they match the ground truth of the full image
+    from scipy.spatial import cKDTree
+
+    d, _ = cKDTree(truth[["x_px", "y_px"]].to_numpy()).query(cols[["x_px", "y_px"]].to_numpy())
+    assert np.percentile(d, 99) < 0.5
+    np.testing.assert_allclose(cols["x_nm"], cols["x_px"] * mg.meta.pixel_size_nm)
+    assert res.summary["analysed_box_px"]["row0"] == 500 - 24
+    assert list(res.meta.shape) == list(mg.data.shape) and res.image.shape == mg.data.shape

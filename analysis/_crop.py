@@ -1,9 +1,8 @@
 """Analyse only the bounding box of the regions, then put the result back in whole-image pixels.
 
-``run_pipeline`` with regions still detects columns over the whole image and filters afterwards; for a small
-region of a large image the dock therefore hands it the regions' bounding box (plus a margin, so columns on
-the region border are fitted with their neighbours) and shifts the tables back, so every ``*_px`` value the
-user sees or exports refers to the full image.
+For a small region of a large image, ``run_pipeline`` works on the regions' bounding box (plus a margin, so
+columns on the region border are fitted with their neighbours) and shifts the tables back, so every ``*_px``
+value the user sees or exports refers to the full image.
 """
 
 from __future__ import annotations
@@ -22,7 +21,7 @@ _XY = (("x_px", "y_px", "x_nm", "y_nm"), ("centre_x_px", "centre_y_px", "centre_
 
 def crop_to_regions(micrograph, regions):
     """(cropped micrograph, shifted regions, (row0, col0)); the micrograph itself when it is not worth it."""
-    from tenfold.analysis.region import Region
+    from .region import Region
 
     rows, cols = micrograph.data.shape
     xy = np.concatenate([r.vertices_px for r in regions])
@@ -43,8 +42,6 @@ def crop_to_regions(micrograph, regions):
 def shift_result(result, full, offset) -> None:
     """Shift a result computed on a crop back into the pixel frame of the full micrograph ``full`` (in place)."""
     r0, c0 = offset
-    if (r0, c0) == (0, 0):
-        return
     ps = full.meta.pixel_size_nm
     for name in ("columns", "motifs"):
         table = result.tables.get(name)
@@ -58,11 +55,13 @@ def shift_result(result, full, offset) -> None:
                 table[x_nm] = table[x] * ps if ps else np.nan
                 table[y_nm] = table[y] * ps if ps else np.nan
         result.tables[name] = table
+    box = tuple(int(v) for v in result.meta.shape)
     result.meta = dataclasses.replace(result.meta, shape=full.meta.shape)
     result.image = full.data
     inp = result.summary.get("input")
     if isinstance(inp, dict):
         inp["shape"] = list(full.meta.shape)
-    note = (f"analysed the regions' bounding box from row {r0}, col {c0} (with a {MARGIN_PX} px margin); "
-            "positions are in whole-image px; Fourier spots are those of that box")
-    result.summary.setdefault("notes", []).append(note)
+    result.summary["analysed_box_px"] = {
+        "row0": int(r0), "col0": int(c0), "rows": box[0], "cols": box[1], "margin_px": MARGIN_PX,
+        "note": "the regions' bounding box was analysed; positions are whole-image px; Fourier spots are of that box",
+    }
