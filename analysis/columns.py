@@ -29,6 +29,7 @@ Steps (every automatic choice is recorded in the returned info dict):
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 import time
 import warnings
 
@@ -46,6 +47,7 @@ from .scale import estimate_scale
 from .species import classify_species
 
 __all__ = ["find_columns", "polarity_skewness", "false_alarm_threshold", "pixel_noise_sd", "significance_map",
+           "SignificanceField",
            "mirror_threshold", "FALSE_ALARMS", "FALSE_SHARE", "Z_FLOOR"]
 
 #: Expected number of noise maxima per image above the random-field threshold (the upper end of the cut).
@@ -146,7 +148,7 @@ def _block_mean(a: np.ndarray, f: int) -> np.ndarray:
 
 
 def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None, count_offset=0.0, count_sign=1.0):
-    """Matched-filter significance of a column at every pixel: z = (K * I - B) / sd(K * I).
+    """Matched-filter significance of a column anywhere in the image: z = (K * I - B) / sd(K * I).
 
     ``K`` is the normalised Gaussian of the column width (sum 1, sum of squares 1 / (4 pi sigma^2)); ``B`` is a
     smooth background: a normalised convolution (scale 1.5 spacings, computed on a coarse grid) of the pixels
@@ -172,10 +174,10 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
 
     Returns
     -------
-    z : (H, W) float32 array
-        Significance in standard deviations (0 on masked pixels).
-    sd : (H, W) float32 array or float
-        Standard error of ``K * work`` under the no-column hypothesis (a scalar for white noise).
+    SignificanceField
+        ``.z(rows, cols)``: significance in standard deviations at any positions (0 on masked pixels);
+        ``.sd(rows, cols)``: standard error of ``K * work`` there under the no-column hypothesis. The full map is
+        never formed: only candidates and minima need it.
 
     References
     ----------
@@ -194,18 +196,66 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     sv = smooth[valid][::7]  # robust level and spread: a regular subsample is plenty and 7x cheaper
     med = float(np.median(sv))
     sources = maxima & (smooth > med + 4.0 * 1.4826 * float(np.median(np.abs(sv - med))))
+    my, mx = np.nonzero(maxima)
+    field = None
     for _ in range(2):
         keep = valid & ~ndimage.maximum_filter(sources, size=2 * reach + 1)
-        bg = _masked_background(work, smooth, keep, valid, spacing_px)
-        sd = white_sd if not counts else np.sqrt(k2 * np.maximum(count_offset + count_sign * bg, 1.0))
-        z = (smooth - bg) / sd
-        sources = maxima & (z >= Z_FLOOR)
-    z = z.astype(np.float32)
-    z[~valid] = 0.0
-    return z, sd
+        field = SignificanceField(smooth, _masked_background(work, smooth, keep, valid, spacing_px), valid, k2,
+                                  white_sd, count_offset, count_sign)
+        sources = np.zeros_like(maxima)
+        zm = field.z(my.astype(np.float64), mx.astype(np.float64))
+        sources[my[zm >= Z_FLOOR], mx[zm >= Z_FLOOR]] = True
+    return field
+
+
+@dataclass
+class SignificanceField:
+    """The significance map, evaluated where it is needed (candidates, minima), never stored at full size.
+
+    ``smooth`` is the matched-filtered image; the background lives on a coarse grid and is interpolated
+    bilinearly (the same mapping as ``ndimage.zoom(..., order=1, grid_mode=True)``).
+    """
+
+    smooth: np.ndarray
+    bg_coarse: np.ndarray
+    valid: np.ndarray
+    k2: float
+    white_sd: float | None
+    count_offset: float | np.ndarray
+    count_sign: float
+
+    def background(self, rows, cols):
+        h, w = self.smooth.shape
+        fr, fc = h / self.bg_coarse.shape[0], w / self.bg_coarse.shape[1]
+        return ndimage.map_coordinates(self.bg_coarse, [(rows + 0.5) / fr - 0.5, (cols + 0.5) / fc - 0.5], order=1,
+                                       mode="nearest")
+
+    def sd(self, rows, cols, bg=None):
+        if self.white_sd is not None:
+            return np.full(np.shape(rows), float(self.white_sd))
+        bg = self.background(rows, cols) if bg is None else bg
+        off = self.count_offset
+        if np.ndim(off):
+            off = ndimage.map_coordinates(off, [rows, cols], order=1, mode="nearest")
+        return np.sqrt(self.k2 * np.maximum(off + self.count_sign * bg, 1.0))
+
+    def z(self, rows, cols):
+        """Significance at (row, col) positions (bilinear; 0 on masked pixels)."""
+        rows = np.asarray(rows, dtype=np.float64)
+        cols = np.asarray(cols, dtype=np.float64)
+        if rows.size == 0:
+            return np.zeros(0)
+        bg = self.background(rows, cols)
+        sm = ndimage.map_coordinates(self.smooth, [rows, cols], order=1, mode="nearest")
+        z = (sm - bg) / self.sd(rows, cols, bg)
+        h, w = self.smooth.shape
+        ri = np.clip(np.rint(rows).astype(np.int64), 0, h - 1)
+        ci = np.clip(np.rint(cols).astype(np.int64), 0, w - 1)
+        return np.where(self.valid[ri, ci], z, 0.0)
 
 
 def _masked_background(work, smooth, keep, valid, spacing_px):
+    # (returns the background on its coarse grid; SignificanceField interpolates it where needed)
     """Smooth background from the ``keep`` pixels (scale 1.5 spacings); see :func:`_smooth_surface`.
 
     In a crowded image (a crystal, columns closer than ~8 sigma) almost nothing is far from a column; the
@@ -213,10 +263,10 @@ def _masked_background(work, smooth, keep, valid, spacing_px):
     """
     if keep.sum() < 0.25 * valid.sum():
         keep = valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
-    return _smooth_surface(work, keep, 1.5 * spacing_px)
+    return _smooth_surface(work, keep, 1.5 * spacing_px, coarse=True)
 
 
-def _smooth_surface(work, keep, scale_px):
+def _smooth_surface(work, keep, scale_px, *, coarse=False):
     """A quadratic surface fitted to the ``keep`` pixels plus a normalised Gaussian convolution of the rest.
 
     Computed on a grid coarsened by ~scale / 3 and interpolated back. The quadratic takes tilt and curvature
@@ -228,7 +278,7 @@ def _smooth_surface(work, keep, scale_px):
     m_c = _block_mean(keep.astype(np.float32), f).astype(np.float64)
     i_c = _block_mean(np.where(keep, work, 0.0).astype(np.float32), f).astype(np.float64)
     if not (m_c > 0).any():
-        return np.full(work.shape, float(np.median(work)))
+        return np.full((1, 1) if coarse else work.shape, float(np.median(work)))
     yy, xx = np.mgrid[0 : m_c.shape[0], 0 : m_c.shape[1]].astype(np.float64)
     xx, yy = ((xx + 0.5) * f - 0.5) / w, ((yy + 0.5) * f - 0.5) / h
     terms = np.stack([np.ones_like(xx), xx, yy, xx * xx, xx * yy, yy * yy], -1)
@@ -239,6 +289,8 @@ def _smooth_surface(work, keep, scale_px):
     num = ndimage.gaussian_filter(i_c - m_c * surface, scale_px / f)
     den = ndimage.gaussian_filter(m_c, scale_px / f)
     bg_c = surface + np.where(den > 1e-6, num / np.maximum(den, 1e-6), 0.0)
+    if coarse:
+        return bg_c
     zoom = (h / bg_c.shape[0], w / bg_c.shape[1])
     return ndimage.zoom(bg_c.astype(np.float32), zoom, order=1, mode="nearest", grid_mode=True)[:h, :w]
 
@@ -456,12 +508,13 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     # one significance map serves detection (its Gaussian-filtered image) and the cut
     # recorded counts = offset + sign * detect (inversion and flattening undone), for the Poisson variance
     offset = (data.max() if dark_columns else 0.0) + (blur if flatten else 0.0) * (-1.0 if dark_columns else 1.0)
-    z_map, sd_map = significance_map(detect, ok, sigma_px=sigma, spacing_px=spacing, counts=counts_like,
+    field = significance_map(detect, ok, sigma_px=sigma, spacing_px=spacing, counts=counts_like,
                                      noise_sd=noise_sd, count_offset=offset, count_sign=-1.0 if dark_columns else 1.0)
     # Candidates: trackpy on the scale-normalised Laplacian of Gaussian (the blob detector; Lindeberg 1998): a dim
     # column on the flank of a bright neighbour is a maximum there, while in the plain smoothed image it is only a
     # shoulder.
-    blob = -ndimage.gaussian_laplace(detect.astype(np.float32), sigma) * np.float32(sigma**2)
+    # (the discrete Laplacian of the already smoothed image: the same operator, a third of the work)
+    blob = -ndimage.laplace(field.smooth) * np.float32(sigma**2)
     xs, ys, _, n_raw = _locate(blob, ok, diameter, separation)
     # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
     # noise minima come at about the density of noise maxima
@@ -469,10 +522,11 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
     del blob
     counts_tab = {"trackpy_maxima": n_raw}
-    z_cand = ndimage.map_coordinates(z_map, [ys, xs], order=1, mode="nearest") if xs.size else np.zeros(0)
+    z_cand = field.z(ys, xs)
     area = float(ok.sum())
     z_rft = false_alarm_threshold(area, sigma)
-    z_cut, cut_info = mirror_threshold(z_cand, -z_map[mins], z_max=z_rft)
+    mr, mc = np.nonzero(mins)
+    z_cut, cut_info = mirror_threshold(z_cand, -field.z(mr.astype(np.float64), mc.astype(np.float64)), z_max=z_rft)
     del mins
     sig = z_cand >= z_cut
     xs, ys, z_cand = xs[sig], ys[sig], z_cand[sig]
@@ -506,9 +560,8 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     slid = np.hypot(fit["x_px"].to_numpy() - xs, fit["y_px"].to_numpy() - ys) > max(1.5, 0.5 * spacing)
     good &= ~slid
     counts_tab["slid_off_candidate"] = int(slid.sum())
-    sd_cand = (ndimage.map_coordinates(sd_map, [ys, xs], order=1, mode="nearest") if np.ndim(sd_map) else
-               np.full(xs.size, float(sd_map)))
-    del z_map, sd_map
+    sd_cand = field.sd(ys, xs)
+    del field
     fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
     fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
     counts_tab["after_neighbour_significance"] = int(len(fit))
