@@ -313,7 +313,8 @@ def estimate_scale(image, *, valid=None, dark_columns=False) -> ScaleEstimate:
         nn, n_max = (nearest_maxima_spacing(-sub if dark_columns else sub, okc, sigma) if sigma else (None, 0))
         if sigma is None or nn is None or not nn > 1.8 * sigma:
             raise TenfoldInputError(f"estimate_scale: no column scale found ({info.get('reason', 'no peak')}); the "
-                                    "image looks like featureless noise; give the column spacing and diameter by hand")
+                                    "image looks like featureless noise; set the column spacing and diameter "
+                                    "yourself (in nm, or in px for an uncalibrated image)")
         details["provisional_maxima"] = n_max
         details["no_neighbour_peak"] = info.get("reason", "")
         return ScaleEstimate(
