@@ -560,6 +560,62 @@ def _pentagon_ok(df: pd.DataFrame, xy: np.ndarray, slots: np.ndarray, tol: float
 
 
 # --------------------------------------------------------------------------------------------- public
+def ring_shape(xy, cx, cy, slots, *, warn_above=0.005, n_boot=200, rng=0):
+    """Real-space distortion check: the mean ellipse of the complete rings.
+
+    A ring of a decagonal cluster is a circle; a scan distortion r' = D r turns every ring into the same ellipse
+    ``d^T M d = 1`` with ``M`` proportional to ``(D D^T)^-1``. Each complete ring gets ``M`` by least squares,
+    normalised to unit determinant (so only the shape counts), and the normalised matrices are averaged: position
+    noise makes single rings look elliptical in random directions, which the average cancels. The axis ratio of
+    the mean is the distortion estimate; its standard error comes from a bootstrap over rings.
+
+    Returns
+    -------
+    info : dict
+        ``n_rings``, ``axis_ratio`` (>= 1), ``major_axis_deg`` (atan2, y down, in [0, 180)), ``axis_ratio_se``,
+        ``warning`` (ratio - 1 above ``warn_above`` and above 3 standard errors).
+    per_ring : (R,) array
+        Axis ratio of each ring (NaN for incomplete ones).
+    """
+    per_ring = np.full(len(slots), np.nan)
+    info = {"n_rings": 0, "axis_ratio": None, "major_axis_deg": None, "axis_ratio_se": None, "warning": False}
+    if len(slots) == 0:
+        return info, per_ring
+    full = np.all(slots >= 0, axis=1)
+    if full.sum() < 3:
+        return info, per_ring
+    sl = slots[full]
+    dx = xy[sl, 0] - np.asarray(cx)[full, None]
+    dy = xy[sl, 1] - np.asarray(cy)[full, None]
+    a = np.stack([dx * dx, 2 * dx * dy, dy * dy], axis=-1)  # (R, n, 3)
+    ata = np.einsum("rni,rnj->rij", a, a)
+    atb = a.sum(axis=1)
+    sol = np.linalg.solve(ata, atb[..., None])[..., 0]  # (R, 3): M = [[s0, s1], [s1, s2]]
+    det = sol[:, 0] * sol[:, 2] - sol[:, 1] ** 2
+    good = det > 0
+    m = sol[good] / np.sqrt(det[good])[:, None]
+
+    def _ratio(mm):
+        tr, dt = mm[..., 0] + mm[..., 2], mm[..., 0] * mm[..., 2] - mm[..., 1] ** 2
+        disc = np.sqrt(np.maximum(tr * tr / 4 - dt, 0.0))
+        lo, hi = tr / 2 - disc, tr / 2 + disc
+        return np.sqrt(hi / np.maximum(lo, 1e-300))
+
+    idx_full = np.flatnonzero(full)[good]
+    per_ring[idx_full] = _ratio(m)
+    mean = m.mean(axis=0)
+    gen = np.random.default_rng(rng)
+    boot = m[gen.integers(0, len(m), size=(n_boot, len(m)))].mean(axis=1)
+    ratio = float(_ratio(mean))
+    se = float(np.std(_ratio(boot)))
+    # |d| is largest along the eigenvector of M's smaller eigenvalue
+    w, v = np.linalg.eigh(np.array([[mean[0], mean[1]], [mean[1], mean[2]]]))
+    info.update(n_rings=int(len(m)), axis_ratio=ratio, axis_ratio_se=se,
+                major_axis_deg=float(np.degrees(np.arctan2(v[1, 0], v[0, 0])) % 180.0),
+                warning=bool(ratio - 1.0 > warn_above and ratio - 1.0 > 3.0 * se))
+    return info, per_ring
+
+
 def find_motifs(
     columns: pd.DataFrame,
     *,
@@ -717,6 +773,8 @@ def find_motifs(
     ring_df = _rows(xy, ids, species, region, rings, n=order, kind=kind, pixel_size_nm=pixel_size_nm)
     ring_df["score"] = _score(rings["psi"], ring_df["completeness"].to_numpy(), rings["rms"], tol * r)
     ring_df["overlaps"] = _overlaps(rings["slots"], len(xy))
+    shape_info, ring_df["axis_ratio"] = ring_shape(xy, rings["cx"], rings["cy"], rings["slots"], rng=gen)
+    info["ring_shape"] = shape_info
     tables.append(ring_df)
 
     report(progress, 0.7, "motifs: pentagons")

@@ -224,6 +224,14 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     )
     result.tables["motifs"] = motifs
     result.summary["motifs"] = m_info
+    shape = m_info.get("ring_shape") or {}
+    if shape.get("warning"):
+        result.summary.setdefault("notes", []).append(
+            f"the ring motifs are elliptical on average (axis ratio {shape['axis_ratio']:.4f} +- "
+            f"{shape['axis_ratio_se']:.4f}, long axis at {shape['major_axis_deg']:.0f} deg): suspect scan distortion, "
+            "drift or an anisotropic pixel size; distances along different directions differ by "
+            f"{100 * (shape['axis_ratio'] - 1):.2f} %"
+        )
     try:
         result.summary["motifs"]["internal_ratios"] = _ladder.motif_ratios(motifs)
     except Exception as exc:  # a ratio summary must never kill the run; say why it is missing

@@ -96,3 +96,26 @@ def test_vacancies_make_incomplete_rings():
     assert (~f_complete[~t_complete]).mean() >= 0.95
     assert f_complete[t_complete].mean() >= 0.98
     assert (found["n_members"].to_numpy()[hit] == truth["n_members"].to_numpy()[j[hit]]).mean() >= 0.95
+
+
+@pytest.mark.slow
+def test_ring_shape_measures_the_scan_shear():
+    # x' = x + s y maps circles to ellipses with axis ratio = ratio of the singular values of [[1, s], [0, 1]],
+    # long axis at 45 deg for small s (linear algebra); the generator's shear is in the truth file
+    import json
+
+    shear = json.loads((SAMPLES / "decagonal_haadf_sheared_truth.json").read_text())["shear"]
+    sv = np.linalg.svd(np.array([[1.0, shear], [0.0, 1.0]]), compute_uv=False)
+    res = run_pipeline(read_micrograph(SAMPLES / "decagonal_haadf_sheared.tif"), Parameters(fourier=True))
+    shape = res.summary["motifs"]["ring_shape"]
+    assert shape["axis_ratio"] == pytest.approx(sv[0] / sv[1], abs=0.003)
+    assert abs((shape["major_axis_deg"] - 45.0 + 90.0) % 180.0 - 90.0) < 3.0
+    assert shape["warning"] and any("elliptical" in n for n in res.summary["notes"])
+    # the Fourier estimate agrees (two independent measurements of one distortion)
+    assert res.summary["fourier"]["distortion"]["axis_ratio"] == pytest.approx(shape["axis_ratio"], abs=0.003)
+
+
+def test_ring_shape_of_undistorted_sample(high_dose):
+    result, _ = high_dose
+    shape = result.summary["motifs"]["ring_shape"]
+    assert shape["axis_ratio"] < 1.002 and not shape["warning"]
