@@ -744,34 +744,41 @@ def find_motifs(
     cc, cr = _triangle_centres(xy, tree, scan_sel)
 
     report(progress, 0.1, "motifs: ring radius")
-    if radius_px is None:
+    if radius_px is not None:
+        r = float(radius_px)
+        info["radius_source"] = "given"
+    else:
         scan_c = np.concatenate([xy, cc[(cr > 0.5 * d_nn) & (cr < 7 * d_nn)]])
         r, scan = _scan_radius(xy, tree, scan_c, order=order, tol=radius_tolerance, min_members=min_members,
                                psi_min=psi_min, d_nn=d_nn, rng=gen)
         info["radius_scan"] = scan
+        failed = (f"ring-shell scan found no radius with regular {order}-membered shells "
+                  f"(best trial held {scan.get('best_count', 0)})")
+        if r is None and not pentagons:
+            return _nothing(failed + "; no motifs reported")
         if r is None:
-            return _nothing(f"ring-shell scan found no radius with regular {order}-membered shells "
-                            f"(best trial held {scan.get('best_count', 0)}); no motifs reported")
-        info["radius_source"] = (f"automatic: ring-shell scan of {scan['trial_radii']} radii "
-                                 f"{scan['scan_range_px'][0]:.3g}-{scan['scan_range_px'][1]:.3g} px on "
-                                 f"{scan['sample_centres']} sample centres; most regular {order}-fold shells at "
-                                 f"{scan['best_trial_px']:.4g} px, median member distance {r:.4g} px")
-    else:
-        r = float(radius_px)
-        info["radius_source"] = "given"
-    info["radius_px"] = float(r)
-    info["radius_nm"] = float(r * pixel_size_nm) if pixel_size_nm else None
+            # no rings, but pentagons may stand on their own (e.g. an icosahedral phase down a five-fold axis)
+            info["radius_source"] = f"automatic (failed): {failed}; free pentagons searched only"
+        else:
+            info["radius_source"] = (f"automatic: ring-shell scan of {scan['trial_radii']} radii "
+                                     f"{scan['scan_range_px'][0]:.3g}-{scan['scan_range_px'][1]:.3g} px on "
+                                     f"{scan['sample_centres']} sample centres; most regular {order}-fold shells "
+                                     f"at {scan['best_trial_px']:.4g} px, median member distance {r:.4g} px")
+    info["radius_px"] = float(r) if r is not None else None
+    info["radius_nm"] = float(r * pixel_size_nm) if (pixel_size_nm and r is not None) else None
 
     report(progress, 0.3, "motifs: ring search")
     tol = radius_tolerance
-    edge = 2 * r * np.sin(np.pi / order)
-    cand = np.concatenate([xy, _ring_candidates(xy, tree, r, tol, order)])
-    rings = ring_search(xy, tree, cand, order=order, radius_px=r, radius_tolerance=tol,
-                        min_members=min_members, psi_min=psi_min)
+    if r is not None:
+        cand = np.concatenate([xy, _ring_candidates(xy, tree, r, tol, order)])
+        rings = ring_search(xy, tree, cand, order=order, radius_px=r, radius_tolerance=tol,
+                            min_members=min_members, psi_min=psi_min)
+    else:
+        rings = _empty_search(order)
     kind = f"ring{order}"
     tables = []
     ring_df = _rows(xy, ids, species, region, rings, n=order, kind=kind, pixel_size_nm=pixel_size_nm)
-    ring_df["score"] = _score(rings["psi"], ring_df["completeness"].to_numpy(), rings["rms"], tol * r)
+    ring_df["score"] = _score(rings["psi"], ring_df["completeness"].to_numpy(), rings["rms"], tol * (r or 1.0))
     ring_df["overlaps"] = _overlaps(rings["slots"], len(xy))
     shape_info, ring_df["axis_ratio"] = ring_shape(xy, rings["cx"], rings["cy"], rings["slots"], rng=gen)
     info["ring_shape"] = shape_info
@@ -809,9 +816,9 @@ def find_motifs(
             tables.append(pdf)
 
     out = pd.concat([t for t in tables if len(t)], ignore_index=True) if any(len(t) for t in tables) else None
+    at = f"at radius {r:.4g} px" if r is not None else "(no ring radius found)"
     if out is None:
-        return _nothing(f"no {kind} motifs at radius {r:.4g} px (tolerance {tol:.2f}); "
-                        f"no motifs reported")
+        return _nothing(f"no {kind} motifs {at} (tolerance {tol:.2f}); no motifs reported")
     out["motif_id"] = np.arange(len(out), dtype=np.int64)
     is_p = (out["kind"] == "pentagon").to_numpy() & (out["parent_ring"].to_numpy() >= 0)
     out.loc[is_p, "parent_ring"] = out["motif_id"].to_numpy()[:len(ring_df)][out.loc[is_p, "parent_ring"].to_numpy()]
@@ -830,7 +837,7 @@ def find_motifs(
     out = conform(out, MOTIFS)
     _set_counts(info, out, order)
     if info["counts"].get(kind, 0) == 0:
-        info["message"] = f"no {kind} motifs at radius {r:.4g} px (tolerance {tol:.2f})"
+        info["message"] = f"no {kind} motifs {at} (tolerance {tol:.2f})"
     from .tiling import orientation_domains
 
     rr = out[out["kind"] == kind]

@@ -242,6 +242,13 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     d0 = _length_px(params, "d0", ps)
     ladders, peaks, l_info = [], [], {}
     rings = motifs[motifs["kind"].str.startswith("ring")] if len(motifs) else motifs
+    # the clusters are the rings; without rings, free-standing pentagons (five-fold views) take their place
+    vertex_kind = "ring"
+    if len(rings) < 3 and len(motifs):
+        free = motifs[(motifs["kind"] == "pentagon") & (motifs["parent_ring"] < 0)]
+        if len(free) >= 3:
+            rings, vertex_kind = free, "pentagon"
+    result.summary["cluster_vertices"] = vertex_kind
     sets = [("columns", ok["x_px"].to_numpy(), ok["y_px"].to_numpy(), d0)]
     if len(rings) >= 3:
         sets.append(("centres", rings["centre_x_px"].to_numpy(), rings["centre_y_px"].to_numpy(), None))
@@ -268,7 +275,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
         motifs, edge_px=_length_px(params, "tiling_edge", ps), pixel_size_nm=ps,
-        progress=sub_progress(progress, 0.75, 1.0),
+        progress=sub_progress(progress, 0.75, 1.0), vertex_kind=vertex_kind,
     )
     result.tables["network"] = network
     result.tables["tiles"] = tiles

@@ -250,13 +250,15 @@ def build_network(
     edge_tolerance: float = 0.1,
     pixel_size_nm: float | None = None,
     progress: ProgressCallback | None = None,
+    vertex_kind: str = "ring",
 ) -> tuple[pd.DataFrame, pd.DataFrame, dict]:
     """Link ring-motif centres into the cluster network, enumerate its faces and classify the tiles.
 
     Parameters
     ----------
     motifs : DataFrame
-        Motifs table (``_schema.MOTIFS``); rows whose ``kind`` starts with 'ring' are the vertices.
+        Motifs table (``_schema.MOTIFS``); rows whose ``kind`` starts with ``vertex_kind`` ('ring' by default;
+        'pentagon' for free-standing pentagonal clusters) are the vertices.
     edge_px : float, optional
         Tiling edge length in px; default automatic (see the module notes; the info says which peak and why).
     edge_tolerance : float
@@ -295,7 +297,9 @@ def build_network(
     need = [c for c in ("motif_id", "kind", "centre_x_px", "centre_y_px") if c not in motifs.columns]
     if need:
         raise TenfoldInputError(f"build_network: motifs table lacks {need}; pass the table from find_motifs")
-    rings = motifs[motifs["kind"].astype(str).str.startswith("ring")]
+    rings = motifs[motifs["kind"].astype(str).str.startswith(vertex_kind)]
+    if vertex_kind == "pentagon" and "parent_ring" in rings:
+        rings = rings[rings["parent_ring"] < 0]  # pentagons inside a ring are not clusters of their own
     xy = rings[["centre_x_px", "centre_y_px"]].to_numpy(dtype=float)
     ok = np.isfinite(xy).all(axis=1)
     rings, xy = rings[ok], xy[ok]
@@ -317,7 +321,7 @@ def build_network(
         return net, empty_table(TILES), info
 
     if len(xy) < 4:
-        return _empty(f"too few ring centres ({len(xy)}) for a cluster network (need at least 4)")
+        return _empty(f"too few {vertex_kind} centres ({len(xy)}) for a cluster network (need at least 4)")
     if np.linalg.matrix_rank(xy - xy.mean(axis=0), tol=1e-9 * max(np.ptp(xy), 1.0)) < 2:
         return _empty("ring centres are collinear: no planar network")
     report(progress, 0.0, "tiling: edge length")

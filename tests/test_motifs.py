@@ -347,3 +347,28 @@ def test_progress_and_cancel():
     assert seen[0] == 0.0 and seen[-1] == 1.0 and seen == sorted(seen)
     with pytest.raises(Cancelled):
         find_motifs(cols, progress=lambda f, msg: f < 0.2)
+
+
+def test_free_pentagons_are_found_on_their_own():
+    # Isolated regular pentagons (no ring around them) on a Penrose vertex set: five columns at circumradius R,
+    # edge 2 R sin 36 deg, diagonal / edge = tau (Euclid, Elements XIII.8); orientation arg(psi_5)/5 = 10 deg.
+    g = np.random.default_rng(7)
+    t = pentagrid_tiling(8.0, rng=g).scaled(EDGE_NM / PX_NM)
+    v = t.vertices - t.vertices.min(axis=0) + 40.0
+    r = 0.35 / PX_NM
+    a = np.deg2rad(10.0 + 72.0 * np.arange(5))
+    pts = (v[:, None, :] + r * np.stack([np.cos(a), np.sin(a)], axis=-1)[None]).reshape(-1, 2)
+    pts = pts + g.normal(0.0, JITTER_NM / PX_NM, pts.shape)
+    cols = pd.DataFrame({"id": np.arange(len(pts)), "x_px": pts[:, 0], "y_px": pts[:, 1],
+                         "species": np.zeros(len(pts), np.int64), "region": np.zeros(len(pts), np.int64)})
+    motifs, info = find_motifs(cols, pixel_size_nm=PX_NM)
+    free = motifs[(motifs["kind"] == "pentagon") & (motifs["parent_ring"] == -1)]
+    assert info["counts"].get("ring10", 0) == 0
+    found = free[["centre_x_px", "centre_y_px"]].to_numpy()
+    d, _ = cKDTree(v).query(found)
+    recall = np.mean(cKDTree(found).query(v)[0] < 2.0) if len(found) else 0.0
+    assert recall >= 0.98 and np.mean(d < 2.0) >= 0.98
+    assert free["diag_edge_ratio"].median() == pytest.approx(TAU, rel=0.01)
+    assert free["radius_nm"].median() == pytest.approx(0.35, rel=0.01)
+    err = (free["orientation_deg"].to_numpy() - 10.0 + 36.0) % 72.0 - 36.0
+    assert np.median(np.abs(err)) < 1.0

@@ -120,3 +120,28 @@ def test_regions_of_a_large_image_are_analysed_in_their_box_and_shifted_back():
     np.testing.assert_allclose(cols["x_nm"], cols["x_px"] * mg.meta.pixel_size_nm)
     assert res.summary["analysed_box_px"]["row0"] == 500 - 24
     assert list(res.meta.shape) == list(mg.data.shape) and res.image.shape == mg.data.shape
+
+
+def test_pentagonal_clusters_without_rings_make_the_network():
+    # five-fold view: only free-standing regular pentagons on the vertices of a Penrose tiling (de Bruijn 1981);
+    # the clusters are then the pentagons, and the tiling of their centres is a rhombus tiling again
+    from tenfold.analysis._image import ImageMeta
+    from tenfold.analysis._pentagrid import pentagrid_tiling
+    from tenfold.analysis._result import AnalysisResult
+    from tenfold.analysis._schema import COLUMNS, empty_table
+
+    g = np.random.default_rng(7)
+    t = pentagrid_tiling(8.0, rng=g).scaled(2.0 / 0.04)
+    v = t.vertices - t.vertices.min(axis=0) + 40.0
+    a = np.deg2rad(10.0 + 72.0 * np.arange(5))
+    pts = (v[:, None, :] + 8.75 * np.stack([np.cos(a), np.sin(a)], axis=-1)[None]).reshape(-1, 2)
+    pts = pts + g.normal(0.0, 0.25, pts.shape)
+    cols = pd.DataFrame({"x_px": pts[:, 0], "y_px": pts[:, 1]})
+    base = AnalysisResult(meta=ImageMeta(pixel_size_nm=0.04), parameters=Parameters(fourier=False).to_dict(),
+                          tables={"columns": empty_table(COLUMNS)})
+    new = rerun_from_columns(base, cols)
+    assert new.summary["cluster_vertices"] == "pentagon"
+    assert (new.tables["motifs"]["kind"] == "pentagon").sum() >= 0.98 * len(v)
+    tiles = new.tables["tiles"].set_index("tile")["count"]
+    assert tiles.get("thick_rhombus", 0) > 0 and tiles.get("thin_rhombus", 0) > 0
+    assert new.summary["tiling"]["edge_nm"] == pytest.approx(2.0, rel=0.01)
