@@ -546,7 +546,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     report(progress, 0.3, f"refining {xs.size} columns")
     t0 = time.perf_counter()
     fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
-                         neighbour_passes=1, noise_sd=noise_sd, progress=sub_progress(progress, 0.3, 0.85))
+                         neighbour_passes=1, progress=sub_progress(progress, 0.3, 0.85))
     auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
     t_refine = time.perf_counter() - t0
     fit["z_detect"] = z_cand

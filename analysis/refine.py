@@ -39,7 +39,7 @@ _OK, _DIVERGED, _EDGE, _MASKED, _FIXED = 0, 1, 2, 3, 4
 _SQRT2 = math.sqrt(2.0)
 _SQRT_PI_2 = math.sqrt(math.pi / 2.0)
 #: number of values the kernel writes per column.
-_NOUT = 17
+_NOUT = 15
 
 
 @njit(cache=True, inline="always")
@@ -170,70 +170,12 @@ def _solve5(a, rhs, out):
     return True
 
 
-@njit(cache=True)
-def _matched_amplitude(d, msk, off, nx, ny, u0, v0, x, y, s, counts, noise_var, gx, dgx, dsx, gy, dgy, dsy,
-                       b_fix=np.nan):
-    """Matched filter with a local background: amplitude A of a fixed Gaussian (x, y, s) plus constant B.
-
-    Weighted linear least squares for (A, B) on the patch with the neighbours' model ``off`` held fixed. With
-    ``noise_var > 0`` the pixels are weighted equally and var(A) = noise_var (J^T J)^-1_AA; otherwise the Poisson
-    variance of the model is used (two reweighting steps, w = 1 / max(m, 1)) and var(A) = (J^T W J)^-1_AA, the
-    inverse Fisher information. With a finite ``b_fix`` the background is held at that value (one parameter:
-    a free background on a patch a few sigma wide nearly doubles sigma_A). Returns (A, sigma_A); NaN when the
-    patch cannot support the fit.
-    """
-    _profile(u0, nx, x, s, gx, dgx, dsx)
-    _profile(v0, ny, y, s, gy, dgy, dsy)
-    a = 0.0
-    b = 0.0
-    var_a = np.nan
-    n_rounds = 1 if noise_var > 0 else 3
-    for rnd in range(n_rounds):
-        sgg = 0.0
-        sg = 0.0
-        s1 = 0.0
-        sgd = 0.0
-        sd = 0.0
-        for r in range(ny):
-            for c in range(nx):
-                kk = r * nx + c
-                if msk[kk]:
-                    gg = gx[c] * gy[r]
-                    w = 1.0
-                    if rnd > 0:
-                        m = b + a * gg + off[kk]
-                        w = 1.0 / (m if m > 1.0 else 1.0)
-                    dd = d[kk] - off[kk]
-                    sgg += w * gg * gg
-                    sg += w * gg
-                    s1 += w
-                    sgd += w * gg * dd
-                    sd += w * dd
-        if math.isfinite(b_fix):
-            if not sgg > 0:
-                return np.nan, np.nan
-            b = b_fix
-            a = (sgd - b * sg) / sgg
-            var_a = 1.0 / sgg
-            continue
-        det = sgg * s1 - sg * sg
-        if not det > 0:
-            return np.nan, np.nan
-        a = (s1 * sgd - sg * sd) / det
-        b = (sgg * sd - sg * sgd) / det
-        var_a = s1 / det
-    if noise_var > 0:
-        var_a *= noise_var
-    return a, math.sqrt(var_a)
-
-
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
 def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, s_ref, noise_var, b_fix, out):
+             start, out):
     """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``.
 
-    ``start[k]`` (x, y, s, A, B), when finite, is a warm start (a previous pass); ``n_iter = 0`` skips the fit and
-    only evaluates the matched-filter amplitude (width ``s_ref``) at ``(x0, y0)``.
+    ``start[k]`` (x, y, s, A, B), when finite, is a warm start (a previous pass).
     """
     n = x0.shape[0]
     h, w = img.shape
@@ -303,13 +245,6 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         tj = np.empty((5, 5))
         tr = np.empty(5)
         damp = np.empty((5, 5))
-        if n_iter == 0:
-            a_m, sa_m = _matched_amplitude(d, msk, off, nx, ny, u0, v0, xi, yi, s_ref, counts, noise_var, gx, dgx,
-                                           dsx, gy, dgy, dsy, b_fix[k])
-            out[k, 15] = a_m
-            out[k, 16] = sa_m
-            out[k, 8] = _OK
-            continue
         p[0] = xi
         p[1] = yi
         p[2] = s0
@@ -422,11 +357,6 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         out[k, 12] = xi
         out[k, 13] = yi
         out[k, 14] = math.sqrt(va * scale) if oka and va > 0 else np.nan
-        if math.isfinite(p[0]) and math.isfinite(p[1]):
-            a_m, sa_m = _matched_amplitude(d, msk, off, nx, ny, u0, v0, p[0], p[1], s_ref, counts, noise_var, gx,
-                                           dgx, dsx, gy, dgy, dsy)
-            out[k, 15] = a_m
-            out[k, 16] = sa_m
         status = _OK
         if not (math.isfinite(p[0]) and math.isfinite(p[1]) and math.isfinite(p[2]) and math.isfinite(p[3])):
             status = _DIVERGED
@@ -451,19 +381,14 @@ def warm_up() -> float:
     return time.perf_counter() - t0
 
 
-def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
-         s_ref=None, noise_var=0.0, b_fix=None):
+def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None):
     n = x0.shape[0]
     out = np.empty((n, _NOUT))
     touch2 = (2.0 * s0 + 0.5) ** 2
     if start is None:
         start = np.full((max(n, 1), 5), np.nan)
-    if b_fix is None:
-        b_fix = np.full(max(n, 1), np.nan)
     _fit_all(img, valid, x0, y0, float(s0), int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
-             float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64),
-             float(s0 if s_ref is None else s_ref), float(noise_var),
-             np.ascontiguousarray(b_fix, dtype=np.float64), out)
+             float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out)
     return out
 
 
@@ -510,7 +435,7 @@ def _neighbours(out, rad, s_hi):
 
 
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
-                   neighbour_passes=1, max_shift_px=None, noise_sd=None, fixed_width_fallback=True,
+                   neighbour_passes=1, max_shift_px=None, fixed_width_fallback=True,
                    progress=None) -> pd.DataFrame:
     """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
 
@@ -539,9 +464,6 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     max_shift_px : float, optional
         A fit that moves farther than this from its start (per axis) is 'diverged'. Default: the patch radius
         (about half the column spacing).
-    noise_sd : float, optional
-        Per-pixel noise standard deviation of a non-count image (``counts=False``), used for the matched-filter
-        significance; without it that significance is NaN for non-count images.
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
 
@@ -550,9 +472,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     DataFrame
         One row per input position, in input order: ``x_px, y_px, sigma_px, amplitude, background, intensity,
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
-        ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``, ``n_pixels``, ``n_iter``, and ``mf_amplitude``, ``mf_amplitude_err``: the matched-filter
-        amplitude at the fitted position with the width fixed at ``sigma_px`` and the neighbours subtracted
-        (the kernel's ``_matched_amplitude``).
+        ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``,
+        ``n_pixels``, ``n_iter``.
         Fit columns are NaN unless ``fit_status`` is 'ok' or 'fixed_width'.
 
     Notes
@@ -575,11 +496,6 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2) if np.size(xy_px) else np.zeros((0, 2))
     if not (np.isfinite(sigma_px) and sigma_px > 0):
         raise TenfoldInputError(f"refine_columns: sigma_px must be a positive number, got {sigma_px!r}")
-    nvar = 0.0
-    if not counts and noise_sd is not None:
-        if not (np.isfinite(noise_sd) and noise_sd > 0):
-            raise TenfoldInputError(f"refine_columns: noise_sd must be a positive number, got {noise_sd!r}")
-        nvar = float(noise_sd) ** 2
     s0 = float(sigma_px)
     n = xy.shape[0]
     if patch_radius_px is None:
@@ -598,7 +514,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     x0 = np.ascontiguousarray(xy[:, 0])
     y0 = np.ascontiguousarray(xy[:, 1])
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
-               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), noise_var=nvar)
+               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)))
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), "refitting with neighbours subtracted")
         ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
@@ -609,7 +525,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         start = np.where((first[:, 8] == _OK)[:, None], first[:, :5], np.nan)
         # warm-started: the neighbours' models only nudge a converged fit, a few steps suffice
         out = _run(img, vmask, x0, y0, s0, rad, counts, min(n_iter, 6), max_shift, 0.25 * s0, 4.0 * s0, ptr, idx,
-                   par, start=start, noise_var=nvar)
+                   par, start=start)
         out[:, 10] += first[:, 10]
     # Low-signal columns whose five-parameter fit wandered get a fixed-width fit (sigma = median of the good
     # fits: every column is imaged by the same probe); they are marked 'fixed_width' so the user can tell.
@@ -625,7 +541,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         pos = np.repeat(ptr[redo] - sub_ptr[:-1], counts_nb) + np.arange(sub_ptr[-1])
         sub_idx = idx[pos] if idx.size else np.zeros(0, np.int64)
         again = _run(img, vmask, x0[redo], y0[redo], s_med, rad, counts, n_iter, max_shift, s_med, s_med, sub_ptr,
-                     sub_idx.astype(np.int64), par, noise_var=nvar)
+                     sub_idx.astype(np.int64), par)
         fixed = again[:, 8] == _OK
         again[fixed, 8] = _FIXED
         out[redo[fixed]] = again[fixed]
@@ -657,6 +573,4 @@ def _columns_out(out, x0, y0) -> pd.DataFrame:
         "y_init_px": y0,
         "n_pixels": np.nan_to_num(out[:, 9]).astype(np.int64),
         "n_iter": np.nan_to_num(out[:, 10]).astype(np.int64),
-        "mf_amplitude": np.where(ok, out[:, 15], np.nan),
-        "mf_amplitude_err": np.where(ok, out[:, 16], np.nan),
     })
