@@ -421,182 +421,57 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     >>> cols, info = find_columns(img, pixel_size_nm=0.04)  # doctest: +SKIP
     """
     t_start = time.perf_counter()
-    img = np.asarray(image)
-    if img.ndim != 2:
-        raise TenfoldInputError(f"find_columns: image must be 2-D, got shape {img.shape}; pass a single frame")
-    if img.size == 0:
-        raise TenfoldInputError("find_columns: image is empty")
-    if not (np.issubdtype(img.dtype, np.number) and not np.iscomplexobj(img)):
-        raise TenfoldInputError(f"find_columns: image dtype {img.dtype} is not real-valued numbers")
-    ok = np.isfinite(img)
-    if valid is not None:
-        v = np.asarray(valid, dtype=bool)
-        if v.shape != img.shape:
-            raise TenfoldInputError(f"find_columns: valid mask shape {v.shape} differs from image {img.shape}")
-        ok &= v
-    if ok.sum() < 16:
-        raise TenfoldInputError("find_columns: fewer than 16 valid pixels; nothing to analyse")
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"pixel_size_nm={pixel_size_nm!r} must be a positive number or None")
-    lengths = {}
-    for what, nm, px in (("diameter", column_diameter_nm, column_diameter_px),
-                         ("spacing", column_spacing_nm, column_spacing_px)):
-        if nm is not None and px is not None:
-            raise TenfoldInputError(f"column_{what}: give it in nm or in px, not both")
-        val, unit = (nm, "nm") if nm is not None else (px, "px")
-        if val is None:
-            continue
-        if not (np.isfinite(val) and val > 0):
-            raise TenfoldInputError(f"column_{what}_{unit}={val!r} must be a positive number")
-        if unit == "nm" and pixel_size_nm is None:
-            raise TenfoldInputError(f"column_{what}_nm={val} is in nm but the image has no pixel size; give the pixel "
-                                    f"size, or column_{what}_px instead")
-        lengths[what] = (float(val) / pixel_size_nm if unit == "nm" else float(val), f"given (column_{what}_{unit})")
+    img, ok, lengths = _check_inputs(image, valid, pixel_size_nm, column_diameter_nm, column_spacing_nm,
+                                     column_diameter_px, column_spacing_px)
     notes: list[str] = []
     data = np.where(ok, img, np.median(img[ok][::7]) if not ok.all() else 0.0).astype(np.float64)
-    counts_like = bool(np.all(data[ok] >= 0) and np.all(np.mod(data[ok], 1.0) == 0))
-    work = (data.max() - data) if dark_columns else data
     report(progress, 0.0, "column scale")
-
     auto: dict = {}
-    need_scale = len(lengths) < 2
-    est = estimate_scale(data, valid=ok, dark_columns=dark_columns) if need_scale else None
-    if "spacing" in lengths:
-        spacing, how = lengths["spacing"]
-    else:
-        spacing, how = est.spacing_px, est.spacing_method
-    auto["spacing"] = {"value_px": spacing, "how": how}
-    if "diameter" in lengths:
-        sigma, how = lengths["diameter"][0] / 4.5, lengths["diameter"][1] + " / 4.5"
-    else:
-        sigma, how = est.sigma_px, est.sigma_method
-    auto["sigma"] = {"value_px": sigma, "how": how}
-    if est is not None:
-        auto["scale_details"] = est.details
-    if not (sigma > 0.3 and spacing > 2 * sigma * 0.9):
-        raise TenfoldInputError(f"find_columns: column width {sigma:.2f} px and spacing {spacing:.2f} px are not "
-                                "usable (need sigma > 0.3 px and spacing > 1.8 sigma); check the column diameter / spacing overrides")
-
-    skew = polarity_skewness(work, ok, spacing_px=spacing)
-    polarity = {"skewness": skew, "dark_columns": bool(dark_columns), "looks_wrong": bool(skew < -0.1)}
-    if polarity["looks_wrong"]:
-        msg = (f"find_columns: dark_columns={dark_columns} looks wrong for this image (skewness of the analysed "
-               f"image {skew:.2f} < 0, i.e. the columns seem {'bright' if dark_columns else 'dark'}); "
-               f"try dark_columns={not dark_columns}")
-        warnings.warn(msg, TenfoldWarning, stacklevel=2)
-        notes.append(msg)
-
-    detect = work
-    if flatten:
-        blur = _smooth_surface(work, ok, 3.0 * spacing)
-        detect = work - blur
-        auto["flatten"] = {"model": "quadratic surface + Gaussian blur of the rest", "gaussian_sigma_px": 3.0 * spacing,
-                           "used_for": "detection only"}
-    diameter = int(math.ceil(4.5 * sigma))
-    diameter += 1 - diameter % 2
-    diameter = max(diameter, 3)
-    separation = max(0.5 * spacing, 1.5)
-    auto["trackpy"] = {"diameter_px": diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
-                       "separation_px": separation, "separation_how": "0.5 x spacing", "percentile": 0,
-                       "max_iterations": 1, "engine": "numba"}
-    report(progress, 0.1, "detecting columns (trackpy)")
-    t0 = time.perf_counter()
-    fit_counts = counts_like and not dark_columns
-    noise_sd = None if counts_like else pixel_noise_sd(work, ok)
-    if not counts_like and not (noise_sd and noise_sd > 0):
-        noise_sd = float(np.std(work[ok])) or 1.0
-    # one significance map serves detection (its Gaussian-filtered image) and the cut
-    # recorded counts = offset + sign * detect (inversion and flattening undone), for the Poisson variance
-    offset = (data.max() if dark_columns else 0.0) + (blur if flatten else 0.0) * (-1.0 if dark_columns else 1.0)
-    field = significance_map(detect, ok, sigma_px=sigma, spacing_px=spacing, counts=counts_like,
-                                     noise_sd=noise_sd, count_offset=offset, count_sign=-1.0 if dark_columns else 1.0)
-    # Candidates: trackpy on the scale-normalised Laplacian of Gaussian (the blob detector; Lindeberg 1998): a dim
-    # column on the flank of a bright neighbour is a maximum there, while in the plain smoothed image it is only a
-    # shoulder.
-    # (the discrete Laplacian of the already smoothed image: the same operator, a third of the work)
-    blob = -ndimage.laplace(field.smooth) * np.float32(sigma**2)
-    xs, ys, _, n_raw = _locate(blob, ok, diameter, separation)
-    # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
-    # noise minima come at about the density of noise maxima
-    side = 2 * max(int(round(separation * math.sqrt(math.pi) / 2.0)), 1) + 1
-    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
-    del blob
-    counts_tab = {"trackpy_maxima": n_raw}
-    z_cand = field.z(ys, xs)
-    area = float(ok.sum())
-    z_rft = false_alarm_threshold(area, sigma)
-    mr, mc = np.nonzero(mins)
-    z_cut, cut_info = mirror_threshold(z_cand, -field.z(mr.astype(np.float64), mc.astype(np.float64)), z_max=z_rft)
-    del mins
-    sig = z_cand >= z_cut
-    xs, ys, z_cand = xs[sig], ys[sig], z_cand[sig]
-    counts_tab["after_significance"] = int(xs.size)
-    t_detect = time.perf_counter() - t0
-    auto["significance"] = {
-        **cut_info,
-        "noise": "Poisson variance of the smoothed raw counts" if counts_like else
-                 f"per-pixel sd {noise_sd:.4g} (MAD of neighbour differences)",
-        "how": "matched filter (Gaussian of the column width over a masked smooth background) divided by its "
-               "standard error; cut = lowest level where mirrored noise minima allow 0.1 % false detections, "
-               "between 3.5 sigma and the random-field threshold for the image area",
-    }
-    rad = int(min(max(round(0.6 * spacing), math.ceil(2.5 * sigma)), math.ceil(3.0 * sigma)))
+    sigma, spacing, est = _resolve_scale(data, ok, lengths, dark_columns, auto)
+    work = (data.max() - data) if dark_columns else data
+    polarity = _check_polarity(work, ok, spacing, dark_columns, notes)
+    noise = _initial_noise_model(data, ok, dark_columns)
     t_compile = warm_up()
-
-    report(progress, 0.3, f"refining {xs.size} columns")
-    t0 = time.perf_counter()
-    fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
-                         neighbour_passes=1, progress=sub_progress(progress, 0.3, 0.85))
-    auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
-    t_refine = time.perf_counter() - t0
-    fit["z_detect"] = z_cand
-    status = fit["fit_status"].value_counts().to_dict()
-    counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
-    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy().copy()
-    # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
-    # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
-    # A fit that slid more than half a spacing off its candidate has found some other column (or a
-    # background bump): the candidate's significance no longer describes it.
-    slid = np.hypot(fit["x_px"].to_numpy() - xs, fit["y_px"].to_numpy() - ys) > max(1.5, 0.5 * spacing)
-    good &= ~slid
-    counts_tab["slid_off_candidate"] = int(slid.sum())
-    sd_cand = field.sd(ys, xs)
-    del field
-    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
-    fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
-    counts_tab["after_neighbour_significance"] = int(len(fit))
-    # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or
-    # wider than the common width is a noise spike or a background bump (common practice: 0.5-2 x the median
-    # width). Faint columns are exempt: their fitted widths scatter widely by noise alone.
-    if len(fit) >= 5:
-        ratio = fit["sigma_px"].to_numpy() / np.nanmedian(fit["sigma_px"].to_numpy())
-        odd = (fit["snr"].to_numpy() > 10.0) & ((ratio < WIDTH_RANGE[0]) | (ratio > WIDTH_RANGE[1]))
-        fit = fit[~odd].copy()
-        auto["width_range"] = {"relative_to_median": list(WIDTH_RANGE), "applies_above_z": 10.0,
-                               "how": "common practice"}
-    counts_tab["after_width"] = int(len(fit))
-    # duplicates: candidates that converged on the same column
-    if len(fit) > 1:
-        xy = fit[["x_px", "y_px"]].to_numpy()
-        pairs = cKDTree(xy).query_pairs(max(1.0, sigma, 0.4 * spacing), output_type="ndarray")
-        if pairs.size:
-            snr = fit["snr"].to_numpy()
-            lose = np.where(snr[pairs[:, 0]] < snr[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
-            fit = fit.drop(fit.index[np.unique(lose)])
-    counts_tab["after_duplicates"] = int(len(fit))
+    rounds = []
+    for rnd in range(MAX_SCALE_ROUNDS):
+        span = (0.05 + 0.85 * rnd / MAX_SCALE_ROUNDS, 0.05 + 0.85 * (rnd + 1) / MAX_SCALE_ROUNDS)
+        fit, counts_tab, detail = _one_round(data, ok, sigma, spacing, noise, dark_columns=dark_columns,
+                                             flatten=flatten, progress=sub_progress(progress, *span))
+        meas = _measured_scale(fit)
+        new_noise = noise_model(fit, noise, dark_columns=dark_columns)
+        rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"],
+                       "n_columns": int(len(fit)), "measured": meas, "noise_check": new_noise["check"]})
+        change = {}
+        if "diameter" not in lengths and meas["sigma_px"] and abs(meas["sigma_px"] / sigma - 1) > SCALE_TOLERANCE:
+            change["sigma"] = meas["sigma_px"]
+        if "spacing" not in lengths and meas["spacing_px"] and abs(meas["spacing_px"] / spacing - 1) > SCALE_TOLERANCE:
+            change["spacing"] = meas["spacing_px"]
+        if new_noise["model"] != noise["model"] or abs(new_noise.get("gain", 1.0) / noise.get("gain", 1.0) - 1) > 0.2:
+            change["noise"] = new_noise["model"]
+        if not change or rnd == MAX_SCALE_ROUNDS - 1:
+            break
+        sigma = change.get("sigma", sigma)
+        spacing = change.get("spacing", spacing)
+        if "noise" in change:
+            noise = new_noise
+        rounds[-1]["changed"] = {k: (v if isinstance(v, str) else float(v)) for k, v in change.items()}
+    auto["sigma"]["value_px"], auto["spacing"]["value_px"] = sigma, spacing
+    if len(rounds) > 1:
+        for key in ("sigma", "spacing"):
+            if any(key in r.get("changed", {}) for r in rounds):
+                auto[key]["how"] += (f"; re-measured from the refined columns ({'median width of well-measured fits' if key == 'sigma' else 'median nearest-neighbour distance'}) "
+                                     f"and detection repeated")
+    auto["rounds"] = rounds
+    auto["noise_model"] = noise
+    auto.update(detail["auto"])
     if min_mass is not None:
         fit = fit[fit["intensity"].to_numpy() >= float(min_mass)]
         counts_tab["after_min_mass"] = int(len(fit))
+    fit = _keep_in_regions(fit, regions, counts_tab)
     if dark_columns:
         # back to image units: the fitted background was measured on the inverted image
         fit["background"] = data.max() - fit["background"]
-    region = np.zeros(len(fit), dtype=np.int64)
-    if regions:
-        region = label_points(fit["x_px"].to_numpy(), fit["y_px"].to_numpy(), regions)
-        fit = fit[region > 0].copy()
-        region = region[region > 0]
-        counts_tab["after_regions"] = int(len(fit))
-    fit["region"] = region
+    _check_spacing_used(fit, spacing, auto, notes)
     fit = fit.sort_values(["y_px", "x_px"], kind="stable").reset_index(drop=True)
     fit["id"] = np.arange(len(fit), dtype=np.int64)
     ps = np.nan if pixel_size_nm is None else float(pixel_size_nm)
@@ -620,15 +495,18 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         "counts": counts_tab,
         "refinement": {
             "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt",
-            "weighting": "Poisson 1/max(model,1)" if (counts_like and not dark_columns) else "unweighted",
-            "image_is_counts": counts_like,
-            "neighbour_passes": 1,
+            "weighting": "Poisson 1/max(model,1)" if detail["fit_counts"] else "unweighted",
+            "image_is_counts": noise["model"] != "white",
+            "noise_model": noise["model"],
+            "neighbour_passes": detail["neighbour_passes"],
+            "position_error": "inverse Fisher information of the local joint model (column + touching "
+                              "neighbours, all their parameters), see refine.joint_position_errors",
             "median_sigma_px": float(table.loc[ok_fit, "sigma_px"].median()) if ok_fit.any() else None,
             "median_pos_err_px": float(table.loc[ok_fit, "pos_err_px"].median()) if ok_fit.any() else None,
             "median_residual": float(table.loc[ok_fit, "residual"].median()) if ok_fit.any() else None,
             "compile_or_cache_load_s": t_compile,
-            "detect_s": t_detect,
-            "refine_s": t_refine,
+            "detect_s": detail["detect_s"],
+            "refine_s": detail["refine_s"],
         },
         "species": sp_info,
         "calibrated": pixel_size_nm is not None,
@@ -638,6 +516,347 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     }
     report(progress, 1.0, f"{len(table)} columns")
     return table, _json_safe(info)
+
+
+#: The detection and refinement are repeated (at most this many rounds in all) when the width or spacing measured
+#: on the refined columns, or the noise model checked on their residuals, disagrees with what the round used.
+MAX_SCALE_ROUNDS = 3
+#: relative disagreement between the scale used and the scale measured that triggers another round
+SCALE_TOLERANCE = 0.10
+#: the spacing used and the first pair-distance peak of the columns found may differ by this much before a note
+SPACING_CHECK = 0.10
+#: trackpy's minimum separation never exceeds this many column widths: the spacing estimate can be a shoulder
+#: (dim columns beside bright ones are not maxima of the smoothed image), the width cannot
+SEPARATION_SIGMA = 2.5
+#: noise-model check (see noise_model): slope significance, smallest relative rise, and the gain range that
+#: confirms raw counts (the residual variance of crowded fits reads 10-20 % under the level; common practice)
+NOISE_SLOPE_T, NOISE_RISE, GAIN_CONFIRM = 3.0, 0.15, (0.7, 1.4)
+#: Jacobi passes of the neighbour-subtracted refinement (it stops earlier when no column moves by 0.005 px)
+NEIGHBOUR_PASSES = 8
+
+
+def _check_inputs(image, valid, pixel_size_nm, diameter_nm, spacing_nm, diameter_px, spacing_px):
+    """The image as an array, its usable-pixel mask and the length overrides in px (with how each was given)."""
+    img = np.asarray(image)
+    if img.ndim != 2:
+        raise TenfoldInputError(f"find_columns: image must be 2-D, got shape {img.shape}; pass a single frame")
+    if img.size == 0:
+        raise TenfoldInputError("find_columns: image is empty")
+    if not (np.issubdtype(img.dtype, np.number) and not np.iscomplexobj(img)):
+        raise TenfoldInputError(f"find_columns: image dtype {img.dtype} is not real-valued numbers")
+    ok = np.isfinite(img)
+    if valid is not None:
+        v = np.asarray(valid, dtype=bool)
+        if v.shape != img.shape:
+            raise TenfoldInputError(f"find_columns: valid mask shape {v.shape} differs from image {img.shape}")
+        ok &= v
+    if ok.sum() < 16:
+        raise TenfoldInputError("find_columns: fewer than 16 valid pixels; nothing to analyse")
+    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
+        raise TenfoldInputError(f"pixel_size_nm={pixel_size_nm!r} must be a positive number or None")
+    lengths = {}
+    for what, nm, px in (("diameter", diameter_nm, diameter_px), ("spacing", spacing_nm, spacing_px)):
+        if nm is not None and px is not None:
+            raise TenfoldInputError(f"column_{what}: give it in nm or in px, not both")
+        val, unit = (nm, "nm") if nm is not None else (px, "px")
+        if val is None:
+            continue
+        if not (np.isfinite(val) and val > 0):
+            raise TenfoldInputError(f"column_{what}_{unit}={val!r} must be a positive number")
+        if unit == "nm" and pixel_size_nm is None:
+            raise TenfoldInputError(f"column_{what}_nm={val} is in nm but the image has no pixel size; give the pixel "
+                                    f"size, or column_{what}_px instead")
+        lengths[what] = (float(val) / pixel_size_nm if unit == "nm" else float(val), f"given (column_{what}_{unit})")
+    return img, ok, lengths
+
+
+def _resolve_scale(data, ok, lengths, dark_columns, auto):
+    """Starting width and spacing (px): the overrides, else ``estimate_scale``; recorded in ``auto``."""
+    est = estimate_scale(data, valid=ok, dark_columns=dark_columns) if len(lengths) < 2 else None
+    spacing, how = lengths["spacing"] if "spacing" in lengths else (est.spacing_px, est.spacing_method)
+    auto["spacing"] = {"value_px": spacing, "how": how, "start_px": spacing}
+    if "diameter" in lengths:
+        sigma, how = lengths["diameter"][0] / 4.5, lengths["diameter"][1] + " / 4.5"
+    else:
+        sigma, how = est.sigma_px, est.sigma_method
+    auto["sigma"] = {"value_px": sigma, "how": how, "start_px": sigma}
+    if est is not None:
+        auto["scale_details"] = est.details
+    if not (sigma > 0.3 and spacing > 2 * sigma * 0.9):
+        raise TenfoldInputError(f"find_columns: column width {sigma:.2f} px and spacing {spacing:.2f} px are not "
+                                "usable (need sigma > 0.3 px and spacing > 1.8 sigma); check the column diameter / "
+                                "spacing overrides")
+    return sigma, spacing, est
+
+
+def _check_polarity(work, ok, spacing, dark_columns, notes):
+    skew = polarity_skewness(work, ok, spacing_px=spacing)
+    polarity = {"skewness": skew, "dark_columns": bool(dark_columns), "looks_wrong": bool(skew < -0.1)}
+    if polarity["looks_wrong"]:
+        msg = (f"find_columns: dark_columns={dark_columns} looks wrong for this image (skewness of the analysed "
+               f"image {skew:.2f} < 0, i.e. the columns seem {'bright' if dark_columns else 'dark'}); "
+               f"try dark_columns={not dark_columns}")
+        warnings.warn(msg, TenfoldWarning, stacklevel=3)
+        notes.append(msg)
+    return polarity
+
+
+def _initial_noise_model(data, ok, dark_columns):
+    """Noise model for the first round: raw counts if every value is a non-negative whole number, else white.
+
+    This guess is checked after the first round against the fit residuals (``noise_model``): an integer image
+    whose variance does not equal its mean (a contrast-stretched 8-bit export, counts x 1000) is converted to
+    equivalent counts or treated as white noise there.
+    """
+    v = data[ok]
+    counts = bool(np.all(v >= 0) and np.all(np.mod(v, 1.0) == 0)) and not dark_columns
+    return {"model": "counts" if counts else "white", "gain": 1.0, "offset": 0.0,
+            "how": "integer non-negative values: assumed raw counts (checked after the first round)" if counts else
+                   "not raw counts by their values: white noise (checked after the first round)",
+            "check": None}
+
+
+def noise_model(fit: pd.DataFrame, current: dict, *, dark_columns: bool = False) -> dict:
+    """Check the noise model against the fit residuals: variance = gain x (level - offset)?
+
+    For Poisson counts recorded with a gain g and an offset o, the residual variance of each column fit
+    (``(residual x amplitude)^2``) equals ``g (m - o)`` with m the mean data level over its patch; for white noise
+    it does not depend on m. A straight line through (m, variance) of the fitted columns (robust: median in
+    level bins, least squares through the bin medians) decides: when its slope is significant (t above
+    ``NOISE_SLOPE_T``) and the variance rises by more than ``NOISE_RISE`` of its lowest value over the range of
+    levels, the image is treated as scaled counts ``(image - o) / g``; otherwise as white noise. Raw counts are
+    kept when g is within ``GAIN_CONFIRM``.
+
+    Returns
+    -------
+    dict
+        ``model`` ('counts', 'scaled counts' or 'white'), ``gain``, ``offset`` (in the units of the analysed
+        image, i.e. after the first round's conversion), ``check`` (the line and the levels it used), ``how``.
+    """
+    out = dict(current)
+    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy() if len(fit) else np.zeros(0, bool)
+    if dark_columns or good.sum() < 30 or "patch_mean" not in fit:
+        out["check"] = {"skipped": "dark columns (no counts model)" if dark_columns else "too few fitted columns"}
+        return out
+    n_px = fit["n_pixels"].to_numpy(dtype=np.float64)[good]
+    lev = fit["patch_mean"].to_numpy()[good]
+    if current["model"] == "white":
+        var = (fit["residual"].to_numpy()[good] * fit["amplitude"].to_numpy()[good]) ** 2 * n_px / np.maximum(n_px - 5, 1)
+    else:
+        # Poisson-weighted fits: the Pearson chi-square per degree of freedom is the variance / level ratio with
+        # the fit's own leverage taken out (bright columns pull their peak pixels towards the data)
+        var = fit["pearson_chi2"].to_numpy()[good] / np.maximum(n_px - 5, 1) * lev
+        if current["model"] == "scaled counts":  # back to the units of this round's converted image
+            lev = (lev - current["offset"]) / current["gain"]
+            var = var / current["gain"] ** 2
+    fin = np.isfinite(var) & np.isfinite(lev)
+    var, lev = var[fin], lev[fin]
+    if var.size < 30 or np.ptp(lev) <= 0:
+        out["check"] = {"skipped": "no spread of levels"}
+        return out
+    edges = np.quantile(lev, np.linspace(0, 1, 9))
+    b = np.clip(np.searchsorted(edges, lev, side="right") - 1, 0, 7)
+    m_b = np.array([np.median(lev[b == i]) for i in range(8) if (b == i).sum() >= 3])
+    v_b = np.array([np.median(var[b == i]) for i in range(8) if (b == i).sum() >= 3])
+    # the median of a chi-square-like variance sample sits below its mean by a constant factor: it cancels in the
+    # rise test but not in the gain, so the gain is scaled by mean/median of the residual variance overall
+    if m_b.size < 3:
+        out["check"] = {"skipped": "too few distinct levels"}
+        return out
+    (slope, icpt), cov = np.polyfit(m_b, v_b, 1, cov="unscaled") if m_b.size < 4 else np.polyfit(m_b, v_b, 1, cov=True)
+    t_slope = float(slope / math.sqrt(cov[0, 0])) if cov[0, 0] > 0 else float("inf")
+    corr = float(np.mean(var) / np.median(var)) if np.median(var) > 0 else 1.0
+    rise = slope * (m_b.max() - m_b.min()) / max(v_b.min(), 1e-300)
+    check = {"levels": m_b.tolist(), "variances": v_b.tolist(), "slope": float(slope), "intercept": float(icpt),
+             "rise_over_range": float(rise), "slope_t": t_slope}
+    out["check"] = check
+    if slope > 0 and t_slope > NOISE_SLOPE_T and rise > NOISE_RISE:
+        gain = float(slope * corr)
+        offset = float(-icpt / slope)
+        ratio = float(np.median(var / np.maximum(lev, 1e-300)))
+        check["variance_over_level"] = ratio
+        if current["model"] != "white" and GAIN_CONFIRM[0] <= ratio <= GAIN_CONFIRM[1]:
+            out["how"] = current["how"].split(" (checked")[0] + f"; confirmed: residual variance / level = {ratio:.3f}"
+            return out
+        # compose with the conversion already applied in this round
+        g0, o0 = current.get("gain", 1.0), current.get("offset", 0.0)
+        out.update(model="scaled counts", gain=g0 * gain, offset=o0 + g0 * offset,
+                   how=f"residual variance grows with the level: counts = (image - {o0 + g0 * offset:.4g}) / "
+                       f"{g0 * gain:.4g} (gain and offset from the fit residuals)")
+    else:
+        out.update(model="white", gain=1.0, offset=0.0,
+                   how="residual variance does not grow with the level: white noise, unweighted fits")
+    return out
+
+
+def _one_round(data, ok, sigma, spacing, noise, *, dark_columns, flatten, progress):
+    """Detection, significance cut, refinement and pruning at one scale and noise model."""
+    auto: dict = {}
+    if noise["model"] == "scaled counts":
+        data = (data - noise["offset"]) / noise["gain"]
+    counts_like = noise["model"] != "white"
+    work = (data.max() - data) if dark_columns else data
+    detect = work
+    blur = 0.0
+    if flatten:
+        blur = _smooth_surface(work, ok, 3.0 * spacing)
+        detect = work - blur
+        auto["flatten"] = {"model": "quadratic surface + Gaussian blur of the rest", "gaussian_sigma_px": 3.0 * spacing,
+                           "used_for": "detection only"}
+    diameter = int(math.ceil(4.5 * sigma))
+    diameter += 1 - diameter % 2
+    diameter = max(diameter, 3)
+    separation = max(min(0.5 * spacing, SEPARATION_SIGMA * sigma), 1.5)
+    auto["trackpy"] = {"diameter_px": diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
+                       "separation_px": separation,
+                       "separation_how": f"min(0.5 x spacing, {SEPARATION_SIGMA} sigma), at least 1.5 px",
+                       "percentile": 0, "max_iterations": 1, "engine": "numba"}
+    report(progress, 0.05, "detecting columns (trackpy)")
+    t0 = time.perf_counter()
+    fit_counts = counts_like and not dark_columns
+    noise_sd = None if counts_like else pixel_noise_sd(work, ok)
+    if not counts_like and not (noise_sd and noise_sd > 0):
+        noise_sd = float(np.std(work[ok])) or 1.0
+    # recorded counts = offset + sign * detect (inversion and flattening undone), for the Poisson variance
+    offset = (data.max() if dark_columns else 0.0) + blur * (-1.0 if dark_columns else 1.0)
+    field = significance_map(detect, ok, sigma_px=sigma, spacing_px=spacing, counts=counts_like,
+                             noise_sd=noise_sd, count_offset=offset, count_sign=-1.0 if dark_columns else 1.0)
+    xs, ys, z_cand, counts_tab, cut_info = _detect_candidates(field, ok, sigma, diameter, separation)
+    t_detect = time.perf_counter() - t0
+    auto["significance"] = {
+        **cut_info,
+        "noise": "Poisson variance of the smoothed counts" if counts_like else
+                 f"per-pixel sd {noise_sd:.4g} (MAD of neighbour differences)",
+        "how": "matched filter (Gaussian of the column width over a masked smooth background) divided by its "
+               "standard error; cut = lowest level where mirrored noise minima allow 0.1 % false detections, "
+               "between 3.5 sigma and the random-field threshold for the image area",
+    }
+    rad = int(min(max(round(0.6 * spacing), math.ceil(2.5 * sigma)), math.ceil(3.0 * sigma)))
+    auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
+    report(progress, 0.3, f"refining {xs.size} columns")
+    t0 = time.perf_counter()
+    fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
+                         neighbour_passes=NEIGHBOUR_PASSES, joint_errors=True,
+                         progress=sub_progress(progress, 0.3, 0.95))
+    passes = int(fit.attrs.get("neighbour_passes_done", 0))
+    t_refine = time.perf_counter() - t0
+    fit["z_detect"] = z_cand
+    fit = _prune(fit, xs, ys, z_cand, field, sigma, spacing, cut_info["z_cut"], counts_tab, auto)
+    if noise["model"] == "scaled counts":
+        # back to image units: amplitudes, backgrounds and intensities in the units the user recorded
+        for c in ("amplitude", "amplitude_err", "intensity"):
+            fit[c] = fit[c] * noise["gain"]
+        fit["background"] = fit["background"] * noise["gain"] + noise["offset"]
+        fit["patch_mean"] = fit["patch_mean"] * noise["gain"] + noise["offset"]
+        fit["residual"] = fit["residual"]  # relative to the amplitude: unchanged by the scaling
+    return fit, counts_tab, {"auto": auto, "fit_counts": fit_counts, "neighbour_passes": passes,
+                             "detect_s": t_detect, "refine_s": t_refine}
+
+
+def _detect_candidates(field, ok, sigma, diameter, separation):
+    """Candidates: trackpy on the scale-normalised Laplacian of Gaussian, cut by the mirrored-noise significance.
+
+    A dim column on the flank of a bright neighbour is a maximum of the LoG (the blob detector; Lindeberg 1998)
+    while in the plain smoothed image it is only a shoulder. The LoG is the discrete Laplacian of the already
+    smoothed image: the same operator, a third of the work.
+    """
+    blob = -ndimage.laplace(field.smooth) * np.float32(sigma**2)
+    xs, ys, _, n_raw = _locate(blob, ok, diameter, separation)
+    # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
+    # noise minima come at about the density of noise maxima
+    side = 2 * max(int(round(separation * math.sqrt(math.pi) / 2.0)), 1) + 1
+    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
+    del blob
+    counts_tab = {"trackpy_maxima": n_raw}
+    z_cand = field.z(ys, xs)
+    z_rft = false_alarm_threshold(float(ok.sum()), sigma)
+    mr, mc = np.nonzero(mins)
+    z_cut, cut_info = mirror_threshold(z_cand, -field.z(mr.astype(np.float64), mc.astype(np.float64)), z_max=z_rft)
+    sig = z_cand >= z_cut
+    counts_tab["after_significance"] = int(sig.sum())
+    return xs[sig], ys[sig], z_cand[sig], counts_tab, cut_info
+
+
+def _prune(fit, xs, ys, z_cand, field, sigma, spacing, z_cut, counts_tab, auto):
+    """Drop failed fits, fits that slid to another column, insignificant ones given their neighbours, width
+    outliers and duplicates; counts after each step go to ``counts_tab``."""
+    status = fit["fit_status"].value_counts().to_dict()
+    counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
+    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy().copy()
+    # A fit that slid more than half a spacing off its candidate has found some other column (or a background
+    # bump): the candidate's significance no longer describes it.
+    slid = np.hypot(fit["x_px"].to_numpy() - xs, fit["y_px"].to_numpy() - ys) > max(1.5, 0.5 * spacing)
+    good &= ~slid
+    counts_tab["slid_off_candidate"] = int(slid.sum())
+    # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
+    # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
+    sd_cand = field.sd(ys, xs)
+    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
+    fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
+    counts_tab["after_neighbour_significance"] = int(len(fit))
+    # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or
+    # wider than the common width is a noise spike or a background bump (common practice: 0.5-2 x the median
+    # width). Faint columns are exempt: their fitted widths scatter widely by noise alone.
+    if len(fit) >= 5:
+        ratio = fit["sigma_px"].to_numpy() / np.nanmedian(fit["sigma_px"].to_numpy())
+        odd = (fit["snr"].to_numpy() > 10.0) & ((ratio < WIDTH_RANGE[0]) | (ratio > WIDTH_RANGE[1]))
+        fit = fit[~odd].copy()
+        auto["width_range"] = {"relative_to_median": list(WIDTH_RANGE), "applies_above_z": 10.0,
+                               "how": "common practice"}
+    counts_tab["after_width"] = int(len(fit))
+    if len(fit) > 1:  # duplicates: candidates that converged on the same column keep the more significant one
+        xy = fit[["x_px", "y_px"]].to_numpy()
+        pairs = cKDTree(xy).query_pairs(max(1.0, sigma, 0.4 * spacing), output_type="ndarray")
+        if pairs.size:
+            snr = fit["snr"].to_numpy()
+            lose = np.where(snr[pairs[:, 0]] < snr[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
+            fit = fit.drop(fit.index[np.unique(lose)])
+    counts_tab["after_duplicates"] = int(len(fit))
+    return fit
+
+
+def _measured_scale(fit):
+    """Width (median of well-measured fits) and spacing (median nearest-neighbour distance) of the columns found."""
+    out = {"sigma_px": None, "spacing_px": None, "n_well_measured": 0}
+    if len(fit) < 20:
+        return out
+    okw = (fit["fit_status"] == "ok").to_numpy() & (fit["snr"].to_numpy() > 10.0)
+    out["n_well_measured"] = int(okw.sum())
+    if okw.sum() >= 10:
+        out["sigma_px"] = float(np.median(fit["sigma_px"].to_numpy()[okw]))
+    xy = fit[["x_px", "y_px"]].to_numpy()
+    d = cKDTree(xy).query(xy, k=2)[0][:, 1]
+    out["spacing_px"] = float(np.median(d))
+    return out
+
+
+def _keep_in_regions(fit, regions, counts_tab):
+    region = np.zeros(len(fit), dtype=np.int64)
+    if regions:
+        region = label_points(fit["x_px"].to_numpy(), fit["y_px"].to_numpy(), regions)
+        fit = fit[region > 0].copy()
+        region = region[region > 0]
+        counts_tab["after_regions"] = int(len(fit))
+    fit["region"] = region
+    return fit
+
+
+def _check_spacing_used(fit, spacing, auto, notes):
+    """After the fact: the spacing used against the first peak of the columns' nearest-neighbour distances."""
+    if len(fit) < 20:
+        return
+    xy = fit[["x_px", "y_px"]].to_numpy()
+    d = cKDTree(xy).query(xy, k=2)[0][:, 1]
+    hist, edges = np.histogram(d, bins=np.linspace(0, 2.5 * np.median(d), 51))
+    i = int(np.argmax(hist))
+    peak = 0.5 * (edges[i] + edges[i + 1])
+    auto["spacing_check"] = {"spacing_used_px": float(spacing), "nearest_neighbour_peak_px": float(peak),
+                             "median_nearest_neighbour_px": float(np.median(d)), "tolerance": SPACING_CHECK}
+    if abs(peak / spacing - 1.0) > SPACING_CHECK:
+        notes.append(f"find_columns: the column spacing used ({spacing:.2f} px) differs by "
+                     f"{100 * (peak / spacing - 1):+.0f} % from the first peak of the columns' nearest-neighbour "
+                     f"distances ({peak:.2f} px); if the spacing was given, check it, else columns may be missing "
+                     "or doubled")
 
 
 def _json_safe(o):

@@ -31,7 +31,7 @@ from scipy.spatial import cKDTree
 from ._errors import TenfoldInputError
 from ._progress import report
 
-__all__ = ["refine_columns", "warm_up", "STATUS_CODES"]
+__all__ = ["refine_columns", "joint_position_errors", "warm_up", "STATUS_CODES"]
 
 #: fit_status strings by kernel code.
 STATUS_CODES = ("ok", "diverged", "edge", "masked", "fixed_width")
@@ -39,7 +39,7 @@ _OK, _DIVERGED, _EDGE, _MASKED, _FIXED = 0, 1, 2, 3, 4
 _SQRT2 = math.sqrt(2.0)
 _SQRT_PI_2 = math.sqrt(math.pi / 2.0)
 #: number of values the kernel writes per column.
-_NOUT = 15
+_NOUT = 17
 
 
 @njit(cache=True, inline="always")
@@ -171,7 +171,7 @@ def _solve5(a, rhs, out):
 
 
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
-def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
+def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
              start, out):
     """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``.
 
@@ -185,6 +185,8 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
             out[k, q] = np.nan
         xi = x0[k]
         yi = y0[k]
+        sk = s0[k]
+        fix_s = fixw[k] or s_hi <= s_lo  # fixed-width fit: sigma held at sk, four free parameters
         cx = int(math.floor(xi + 0.5))
         cy = int(math.floor(yi + 0.5))
         if not (xi >= -0.5 and xi < w - 0.5 and yi >= -0.5 and yi < h - 0.5):
@@ -200,6 +202,7 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         msk = np.empty(side * side, dtype=np.bool_)
         off = np.zeros(side * side)
         touched = False
+        dsum = 0.0
         dmin = np.inf
         dmax = -np.inf
         for r in range(ny):
@@ -215,6 +218,7 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
                     if ddx * ddx + ddy * ddy <= touch2:
                         touched = True
                 else:
+                    dsum += val
                     if val < dmin:
                         dmin = val
                     if val > dmax:
@@ -247,10 +251,10 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         damp = np.empty((5, 5))
         p[0] = xi
         p[1] = yi
-        p[2] = s0
+        p[2] = sk
         # linear start for A and B at the initial position and width: regress (d - off) on [g, 1]
-        _profile(u0, nx, xi, s0, gx, dgx, dsx)
-        _profile(v0, ny, yi, s0, gy, dgy, dsy)
+        _profile(u0, nx, xi, sk, gx, dgx, dsx)
+        _profile(v0, ny, yi, sk, gy, dgy, dsy)
         sgg = 0.0
         sg = 0.0
         s1 = 0.0
@@ -279,11 +283,12 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         if math.isfinite(start[k, 0]) and math.isfinite(start[k, 3]) and start[k, 3] > 0 and start[k, 2] > 0.05:
             for i in range(5):
                 p[i] = start[k, i]
+            if fix_s:
+                p[2] = sk
         obj, rss, npx = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
                                   True)
         lam = 1e-3
         it = 0
-        fix_s = s_hi <= s_lo  # fixed-width fit: sigma held at s0, four free parameters
         rhs = np.empty(5)
         for it in range(n_iter):
             for i in range(5):
@@ -357,6 +362,19 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
         out[k, 12] = xi
         out[k, 13] = yi
         out[k, 14] = math.sqrt(va * scale) if oka and va > 0 else np.nan
+        out[k, 15] = dsum / max(npx, 1)
+        # Pearson chi-square of the final model (Poisson weights): with the level it checks the noise model
+        _profile(u0, nx, p[0], p[2], gx, dgx, dsx)
+        _profile(v0, ny, p[1], p[2], gy, dgy, dsy)
+        chi2 = 0.0
+        for r in range(ny):
+            for c in range(nx):
+                kk = r * nx + c
+                if msk[kk]:
+                    m = p[4] + p[3] * gx[c] * gy[r] + off[kk]
+                    res = d[kk] - m
+                    chi2 += res * res / (m if m > 1.0 else 1.0)
+        out[k, 16] = chi2
         status = _OK
         if not (math.isfinite(p[0]) and math.isfinite(p[1]) and math.isfinite(p[2]) and math.isfinite(p[3])):
             status = _DIVERGED
@@ -365,11 +383,174 @@ def _fit_all(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi,
             status = _DIVERGED
         elif abs(p[0] - xi) > max_shift or abs(p[1] - yi) > max_shift:
             status = _DIVERGED
-        elif p[2] < s_lo or p[2] > s_hi or not p[3] > 0:
+        elif (not fix_s and (p[2] < s_lo or p[2] > s_hi)) or not p[3] > 0:
             status = _DIVERGED
-        elif p[0] < s0 - 0.5 or p[0] > w - 0.5 - s0 or p[1] < s0 - 0.5 or p[1] > h - 0.5 - s0:
+        elif p[0] < sk - 0.5 or p[0] > w - 0.5 - sk or p[1] < sk - 0.5 or p[1] > h - 0.5 - sk:
             status = _EDGE
+        elif fixw[k]:
+            status = _FIXED
         out[k, 8] = status
+
+
+#: touching neighbours: centres closer than this many widths share enough light to correlate the fits
+JOINT_REACH_SIGMA = 5.0
+#: at most this many nearest touching neighbours enter a column's joint Fisher matrix
+JOINT_MAX_NEIGHBOURS = 6
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, out):
+    """Per-axis position variance of column k from the Fisher matrix of its local joint model.
+
+    The group is column k and its touching neighbours (CSR ``ptr``/``idx``); parameters are (x, y, s, A) of
+    every member and one background; pixels are the union of the members' fit patches. ``out[k] = (var_x,
+    var_y)``; NaN where the matrix is singular.
+    """
+    n = par.shape[0]
+    side = 2 * rad + 1
+    for k in prange(n):
+        out[k, 0] = np.nan
+        out[k, 1] = np.nan
+        m = 1 + ptr[k + 1] - ptr[k]
+        mem = np.empty(m, np.int64)
+        mem[0] = k
+        for t in range(ptr[k], ptr[k + 1]):
+            mem[1 + t - ptr[k]] = idx[t]
+        u0 = img_w
+        u1 = -1
+        v0 = img_h
+        v1 = -1
+        for i in range(m):
+            cx = int(math.floor(par[mem[i], 0] + 0.5))
+            cy = int(math.floor(par[mem[i], 1] + 0.5))
+            u0 = min(u0, cx - rad)
+            u1 = max(u1, cx + rad)
+            v0 = min(v0, cy - rad)
+            v1 = max(v1, cy + rad)
+        u0 = max(u0, 0)
+        v0 = max(v0, 0)
+        u1 = min(u1, img_w - 1)
+        v1 = min(v1, img_h - 1)
+        nx = u1 - u0 + 1
+        ny = v1 - v0 + 1
+        if nx < 1 or ny < 1:
+            continue
+        gx = np.empty((m, nx))
+        dgx = np.empty((m, nx))
+        dsx = np.empty((m, nx))
+        gy = np.empty((m, ny))
+        dgy = np.empty((m, ny))
+        dsy = np.empty((m, ny))
+        for i in range(m):
+            j = mem[i]
+            _profile(u0, nx, par[j, 0], par[j, 2], gx[i], dgx[i], dsx[i])
+            _profile(v0, ny, par[j, 1], par[j, 2], gy[i], dgy[i], dsy[i])
+        npar = 4 * m + 1
+        fis = np.zeros((npar, npar))
+        jac = np.empty(npar)
+        bk = par[k, 4]
+        for r in range(ny):
+            for c in range(nx):
+                if not valid[v0 + r, u0 + c]:
+                    continue
+                inside = False
+                for i in range(m):
+                    if abs(u0 + c - par[mem[i], 0]) <= rad + 0.5 and abs(v0 + r - par[mem[i], 1]) <= rad + 0.5:
+                        inside = True
+                        break
+                if not inside:
+                    continue
+                mu = bk
+                for i in range(m):
+                    a = par[mem[i], 3]
+                    mu += a * gx[i, c] * gy[i, r]
+                    jac[4 * i] = a * dgx[i, c] * gy[i, r]
+                    jac[4 * i + 1] = a * gx[i, c] * dgy[i, r]
+                    jac[4 * i + 2] = a * (dsx[i, c] * gy[i, r] + gx[i, c] * dsy[i, r]) if free_s[mem[i]] else 0.0
+                    jac[4 * i + 3] = gx[i, c] * gy[i, r]
+                jac[4 * m] = 1.0
+                w = 1.0 / max(mu, 1.0) if counts else 1.0 / noise_var[k]
+                for a_ in range(npar):
+                    ja = jac[a_] * w
+                    if ja == 0.0:
+                        continue
+                    for b_ in range(a_, npar):
+                        fis[a_, b_] += ja * jac[b_]
+        for a_ in range(npar):
+            for b_ in range(a_):
+                fis[a_, b_] = fis[b_, a_]
+        for i in range(m):  # a width held fixed is no parameter: its empty row and column are decoupled
+            if not free_s[mem[i]]:
+                fis[4 * i + 2, 4 * i + 2] = 1.0
+        rhs = np.zeros((npar, 2))
+        rhs[0, 0] = 1.0
+        rhs[1, 1] = 1.0
+        ok = True
+        for a_ in range(npar):
+            if not fis[a_, a_] > 0.0:
+                ok = False
+        if not ok:
+            continue
+        sol = np.linalg.solve(fis, rhs)
+        out[k, 0] = sol[0, 0]
+        out[k, 1] = sol[1, 1]
+
+
+def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, counts=True,
+                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS):
+    """Per-axis 1-sigma position errors of fitted columns from the Fisher information of their local joint model.
+
+    A column fitted with its neighbours' models subtracted inherits the uncertainty of those models: the
+    position of a crowded column correlates with its neighbours' positions, widths and amplitudes. The Cramer-Rao
+    bound of the joint fit is the (x, x) element of the inverse Fisher matrix over all parameters of the column
+    and of its touching neighbours (centres closer than ``reach_sigma`` widths, at most ``max_neighbours``),
+    with one shared background, over the union of their fit patches. For an isolated column this is the usual
+    single-spot bound.
+
+    Parameters
+    ----------
+    image_shape : (int, int)
+    table : DataFrame
+        Output of :func:`refine_columns` (``x_px, y_px, sigma_px, amplitude, background, residual, fit_status``).
+    patch_radius_px : int
+    valid : (H, W) bool array, optional
+    counts : bool
+        Poisson weights 1 / model (raw counts); else white noise of variance (residual x amplitude)^2 per column.
+
+    Returns
+    -------
+    (N, 2) array
+        sigma_x, sigma_y in px; NaN for rows without a usable fit.
+
+    References
+    ----------
+    Fisher information of Poisson pixel data, I = sum_pixels (d mu / d theta)(d mu / d theta)^T / mu: e.g.
+    Ober, Ram & Ward, Biophys. J. 86 (2004) 1185 (single spots); the same sum over a joint model of several spots.
+    """
+    h, w = (int(v) for v in image_shape)
+    ok = table["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
+    par = table[["x_px", "y_px", "sigma_px", "amplitude", "background"]].to_numpy(dtype=np.float64)
+    noise_var = (table["residual"].to_numpy(dtype=np.float64) * table["amplitude"].to_numpy(dtype=np.float64)) ** 2
+    res = np.full((len(table), 2), np.nan)
+    good = np.flatnonzero(ok & np.all(np.isfinite(par), axis=1))
+    if good.size == 0:
+        return res
+    gp = np.ascontiguousarray(par[good])
+    tree = cKDTree(gp[:, :2])
+    reach = reach_sigma * float(np.median(gp[:, 2]))
+    d, j = tree.query(gp[:, :2], k=max_neighbours + 1, distance_upper_bound=reach)
+    d, j = d[:, 1:], j[:, 1:]
+    has = np.isfinite(d)
+    ptr = np.zeros(good.size + 1, np.int64)
+    ptr[1:] = np.cumsum(has.sum(axis=1))
+    idx = j[has].astype(np.int64)
+    vm = np.ones((h, w), dtype=bool) if valid is None else np.ascontiguousarray(np.asarray(valid, dtype=bool))
+    out = np.empty((good.size, 2))
+    free_s = np.ascontiguousarray((table["fit_status"].to_numpy() == "ok")[good])
+    _joint_var(h, w, vm, gp, free_s, np.ascontiguousarray(np.maximum(noise_var[good], 1e-300)), bool(counts),
+               int(patch_radius_px), ptr, idx, out)
+    res[good] = np.sqrt(np.where(out > 0, out, np.nan))
+    return res
 
 
 def warm_up() -> float:
@@ -378,16 +559,22 @@ def warm_up() -> float:
     img = np.random.default_rng(0).poisson(10.0, (16, 16)).astype(np.float32)
     _run(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), 1.5, 4, True, 3, 4.0, 0.3, 6.0,
          np.zeros(2, np.int64), np.zeros(0, np.int64), np.zeros((1, 4)))
+    _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
+               np.ones(1), True, 4,
+               np.zeros(2, np.int64), np.zeros(0, np.int64), np.empty((1, 2)))
     return time.perf_counter() - t0
 
 
-def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None):
+def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
+         fixw=None):
     n = x0.shape[0]
     out = np.empty((n, _NOUT))
-    touch2 = (2.0 * s0 + 0.5) ** 2
+    s_arr = np.ascontiguousarray(np.broadcast_to(np.asarray(s0, dtype=np.float64), (n,)))
+    fix_arr = np.zeros(n, dtype=np.bool_) if fixw is None else np.ascontiguousarray(fixw, dtype=np.bool_)
+    touch2 = (2.0 * float(np.median(s_arr)) + 0.5) ** 2 if n else 1.0
     if start is None:
         start = np.full((max(n, 1), 5), np.nan)
-    _fit_all(img, valid, x0, y0, float(s0), int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
+    _fit_all(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
              float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out)
     return out
 
@@ -411,7 +598,7 @@ def _prepare(image, valid):
 def _neighbours(out, rad, s_hi):
     """CSR arrays of the ok neighbours whose model reaches into each column's patch (one KD-tree, one query)."""
     n = out.shape[0]
-    good = out[:, 8] == _OK
+    good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
     xy = out[:, :2]
     ptr = np.zeros(n + 1, np.int64)
     if good.sum() < 2:
@@ -434,9 +621,49 @@ def _neighbours(out, rad, s_hi):
     return ptr, dst.astype(np.int64), par
 
 
+#: a column keeps its own free width in the neighbour passes only when its amplitude stands this many standard
+#: errors above zero; fainter ones share the common width (see _common_width)
+FREE_WIDTH_SNR = 20.0
+
+
+def _common_width(out, s0):
+    """The width shared by faint columns: median width of the well-measured free fits (else the start width)."""
+    ok = (out[:, 8] == _OK) & (out[:, 3] > FREE_WIDTH_SNR * out[:, 14])
+    if ok.sum() < 5:
+        ok = out[:, 8] == _OK
+    return float(np.median(out[ok, 2])) if ok.sum() >= 5 else float(s0)
+
+
+def _sub_csr(ptr, idx, rows):
+    """The neighbour lists of ``rows`` only, as CSR arrays (vectorised gather)."""
+    counts_nb = ptr[rows + 1] - ptr[rows]
+    sub_ptr = np.zeros(rows.size + 1, np.int64)
+    sub_ptr[1:] = np.cumsum(counts_nb)
+    pos = np.repeat(ptr[rows] - sub_ptr[:-1], counts_nb) + np.arange(sub_ptr[-1])
+    sub_idx = idx[pos] if idx.size else np.zeros(0, np.int64)
+    return sub_ptr, sub_idx.astype(np.int64)
+
+
+def _active_columns(out, prev, ptr, idx, tol_px):
+    """Columns to refit: all (first pass), else those whose own or a neighbour's model changed by > ``tol_px``.
+
+    A change of the amplitude counts as its effect on the light at one sigma, in px of equivalent shift.
+    """
+    n = out.shape[0]
+    if prev is None:
+        return np.arange(n)
+    step = np.hypot(out[:, 0] - prev[:, 0], out[:, 1] - prev[:, 1])
+    rel_a = np.abs(out[:, 3] - prev[:, 3]) / np.maximum(np.abs(out[:, 3]), 1e-12) * out[:, 2]
+    changed = np.nan_to_num(np.maximum(step, rel_a), nan=0.0) > tol_px
+    src = np.repeat(np.arange(n), ptr[1:] - ptr[:-1])
+    hit = changed.copy()
+    hit[src[changed[idx]]] = True  # a column whose neighbour changed is refitted too
+    return np.flatnonzero(hit)
+
+
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
-                   neighbour_passes=1, max_shift_px=None, fixed_width_fallback=True,
-                   progress=None) -> pd.DataFrame:
+                   neighbour_passes=1, converge_px=0.005, max_shift_px=None, fixed_width_fallback=True,
+                   joint_errors=False, progress=None) -> pd.DataFrame:
     """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
 
     Parameters
@@ -459,8 +686,16 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     n_iter : int
         Maximum Levenberg-Marquardt iterations per column and pass.
     neighbour_passes : int
-        Number of extra passes in which each column is refitted with its neighbours' current model (found by
-        one KD-tree query) subtracted. 0 fits every column alone.
+        Largest number of extra passes in which each column is refitted with its neighbours' current model (found
+        by one KD-tree query) subtracted: a Jacobi iteration of the coupled fits, which converges to the joint fit
+        of touching columns. 0 fits every column alone.
+    converge_px : float
+        The passes stop when no column moved by more than this (px); a pass refits only the columns whose own or
+        a neighbour's model changed by more than this.
+    joint_errors : bool
+        Replace each column's position error by the one from the Fisher information of the local joint model
+        (the column, its touching neighbours and their nuisance parameters), see ``joint_position_errors``;
+        default False (the column's own Fisher information with its neighbours held fixed).
     max_shift_px : float, optional
         A fit that moves farther than this from its start (per axis) is 'diverged'. Default: the patch radius
         (about half the column spacing).
@@ -473,13 +708,15 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         One row per input position, in input order: ``x_px, y_px, sigma_px, amplitude, background, intensity,
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
         ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``,
-        ``n_pixels``, ``n_iter``.
+        ``n_pixels``, ``n_iter``, ``patch_mean`` (mean data value over the fit patch: with ``residual`` it gives
+        the noise variance at that level, see ``columns.noise_model``).
         Fit columns are NaN unless ``fit_status`` is 'ok' or 'fixed_width'.
 
     Notes
     -----
-    ``fit_status``: 'ok'; 'fixed_width' (the five-parameter fit failed, a fit with the width held at the median
-    width of the good fits succeeded: low-signal columns; only with ``fixed_width_fallback``); 'diverged' (non-finite, moved more than ``max_shift_px``, width outside
+    ``fit_status``: 'ok' (free width); 'fixed_width' (the width was held at the common width, the median of the
+    well-measured free fits: columns whose amplitude is below ``FREE_WIDTH_SNR`` standard errors in the neighbour
+    passes, and failed free fits rescued by ``fixed_width_fallback``); 'diverged' (non-finite, moved more than ``max_shift_px``, width outside
     [0.25, 4] x ``sigma_px``, or an amplitude not above its own standard error, e.g. a constant patch); 'edge' (centre closer than ``sigma_px`` to the image
     border, or outside it); 'masked' (see ``valid``).
 
@@ -515,38 +752,61 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     y0 = np.ascontiguousarray(xy[:, 1])
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
                np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)))
+    passes_done = 0
+    prev_par = None
+    fixw = np.zeros(n, dtype=bool)
+    s_cols = np.full(n, s0)
+    s_common = _common_width(out, s0)
     for p in range(int(neighbour_passes)):
-        report(progress, (p + 1) / (neighbour_passes + 1), "refitting with neighbours subtracted")
+        report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
         ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
         if idx.size == 0:
             break
-        first = out
-        # warm start from the previous pass (ok fits only): a few Gauss-Newton steps suffice
-        start = np.where((first[:, 8] == _OK)[:, None], first[:, :5], np.nan)
-        # warm-started: the neighbours' models only nudge a converged fit, a few steps suffice
-        out = _run(img, vmask, x0, y0, s0, rad, counts, min(n_iter, 6), max_shift, 0.25 * s0, 4.0 * s0, ptr, idx,
-                   par, start=start)
-        out[:, 10] += first[:, 10]
-    # Low-signal columns whose five-parameter fit wandered get a fixed-width fit (sigma = median of the good
-    # fits: every column is imaged by the same probe); they are marked 'fixed_width' so the user can tell.
+        # Faint columns (and failed free fits) share the common width: every column is imaged by the same probe,
+        # and a free width beside a bright neighbour trades off against the background and collapses.
+        faint = ~((out[:, 8] == _OK) & (out[:, 3] > FREE_WIDTH_SNR * out[:, 14]))
+        newly = faint & ~fixw
+        fixw |= faint
+        s_cols[fixw] = s_common
+        # Jacobi iteration of the coupled fits: refit only the columns whose own or any neighbour's model changed
+        # since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
+        active = np.union1d(_active_columns(out, prev_par, ptr, idx, converge_px), np.flatnonzero(newly))
+        if active.size == 0:
+            break
+        prev_par = out[:, :5].copy()
+        sub_ptr, sub_idx = _sub_csr(ptr, idx, active)
+        fitted = (out[active, 8] == _OK) | (out[active, 8] == _FIXED)
+        start = np.where(fitted[:, None], out[active, :5], np.nan)
+        again = _run(img, vmask, x0[active], y0[active], s_cols[active], rad, counts, n_iter if p == 0 else 6,
+                     max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active])
+        again[:, 10] += out[active, 10]
+        out[active] = again
+        passes_done = p + 1
+        step = np.hypot(out[active, 0] - prev_par[active, 0], out[active, 1] - prev_par[active, 1])
+        if not np.nanmax(step, initial=0.0) > converge_px and not newly.any():
+            break
+    # Columns whose fit still failed get one last fixed-width try with everything else subtracted; they are marked
+    # 'fixed_width' so the user can tell (low-signal columns).
     redo = np.flatnonzero(out[:, 8] == _DIVERGED)
-    good = out[:, 8] == _OK
+    good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
     if fixed_width_fallback and redo.size and good.sum() >= 5:
-        s_med = float(np.nanmedian(out[good, 2]))
         ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
-        sub_ptr = np.zeros(redo.size + 1, np.int64)
-        counts_nb = ptr[redo + 1] - ptr[redo]
-        sub_ptr[1:] = np.cumsum(counts_nb)
-        # gather each redo column's neighbour list from the CSR arrays (vectorised)
-        pos = np.repeat(ptr[redo] - sub_ptr[:-1], counts_nb) + np.arange(sub_ptr[-1])
-        sub_idx = idx[pos] if idx.size else np.zeros(0, np.int64)
-        again = _run(img, vmask, x0[redo], y0[redo], s_med, rad, counts, n_iter, max_shift, s_med, s_med, sub_ptr,
-                     sub_idx.astype(np.int64), par)
-        fixed = again[:, 8] == _OK
-        again[fixed, 8] = _FIXED
+        sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
+        again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
+                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool))
+        fixed = again[:, 8] == _FIXED
         out[redo[fixed]] = again[fixed]
+    table = _columns_out(out, x0, y0)
+    if joint_errors and len(table):
+        report(progress, 0.95, "position errors of the joint model")
+        err = joint_position_errors(img.shape, table, patch_radius_px=rad, valid=vmask, counts=counts)
+        fitted = table["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
+        table.loc[fitted, "x_err_px"] = err[fitted, 0]
+        table.loc[fitted, "y_err_px"] = err[fitted, 1]
+        table["pos_err_px"] = 0.5 * (table["x_err_px"] + table["y_err_px"])
+    table.attrs["neighbour_passes_done"] = passes_done
     report(progress, 1.0, "refinement done")
-    return _columns_out(out, x0, y0)
+    return table
 
 
 def _columns_out(out, x0, y0) -> pd.DataFrame:
@@ -573,4 +833,6 @@ def _columns_out(out, x0, y0) -> pd.DataFrame:
         "y_init_px": y0,
         "n_pixels": np.nan_to_num(out[:, 9]).astype(np.int64),
         "n_iter": np.nan_to_num(out[:, 10]).astype(np.int64),
+        "patch_mean": np.where(ok, out[:, 15], np.nan),
+        "pearson_chi2": np.where(ok, out[:, 16], np.nan),
     })
