@@ -596,29 +596,48 @@ def _prepare(image, valid):
 
 
 def _neighbours(out, rad, s_hi):
-    """CSR arrays of the ok neighbours whose model reaches into each column's patch (one KD-tree, one query)."""
+    """CSR arrays: for every column, the fitted neighbours whose model reaches into its patch (one KD-tree query).
+
+    Every column gets a list (a failed fit is refitted with its neighbours subtracted too); only fitted columns
+    ('ok', 'fixed_width') are in the lists.
+    """
     n = out.shape[0]
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
-    xy = out[:, :2]
     ptr = np.zeros(n + 1, np.int64)
-    if good.sum() < 2:
+    if good.sum() < 1 or n < 2:
         return ptr, np.zeros(0, np.int64), np.zeros((n, 4))
     idx_good = np.flatnonzero(good)
     sig = np.nanmedian(out[good, 2])
     reach = rad * math.sqrt(2.0) + 4.0 * sig
-    tree = cKDTree(xy[idx_good])
-    pairs = tree.query_pairs(reach, output_type="ndarray")
-    a = idx_good[pairs[:, 0]]
-    b = idx_good[pairs[:, 1]]
-    src = np.concatenate([a, b])
-    dst = np.concatenate([b, a])
-    order = np.argsort(src, kind="stable")
-    src = src[order]
-    dst = dst[order]
+    # a failed fit may have wandered: look for its neighbours around its start position
+    xy = np.where(good[:, None], out[:, :2], out[:, 12:14])
+    xy = np.where(np.isfinite(xy), xy, -1e9)
+    lists = cKDTree(xy[idx_good]).query_ball_point(xy, reach)
+    cnt = np.fromiter((len(v) for v in lists), np.int64, n)
+    flat = idx_good[np.fromiter((j for v in lists for j in v), np.int64, int(cnt.sum()))] if cnt.sum() else \
+        np.zeros(0, np.int64)
+    src = np.repeat(np.arange(n), cnt)
+    keep = flat != src
+    src, dst = src[keep], flat[keep]
     ptr[1:] = np.cumsum(np.bincount(src, minlength=n))
     par = np.zeros((n, 4))
     par[good] = out[good][:, [0, 1, 2, 3]]
     return ptr, dst.astype(np.int64), par
+
+
+#: columns closer than this many widths share the common width in the neighbour passes
+TOUCH_SIGMA = 4.5
+
+
+def _touching(out, fitted, reach):
+    """True for columns with another fitted column closer than ``reach`` px."""
+    xy = np.where(fitted[:, None], out[:, :2], np.nan)
+    idx = np.flatnonzero(fitted & np.all(np.isfinite(xy), axis=1))
+    res = np.zeros(out.shape[0], dtype=bool)
+    if idx.size >= 2:
+        d = cKDTree(xy[idx]).query(xy[idx], k=2)[0][:, 1]
+        res[idx] = d < reach
+    return res
 
 
 #: a column keeps its own free width in the neighbour passes only when its amplitude stands this many standard
@@ -629,8 +648,6 @@ FREE_WIDTH_SNR = 20.0
 def _common_width(out, s0):
     """The width shared by faint columns: median width of the well-measured free fits (else the start width)."""
     ok = (out[:, 8] == _OK) & (out[:, 3] > FREE_WIDTH_SNR * out[:, 14])
-    if ok.sum() < 5:
-        ok = out[:, 8] == _OK
     return float(np.median(out[ok, 2])) if ok.sum() >= 5 else float(s0)
 
 
@@ -750,27 +767,42 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     report(progress, 0.0, f"refining {n} columns")
     x0 = np.ascontiguousarray(xy[:, 0])
     y0 = np.ascontiguousarray(xy[:, 1])
+    joint = int(neighbour_passes) > 0
+    # With neighbour passes the first fit holds every width at the start width: a free width beside a fainter
+    # neighbour widens over it and swallows its light, and the faint fit then finds nothing left to fit.
+    fixw = np.full(n, joint)
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
-               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)))
+               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), fixw=fixw)
     passes_done = 0
     prev_par = None
-    fixw = np.zeros(n, dtype=bool)
     s_cols = np.full(n, s0)
     s_common = _common_width(out, s0)
+    crowded = np.zeros(n, dtype=bool)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
         ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
-        if idx.size == 0:
+        if idx.size == 0 and p > 0:
             break
-        # Faint columns (and failed free fits) share the common width: every column is imaged by the same probe,
-        # and a free width beside a bright neighbour trades off against the background and collapses.
-        faint = ~((out[:, 8] == _OK) & (out[:, 3] > FREE_WIDTH_SNR * out[:, 14]))
-        newly = faint & ~fixw
-        fixw |= faint
+        # Bright columns get their own width; faint ones (and failed fits) share the common width of the bright
+        # ones: every column is imaged by the same probe, and a free width beside a brighter neighbour trades off
+        # against the background and collapses.
+        fitted = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
+        bright = fitted & (out[:, 3] > FREE_WIDTH_SNR * out[:, 14])
+        # a free width is only measurable on a column that no neighbour touches (closer than TOUCH_SIGMA widths);
+        # crowded columns share the width of the free ones, unless too few are free
+        if p == 0:
+            crowded = _touching(out, fitted, TOUCH_SIGMA * s0)
+            if not (bright & ~crowded).sum() >= 5:
+                crowded[:] = False
+        bright &= ~crowded
+        s_common = _common_width(out, s0)
+        newly = (bright == fixw) | (fixw & (np.abs(s_cols - s_common) > 1e-3 * s0))
+        fixw = ~bright
         s_cols[fixw] = s_common
         # Jacobi iteration of the coupled fits: refit only the columns whose own or any neighbour's model changed
         # since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
-        active = np.union1d(_active_columns(out, prev_par, ptr, idx, converge_px), np.flatnonzero(newly))
+        active = np.union1d(_active_columns(out, prev_par, ptr, idx, converge_px),
+                            np.flatnonzero(newly | ~fitted))
         if active.size == 0:
             break
         prev_par = out[:, :5].copy()
@@ -783,7 +815,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         out[active] = again
         passes_done = p + 1
         step = np.hypot(out[active, 0] - prev_par[active, 0], out[active, 1] - prev_par[active, 1])
-        if not np.nanmax(step, initial=0.0) > converge_px and not newly.any():
+        if not np.nanmax(step, initial=0.0) > converge_px and not newly.any() and p > 0:
             break
     # Columns whose fit still failed get one last fixed-width try with everything else subtracted; they are marked
     # 'fixed_width' so the user can tell (low-signal columns).
