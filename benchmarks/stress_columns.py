@@ -216,11 +216,13 @@ def figure(df: pd.DataFrame, path: Path) -> None:
     ax[1].bar(x + 0.2, df["rms_bound_worst"], 0.4, label="worst (species, crowded)")
     ax[1].axhline(RMS_WORST, color="k", lw=0.8, ls="--")
     ax[1].axhline(1.0, color="grey", lw=0.8)
+    ax[1].set_yscale("log")
     ax[1].set_title("RMS error / Cramer-Rao bound (dashed: 1.3)")
     ax[2].bar(x - 0.2, df["act_rep_min"], 0.4, label="min over species")
     ax[2].bar(x + 0.2, df["act_rep_max"], 0.4, label="max over species")
     for v in ERR_RANGE:
         ax[2].axhline(v, color="k", lw=0.8, ls="--")
+    ax[2].set_yscale("log")
     ax[2].set_title("actual / reported pos_err (dashed: 0.85, 1.2)")
     for a in ax:
         a.set_xticks(x)
