@@ -60,6 +60,22 @@ __all__ = [
     "crystal_columns",
     "fcc_al_001_columns",
     "AL_LATTICE_NM",
+    "STRESS_STRUCTURES",
+    "PROBES",
+    "RESCALES",
+    "StressCondition",
+    "stress_structure",
+    "stress_probe",
+    "stress_sample",
+    "stress_background",
+    "column_signal",
+    "peak_per_count",
+    "crlb_columns_px",
+    "match_columns",
+    "species_agreement",
+    "score_columns",
+    "STRESS_CELLS",
+    "stress_draw",
 ]
 
 #: Bumped whenever the model or the renderer changes what a given seed produces.
@@ -1033,6 +1049,957 @@ def fcc_al_001_columns(*, a_nm: float = AL_LATTICE_NM, width_nm: float, height_n
     df = crystal_columns(atoms, axis="z")
     keep = (df["x_nm"] < width_nm) & (df["y_nm"] < height_nm)
     return df[keep].reset_index(drop=True)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Stress structures and conditions (the column finder's measuring instrument; issue 10)
+# ----------------------------------------------------------------------------------------------------------------
+
+#: Structures :func:`stress_structure` builds -> number of species in them.
+STRESS_STRUCTURES = {
+    "decagonal": 3, "shared_rings": 3, "fivefold": 2, "square": 1, "hexagonal": 1, "perovskite": 2, "hardcore": 3,
+}
+#: Ring radius / closest spacing of a ring of ten: 1 / (2 sin 18 deg) = tau (Euclid's pentagon).
+_DECAGON_R = 1.0 / (2.0 * math.sin(math.pi / 10.0))
+#: Five-fold cluster radii in units of the closest spacing (outer bright 0.48 nm, inner dim 0.30 nm, turned 36 deg).
+_FIVEFOLD_R1, _FIVEFOLD_R2 = 0.48, 0.30
+#: Second lattice vector of the edge-sharing ring chains, in ring radii (the densest stacking keeping every pair at
+#: least one ring-edge apart; found by a grid search over the offset).
+_CHAIN_OFFSET = (0.18, 2.5)
+#: Probe shapes: name -> ((weight, sigma / core sigma), ...) before the tail fraction is applied; see stress_probe.
+PROBES = ("gaussian", "core_tail")
+#: Components wider than this (px) are rendered by a bilinear deposit and an FFT Gaussian instead of exact patches.
+_BROAD_PX = 6.0
+#: Integer rescalings of the pixel values a stress image can get.
+RESCALES = ("none", "uint8", "x1000")
+
+
+def _rotation(angle_deg: float) -> np.ndarray:
+    a = np.deg2rad(angle_deg)
+    return np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+
+
+def _tiling_centres(width_nm, height_nm, edge_nm, reach_nm, angle_deg, gen) -> np.ndarray:
+    """Penrose-tiling vertices (edge ``edge_nm``) at least ``reach_nm`` inside the field, sorted by y then x."""
+    tiling = pentagrid_tiling(0.5 * width_nm / edge_nm + 2.0, half_height=0.5 * height_nm / edge_nm + 2.0,
+                              rng=gen).scaled(edge_nm, centre=(0.5 * width_nm, 0.5 * height_nm), angle_deg=angle_deg)
+    v = tiling.vertices
+    keep = (v[:, 0] >= reach_nm) & (v[:, 0] <= width_nm - reach_nm) & (v[:, 1] >= reach_nm) & \
+        (v[:, 1] <= height_nm - reach_nm)
+    v = v[keep]
+    return v[np.lexsort((v[:, 0], v[:, 1]))]
+
+
+def _lattice_points(cell: np.ndarray, basis: np.ndarray, width_nm, height_nm, margin_nm, angle_deg):
+    """Points of a 2-D lattice (rows of ``cell``) with a basis, rotated about the field centre, kept inside.
+
+    Returns (xy (n, 2), basis index (n,)).
+    """
+    rot = _rotation(angle_deg)
+    centre = np.array([0.5 * width_nm, 0.5 * height_nm])
+    reach = math.hypot(width_nm, height_nm)
+    inv = np.linalg.inv(cell.T)
+    corners = inv @ np.array([[-reach, reach, -reach, reach], [-reach, -reach, reach, reach]])
+    lo, hi = np.floor(corners.min(axis=1)) - 1, np.ceil(corners.max(axis=1)) + 1
+    i, j = np.meshgrid(np.arange(lo[0], hi[0] + 1), np.arange(lo[1], hi[1] + 1), indexing="ij")
+    origins = i.reshape(-1, 1) * cell[0] + j.reshape(-1, 1) * cell[1]
+    pts = (origins[:, None, :] + basis[None, :, :]).reshape(-1, 2) @ rot.T + centre
+    kind = np.tile(np.arange(len(basis)), len(origins))
+    keep = (pts[:, 0] >= margin_nm) & (pts[:, 0] <= width_nm - margin_nm) & (pts[:, 1] >= margin_nm) & \
+        (pts[:, 1] <= height_nm - margin_nm)
+    return pts[keep], kind[keep]
+
+
+def _cluster_columns(centres: np.ndarray, offsets: np.ndarray, species: np.ndarray, roles: np.ndarray):
+    """Every cluster centre plus the same offsets (nm, rotated already): positions, species, role, cluster id."""
+    xy = (centres[:, None, :] + offsets[None, :, :]).reshape(-1, 2)
+    n_off = len(offsets)
+    return (xy, np.tile(species, len(centres)), np.tile(roles, len(centres)),
+            np.repeat(np.arange(len(centres)), n_off), np.repeat(centres, n_off, axis=0))
+
+
+def _hardcore_points(width_nm, height_nm, spacing_nm, margin_nm, gen, rounds: int = 8):
+    """Random hard-core points (no pair closer than ``spacing_nm``): rounds of Matern type-II thinning.
+
+    Each round throws candidates, drops those within ``spacing_nm`` of an accepted point, and among the rest keeps a
+    candidate only if no candidate within ``spacing_nm`` carries a smaller random mark (Matern 1960, type II).
+    """
+    from scipy.spatial import cKDTree
+
+    lo = np.array([margin_nm, margin_nm])
+    span = np.array([width_nm - 2 * margin_nm, height_nm - 2 * margin_nm])
+    if np.any(span <= 0):
+        return np.zeros((0, 2))
+    n_throw = int(math.ceil(2.0 * span.prod() / spacing_nm**2)) + 1
+    kept = np.zeros((0, 2))
+    for _ in range(rounds):
+        cand = lo + gen.random((n_throw, 2)) * span
+        if len(kept):
+            d, _ = cKDTree(kept).query(cand, distance_upper_bound=spacing_nm)
+            cand = cand[~np.isfinite(d) | (d >= spacing_nm)]
+        mark = gen.random(len(cand))
+        pairs = cKDTree(cand).query_pairs(spacing_nm, output_type="ndarray")
+        loser = np.where(mark[pairs[:, 0]] > mark[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
+        ok = np.ones(len(cand), dtype=bool)
+        ok[loser] = False
+        kept = np.vstack([kept, cand[ok]])
+    return kept[np.lexsort((kept[:, 0], kept[:, 1]))]
+
+
+def stress_structure(
+    kind: str,
+    *,
+    width_nm: float,
+    height_nm: float,
+    spacing_nm: float,
+    angle_deg: float = 7.0,
+    margin_nm: float = 0.0,
+    rng: np.random.Generator | int | None = None,
+) -> pd.DataFrame:
+    """Column positions of a test structure scaled to a given closest column spacing.
+
+    Parameters
+    ----------
+    kind : str
+        One of :data:`STRESS_STRUCTURES`:
+
+        * ``'decagonal'``: rings of ten (radius tau x spacing) with a centre column, species alternating 1 / 0 on
+          the ring, centre 2, on Penrose-tiling vertices (edge 4.6 ring radii), as :func:`decagonal_model`.
+        * ``'shared_rings'``: the same clusters in chains along ``angle_deg + 18`` deg, neighbours sharing two
+          ring columns (one ring edge); chains stacked by ``_CHAIN_OFFSET``. A shared column is listed once
+          (role 'shared').
+        * ``'fivefold'``: five bright columns (species 1) at radius 0.48 / 0.2957 x spacing and five dim ones
+          (species 0) at 0.30 / 0.2957 x spacing turned by 36 deg, no centre, on Penrose-tiling vertices (edge 7 x
+          spacing). With a spacing of 0.2957 nm the radii are 0.48 and 0.30 nm.
+        * ``'square'``, ``'hexagonal'``: one species, lattice constant = spacing.
+        * ``'perovskite'``: square cell of side sqrt(2) x spacing, A column (species 1) at the corner and B column
+          (species 0) at the body centre, as an ABO3 perovskite along [001] with the oxygen columns invisible.
+        * ``'hardcore'``: random points no closer than the spacing (Matern type-II rounds), species 0/1/2 drawn
+          with equal probability.
+    width_nm, height_nm : float
+        Field (x in [0, width_nm], y in [0, height_nm], y down).
+    spacing_nm : float
+        Closest column-column distance.
+    angle_deg : float
+        Rotation of the structure (atan2 in the image frame).
+    margin_nm : float
+        Every column (and for clusters the whole cluster) stays this far inside the field.
+    rng : numpy Generator or int seed
+        Pentagrid offsets, hard-core throws, species draws.
+
+    Returns
+    -------
+    DataFrame
+        ``x_nm, y_nm, species`` (0 dimmest), ``role`` ('centre', 'ring', 'shared', 'site'), ``cluster_id`` (-1
+        outside clusters), ``centre_x_nm, centre_y_nm`` (the column's cluster centre; for a shared column the mean
+        of its clusters' centres; NaN outside clusters), sorted by y then x.
+
+    Examples
+    --------
+    >>> df = stress_structure("square", width_nm=3.0, height_nm=3.0, spacing_nm=0.3, angle_deg=0.0)
+    >>> len(df) > 80
+    True
+    """
+    if kind not in STRESS_STRUCTURES:
+        raise TenfoldInputError(f"kind={kind!r} is not a stress structure; use one of {sorted(STRESS_STRUCTURES)}")
+    width_nm, height_nm = _positive("width_nm", width_nm), _positive("height_nm", height_nm)
+    d = _positive("spacing_nm", spacing_nm)
+    margin_nm = _positive("margin_nm", margin_nm, allow_zero=True)
+    gen = _rng(rng)
+    rot = _rotation(angle_deg)
+    nan2 = None
+    if kind in ("decagonal", "shared_rings"):
+        r = _DECAGON_R * d
+        ang = np.deg2rad(36.0 * np.arange(_RING))
+        offsets = np.vstack([[0.0, 0.0], np.c_[np.cos(ang), np.sin(ang)] * r]) @ rot.T
+        species = np.r_[2, np.where(np.arange(_RING) % 2 == 0, 1, 0)]
+        roles = np.array(["centre"] + ["ring"] * _RING, dtype=object)
+        if kind == "decagonal":
+            centres = _tiling_centres(width_nm, height_nm, 4.6 * r, r + margin_nm, angle_deg, gen)
+        else:
+            step = 2.0 * r * math.cos(math.pi / 10.0)
+            cell = np.array([[step * math.cos(math.pi / 10.0), step * math.sin(math.pi / 10.0)],
+                             [_CHAIN_OFFSET[0] * r, _CHAIN_OFFSET[1] * r]])
+            centres, _ = _lattice_points(cell, np.zeros((1, 2)), width_nm, height_nm, r + margin_nm, angle_deg)
+        xy, sp, role, cid, cxy = _cluster_columns(centres, offsets, species, roles)
+        if kind == "shared_rings" and len(xy):
+            # merge coincident ring columns of neighbouring clusters (positions agree to rounding)
+            key = np.round(xy / (1e-3 * d)).astype(np.int64)
+            _, first, inv, cnt = np.unique(key, axis=0, return_index=True, return_inverse=True, return_counts=True)
+            inv = inv.ravel()
+            mcx = np.bincount(inv, cxy[:, 0]) / cnt
+            mcy = np.bincount(inv, cxy[:, 1]) / cnt
+            xy, sp, cid = xy[first], sp[first], cid[first]
+            role = np.where(cnt > 1, "shared", role[first]).astype(object)
+            cxy = np.c_[mcx, mcy]
+    elif kind == "fivefold":
+        r1, r2 = d * _FIVEFOLD_R1 / _fivefold_spacing(), d * _FIVEFOLD_R2 / _fivefold_spacing()
+        a1 = np.deg2rad(72.0 * np.arange(5))
+        offsets = np.vstack([np.c_[np.cos(a1), np.sin(a1)] * r1,
+                             np.c_[np.cos(a1 + np.pi / 5), np.sin(a1 + np.pi / 5)] * r2]) @ rot.T
+        species = np.r_[np.ones(5, dtype=np.int64), np.zeros(5, dtype=np.int64)]
+        roles = np.array(["ring"] * 10, dtype=object)
+        centres = _tiling_centres(width_nm, height_nm, 7.0 * d, r1 + margin_nm, angle_deg, gen)
+        xy, sp, role, cid, cxy = _cluster_columns(centres, offsets, species, roles)
+    else:
+        nan2 = True
+        if kind == "square":
+            xy, sp = _lattice_points(np.eye(2) * d, np.zeros((1, 2)), width_nm, height_nm, margin_nm, angle_deg)
+        elif kind == "hexagonal":
+            cell = np.array([[d, 0.0], [0.5 * d, math.sqrt(3) / 2 * d]])
+            xy, sp = _lattice_points(cell, np.zeros((1, 2)), width_nm, height_nm, margin_nm, angle_deg)
+        elif kind == "perovskite":
+            a = math.sqrt(2.0) * d
+            xy, kind_idx = _lattice_points(np.eye(2) * a, np.array([[0.0, 0.0], [0.5 * a, 0.5 * a]]),
+                                           width_nm, height_nm, margin_nm, angle_deg)
+            sp = np.where(kind_idx == 0, 1, 0)
+        else:  # hardcore
+            xy = _hardcore_points(width_nm, height_nm, d, margin_nm, gen)
+            sp = gen.integers(0, 3, len(xy))
+        role = np.full(len(xy), "site", dtype=object)
+        cid = np.full(len(xy), -1)
+    out = pd.DataFrame({"x_nm": xy[:, 0], "y_nm": xy[:, 1], "species": np.asarray(sp, dtype=np.int64),
+                        "role": role.astype(object), "cluster_id": np.asarray(cid, dtype=np.int64)})
+    if nan2:
+        out["centre_x_nm"], out["centre_y_nm"] = np.nan, np.nan
+    else:
+        out["centre_x_nm"], out["centre_y_nm"] = cxy[:, 0], cxy[:, 1]
+    return out.sort_values(["y_nm", "x_nm"], ignore_index=True)
+
+
+def _fivefold_spacing() -> float:
+    """Closest distance in the five-fold cluster with radii 0.48 / 0.30 (inner turned 36 deg), same units."""
+    return math.sqrt(_FIVEFOLD_R1**2 + _FIVEFOLD_R2**2 - 2 * _FIVEFOLD_R1 * _FIVEFOLD_R2 * math.cos(math.pi / 5))
+
+
+def stress_probe(kind: str = "gaussian", *, tail_fraction: float = 0.3) -> tuple[tuple[float, float], ...]:
+    """Column image profile as a mixture of isotropic Gaussians: ((weight, sigma / core sigma), ...), weights sum 1.
+
+    ``'gaussian'``: one component. ``'core_tail'``: a Gaussian core holding ``1 - tail_fraction`` of the current
+    and a broad tail holding ``tail_fraction``, itself two Gaussians of 3 and 8 core sigmas sharing it equally (a
+    scale mixture that falls off much more slowly than the core, roughly like a Lorentzian over the range that
+    matters; real probes carry tens of percent of the current in such a tail, common practice).
+    """
+    if kind == "gaussian":
+        return ((1.0, 1.0),)
+    if kind == "core_tail":
+        f = _positive("tail_fraction", tail_fraction, allow_zero=True)
+        if f >= 1:
+            raise TenfoldInputError(f"tail_fraction={tail_fraction} must be in [0, 1)")
+        return ((1.0 - f, 1.0), (0.5 * f, 3.0), (0.5 * f, 8.0))
+    raise TenfoldInputError(f"probe={kind!r} must be one of {PROBES}")
+
+
+def peak_per_count(probe, sigma_px: float) -> float:
+    """Peak height (counts/px) of a column of one count: sum of w_k / (2 pi (s_k sigma)^2) (continuous profile)."""
+    return float(sum(w / (2 * math.pi * (m * sigma_px) ** 2) for w, m in probe))
+
+
+def _pixel_integrals(centre, start, length: int, sigma: float, size: int):
+    """Per-pixel integrals of a unit 1-D Gaussian over [j - 1/2, j + 1/2], j = start .. start + length - 1.
+
+    ``centre`` and ``start`` broadcast (any shape S); returns weights (S, length), zero outside [0, size), and the
+    clipped pixel indices (S, length).
+    """
+    from scipy.special import erf
+
+    centre = np.asarray(centre, dtype=float)
+    start = np.broadcast_to(np.asarray(start), centre.shape)
+    j = start[..., None] + np.arange(length)
+    edges = (start[..., None] - 0.5 + np.arange(length + 1) - centre[..., None]) / (sigma * math.sqrt(2.0))
+    w = 0.5 * np.diff(erf(edges), axis=-1)
+    w = np.where((j >= 0) & (j < size), w, 0.0)
+    return w, np.clip(j, 0, size - 1)
+
+
+def _patch_signal(x, y, counts, shape, sigma, row_shift) -> np.ndarray:
+    """Exact pixel-integrated Gaussians on square patches, optionally each image row shifted along x."""
+    h, w = shape
+    img = np.zeros(h * w)
+    extra = 0 if row_shift is None else int(math.ceil(np.max(np.abs(row_shift)))) + 1
+    half = int(math.ceil(4.5 * sigma)) + 1
+    ly, lx = 2 * half + 1, 2 * (half + extra) + 1
+    chunk = max(1, _CHUNK_ENTRIES // (ly * lx))
+    for s in range(0, len(x), chunk):
+        xs, ys, cs = x[s:s + chunk], y[s:s + chunk], counts[s:s + chunk]
+        wy, jy = _pixel_integrals(ys, np.floor(ys).astype(np.int64) - half + 1, ly, sigma, h)
+        x0 = np.floor(xs).astype(np.int64) - half - extra + 1
+        if row_shift is None:
+            wx, jx = _pixel_integrals(xs, x0, lx, sigma, w)
+            weights = (cs[:, None, None] * wy[:, :, None]) * wx[:, None, :]
+            flat = jy[:, :, None] * w + jx[:, None, :]
+        else:
+            # pixel (r, c) shows the specimen at x = c + shift[r]: the column appears at x - shift[r] on row r
+            wx, jx = _pixel_integrals(xs[:, None] - row_shift[jy], x0[:, None], lx, sigma, w)
+            weights = (cs[:, None, None] * wy[:, :, None]) * wx
+            flat = jy[:, :, None] * w + jx
+        img += np.bincount(flat.ravel(), weights.ravel(), minlength=h * w)
+    return img
+
+
+def _broad_signal(x, y, counts, shape, sigma) -> np.ndarray:
+    """A wide Gaussian component: bilinear deposit, then an FFT Gaussian of variance sigma^2 - 1/12.
+
+    The deposit's triangle kernel adds 1/6 px^2 of variance and pixel integration 1/12, hence the correction.
+    Light leaving the field is lost (zero padding of 4 sigma), as on the exact path.
+    """
+    from scipy import fft
+
+    h, w = shape
+    pad = int(math.ceil(4.0 * sigma))
+    H, W = fft.next_fast_len(h + 2 * pad), fft.next_fast_len(w + 2 * pad)
+    dep = np.zeros((H, W))
+    fx, fy = np.floor(x), np.floor(y)
+    tx, ty = x - fx, y - fy
+    ix, iy = fx.astype(np.int64) + pad, fy.astype(np.int64) + pad
+    for dy, wy in ((0, 1 - ty), (1, ty)):
+        for dx, wx in ((0, 1 - tx), (1, tx)):
+            r, c = iy + dy, ix + dx
+            ok = (r >= 0) & (r < H) & (c >= 0) & (c < W)
+            np.add.at(dep, (r[ok], c[ok]), (counts * wy * wx)[ok])
+    s2 = sigma**2 - 1.0 / 12.0
+    ky = fft.fftfreq(H)[:, None]
+    kx = fft.rfftfreq(W)[None, :]
+    out = fft.irfft2(fft.rfft2(dep) * np.exp(-2 * np.pi**2 * s2 * (kx**2 + ky**2)), s=(H, W))
+    return out[pad:pad + h, pad:pad + w].ravel()
+
+
+def column_signal(x_px, y_px, counts, *, shape, sigma_px: float, probe=((1.0, 1.0),), row_shift_px=None
+                  ) -> np.ndarray:
+    """Noise-free signal of columns (no background), float64 (H, W), for a Gaussian-mixture probe.
+
+    Parameters
+    ----------
+    x_px, y_px, counts : array_like (N,)
+        Positions as they appear in the image (px; after any shear) and electrons per column.
+    shape : (int, int)
+    sigma_px : float
+        Core Gaussian sigma, px.
+    probe : sequence of (weight, sigma multiple)
+        From :func:`stress_probe`.
+    row_shift_px : (H,) array, optional
+        Scan-row jitter: image row r shows the specimen shifted by ``row_shift_px[r]`` along x.
+
+    Notes
+    -----
+    Components up to 6 px wide are integrated exactly over each pixel (as :func:`render_image`); wider ones are
+    deposited bilinearly and blurred by FFT (exact to well under 1 % of their own, already faint, pixel values);
+    row jitter is applied to the exact components only (the wide ones are too smooth to show it).
+    """
+    shape = _check_shape(shape)
+    sigma_px = _positive("sigma_px", sigma_px)
+    x = np.asarray(x_px, dtype=float).ravel()
+    y = np.asarray(y_px, dtype=float).ravel()
+    c = np.broadcast_to(np.asarray(counts, dtype=float), x.shape).ravel()
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y)) and np.all(np.isfinite(c))) or x.shape != y.shape:
+        raise TenfoldInputError("x_px, y_px and counts must be finite arrays of one length")
+    shift = None if row_shift_px is None else np.asarray(row_shift_px, dtype=float)
+    if shift is not None and shift.shape != (shape[0],):
+        raise TenfoldInputError(f"row_shift_px must have one value per image row ({shape[0]}), got {shift.shape}")
+    img = np.zeros(shape[0] * shape[1])
+    for wgt, mult in probe:
+        s = mult * sigma_px
+        if wgt == 0 or len(x) == 0:
+            continue
+        if s > _BROAD_PX:
+            img += _broad_signal(x, y, wgt * c, shape, s)
+        else:
+            img += _patch_signal(x, y, wgt * c, shape, s, shift)
+    return img.reshape(shape)
+
+
+@dataclass(frozen=True)
+class StressCondition:
+    """One cell of the stress matrix: a structure and the conditions it is recorded under.
+
+    Attributes
+    ----------
+    structure : str
+        A key of :data:`STRESS_STRUCTURES`.
+    sigma_over_spacing : float
+        Probe (core) sigma / closest column spacing (0.15-0.30 is what microscopists record).
+    px_per_sigma : float
+        Sampling, px per core sigma (1.3-4).
+    peak_counts : float
+        Dose scale: peak height of the brightest species, counts per px above background (30-5000).
+    background_fraction : float
+        Mean background as a fraction of the dimmest species' peak (0-0.5).
+    dim_ratio : float
+        Peak of the dimmest species / the brightest (0.2-1); species in between are spaced geometrically.
+    size_px : int
+        Square field, px (256-4096).
+    spacing_nm : float
+        Closest column spacing in nm (sets the pixel size: sigma_nm / px_per_sigma).
+    gradient : float
+        Background max / min across the field (1 = flat; 3 = a 3x gradient along the diagonal).
+    shear : float
+        Fast-scan shear: x' = x + shear * (y - centre).
+    row_jitter_px : float
+        Standard deviation of a random x shift per scan row, px.
+    dark : bool
+        HRTEM-like contrast: columns are dips below a bright level (the level sits ``background`` above the
+        deepest dip).
+    rescale : str
+        'none' (counts, float32), 'uint8' (contrast stretch min..max to 0..255) or 'x1000' (counts x 1000, int32).
+    probe : str
+        'gaussian' or 'core_tail' (:func:`stress_probe`).
+    tail_fraction : float
+        Current in the tail for 'core_tail'.
+    angle_deg : float
+        Structure rotation.
+    """
+
+    structure: str = "decagonal"
+    sigma_over_spacing: float = 0.25
+    px_per_sigma: float = 2.5
+    peak_counts: float = 500.0
+    background_fraction: float = 0.2
+    dim_ratio: float = 0.4
+    size_px: int = 512
+    spacing_nm: float = 0.28
+    gradient: float = 1.0
+    shear: float = 0.0
+    row_jitter_px: float = 0.0
+    dark: bool = False
+    rescale: str = "none"
+    probe: str = "gaussian"
+    tail_fraction: float = 0.3
+    angle_deg: float = 7.0
+
+    @property
+    def sigma_nm(self) -> float:
+        return self.sigma_over_spacing * self.spacing_nm
+
+    @property
+    def pixel_size_nm(self) -> float:
+        return self.sigma_nm / self.px_per_sigma
+
+
+def _species_peaks(n_species: int, brightest: float, dim_ratio: float) -> np.ndarray:
+    if n_species == 1:
+        return np.array([brightest])
+    return brightest * dim_ratio ** (1.0 - np.arange(n_species) / (n_species - 1))
+
+
+def stress_sample(cond: StressCondition, *, rng: np.random.Generator | int | None = None,
+                  noise: bool = True) -> tuple[np.ndarray, pd.DataFrame, dict]:
+    """Render one stress-matrix cell: image, ground truth per column, and every parameter.
+
+    Parameters
+    ----------
+    cond : StressCondition
+        The cell.
+    rng : numpy Generator or int seed
+        Structure draws (tiling offsets, hard-core points), row jitter and Poisson noise.
+    noise : bool
+        False returns the expected image (float64, before rescaling).
+
+    Returns
+    -------
+    image : ndarray (size_px, size_px)
+        float32 counts; uint8 or int32 with ``rescale``.
+    truth : DataFrame
+        One row per column: ``id, x_px, y_px`` (as they appear in the image, after the shear; the specimen
+        position, without row jitter), ``x_nm, y_nm, species, role, cluster_id, centre_x_px, centre_y_px``,
+        ``counts`` (electrons in the column), ``amplitude`` (peak counts/px above background, continuous
+        profile), ``crowded`` (nearest other column closer than 5 core sigmas).
+    params : dict
+        The condition plus ``pixel_size_nm, sigma_px, sigma_nm, probe`` (components), ``peaks_by_species``,
+        ``background_mean``, ``bright_level`` (dark), ``snr_dim`` (dimmest peak over the Poisson noise at it:
+        ``A_dim / sqrt(b + A_dim)``, b the mean background or bright level), ``spacing_over_sigma``,
+        ``closest_spacing_px`` (measured), ``value_scale`` (image units per count: 1, 255 / range, 1000),
+        ``value_offset``, ``n_columns``, ``generator_version``.
+
+    Notes
+    -----
+    The expected image is ``background(x, y) + sum_i N_i profile(x - x_i, y - y_i)`` (bright) or
+    ``level(x, y) - sum_i ...`` (dark), each column pixel-integrated; Poisson noise is drawn from it. The background
+    ramps linearly along the diagonal from ``2 b / (1 + g)`` to ``2 g b / (1 + g)`` (mean b, max / min = g).
+    """
+    if cond.structure not in STRESS_STRUCTURES:
+        raise TenfoldInputError(f"structure={cond.structure!r}: use one of {sorted(STRESS_STRUCTURES)}")
+    if cond.rescale not in RESCALES:
+        raise TenfoldInputError(f"rescale={cond.rescale!r}: use one of {RESCALES}")
+    gen = _rng(rng)
+    n = int(cond.size_px)
+    if n < 16:
+        raise TenfoldInputError(f"size_px={cond.size_px!r} must be at least 16")
+    ps = _positive("pixel_size_nm", cond.pixel_size_nm)
+    sigma_px = float(cond.px_per_sigma)
+    probe = stress_probe(cond.probe, tail_fraction=cond.tail_fraction)
+    field_nm = n * ps
+    # sheared columns must stay inside: build the structure narrower by |shear| x height
+    margin_px = 3.0 * sigma_px + 1.0
+    width_nm = field_nm * (1.0 - abs(cond.shear))
+    cols = stress_structure(cond.structure, width_nm=width_nm, height_nm=field_nm, spacing_nm=cond.spacing_nm,
+                            angle_deg=cond.angle_deg, margin_nm=margin_px * ps, rng=gen)
+    y = cols["y_nm"].to_numpy() / ps - 0.5
+    x0 = cols["x_nm"].to_numpy() / ps - 0.5 + 0.5 * abs(cond.shear) * field_nm / ps
+    xc = 0.5 * (n - 1)
+    x = x0 + cond.shear * (y - xc)
+    cx = cols["centre_x_nm"].to_numpy() / ps - 0.5 + 0.5 * abs(cond.shear) * field_nm / ps
+    cy = cols["centre_y_nm"].to_numpy() / ps - 0.5
+    cx = cx + cond.shear * (cy - xc)
+    n_sp = STRESS_STRUCTURES[cond.structure]
+    peaks = _species_peaks(n_sp, _positive("peak_counts", cond.peak_counts), float(cond.dim_ratio))
+    species = cols["species"].to_numpy()
+    counts = peaks[species] / peak_per_count(probe, sigma_px)
+    b_mean = _positive("background_fraction", cond.background_fraction, allow_zero=True) * peaks[0]
+    g = _positive("gradient", cond.gradient)
+    ramp = _ramp(n, g)
+    shift = gen.normal(0.0, cond.row_jitter_px, n) if cond.row_jitter_px > 0 else None
+    signal = column_signal(x, y, counts, shape=(n, n), sigma_px=sigma_px, probe=probe, row_shift_px=shift)
+    level = None
+    if cond.dark:
+        # mean bright level such that the deepest dip still sits b_mean above zero everywhere on the ramp
+        level = float(((signal + b_mean) / ramp).max())
+        expected = level * ramp - signal
+    else:
+        expected = b_mean * ramp + signal
+    b_ref = level if cond.dark else b_mean
+    from scipy.spatial import cKDTree
+
+    if len(x) > 1:
+        d, _ = cKDTree(np.c_[x, y]).query(np.c_[x, y], k=2)
+        nn = d[:, 1]
+    else:
+        nn = np.full(len(x), np.inf)
+    truth = pd.DataFrame({
+        "id": np.arange(len(x), dtype=np.int64), "x_px": x, "y_px": y, "x_nm": x * ps, "y_nm": y * ps,
+        "species": species, "role": cols["role"].to_numpy(), "cluster_id": cols["cluster_id"].to_numpy(),
+        "centre_x_px": cx, "centre_y_px": cy, "counts": counts, "amplitude": peaks[species],
+        "crowded": nn < 5.0 * sigma_px,
+    })
+    params = {
+        **{k: getattr(cond, k) for k in cond.__dataclass_fields__},
+        "generator_version": GENERATOR_VERSION, "pixel_size_nm": ps, "sigma_px": sigma_px,
+        "sigma_nm": cond.sigma_nm, "probe_components": [list(c) for c in probe],
+        "peaks_by_species": peaks.tolist(), "background_mean": b_mean, "bright_level": level,
+        "snr_dim": float(peaks[0] / math.sqrt(b_ref + peaks[0])),
+        "spacing_over_sigma": 1.0 / cond.sigma_over_spacing,
+        "closest_spacing_px": float(nn.min()) if len(x) > 1 else float("nan"),
+        "n_columns": int(len(x)), "n_species": n_sp,
+    }
+    if not noise:
+        params.update(value_scale=1.0, value_offset=0.0)
+        return expected, truth, params
+    img = gen.poisson(expected).astype(np.float64)
+    scale, offset = 1.0, 0.0
+    if cond.rescale == "uint8":
+        lo, hi = float(img.min()), float(img.max())
+        scale, offset = 255.0 / max(hi - lo, 1e-12), lo
+        img = np.round((img - lo) * scale).astype(np.uint8)
+    elif cond.rescale == "x1000":
+        scale = 1000.0
+        img = (img * 1000.0).astype(np.int32)
+    else:
+        img = img.astype(np.float32)
+    params.update(value_scale=scale, value_offset=offset)
+    return img, truth, params
+
+
+def stress_background(cond: StressCondition, params: dict) -> np.ndarray:
+    """The expected background (bright: the ramp; dark: the bright level ramp) of a cell, float64 (H, W)."""
+    level = params["bright_level"] if cond.dark else params["background_mean"]
+    return level * _ramp(int(cond.size_px), float(cond.gradient))
+
+
+def _ramp(n: int, g: float) -> np.ndarray:
+    """Linear ramp along the diagonal of an n x n field, mean 1, max / min = g."""
+    rows, cols = np.indices((n, n), dtype=float)
+    return (2.0 / (1.0 + g)) * (1.0 + (g - 1.0) * (rows + cols) / max(2 * (n - 1), 1))
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Named stress cells (benchmarks/stress_columns.py runs them; tests build single cells by name)
+# ----------------------------------------------------------------------------------------------------------------
+
+def _cell(**kw) -> StressCondition:
+    return StressCondition(**kw)
+
+
+_DEC = dict(structure="decagonal", size_px=768)
+#: The quick matrix: one base cell per structure and one change of one condition at a time from the decagonal base
+#: (sigma / spacing 0.25, 2.5 px per sigma, peak 500 counts, background 20 % of the dimmest peak, dimmest 0.4).
+STRESS_CELLS: dict[str, StressCondition] = {
+    "dec_base": _cell(**_DEC),
+    "dec_broad_2048": _cell(**{**_DEC, "size_px": 2048}, sigma_over_spacing=0.27, px_per_sigma=3.6,
+                            peak_counts=2000.0),
+    "dec_broad": _cell(**_DEC, sigma_over_spacing=0.30, px_per_sigma=3.0),
+    "dec_narrow": _cell(**_DEC, sigma_over_spacing=0.15),
+    "dec_coarse": _cell(**{**_DEC, "size_px": 512}, px_per_sigma=1.3),
+    "dec_fine": _cell(**{**_DEC, "size_px": 1024}, px_per_sigma=4.0),
+    "dec_dose30": _cell(**_DEC, peak_counts=30.0, background_fraction=0.5),
+    "dec_dose100": _cell(**_DEC, peak_counts=100.0),
+    "dec_dose5000": _cell(**_DEC, peak_counts=5000.0, background_fraction=0.05),
+    "dec_no_bg": _cell(**_DEC, background_fraction=0.0),
+    "dec_dim02": _cell(**_DEC, dim_ratio=0.2),
+    "dec_equal": _cell(**_DEC, dim_ratio=1.0),
+    "dec_gradient3": _cell(**_DEC, gradient=3.0),
+    "dec_shear3": _cell(**_DEC, shear=0.03),
+    "dec_jitter": _cell(**_DEC, row_jitter_px=0.2),
+    "dec_dark": _cell(**_DEC, dark=True),
+    "dec_uint8": _cell(**_DEC, peak_counts=100.0, rescale="uint8"),
+    "dec_x1000": _cell(**_DEC, peak_counts=100.0, rescale="x1000"),
+    "dec_tail": _cell(**_DEC, probe="core_tail", tail_fraction=0.3),
+    "shared_base": _cell(structure="shared_rings", size_px=512),
+    "fivefold_base": _cell(structure="fivefold", size_px=768, spacing_nm=0.2957),
+    "fivefold_broad": _cell(structure="fivefold", size_px=768, spacing_nm=0.2957, sigma_over_spacing=0.30,
+                            px_per_sigma=3.6),
+    "square": _cell(structure="square", size_px=512, sigma_over_spacing=0.20),
+    "hexagonal": _cell(structure="hexagonal", size_px=512, sigma_over_spacing=0.20),
+    "perovskite": _cell(structure="perovskite", size_px=512, dim_ratio=0.5),
+    "hardcore": _cell(structure="hardcore", size_px=512, sigma_over_spacing=0.22),
+}
+
+
+def stress_draw(n: int, *, rng: np.random.Generator | int | None = 0) -> dict[str, StressCondition]:
+    """A seeded random draw of ``n`` cells over the whole stress range (the ``--full`` matrix adds it).
+
+    Structure uniform over :data:`STRESS_STRUCTURES`; sigma / spacing U(0.15, 0.30); px per sigma U(1.3, 4); peak
+    counts log-uniform 30-5000; background U(0, 0.5) of the dimmest peak; dimmest / brightest U(0.2, 1); field 256,
+    512, 1024, 2048 or 4096 px (weights 2:3:3:2:1); each of gradient 3x, shear +-0.03, row jitter 0.2 px, dark
+    contrast, uint8 / x1000 rescaling and a core-plus-tail probe (tail 0.2-0.4) with probability 0.15.
+    """
+    gen = _rng(rng)
+    kinds = sorted(STRESS_STRUCTURES)
+    sizes, weights = [256, 512, 1024, 2048, 4096], np.array([2, 3, 3, 2, 1], float)
+    out = {}
+    for i in range(int(n)):
+        opt = gen.random(6) < 0.15
+        kind = kinds[gen.integers(len(kinds))]
+        cond = StressCondition(
+            structure=kind,
+            sigma_over_spacing=float(gen.uniform(0.15, 0.30)),
+            px_per_sigma=float(gen.uniform(1.3, 4.0)),
+            peak_counts=float(np.exp(gen.uniform(np.log(30.0), np.log(5000.0)))),
+            background_fraction=float(gen.uniform(0.0, 0.5)),
+            dim_ratio=float(gen.uniform(0.2, 1.0)),
+            size_px=int(gen.choice(sizes, p=weights / weights.sum())),
+            spacing_nm=0.2957 if kind == "fivefold" else 0.28,
+            gradient=3.0 if opt[0] else 1.0,
+            shear=float(gen.choice([-0.03, 0.03])) if opt[1] else 0.0,
+            row_jitter_px=0.2 if opt[2] else 0.0,
+            dark=bool(opt[3]),
+            rescale=str(gen.choice(["uint8", "x1000"])) if opt[4] else "none",
+            probe="core_tail" if opt[5] else "gaussian",
+            tail_fraction=float(gen.uniform(0.2, 0.4)),
+            angle_deg=float(gen.uniform(0.0, 36.0)),
+        )
+        out[f"draw{i:03d}_{kind}"] = cond
+    return out
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# The Cramer-Rao bound of crowded columns
+# ----------------------------------------------------------------------------------------------------------------
+
+#: Mean counts per pixel below which a pixel is treated as holding this many (keeps 1 / mu finite at zero background).
+_MU_FLOOR = 1e-6
+
+
+def _patch_profiles(centre, start, length, sigma):
+    """Pixel integrals of a unit Gaussian (N, L) and their derivatives with respect to the centre."""
+    from scipy.special import erf
+
+    e = (start[:, None] - 0.5 + np.arange(length + 1) - centre[:, None]) / sigma
+    g = 0.5 * np.diff(erf(e / math.sqrt(2.0)), axis=1)
+    pdf = np.exp(-0.5 * e**2) / (sigma * math.sqrt(2 * math.pi))
+    return g, pdf[:, :-1] - pdf[:, 1:]
+
+
+def crlb_columns_px(
+    x_px,
+    y_px,
+    counts,
+    *,
+    shape: tuple[int, int],
+    sigma_px: float,
+    background,
+    probe=((1.0, 1.0),),
+    dark_columns: bool = False,
+    group_radius_sigma: float = 5.5,
+    max_group: int = 12,
+    signal: np.ndarray | None = None,
+) -> pd.DataFrame:
+    """Cramer-Rao bound of every column's position from the exact pixel Fisher information of the whole image.
+
+    The expected image ``mu`` holds all columns (pixel-integrated, Gaussian-mixture probe) on the background, so
+    overlapping neighbours both add counts (noise) and compete for them (correlation). For each column the Fisher
+    matrix of its touching group, x, y and counts N of the column and of its neighbours within
+    ``group_radius_sigma`` core sigmas (at most ``max_group`` columns, nearest first), plus one constant background
+    shared over the group's pixels, is built from ``I_ab = sum_p (d mu_p / d theta_a)(d mu_p / d theta_b) / mu_p``
+    and inverted; the bound is the square root of the column's x and y diagonal entries.
+
+    Parameters
+    ----------
+    x_px, y_px : array_like (N,)
+        Column positions in the image (px; pixel (0, 0) centre at x = y = 0).
+    counts : array_like (N,)
+        Electrons per column (> 0).
+    shape : (int, int)
+        Image (rows, cols).
+    sigma_px : float
+        Core sigma, px.
+    background : float or (H, W) array
+        Expected background counts per px (the bright level for ``dark_columns``).
+    probe : sequence of (weight, sigma multiple)
+        Column profile, as :func:`stress_probe`.
+    dark_columns : bool
+        mu = background - signal.
+    group_radius_sigma, max_group : float, int
+        Neighbours entering a column's group. Pairs further apart than 5.5 core sigmas share a factor below
+        exp(-5.5^2 / 4) ~ 5e-4 of their light; their correlation changes the bound by well under 1 %.
+    signal : (H, W) array, optional
+        The columns' noise-free signal if already rendered with :func:`column_signal` (saves a rendering).
+
+    Returns
+    -------
+    DataFrame
+        ``crlb_x_px, crlb_y_px`` (standard deviations), ``crlb_px`` (per-axis: ``sqrt((var_x + var_y) / 2)``),
+        ``crlb_isolated_px`` (the same column's bound with the neighbours' parameters known, i.e. the plain
+        per-column Fisher information on the crowded image), ``n_group`` (columns in the group).
+
+    Notes
+    -----
+    Derivatives are evaluated on a patch of half-width ceil(4.5 sigma) + 1 px around each column (beyond it a
+    Gaussian carries under 5e-4 of its position information); the broad tail components of a core-plus-tail probe
+    contribute to ``mu`` everywhere but to the derivatives only inside that patch. Pixels with mu below 1e-6 are
+    counted as 1e-6. Groups are not chained further (neighbours of neighbours enter only through ``mu``). For an
+    isolated Gaussian the result is the pixel Fisher bound that Mortensen et al. (2010) eq. (5) approximates
+    (``crlb_position_px(..., estimator='mle')``).
+
+    References
+    ----------
+    K. I. Mortensen, L. S. Churchman, J. A. Spudich, H. Flyvbjerg, Nature Methods 7 (2010) 377-381.
+    S. M. Kay, Fundamentals of Statistical Signal Processing: Estimation Theory (Prentice Hall 1993), ch. 3.
+
+    Examples
+    --------
+    >>> b = crlb_columns_px([20.0], [20.0], [1000.0], shape=(41, 41), sigma_px=1.5, background=10.0)
+    >>> round(float(b.crlb_px[0]), 4)  # Mortensen et al. (2010) eq. (5): 0.0677
+    0.0677
+    """
+    from scipy.spatial import cKDTree
+
+    from . import _fisher
+
+    shape = _check_shape(shape)
+    sigma_px = _positive("sigma_px", sigma_px)
+    x = np.asarray(x_px, dtype=float).ravel()
+    y = np.asarray(y_px, dtype=float).ravel()
+    n_cnt = np.broadcast_to(np.asarray(counts, dtype=float), x.shape).ravel().copy()
+    if x.shape != y.shape or not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        raise TenfoldInputError("crlb_columns_px: x_px and y_px must be finite arrays of one length")
+    if np.any(n_cnt <= 0) or not np.all(np.isfinite(n_cnt)):
+        raise TenfoldInputError("crlb_columns_px: counts must be positive and finite")
+    n = len(x)
+    cols = ["crlb_x_px", "crlb_y_px", "crlb_px", "crlb_isolated_px", "n_group"]
+    if n == 0:
+        return pd.DataFrame({c: np.zeros(0) for c in cols})
+    probe = tuple((float(wt), float(m)) for wt, m in probe)
+    if signal is None:
+        signal = column_signal(x, y, n_cnt, shape=shape, sigma_px=sigma_px, probe=probe)
+    bg = np.broadcast_to(np.asarray(background, dtype=float), shape)
+    sign = -1.0 if dark_columns else 1.0
+    mu = bg + sign * signal
+    inv_mu = 1.0 / np.maximum(mu, _MU_FLOOR)
+
+    half = int(math.ceil(4.5 * sigma_px)) + 1
+    length = 2 * half + 1
+    u0 = np.round(x).astype(np.int64) - half
+    v0 = np.round(y).astype(np.int64) - half
+    w = np.array([p[0] for p in probe])
+    gx = np.empty((len(probe), n, length))
+    dgx, gy, dgy = np.empty_like(gx), np.empty_like(gx), np.empty_like(gx)
+    for k, (_, mult) in enumerate(probe):
+        gx[k], dgx[k] = _patch_profiles(x, u0, length, mult * sigma_px)
+        gy[k], dgy[k] = _patch_profiles(y, v0, length, mult * sigma_px)
+
+    # groups: the column itself first, then its neighbours nearest first; missing slots point at n (padding)
+    tree = cKDTree(np.c_[x, y])
+    k_q = min(max_group, n)
+    dist, grp = tree.query(np.c_[x, y], k=k_q, distance_upper_bound=group_radius_sigma * sigma_px)
+    grp = np.asarray(grp).reshape(n, k_q)
+    grp[~np.isfinite(np.asarray(dist).reshape(n, k_q))] = n
+    # every pair inside some group needs its block; patches overlap only within 2 half-widths (Chebyshev)
+    a_idx = np.repeat(grp[:, :, None], k_q, axis=2)
+    b_idx = np.repeat(grp[:, None, :], k_q, axis=1)
+    valid = (a_idx < n) & (b_idx < n)
+    lo, hi = np.minimum(a_idx, b_idx), np.maximum(a_idx, b_idx)
+    keys = np.unique((lo * (n + 1) + hi)[valid])
+    pi, pj = keys // (n + 1), keys % (n + 1)
+    near = (np.abs(u0[pi] - u0[pj]) < length) & (np.abs(v0[pi] - v0[pj]) < length)
+    keys, pi, pj = keys[near], pi[near], pj[near]
+    blocks = _fisher.pair_blocks(pi, pj, u0, v0, length, inv_mu, w, gx, dgx, gy, dgy, n_cnt, sign)
+    bcoup = _fisher.background_coupling(u0, v0, length, inv_mu, w, gx, dgx, gy, dgy, n_cnt, sign)
+    # I_bb over the bounding box of the group's patches (clipped to the image), from an integral image of 1 / mu
+    sat = np.zeros((shape[0] + 1, shape[1] + 1))
+    sat[1:, 1:] = inv_mu.cumsum(0).cumsum(1)
+    gu0 = np.where(grp < n, u0[np.minimum(grp, n - 1)], np.iinfo(np.int64).max)
+    gv0 = np.where(grp < n, v0[np.minimum(grp, n - 1)], np.iinfo(np.int64).max)
+    bu0 = np.clip(gu0.min(axis=1), 0, shape[1])
+    bv0 = np.clip(gv0.min(axis=1), 0, shape[0])
+    bu1 = np.clip(np.where(grp < n, u0[np.minimum(grp, n - 1)], -1).max(axis=1) + length, 0, shape[1])
+    bv1 = np.clip(np.where(grp < n, v0[np.minimum(grp, n - 1)], -1).max(axis=1) + length, 0, shape[0])
+    ibb = sat[bv1, bu1] - sat[bv0, bu1] - sat[bv1, bu0] + sat[bv0, bu0]
+
+    n_group = (grp < n).sum(axis=1).astype(np.int64)
+    res = _fisher.group_bounds(grp, n_group, keys, blocks, bcoup, ibb, n + 1)
+    out, iso = res[:, :2], res[:, 2]
+    var = np.where(out > 0, out, np.nan)
+    return pd.DataFrame({
+        "crlb_x_px": np.sqrt(var[:, 0]), "crlb_y_px": np.sqrt(var[:, 1]),
+        "crlb_px": np.sqrt(0.5 * (var[:, 0] + var[:, 1])), "crlb_isolated_px": np.sqrt(iso),
+        "n_group": n_group,
+    })
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Scoring a column table against the truth
+# ----------------------------------------------------------------------------------------------------------------
+
+
+def match_columns(found_xy, truth_xy, radius_px: float) -> tuple[np.ndarray, np.ndarray]:
+    """Mutual nearest neighbours closer than ``radius_px``: (found index, truth index) of each matched pair.
+
+    A found column and a true column are paired when each is the other's nearest (KD-tree), so no column is used
+    twice; anything else is unmatched (a miss or a false detection).
+    """
+    from scipy.spatial import cKDTree
+
+    f = np.asarray(found_xy, dtype=float).reshape(-1, 2)
+    t = np.asarray(truth_xy, dtype=float).reshape(-1, 2)
+    if len(f) == 0 or len(t) == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    d_ft, i_ft = cKDTree(t).query(f, distance_upper_bound=radius_px)
+    _, i_tf = cKDTree(f).query(t, distance_upper_bound=radius_px)
+    fi = np.flatnonzero(np.isfinite(d_ft))
+    ti = i_ft[fi]
+    mutual = i_tf[ti] == fi
+    return fi[mutual], ti[mutual]
+
+
+def _rms(v) -> float:
+    v = np.asarray(v, dtype=float)
+    return float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
+
+
+def species_agreement(found_labels, true_labels) -> float:
+    """Share of columns whose found class maps to their true species under the best one-to-one label map.
+
+    The map maximises the agreement (Hungarian assignment on the contingency table); classes left without a
+    partner when the numbers of classes differ count as wrong.
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    f = np.asarray(found_labels)
+    t = np.asarray(true_labels)
+    if f.size == 0:
+        return float("nan")
+    fu, fi = np.unique(f, return_inverse=True)
+    tu, ti = np.unique(t, return_inverse=True)
+    table = np.zeros((len(fu), len(tu)))
+    np.add.at(table, (fi.ravel(), ti.ravel()), 1.0)
+    r, c = linear_sum_assignment(-table)
+    return float(table[r, c].sum() / f.size)
+
+
+def score_columns(found: pd.DataFrame, truth: pd.DataFrame, *, match_radius_px: float) -> dict:
+    """Compare a found column table with the ground truth of a synthetic image.
+
+    Parameters
+    ----------
+    found : DataFrame
+        ``x_px, y_px``; optional ``pos_err_px`` (reported per-axis error), ``species`` (-1 = none), ``intensity``.
+    truth : DataFrame
+        ``x_px, y_px, species, crlb_px`` (per-axis bound, :func:`crlb_columns_px`); optional ``crowded`` (bool),
+        ``role`` and ``centre_x_px, centre_y_px`` (cluster centre, NaN outside clusters), as from
+        :func:`stress_sample`.
+    match_radius_px : float
+        Pairs further apart are not matched (the benchmark uses half the closest spacing).
+
+    Returns
+    -------
+    dict
+        ``n_true, n_found, n_matched, recall, precision``;
+        ``rms_over_bound`` {species: per-axis RMS error / RMS bound}, ``rms_bound_median`` (median over species),
+        ``rms_bound_crowded`` (crowded columns pooled), ``rms_bound_worst`` (max over species and the crowded
+        set); ``radial_bias`` {species: mean error along the unit vector from the column to its cluster centre,
+        positive = toward the centre, over ring / shared columns, in units of their RMS bound},
+        ``radial_bias_worst`` (largest magnitude, signed); ``actual_over_reported`` {species: RMS error / RMS of
+        ``pos_err_px``}, ``act_rep_min``, ``act_rep_max``; ``n_species_true``, ``n_species_found``,
+        ``species_agreement``; ``species_separation`` (smallest gap between adjacent true species' mean found
+        ``intensity`` over the mean of their standard deviations).
+    """
+    tx, ty = truth["x_px"].to_numpy(float), truth["y_px"].to_numpy(float)
+    fx, fy = found["x_px"].to_numpy(float), found["y_px"].to_numpy(float)
+    fi, ti = match_columns(np.c_[fx, fy], np.c_[tx, ty], match_radius_px)
+    n_t, n_f, n_m = len(truth), len(found), len(fi)
+    out: dict = {"n_true": n_t, "n_found": n_f, "n_matched": n_m,
+                 "recall": n_m / n_t if n_t else float("nan"), "precision": n_m / n_f if n_f else float("nan")}
+    ex, ey = fx[fi] - tx[ti], fy[fi] - ty[ti]
+    err2 = 0.5 * (ex**2 + ey**2)  # per-axis squared error
+    bound = truth["crlb_px"].to_numpy(float)[ti] if "crlb_px" in truth else np.full(n_m, np.nan)
+    sp = truth["species"].to_numpy()[ti]
+    crowded = truth["crowded"].to_numpy(bool)[ti] if "crowded" in truth else np.zeros(n_m, bool)
+
+    def ratio(sel):
+        if not np.any(sel):
+            return float("nan")
+        return float(np.sqrt(err2[sel].mean()) / np.sqrt(np.mean(bound[sel] ** 2)))
+
+    species = np.unique(truth["species"].to_numpy())
+    rob = {int(s): ratio(sp == s) for s in species}
+    out["rms_over_bound"] = rob
+    vals = [v for v in rob.values() if np.isfinite(v)]
+    out["rms_bound_median"] = float(np.median(vals)) if vals else float("nan")
+    out["rms_bound_crowded"] = ratio(crowded)
+    worst = vals + ([out["rms_bound_crowded"]] if np.isfinite(out["rms_bound_crowded"]) else [])
+    out["rms_bound_worst"] = float(max(worst)) if worst else float("nan")
+
+    bias = {}
+    if {"centre_x_px", "centre_y_px", "role"} <= set(truth.columns):
+        cx = truth["centre_x_px"].to_numpy(float)[ti] - tx[ti]
+        cy = truth["centre_y_px"].to_numpy(float)[ti] - ty[ti]
+        r = np.hypot(cx, cy)
+        ring = np.isin(truth["role"].to_numpy()[ti], ["ring", "shared"]) & (r > 0) & np.isfinite(r)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            radial = (ex * cx + ey * cy) / r
+        for s in species:
+            sel = ring & (sp == s)
+            if np.any(sel):
+                bias[int(s)] = float(radial[sel].mean() / np.sqrt(np.mean(bound[sel] ** 2)))
+    out["radial_bias"] = bias
+    out["radial_bias_worst"] = max(bias.values(), key=abs) if bias else float("nan")
+
+    arr = {}
+    if "pos_err_px" in found:
+        rep = found["pos_err_px"].to_numpy(float)[fi]
+        for s in species:
+            sel = (sp == s) & np.isfinite(rep)
+            if np.any(sel):
+                arr[int(s)] = float(np.sqrt(err2[sel].mean()) / _rms(rep[sel]))
+    out["actual_over_reported"] = arr
+    out["act_rep_min"] = min(arr.values()) if arr else float("nan")
+    out["act_rep_max"] = max(arr.values()) if arr else float("nan")
+
+    out["n_species_true"] = int(len(species))
+    if "species" in found:
+        fs = found["species"].to_numpy()
+        out["n_species_found"] = int(len(np.unique(fs[fs >= 0])))
+        out["species_agreement"] = species_agreement(fs[fi], sp) if n_m else float("nan")
+    else:
+        out["n_species_found"], out["species_agreement"] = 0, float("nan")
+    sep = float("nan")
+    if "intensity" in found and len(species) > 1 and n_m:
+        inten = found["intensity"].to_numpy(float)[fi]
+        stats = [(np.nanmean(inten[sp == s]), np.nanstd(inten[sp == s])) for s in species if np.sum(sp == s) > 1]
+        stats.sort()
+        gaps = [(b[0] - a[0]) / (0.5 * (a[1] + b[1])) for a, b in zip(stats[:-1], stats[1:]) if a[1] + b[1] > 0]
+        sep = float(min(gaps)) if gaps else float("nan")
+    out["species_separation"] = sep
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
