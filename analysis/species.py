@@ -111,6 +111,26 @@ def fit_gmm_1d(x, k, *, rng=0, n_init=4):
     return {"means": mean[order], "stds": np.sqrt(var[order]), "weights": weight[order], "log_likelihood": ll}
 
 
+#: neighbouring classes must be at least this many of their (larger) spreads apart to count as two species
+#: (common practice for resolving two Gaussian peaks; at 2.5 spreads the mixture density has a clear dip)
+MERGE_SPREADS = 2.5
+
+
+def _entropy(x, fit):
+    """Classification entropy -sum_i sum_k t_ik ln t_ik of the posterior memberships (McLachlan & Peel 2000)."""
+    ld = _log_dens(x, fit["means"], fit["stds"] ** 2, fit["weights"])
+    post = np.exp(ld - _logsumexp(ld)[:, None])
+    return float(-(post * np.log(np.maximum(post, 1e-300))).sum())
+
+
+def _separated(fit):
+    """True when every pair of neighbouring classes is at least ``MERGE_SPREADS`` of their larger spread apart."""
+    m, s = fit["means"], fit["stds"]
+    if m.size < 2:
+        return True
+    return bool(np.all(np.diff(m) >= MERGE_SPREADS * np.maximum(s[1:], s[:-1])))
+
+
 def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rng=0) -> tuple[pd.DataFrame, dict]:
     """Assign each column an intensity class with a 1-D Gaussian mixture on its integrated intensity.
 
@@ -137,13 +157,15 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
 
     Notes
     -----
-    BIC = -2 ln L + p ln n with p = 3k - 1 free parameters (k means, k variances, k - 1 weights); the k with the
-    smallest BIC wins. With fewer than ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is
+    BIC = -2 ln L + p ln n with p = 3k - 1 free parameters (k means, k variances, k - 1 weights); ICL = BIC + 2 x
+    the classification entropy; the k with the smallest ICL wins among the mixtures whose neighbouring classes are
+    at least ``MERGE_SPREADS`` spreads apart and whose classes each hold ``MIN_WEIGHT`` of the columns. With fewer than ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is
     reduced; with fewer than ``2 * MIN_COLUMNS_PER_CLASS`` usable columns every column gets species 0 and a note.
 
     References
     ----------
     Schwarz, Ann. Statist. 6 (1978) 461 (BIC). Dempster, Laird & Rubin, J. R. Stat. Soc. B 39 (1977) 1 (EM).
+    Biernacki, Celeux & Govaert, IEEE Trans. PAMI 22 (2000) 719 (ICL).
 
     Examples
     --------
@@ -194,12 +216,19 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
         bic[k] = -2.0 * fit["log_likelihood"] + (3 * k - 1) * math.log(x.size)
     # A class holding under MIN_WEIGHT of the columns is a handful of outliers (false detections, damaged
     # columns), not a species: such mixtures are not eligible when the number is chosen automatically.
-    eligible = {k: v for k, v in bic.items() if n_species is not None or fits[k]["weights"].min() >= MIN_WEIGHT}
-    k_best = min(eligible or bic, key=(eligible or bic).get)
+    # ICL (BIC plus twice the classification entropy) rather than plain BIC: a class that only bends the shape of
+    # one species' intensity distribution overlaps it and is penalised; classes of distinct species are not.
+    icl = {k: bic[k] + 2.0 * _entropy(x, fits[k]) for k in bic}
+    # classes whose means are closer than MERGE_SPREADS of their spreads are one species measured with noise
+    distinct = {k: _separated(fits[k]) for k in fits}
+    eligible = {k: v for k, v in icl.items() if n_species is not None or
+                (fits[k]["weights"].min() >= MIN_WEIGHT and distinct[k])}
+    k_best = min(eligible or icl, key=(eligible or icl).get)
     rejected = sorted(k for k in bic if k not in eligible)
     if rejected and n_species is None:
         info["notes"].append(f"species: mixtures with {rejected} classes have a class under {100 * MIN_WEIGHT:g} % "
-                             "of the columns (outliers, not a species) and were not chosen; set n_species to force")
+                             f"of the columns (outliers, not a species) or two classes closer than {MERGE_SPREADS:g} "
+                             "spreads (one species split by noise) and were not chosen; set n_species to force")
     fit = fits[k_best]
     var = fit["stds"] ** 2
     ld = _log_dens(x, fit["means"], var, fit["weights"])
@@ -215,6 +244,9 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
         stds=[float(v) for v in fit["stds"]],
         weights=[float(v) for v in fit["weights"]],
         bic={str(k): float(v) for k, v in bic.items()},
+        icl={str(k): float(v) for k, v in icl.items()},
+        criterion="ICL (BIC + 2 x classification entropy), classes at least "
+                  f"{MERGE_SPREADS:g} spreads apart, each holding at least {100 * MIN_WEIGHT:g} % of the columns",
         log_likelihood=float(fit["log_likelihood"]),
     )
     return out, info
