@@ -640,15 +640,16 @@ def noise_model(fit: pd.DataFrame, current: dict, *, dark_columns: bool = False)
         return out
     n_px = fit["n_pixels"].to_numpy(dtype=np.float64)[good]
     lev = fit["patch_mean"].to_numpy()[good]
+    if current["model"] == "scaled counts":  # back to the units of this round's converted image
+        lev = (lev - current["offset"]) / current["gain"]
     if current["model"] == "white":
-        var = (fit["residual"].to_numpy()[good] * fit["amplitude"].to_numpy()[good]) ** 2 * n_px / np.maximum(n_px - 5, 1)
+        # unweighted fits: residual variance per degree of freedom (``residual`` is relative to the amplitude)
+        amp = fit["amplitude"].to_numpy()[good]
+        var = (fit["residual"].to_numpy()[good] * amp) ** 2 * n_px / np.maximum(n_px - 5, 1)
     else:
         # Poisson-weighted fits: the Pearson chi-square per degree of freedom is the variance / level ratio with
         # the fit's own leverage taken out (bright columns pull their peak pixels towards the data)
         var = fit["pearson_chi2"].to_numpy()[good] / np.maximum(n_px - 5, 1) * lev
-        if current["model"] == "scaled counts":  # back to the units of this round's converted image
-            lev = (lev - current["offset"]) / current["gain"]
-            var = var / current["gain"] ** 2
     fin = np.isfinite(var) & np.isfinite(lev)
     var, lev = var[fin], lev[fin]
     if var.size < 30 or np.ptp(lev) <= 0:
@@ -658,28 +659,24 @@ def noise_model(fit: pd.DataFrame, current: dict, *, dark_columns: bool = False)
     b = np.clip(np.searchsorted(edges, lev, side="right") - 1, 0, 7)
     m_b = np.array([np.median(lev[b == i]) for i in range(8) if (b == i).sum() >= 3])
     v_b = np.array([np.median(var[b == i]) for i in range(8) if (b == i).sum() >= 3])
-    # the median of a chi-square-like variance sample sits below its mean by a constant factor: it cancels in the
-    # rise test but not in the gain, so the gain is scaled by mean/median of the residual variance overall
-    if m_b.size < 3:
-        out["check"] = {"skipped": "too few distinct levels"}
-        return out
-    (slope, icpt), cov = np.polyfit(m_b, v_b, 1, cov="unscaled") if m_b.size < 4 else np.polyfit(m_b, v_b, 1, cov=True)
+    (slope, icpt), cov = np.polyfit(m_b, v_b, 1, cov=True) if m_b.size > 3 else (np.polyfit(m_b, v_b, 1), np.eye(2))
     t_slope = float(slope / math.sqrt(cov[0, 0])) if cov[0, 0] > 0 else float("inf")
-    corr = float(np.mean(var) / np.median(var)) if np.median(var) > 0 else 1.0
     rise = slope * (m_b.max() - m_b.min()) / max(v_b.min(), 1e-300)
+    ratio = float(np.median(var / np.maximum(lev, 1e-300)))
     check = {"levels": m_b.tolist(), "variances": v_b.tolist(), "slope": float(slope), "intercept": float(icpt),
-             "rise_over_range": float(rise), "slope_t": t_slope}
+             "rise_over_range": float(rise), "slope_t": t_slope, "variance_over_level": ratio}
     out["check"] = check
-    if slope > 0 and t_slope > NOISE_SLOPE_T and rise > NOISE_RISE:
-        gain = float(slope * corr)
-        offset = float(-icpt / slope)
-        ratio = float(np.median(var / np.maximum(lev, 1e-300)))
-        check["variance_over_level"] = ratio
-        if current["model"] != "white" and GAIN_CONFIRM[0] <= ratio <= GAIN_CONFIRM[1]:
+    if lev.min() > 0 and GAIN_CONFIRM[0] <= ratio <= GAIN_CONFIRM[1]:
+        # variance = level: counts (raw, or as converted in this round)
+        if current["model"] == "white":
+            out.update(model="counts", gain=1.0, offset=0.0,
+                       how=f"residual variance equals the level (ratio {ratio:.3f}): Poisson counts")
+        else:
             out["how"] = current["how"].split(" (checked")[0] + f"; confirmed: residual variance / level = {ratio:.3f}"
-            return out
+    elif slope > 0 and t_slope > NOISE_SLOPE_T and rise > NOISE_RISE:
         # compose with the conversion already applied in this round
         g0, o0 = current.get("gain", 1.0), current.get("offset", 0.0)
+        gain, offset = float(slope), float(-icpt / slope)
         out.update(model="scaled counts", gain=g0 * gain, offset=o0 + g0 * offset,
                    how=f"residual variance grows with the level: counts = (image - {o0 + g0 * offset:.4g}) / "
                        f"{g0 * gain:.4g} (gain and offset from the fit residuals)")
