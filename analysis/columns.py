@@ -41,7 +41,7 @@ from scipy.spatial import cKDTree
 from . import _schema
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._progress import report, sub_progress
-from .refine import refine_columns, warm_up
+from .refine import joint_position_errors, refine_columns, warm_up
 from .region import label_points
 from .scale import estimate_scale
 from .species import classify_species
@@ -733,12 +733,18 @@ def _one_round(data, ok, sigma, spacing, noise, *, dark_columns, flatten, progre
     report(progress, 0.3, f"refining {xs.size} columns")
     t0 = time.perf_counter()
     fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
-                         neighbour_passes=NEIGHBOUR_PASSES, joint_errors=True,
+                         neighbour_passes=NEIGHBOUR_PASSES,
                          progress=sub_progress(progress, 0.3, 0.95))
     passes = int(fit.attrs.get("neighbour_passes_done", 0))
     t_refine = time.perf_counter() - t0
     fit["z_detect"] = z_cand
     fit = _prune(fit, xs, ys, z_cand, field, sigma, spacing, cut_info["z_cut"], counts_tab, auto)
+    # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
+    # Fisher matrices near-singular)
+    if len(fit):
+        err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=fit_counts)
+        fit["x_err_px"], fit["y_err_px"] = err[:, 0], err[:, 1]
+        fit["pos_err_px"] = 0.5 * (fit["x_err_px"] + fit["y_err_px"])
     if noise["model"] == "scaled counts":
         # back to image units: amplitudes, backgrounds and intensities in the units the user recorded
         for c in ("amplitude", "amplitude_err", "intensity"):
