@@ -442,7 +442,8 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"],
                        "n_columns": int(len(fit)), "measured": meas, "noise_check": new_noise["check"]})
         change = {}
-        if "diameter" not in lengths and meas["sigma_px"] and abs(meas["sigma_px"] / sigma - 1) > SCALE_TOLERANCE:
+        if "diameter" not in lengths and meas["sigma_px"] and not (
+                1 - SCALE_TOLERANCE <= meas["sigma_px"] / sigma <= 1 + WIDTH_TOLERANCE_UP):
             change["sigma"] = meas["sigma_px"]
         if "spacing" not in lengths and meas["spacing_px"] and abs(meas["spacing_px"] / spacing - 1) > SCALE_TOLERANCE:
             change["spacing"] = meas["spacing_px"]
@@ -523,6 +524,10 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
 MAX_SCALE_ROUNDS = 3
 #: relative disagreement between the scale used and the scale measured that triggers another round
 SCALE_TOLERANCE = 0.10
+#: a width measured up to this much above the one used does not repeat the round: the fits measure their own
+#: widths, the detection kernel loses little, and the separation only gets safer (a width measured below the one
+#: used does repeat it: the separation may then have merged close columns)
+WIDTH_TOLERANCE_UP = 0.25
 #: the spacing used and the first pair-distance peak of the columns found may differ by this much before a note
 SPACING_CHECK = 0.10
 #: trackpy's minimum separation never exceeds this many column widths: the spacing estimate can be a shoulder
