@@ -235,6 +235,8 @@ def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo,
         # neighbours' current model (second pass): fixed during this column's fit
         for t in range(nb_ptr[k], nb_ptr[k + 1]):
             j = nb_idx[t]
+            if not (nb_par[j, 3] != 0.0 and nb_par[j, 2] > 0.0):
+                continue  # a failed fit: no model, no light
             _profile(u0, nx, nb_par[j, 0], nb_par[j, 2], gx, dgx, dsx)
             _profile(v0, ny, nb_par[j, 1], nb_par[j, 2], gy, dgy, dsy)
             aj = nb_par[j, 3]
@@ -595,34 +597,36 @@ def _prepare(image, valid):
     return img, vmask
 
 
-def _neighbours(out, rad, s_hi):
-    """CSR arrays: for every column, the fitted neighbours whose model reaches into its patch (one KD-tree query).
+#: longest neighbour list per column (the nearest are kept); a column farther than the patch reach adds no light
+NEIGHBOUR_LIST_MAX = 24
 
-    Every column gets a list (a failed fit is refitted with its neighbours subtracted too); only fitted columns
-    ('ok', 'fixed_width') are in the lists.
+
+def _neighbour_lists(xy, reach, k_max=NEIGHBOUR_LIST_MAX):
+    """CSR arrays of every column's neighbours within ``reach`` px (at most ``k_max`` nearest), built once.
+
+    One vectorised KD-tree query; rows with non-finite positions get empty lists.
     """
-    n = out.shape[0]
-    good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
+    n = xy.shape[0]
     ptr = np.zeros(n + 1, np.int64)
-    if good.sum() < 1 or n < 2:
-        return ptr, np.zeros(0, np.int64), np.zeros((n, 4))
-    idx_good = np.flatnonzero(good)
-    sig = np.nanmedian(out[good, 2])
-    reach = rad * math.sqrt(2.0) + 4.0 * sig
-    # a failed fit may have wandered: look for its neighbours around its start position
-    xy = np.where(good[:, None], out[:, :2], out[:, 12:14])
-    xy = np.where(np.isfinite(xy), xy, -1e9)
-    lists = cKDTree(xy[idx_good]).query_ball_point(xy, reach)
-    cnt = np.fromiter((len(v) for v in lists), np.int64, n)
-    flat = idx_good[np.fromiter((j for v in lists for j in v), np.int64, int(cnt.sum()))] if cnt.sum() else \
-        np.zeros(0, np.int64)
-    src = np.repeat(np.arange(n), cnt)
-    keep = flat != src
-    src, dst = src[keep], flat[keep]
-    ptr[1:] = np.cumsum(np.bincount(src, minlength=n))
-    par = np.zeros((n, 4))
+    fin = np.all(np.isfinite(xy), axis=1)
+    if n < 2 or fin.sum() < 2:
+        return ptr, np.zeros(0, np.int64)
+    idx_fin = np.flatnonzero(fin)
+    k = min(k_max + 1, idx_fin.size)
+    d, j = cKDTree(xy[idx_fin]).query(np.where(fin[:, None], xy, 0.0), k=k, distance_upper_bound=reach)
+    d, j = d.reshape(n, -1), j.reshape(n, -1)
+    has = np.isfinite(d) & fin[:, None]
+    has &= idx_fin[np.minimum(j, idx_fin.size - 1)] != np.arange(n)[:, None]
+    ptr[1:] = np.cumsum(has.sum(axis=1))
+    return ptr, idx_fin[j[has]].astype(np.int64)
+
+
+def _neighbour_params(out):
+    """(x, y, s, A) of every fitted column; zeros (no light) for failed fits, so a list may hold any column."""
+    good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
+    par = np.zeros((out.shape[0], 4))
     par[good] = out[good][:, [0, 1, 2, 3]]
-    return ptr, dst.astype(np.int64), par
+    return par
 
 
 #: columns closer than this many widths share the common width in the neighbour passes
@@ -778,9 +782,12 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     s_cols = np.full(n, s0)
     s_common = _common_width(out, s0)
     crowded = np.zeros(n, dtype=bool)
+    # a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away; 1 px of margin for the fits' moves
+    if int(neighbour_passes) > 0:
+        ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * _common_width(out, s0) + 1.0)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
-        ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
+        par = _neighbour_params(out)
         if idx.size == 0 and p > 0:
             break
         # Bright columns get their own width; faint ones (and failed fits) share the common width of the bright
@@ -822,7 +829,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     redo = np.flatnonzero(out[:, 8] == _DIVERGED)
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
     if fixed_width_fallback and redo.size and good.sum() >= 5:
-        ptr, idx, par = _neighbours(out, rad, 4.0 * s0)
+        if int(neighbour_passes) == 0:
+            ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s_common + 1.0)
+        par = _neighbour_params(out)
         sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
         again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
                      sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool))
