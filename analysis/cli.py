@@ -56,6 +56,16 @@ def _length(text: str) -> tuple[float, str]:
     return v, unit
 
 
+def _seed(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or larger, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or larger, got {text!r}")
+    return v
+
+
 def _species(text: str) -> int | None:
     if text.lower() == "auto":
         return None
@@ -137,7 +147,7 @@ def build_parser() -> argparse.ArgumentParser:
                      help="cluster-network edge length, nm or px suffix; default: automatic")
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
-    a.add_argument("--seed", type=int, default=0, help="seed for bootstraps and mixture fits (default 0)")
+    a.add_argument("--seed", type=_seed, default=0, help="seed for bootstraps and mixture fits (default 0)")
     a.add_argument("--quiet", action="store_true", help="no progress messages")
     a.add_argument("--debug", action="store_true", help="show the full traceback on failure")
 
@@ -195,11 +205,34 @@ def _params(args) -> "object":
     )
 
 
-def _check_out(out: Path, overwrite: bool) -> None:
-    if out.exists() and not out.is_dir():
-        raise TenfoldInputError(f"--out {out}: exists and is not a folder; choose another path")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise TenfoldInputError(f"--out {out}: folder exists and is not empty; choose another folder or add --overwrite")
+class _Signalled(KeyboardInterrupt):
+    """SIGTERM/SIGHUP, raised like SIGINT so every clean-up path runs."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _on_signal(signum, frame):
+    raise _Signalled(signum)
+
+
+def _install_signal_handlers() -> dict:
+    """SIGTERM and SIGHUP end the run like Ctrl-C: work folders are removed, nothing half-written stays.
+
+    Returns the previous handlers (restored when :func:`main` returns, for callers that run it in-process).
+    """
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    old = {}
+    for name in ("SIGTERM", "SIGHUP"):
+        if hasattr(signal, name):
+            sig = getattr(signal, name)
+            old[sig] = signal.signal(sig, _on_signal)
+    return old
 
 
 def _analyze(args) -> int:
@@ -207,7 +240,10 @@ def _analyze(args) -> int:
     from .io import read_micrograph
     from .pipeline import run_pipeline
 
-    _check_out(args.out, args.overwrite)  # before any work: fail in a second, not after a minute
+    from ._outdir import check_output_folder
+
+    # before any work: fail in a second, not after a minute
+    check_output_folder(args.out, overwrite=args.overwrite, inputs=[args.image], flag="--out")
     params = _params(args).validate()
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
@@ -274,6 +310,7 @@ def main(argv: list[str] | None = None) -> int:
 
     warnings.showwarning = _show if not debug else warnings.showwarning
     warnings.simplefilter("always", TenfoldWarning)
+    old_handlers = _install_signal_handlers()
     try:
         return handler(args)
     except TenfoldInputError as exc:
@@ -284,9 +321,10 @@ def main(argv: list[str] | None = None) -> int:
     except Cancelled as exc:
         print(f"tenfold: {exc}", file=sys.stderr)
         return 130
-    except KeyboardInterrupt:
-        print("tenfold: interrupted; no results written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = getattr(exc, "signum", 2)
+        print(f"tenfold: interrupted (signal {signum}); nothing half-written is left", file=sys.stderr)
+        return 128 + signum
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
         return 0
     except Exception as exc:  # the one-line rule: no traceback for users unless they ask
@@ -294,6 +332,11 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"tenfold: error: {type(exc).__name__}: {exc} (run again with --debug for the traceback)", file=sys.stderr)
         return 1
+    finally:
+        import signal
+
+        for sig, h in old_handlers.items():
+            signal.signal(sig, h)
 
 
 if __name__ == "__main__":  # pragma: no cover
