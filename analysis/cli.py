@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import re
 import sys
 import time
 import warnings
@@ -40,6 +41,36 @@ def _positive(text: str) -> float:
     if not (v > 0 and v < float("inf")):
         raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
     return v
+
+
+def _pixel_size(text: str) -> float:
+    from .io import PLAUSIBLE_PIXEL_NM
+
+    v = _positive(text)
+    lo, hi = PLAUSIBLE_PIXEL_NM
+    if not lo <= v <= hi:
+        raise argparse.ArgumentTypeError(f"{text} nm per pixel is outside {lo:g} - {hi:g} nm, the range of "
+                                         "atomic-resolution images; give the pixel size in nm (e.g. 0.015)")
+    return v
+
+
+#: Python names in messages -> the option a command-line user typed
+_FLAGS = {
+    "pixel_size_nm": "--pixel-size", "frame_range": "--frames", "frame": "--frame", "n_species": "--species",
+    "ring_order": "--ring-order", "radius_tolerance": "--radius-tolerance", "min_mass": "--min-intensity",
+    "dark_columns": "--dark-columns", "rng": "--seed", "overwrite=True": "--overwrite",
+    **{f"{base}_{unit}": flag for base, flag in (
+        ("column_diameter", "--column-diameter"), ("column_spacing", "--column-spacing"),
+        ("ring_radius", "--ring-radius"), ("ladder_r_max", "--ladder-range"), ("d0", "--ladder-base"),
+        ("tiling_edge", "--tiling-edge")) for unit in ("nm", "px")},
+}
+_FLAG_RE = re.compile(r"(?<![\w-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
+                      + r")(?![\w])")
+
+
+def _flag_names(message: str) -> str:
+    """A core message with the Python parameter names replaced by the command-line options."""
+    return _FLAG_RE.sub(lambda m: _FLAGS[m.group(1)], message)
 
 
 def _length(text: str) -> tuple[float, str]:
@@ -110,7 +141,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--out", type=Path, required=True, metavar="DIR", help="results folder (must not exist or be empty)")
     a.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     cal = a.add_argument_group("calibration and image")
-    cal.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm; overrides the file")
+    cal.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
     cal.add_argument("--frame", type=int, metavar="K", help="for a stack: analyse frame K (0-based)")
     cal.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: analyse the mean of frames A..B-1")
     cal.add_argument("--region", action="append", metavar="X0,Y0,X1,Y1",
@@ -134,7 +165,8 @@ def build_parser() -> argparse.ArgumentParser:
     mot.add_argument("--ring-order", type=int, default=10, choices=(5, 6, 8, 10, 12),
                      help="columns per ring motif (default 10)")
     mot.add_argument("--ring-radius", type=_length, metavar="LEN",
-                     help="ring radius, nm or px suffix; default: from the pair distances")
+                     help="ring radius (centre to column), nm or px suffix; default: a ring-shell scan of trial radii "
+                     "around the columns (recorded in summary.json)")
     mot.add_argument("--radius-tolerance", type=float, default=0.12, metavar="FRAC",
                      help="relative tolerance on the ring radius (default 0.12)")
     mot.add_argument("--no-pentagons", action="store_true", help="skip the pentagon motif search")
@@ -149,17 +181,19 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=_seed, default=0, help="seed for bootstraps and mixture fits (default 0)")
     a.add_argument("--quiet", action="store_true", help="no progress messages")
-    a.add_argument("--debug", action="store_true", help="show the full traceback on failure")
+    a.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
 
     i = sub.add_parser("info", help="show calibration, size and automatic scale of a micrograph",
                        description="Read a micrograph and print its size, pixel size and where the pixel size came "
                        "from, and the automatic column spacing and width estimate (JSON on stdout).")
     i.add_argument("image", type=Path)
-    i.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm; overrides the file")
-    i.add_argument("--frame", type=int, metavar="K")
-    i.add_argument("--frames", type=_frames, metavar="A:B")
-    i.add_argument("--dark-columns", action="store_true")
-    i.add_argument("--debug", action="store_true")
+    i.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
+    i.add_argument("--frame", type=int, metavar="K", help="for a stack: show frame K (0-based)")
+    i.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: show the mean of frames A..B-1")
+    i.add_argument("--dark-columns", action="store_true",
+                   help="columns darker than the background (HRTEM-like contrast), for the automatic scale; "
+                   "default: bright (HAADF)")
+    i.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
 
     sub.add_parser("samples", help="list the bundled synthetic sample micrographs",
                    description="Print the paths of the synthetic decagonal micrographs shipped with Tenfold, with "
@@ -309,6 +343,11 @@ def main(argv: list[str] | None = None) -> int:
         print(f"warning: {message}", file=sys.stderr)
 
     warnings.showwarning = _show if not debug else warnings.showwarning
+    if debug:  # the --debug log: what the format libraries said while reading (captured, never printed otherwise)
+        import logging
+
+        logging.basicConfig(level=logging.WARNING, format="%(name)s: %(message)s")
+        logging.getLogger("tenfold").setLevel(logging.DEBUG)
     warnings.simplefilter("always", TenfoldWarning)
     old_handlers = _install_signal_handlers()
     try:
@@ -316,7 +355,7 @@ def main(argv: list[str] | None = None) -> int:
     except TenfoldInputError as exc:
         if debug:
             raise
-        print(f"tenfold: error: {exc}", file=sys.stderr)
+        print(f"tenfold: error: {_flag_names(str(exc))}", file=sys.stderr)
         return 2
     except Cancelled as exc:
         print(f"tenfold: {exc}", file=sys.stderr)

@@ -38,7 +38,7 @@ import pandas as pd
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from . import _schema
+from . import _sanitize, _schema
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._progress import report, sub_progress
 from .refine import refine_columns, warm_up
@@ -453,6 +453,12 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
                                     f"size, or column_{what}_px instead")
         lengths[what] = (float(val) / pixel_size_nm if unit == "nm" else float(val), f"given (column_{what}_{unit})")
     notes: list[str] = []
+    # -- sanitising (analysis/_sanitize.py): flat areas masked, with notes --
+    ok, flat_notes = _sanitize.mask_flat(img, ok)
+    notes.extend(flat_notes)
+    for note in flat_notes:
+        warnings.warn(note, TenfoldWarning, stacklevel=2)
+    # -- end sanitising --
     data = np.where(ok, img, np.median(img[ok][::7]) if not ok.all() else 0.0).astype(np.float64)
     counts_like = bool(np.all(data[ok] >= 0) and np.all(np.mod(data[ok], 1.0) == 0))
     work = (data.max() - data) if dark_columns else data
@@ -476,6 +482,11 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     if not (sigma > 0.3 and spacing > 2 * sigma * 0.9):
         raise TenfoldInputError(f"find_columns: column width {sigma:.2f} px and spacing {spacing:.2f} px are not "
                                 "usable (need sigma > 0.3 px and spacing > 1.8 sigma); check the column diameter / spacing overrides")
+
+    reach_note = _sanitize.masked_reach_note(ok, sigma)  # (analysis/_sanitize.py)
+    if reach_note:
+        notes.append(reach_note)
+        warnings.warn(reach_note, TenfoldWarning, stacklevel=2)
 
     skew = polarity_skewness(work, ok, spacing_px=spacing)
     polarity = {"skewness": skew, "dark_columns": bool(dark_columns), "looks_wrong": bool(skew < -0.1)}
