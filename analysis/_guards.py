@@ -62,7 +62,7 @@ def empty_result_notes(summary: dict, tables: dict, shape) -> list[str]:
     """Notes that explain an empty columns or motifs table from the lengths the run used."""
     notes = []
     rows, cols = shape
-    auto = (summary.get("columns") or {}).get("automatic") or {}
+    auto = summary.get("automatic") or {}
     spacing = (auto.get("spacing") or {}).get("value_px")
     n_cols = len(tables.get("columns", ()))
     if n_cols == 0:

@@ -40,7 +40,7 @@ from . import _outdir
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 from ._progress import ProgressCallback, report
 from ._result import AnalysisResult
-from ._schema import TABLES, conform
+from ._schema import EXTRAS, TABLES, conform
 
 __all__ = [
     "write_results",
@@ -223,7 +223,7 @@ def _ordered_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
 
 
 def _units(name: str, df: pd.DataFrame) -> list[str]:
-    schema = {f.name: f.unit for f in TABLES.get(name, ())}
+    schema = {f.name: f.unit for f in TABLES.get(name, ()) + EXTRAS.get(name, ())}
     return [schema.get(c, _unit_of(str(c))) for c in df.columns]
 
 

@@ -205,6 +205,7 @@ def _region_summaries(result: AnalysisResult, regions) -> list[dict]:
             "n_complete_rings": int((m["kind"].str.startswith("ring") & m["complete"]).sum()) if len(m) else 0,
             "n_pentagons": int((m["kind"] == "pentagon").sum()) if len(m) else 0,
             "mean_psi_n": float(m["psi_n"].mean()) if len(m) else None,
+            "mean_psi_n_over": "ring motifs and pentagons",
             "mean_pos_err_nm": float(c["pos_err_nm"].mean()) if len(c) and c["pos_err_nm"].notna().any() else None,
         }
         for sp, n in c["species"].value_counts().sort_index().items():
@@ -235,6 +236,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     )
     result.tables["motifs"] = motifs
     result.summary["motifs"] = m_info
+    m_info["mean_psi_n_over"] = "ring motifs only (the per-region rows average rings and pentagons)"
     shape = m_info.get("ring_shape") or {}
     if shape.get("warning"):
         result.summary.setdefault("notes", []).append(
@@ -414,9 +416,10 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
             progress=sub_progress(progress, 0.0, 0.55),
         )
         result.tables["columns"] = cols
-        result.summary["columns"] = c_info
         result.summary["automatic"] = c_info.get("automatic", c_info)
         result.summary["species"] = c_info.get("species")
+        # each block once: 'automatic' and 'species' live at the top level only
+        result.summary["columns"] = {k: v for k, v in c_info.items() if k not in ("automatic", "species")}
         _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
         if params.fourier:
             report(progress, 0.9, "power spectrum")

@@ -226,7 +226,7 @@ def test_absurd_spacing_explains_empty_result(sample):
 
 def test_absurd_ring_radius_explains_no_rings():
     notes = _guards.empty_result_notes(
-        {"columns": {"automatic": {"spacing": {"value_px": 7.0, "how": "auto"}}},
+        {"automatic": {"spacing": {"value_px": 7.0, "how": "auto"}},
          "motifs": {"radius_px": 275.0, "radius_source": "given"}},
         {"columns": pd.DataFrame({"x_px": [1.0]}), "motifs": pd.DataFrame({"kind": pd.Series([], dtype=object)})},
         (768, 768))
@@ -289,3 +289,13 @@ def test_debug_log_receives_reader_messages(caplog):
         with _captured_log("tifffile"):
             logging.getLogger("tifffile").warning("odd tag 999")
     assert "tifffile: odd tag 999" in caplog.text
+
+
+def test_scale_window_of_large_mostly_flat_image(sample):
+    img = np.tile(sample.data, (2, 2))
+    img[img.shape[0] // 8:] = 0.0
+    ok = np.ones(img.shape, bool)
+    ok[img.shape[0] // 8:] = False
+    est = estimate_scale(img, valid=ok)
+    assert est.details["sanitized"]["window"][0] == 0 and est.details["sanitized"]["window"][2:] == [1024, 1024]
+    assert est.spacing_px == pytest.approx(estimate_scale(sample.data).spacing_px, rel=0.05)
