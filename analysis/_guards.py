@@ -15,7 +15,7 @@ import numpy as np
 
 from ._errors import TenfoldInputError
 
-__all__ = ["check_regions", "check_positions", "empty_result_notes", "with_file"]
+__all__ = ["check_regions", "check_positions", "empty_result_notes", "with_file", "name_the_file"]
 
 #: bound on positions when the image size is not known (no detector has a side of a million pixels)
 _MAX_SIDE_PX = 1_000_000
@@ -97,3 +97,11 @@ def with_file(exc: TenfoldInputError, path: str) -> TenfoldInputError:
     if not path or path in msg or Path(path).name in msg:
         return exc
     return TenfoldInputError(f"{path}: {msg}")
+
+
+def name_the_file(notes: list[str], path: str) -> list[str]:
+    """Stage notes about the anonymous ``image`` with the input file's name instead (stages see arrays only)."""
+    if not path:
+        return notes
+    name = Path(path).name
+    return [f"{name}: {n[len('image: '):]}" if n.startswith("image: ") else n for n in notes]

@@ -304,7 +304,7 @@ def _analyze(args) -> int:
           f"{int((m['kind'] == 'pentagon').sum()) if len(m) else 0} pentagons, thick/thin = "
           f"{'n/a' if ratio is None else f'{ratio:.3f}'}; calibration {cal}; results in {args.out}")
     for note in s.get("notes", []):
-        print(f"note: {note}", file=sys.stderr)
+        print(f"note: {_flag_names(note)}", file=sys.stderr)
     return 0
 
 

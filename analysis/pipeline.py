@@ -329,6 +329,7 @@ def _finish(result: AnalysisResult, regions, caught: list) -> AnalysisResult:
     for note in _guards.empty_result_notes(result.summary, result.tables, result.meta.shape):
         if note not in notes:
             notes.append(note)
+    notes[:] = _guards.name_the_file(notes, result.meta.path)
     result.summary["n_columns"] = int(len(result.tables["columns"]))
     result.summary["n_motifs"] = int(len(result.tables["motifs"]))
     result.summary["regions"] = _region_summaries(result, regions)

@@ -299,3 +299,11 @@ def test_scale_window_of_large_mostly_flat_image(sample):
     est = estimate_scale(img, valid=ok)
     assert est.details["sanitized"]["window"][0] == 0 and est.details["sanitized"]["window"][2:] == [1024, 1024]
     assert est.spacing_px == pytest.approx(estimate_scale(sample.data).spacing_px, rel=0.05)
+
+
+def test_flat_note_names_the_file(sample):
+    crop = micrograph_from_array(_flat(sample.data[:256, :256], 0.0), pixel_size_nm=0.04, name="scan_part.tif")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", TenfoldWarning)
+        res = run_pipeline(crop, Parameters(fourier=False, column_spacing_px=7.0, column_diameter_px=6.75))
+    assert any(n.startswith("scan_part.tif: 8") and "flat" in n for n in res.summary["notes"])
