@@ -307,3 +307,14 @@ def test_flat_note_names_the_file(sample):
         warnings.simplefilter("ignore", TenfoldWarning)
         res = run_pipeline(crop, Parameters(fourier=False, column_spacing_px=7.0, column_diameter_px=6.75))
     assert any(n.startswith("scan_part.tif: 8") and "flat" in n for n in res.summary["notes"])
+
+
+def test_summary_blocks_not_repeated(small_result):
+    s = small_result.summary
+    assert "automatic" in s and "species" in s
+    assert "automatic" not in s["columns"] and "species" not in s["columns"]
+
+
+def test_mean_psi_n_scope_stated(small_result):
+    assert "ring motifs only" in small_result.summary["motifs"]["mean_psi_n_over"]
+    assert small_result.summary["regions"][0]["mean_psi_n_over"] == "ring motifs and pentagons"
