@@ -92,6 +92,9 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
     where = f"{flag} {out}"
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"{where}: exists and is a file, not a folder; choose another results folder")
+    if out.is_symlink() and not out.exists():
+        raise TenfoldInputError(f"{where}: is a link to {os.readlink(out)}, which does not exist; create that "
+                                "folder or choose another results folder")
     anc = _existing_ancestor(out)
     if anc != out and not anc.is_dir():
         raise TenfoldInputError(f"{where}: {anc} is a file, not a folder; choose a results folder path whose "

@@ -216,3 +216,11 @@ def test_signal_is_a_clean_interrupt(tmp_path, sig):
     assert proc.returncode == 128 + sig, err
     assert "interrupted" in err and "Traceback" not in err
     assert list(tmp_path.iterdir()) == []
+
+
+def test_dangling_link_refused_and_kept(tmp_path, result):
+    link = tmp_path / "res"
+    link.symlink_to(tmp_path / "gone")
+    with pytest.raises(TenfoldInputError, match="is a link to .*gone, which does not exist"):
+        write_results(result, link, figures=False)
+    assert link.is_symlink() and not (tmp_path / "gone").exists()
