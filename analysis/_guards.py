@@ -9,14 +9,18 @@
 
 from __future__ import annotations
 
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
 from ._errors import TenfoldInputError
 
-__all__ = ["check_regions", "check_positions", "empty_result_notes", "with_file", "name_the_file"]
+__all__ = ["check_regions", "check_positions", "empty_result_notes", "with_file", "name_the_file",
+           "small_image_hint"]
 
+#: below this side (px) an automatic scale failure is more likely a too small area than featureless noise
+SMALL_SIDE_PX = 128
 #: bound on positions when the image size is not known (no detector has a side of a million pixels)
 _MAX_SIDE_PX = 1_000_000
 
@@ -105,3 +109,18 @@ def name_the_file(notes: list[str], path: str) -> list[str]:
         return notes
     name = Path(path).name
     return [f"{name}: {n[len('image: '):]}" if n.startswith("image: ") else n for n in notes]
+
+
+@contextmanager
+def small_image_hint(shape):
+    """Add the analysed size to a failed automatic scale when the area is small (the likelier cause)."""
+    try:
+        yield
+    except TenfoldInputError as exc:
+        msg = str(exc)
+        if "no column scale found" not in msg or min(shape) >= SMALL_SIDE_PX:
+            raise
+        raise TenfoldInputError(
+            f"{msg}; note the analysed area is only {shape[1]} x {shape[0]} px, likely too small to find the scale: "
+            "give a larger region, or the column spacing and diameter"
+        ) from None

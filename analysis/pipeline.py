@@ -384,10 +384,12 @@ def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress) 
 
         work, work_regions, offset = crop_to_regions(micrograph, regions)
         if work is not micrograph:
-            result = _run(work, params, work_regions, progress)
+            with _guards.small_image_hint(work.data.shape):
+                result = _run(work, params, work_regions, progress)
             shift_result(result, micrograph, offset)
             return result
-    return _run(micrograph, params, regions, progress)
+    with _guards.small_image_hint(micrograph.data.shape):
+        return _run(micrograph, params, regions, progress)
 
 
 def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:

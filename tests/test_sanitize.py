@@ -318,3 +318,9 @@ def test_summary_blocks_not_repeated(small_result):
 def test_mean_psi_n_scope_stated(small_result):
     assert "ring motifs only" in small_result.summary["motifs"]["mean_psi_n_over"]
     assert small_result.summary["regions"][0]["mean_psi_n_over"] == "ring motifs and pentagons"
+
+
+def test_tiny_image_scale_failure_says_too_small(sample):
+    tiny = micrograph_from_array(sample.data[:32, :32], pixel_size_nm=0.04, name="tiny.tif")
+    with pytest.raises(TenfoldInputError, match=r"^tiny\.tif: .*no column scale found.*only 32 x 32 px, likely too small"):
+        run_pipeline(tiny, Parameters(fourier=False))
