@@ -179,7 +179,11 @@ def estimate_defaults(micrograph: Micrograph, *, dark_columns: bool = False) -> 
     """
     from .scale import estimate_scale
 
-    est = estimate_scale(micrograph.data, valid=micrograph.valid, dark_columns=dark_columns)
+    try:
+        with _guards.small_image_hint(micrograph.data.shape):
+            est = estimate_scale(micrograph.data, valid=micrograph.valid, dark_columns=dark_columns)
+    except TenfoldInputError as exc:
+        raise _guards.with_file(exc, micrograph.meta.path) from None
     ps = micrograph.meta.pixel_size_nm
     diameter_px = 4.5 * est.sigma_px
     return {

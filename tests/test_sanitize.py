@@ -324,3 +324,11 @@ def test_tiny_image_scale_failure_says_too_small(sample):
     tiny = micrograph_from_array(sample.data[:32, :32], pixel_size_nm=0.04, name="tiny.tif")
     with pytest.raises(TenfoldInputError, match=r"^tiny\.tif: .*no column scale found.*only 32 x 32 px, likely too small"):
         run_pipeline(tiny, Parameters(fourier=False))
+
+
+def test_info_scale_failure_names_file(tmp_path, capsys):
+    path = tmp_path / "noise.tif"
+    tifffile.imwrite(path, np.random.default_rng(0).normal(100, 5, (40, 40)).astype(np.float32))
+    rc = main(["info", str(path)])
+    err = capsys.readouterr().err
+    assert rc == 2 and f"{path}: estimate_scale: no column scale found" in err and "40 x 40 px" in err
