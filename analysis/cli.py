@@ -340,7 +340,7 @@ def main(argv: list[str] | None = None) -> int:
     handler = {"analyze": _analyze, "info": _info, "samples": _samples}[args.command]
 
     def _show(message, category, filename, lineno, file=None, line=None):
-        print(f"warning: {message}", file=sys.stderr)
+        print(f"warning: {_flag_names(str(message))}", file=sys.stderr)
 
     warnings.showwarning = _show if not debug else warnings.showwarning
     if debug:  # the --debug log: what the format libraries said while reading (captured, never printed otherwise)
