@@ -21,6 +21,9 @@ except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0+unknown"
 
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning  # noqa: E402
+from ._cache import use_user_cache_dir  # noqa: E402
+
+use_user_cache_dir()  # numba kernels are cached per user, never inside the installed package
 
 __all__ = [
     "__version__",

@@ -30,6 +30,7 @@ __all__ = [
     "NETWORK",
     "SPOTS",
     "TABLES",
+    "EXTRAS",
     "empty_table",
     "conform",
 ]
@@ -146,8 +147,8 @@ NETWORK = _fields(
     ("length_px", "float64", "px", "edge length"),
     ("length_nm", "float64", "nm", "edge length; NaN when uncalibrated"),
     ("angle_deg", "float64", "deg", "edge direction atan2(dy, dx), y down, in [0, 180)"),
-    ("tile_left", "object", "", "type of the face on one side of the edge ('' for the outer face)"),
-    ("tile_right", "object", "", "type of the face on the other side ('' for the outer face)"),
+    ("tile_left", "object", "", "type of the face on one side of the edge ('outer' for the outer face)"),
+    ("tile_right", "object", "", "type of the face on the other side ('outer' for the outer face)"),
     ("region", "int64", "", "region label"),
 )
 
@@ -163,6 +164,16 @@ SPOTS = _fields(
     ("strength", "float64", "", "peak power over local background"),
     ("shell", "int64", "", "index of the |k| shell the spot belongs to (0 = innermost strong shell)"),
 )
+
+#: Further columns a stage writes after the contract columns (documented, with units; not a contract).
+EXTRAS: dict[str, tuple[Field, ...]] = {
+    "columns": _fields(
+        ("x_err_px", "float64", "px", "1-sigma uncertainty of x_px from the fit covariance"),
+        ("y_err_px", "float64", "px", "1-sigma uncertainty of y_px from the fit covariance"),
+        ("amplitude_err", "float64", "image units", "1-sigma uncertainty of amplitude from the fit covariance"),
+        ("snr", "float64", "", "detection significance in standard errors, after subtracting the neighbours' light"),
+    ),
+}
 
 TABLES: dict[str, tuple[Field, ...]] = {
     "columns": COLUMNS,
@@ -221,6 +232,7 @@ def schema_markdown() -> str:
         lines += [f"## {key} (`{files[key]}`, workbook sheet `{key}`)", "", "| column | dtype | unit | meaning |",
                   "| --- | --- | --- | --- |"]
         lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in fields]
+        lines += [f"| `{f.name}` (extra) | {f.dtype} | {f.unit} | {f.doc} |" for f in EXTRAS.get(key, ())]
         lines.append("")
     return "\n".join(lines)
 

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import re
 import sys
 import time
 import warnings
@@ -42,6 +43,36 @@ def _positive(text: str) -> float:
     return v
 
 
+def _pixel_size(text: str) -> float:
+    from .io import PLAUSIBLE_PIXEL_NM
+
+    v = _positive(text)
+    lo, hi = PLAUSIBLE_PIXEL_NM
+    if not lo <= v <= hi:
+        raise argparse.ArgumentTypeError(f"{text} nm per pixel is outside {lo:g} - {hi:g} nm, the range of "
+                                         "atomic-resolution images; give the pixel size in nm (e.g. 0.015)")
+    return v
+
+
+#: Python names in messages -> the option a command-line user typed
+_FLAGS = {
+    "pixel_size_nm": "--pixel-size", "frame_range": "--frames", "frame": "--frame", "n_species": "--species",
+    "ring_order": "--ring-order", "radius_tolerance": "--radius-tolerance", "min_mass": "--min-intensity",
+    "dark_columns": "--dark-columns", "rng": "--seed", "overwrite=True": "--overwrite",
+    **{f"{base}_{unit}": flag for base, flag in (
+        ("column_diameter", "--column-diameter"), ("column_spacing", "--column-spacing"),
+        ("ring_radius", "--ring-radius"), ("ladder_r_max", "--ladder-range"), ("d0", "--ladder-base"),
+        ("tiling_edge", "--tiling-edge")) for unit in ("nm", "px")},
+}
+_FLAG_RE = re.compile(r"(?<![\w-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
+                      + r")(?![\w])")
+
+
+def _flag_names(message: str) -> str:
+    """A core message with the Python parameter names replaced by the command-line options."""
+    return _FLAG_RE.sub(lambda m: _FLAGS[m.group(1)], message)
+
+
 def _length(text: str) -> tuple[float, str]:
     """A length in nm (plain number or '0.28nm') or in pixels ('7px', for uncalibrated images)."""
     t = text.strip().lower()
@@ -54,6 +85,16 @@ def _length(text: str) -> tuple[float, str]:
     if not (v > 0 and v < float("inf")):
         raise argparse.ArgumentTypeError(f"expected a positive length, got {text!r}")
     return v, unit
+
+
+def _seed(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or larger, got {text!r}") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number 0 or larger, got {text!r}")
+    return v
 
 
 def _species(text: str) -> int | None:
@@ -100,7 +141,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--out", type=Path, required=True, metavar="DIR", help="results folder (must not exist or be empty)")
     a.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     cal = a.add_argument_group("calibration and image")
-    cal.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm; overrides the file")
+    cal.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
     cal.add_argument("--frame", type=int, metavar="K", help="for a stack: analyse frame K (0-based)")
     cal.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: analyse the mean of frames A..B-1")
     cal.add_argument("--region", action="append", metavar="X0,Y0,X1,Y1",
@@ -124,7 +165,8 @@ def build_parser() -> argparse.ArgumentParser:
     mot.add_argument("--ring-order", type=int, default=10, choices=(5, 6, 8, 10, 12),
                      help="columns per ring motif (default 10)")
     mot.add_argument("--ring-radius", type=_length, metavar="LEN",
-                     help="ring radius, nm or px suffix; default: from the pair distances")
+                     help="ring radius (centre to column), nm or px suffix; default: a ring-shell scan of trial radii "
+                     "around the columns (recorded in summary.json)")
     mot.add_argument("--radius-tolerance", type=float, default=0.12, metavar="FRAC",
                      help="relative tolerance on the ring radius (default 0.12)")
     mot.add_argument("--no-pentagons", action="store_true", help="skip the pentagon motif search")
@@ -137,19 +179,21 @@ def build_parser() -> argparse.ArgumentParser:
                      help="cluster-network edge length, nm or px suffix; default: automatic")
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
-    a.add_argument("--seed", type=int, default=0, help="seed for bootstraps and mixture fits (default 0)")
+    a.add_argument("--seed", type=_seed, default=0, help="seed for bootstraps and mixture fits (default 0)")
     a.add_argument("--quiet", action="store_true", help="no progress messages")
-    a.add_argument("--debug", action="store_true", help="show the full traceback on failure")
+    a.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
 
     i = sub.add_parser("info", help="show calibration, size and automatic scale of a micrograph",
                        description="Read a micrograph and print its size, pixel size and where the pixel size came "
                        "from, and the automatic column spacing and width estimate (JSON on stdout).")
     i.add_argument("image", type=Path)
-    i.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm; overrides the file")
-    i.add_argument("--frame", type=int, metavar="K")
-    i.add_argument("--frames", type=_frames, metavar="A:B")
-    i.add_argument("--dark-columns", action="store_true")
-    i.add_argument("--debug", action="store_true")
+    i.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
+    i.add_argument("--frame", type=int, metavar="K", help="for a stack: show frame K (0-based)")
+    i.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: show the mean of frames A..B-1")
+    i.add_argument("--dark-columns", action="store_true",
+                   help="columns darker than the background (HRTEM-like contrast), for the automatic scale; "
+                   "default: bright (HAADF)")
+    i.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
 
     sub.add_parser("samples", help="list the bundled synthetic sample micrographs",
                    description="Print the paths of the synthetic decagonal micrographs shipped with Tenfold, with "
@@ -195,11 +239,34 @@ def _params(args) -> "object":
     )
 
 
-def _check_out(out: Path, overwrite: bool) -> None:
-    if out.exists() and not out.is_dir():
-        raise TenfoldInputError(f"--out {out}: exists and is not a folder; choose another path")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise TenfoldInputError(f"--out {out}: folder exists and is not empty; choose another folder or add --overwrite")
+class _Signalled(KeyboardInterrupt):
+    """SIGTERM/SIGHUP, raised like SIGINT so every clean-up path runs."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _on_signal(signum, frame):
+    raise _Signalled(signum)
+
+
+def _install_signal_handlers() -> dict:
+    """SIGTERM and SIGHUP end the run like Ctrl-C: work folders are removed, nothing half-written stays.
+
+    Returns the previous handlers (restored when :func:`main` returns, for callers that run it in-process).
+    """
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    old = {}
+    for name in ("SIGTERM", "SIGHUP"):
+        if hasattr(signal, name):
+            sig = getattr(signal, name)
+            old[sig] = signal.signal(sig, _on_signal)
+    return old
 
 
 def _analyze(args) -> int:
@@ -207,7 +274,10 @@ def _analyze(args) -> int:
     from .io import read_micrograph
     from .pipeline import run_pipeline
 
-    _check_out(args.out, args.overwrite)  # before any work: fail in a second, not after a minute
+    from ._outdir import check_output_folder
+
+    # before any work: fail in a second, not after a minute
+    check_output_folder(args.out, overwrite=args.overwrite, inputs=[args.image], flag="--out")
     params = _params(args).validate()
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
@@ -234,7 +304,7 @@ def _analyze(args) -> int:
           f"{int((m['kind'] == 'pentagon').sum()) if len(m) else 0} pentagons, thick/thin = "
           f"{'n/a' if ratio is None else f'{ratio:.3f}'}; calibration {cal}; results in {args.out}")
     for note in s.get("notes", []):
-        print(f"note: {note}", file=sys.stderr)
+        print(f"note: {_flag_names(note)}", file=sys.stderr)
     return 0
 
 
@@ -270,23 +340,30 @@ def main(argv: list[str] | None = None) -> int:
     handler = {"analyze": _analyze, "info": _info, "samples": _samples}[args.command]
 
     def _show(message, category, filename, lineno, file=None, line=None):
-        print(f"warning: {message}", file=sys.stderr)
+        print(f"warning: {_flag_names(str(message))}", file=sys.stderr)
 
     warnings.showwarning = _show if not debug else warnings.showwarning
+    if debug:  # the --debug log: what the format libraries said while reading (captured, never printed otherwise)
+        import logging
+
+        logging.basicConfig(level=logging.WARNING, format="%(name)s: %(message)s")
+        logging.getLogger("tenfold").setLevel(logging.DEBUG)
     warnings.simplefilter("always", TenfoldWarning)
+    old_handlers = _install_signal_handlers()
     try:
         return handler(args)
     except TenfoldInputError as exc:
         if debug:
             raise
-        print(f"tenfold: error: {exc}", file=sys.stderr)
+        print(f"tenfold: error: {_flag_names(str(exc))}", file=sys.stderr)
         return 2
     except Cancelled as exc:
         print(f"tenfold: {exc}", file=sys.stderr)
         return 130
-    except KeyboardInterrupt:
-        print("tenfold: interrupted; no results written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = getattr(exc, "signum", 2)
+        print(f"tenfold: interrupted (signal {signum}); nothing half-written is left", file=sys.stderr)
+        return 128 + signum
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
         return 0
     except Exception as exc:  # the one-line rule: no traceback for users unless they ask
@@ -294,6 +371,11 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"tenfold: error: {type(exc).__name__}: {exc} (run again with --debug for the traceback)", file=sys.stderr)
         return 1
+    finally:
+        import signal
+
+        for sig, h in old_handlers.items():
+            signal.signal(sig, h)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -38,7 +38,7 @@ import pandas as pd
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from . import _schema
+from . import _sanitize, _schema
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._progress import report, sub_progress
 from .refine import joint_position_errors, refine_columns, warm_up
@@ -424,10 +424,20 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     img, ok, lengths = _check_inputs(image, valid, pixel_size_nm, column_diameter_nm, column_spacing_nm,
                                      column_diameter_px, column_spacing_px)
     notes: list[str] = []
+    # -- sanitising (analysis/_sanitize.py): flat areas masked, with notes --
+    ok, flat_notes = _sanitize.mask_flat(img, ok)
+    notes.extend(flat_notes)
+    for note in flat_notes:
+        warnings.warn(note, TenfoldWarning, stacklevel=2)
+    # -- end sanitising --
     data = np.where(ok, img, np.median(img[ok][::7]) if not ok.all() else 0.0).astype(np.float64)
     report(progress, 0.0, "column scale")
     auto: dict = {}
     sigma, spacing, est = _resolve_scale(data, ok, lengths, dark_columns, auto)
+    reach_note = _sanitize.masked_reach_note(ok, sigma)  # (analysis/_sanitize.py)
+    if reach_note:
+        notes.append(reach_note)
+        warnings.warn(reach_note, TenfoldWarning, stacklevel=2)
     work = (data.max() - data) if dark_columns else data
     polarity = _check_polarity(work, ok, spacing, dark_columns, notes)
     noise = _initial_noise_model(data, ok, dark_columns)

@@ -9,9 +9,12 @@ Layout of ``DIR``::
     results.xlsx                                                                       one sheet per table + 'regions' + 'provenance'
     figures/<name>.png, figures/<name>.svg                                             every registered figure that applies
 
-Everything is written into a hidden sibling folder first and renamed into place at the end, so a failure or a
-cancellation never leaves a half-written results folder (an old folder replaced with ``overwrite=True`` is only
-removed once the new one is complete).
+    .tenfold-manifest.json                                                             what this run wrote, with checksums
+
+Everything is written into a hidden work folder first and moved into place at the end, so a failure, a
+cancellation or a signal never leaves a half-written results folder. ``overwrite=True`` replaces only the files a
+previous run wrote (listed, with checksums, in the manifest) and leaves every other file in the folder alone; a
+folder holding the input image is refused (see :mod:`tenfold.analysis._outdir`).
 
 Figure makers live with the stage that knows the data; they register themselves with :func:`register_figure`
 and receive the whole result. matplotlib is imported only inside figure makers and never switches the global
@@ -26,7 +29,6 @@ import json
 import math
 import re
 import shutil
-import uuid
 import warnings
 from collections.abc import Callable
 from pathlib import Path
@@ -34,10 +36,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from . import _outdir
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 from ._progress import ProgressCallback, report
 from ._result import AnalysisResult
-from ._schema import TABLES, conform
+from ._schema import EXTRAS, TABLES, conform
 
 __all__ = [
     "write_results",
@@ -220,7 +223,7 @@ def _ordered_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
 
 
 def _units(name: str, df: pd.DataFrame) -> list[str]:
-    schema = {f.name: f.unit for f in TABLES.get(name, ())}
+    schema = {f.name: f.unit for f in TABLES.get(name, ()) + EXTRAS.get(name, ())}
     return [schema.get(c, _unit_of(str(c))) for c in df.columns]
 
 
@@ -485,16 +488,6 @@ def columns_overlay(result: AnalysisResult):
 # the writer
 
 
-def _check_out_dir(out: Path, overwrite: bool) -> None:
-    if out.exists() and not out.is_dir():
-        raise TenfoldInputError(f"{out}: exists and is a file, not a folder; choose another results folder")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise TenfoldInputError(
-            f"{out}: results folder exists and is not empty; pass overwrite=True (--overwrite) to replace it "
-            "or choose a new folder"
-        )
-
-
 def write_results(
     result: AnalysisResult,
     out_dir,
@@ -510,9 +503,12 @@ def write_results(
     result : AnalysisResult
         What :func:`tenfold.analysis.pipeline.run_pipeline` returned.
     out_dir : str or path-like
-        Results folder. Created (with its parents); must not exist or be empty unless ``overwrite``.
+        Results folder. Created (with its parents); must not exist or be empty unless ``overwrite``; may not
+        hold the input image or be a parent of it (symlinks resolved).
     overwrite : bool
-        Replace an existing non-empty folder. The old folder is removed only after the new one is complete.
+        Replace Tenfold's own earlier results in a non-empty folder (the files in its ``.tenfold-manifest.json``
+        whose checksum still matches); other files are never touched, and a file in the way that the manifest
+        does not vouch for refuses the run. Old results are replaced only after the new ones are complete.
     figures : bool
         Draw the registered figures (``FIGURES``) into ``figures/`` as PNG (200 dpi) and SVG.
     progress : callable, optional
@@ -535,38 +531,32 @@ def write_results(
     Raises
     ------
     TenfoldInputError
-        ``out_dir`` is a file, or a non-empty folder and ``overwrite`` is False.
+        ``out_dir`` is a file, or a non-empty folder and ``overwrite`` is False, holds the input image, is
+        read-only, has a user's file where a result goes, or writing failed (disk full: the message names the
+        folder and the cause; nothing is left half-written).
     Cancelled
         The progress callback returned False.
     """
-    out = Path(out_dir)
-    _check_out_dir(out, overwrite)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.writing-{uuid.uuid4().hex[:8]}"
-    tmp.mkdir()
+    out = Path(out_dir).expanduser()
+    inputs = [result.meta.path] if result.meta.path and Path(result.meta.path).is_absolute() else []
+    _outdir.check_output_folder(out, overwrite=overwrite, inputs=inputs)
+    _outdir.clean_stale(out)
+    tmp = _outdir.work_folder(out)
+    fresh = tmp.parent != out
     try:
         written = _write_all(result, tmp, figures=figures, progress=progress)
-        _check_out_dir(out, overwrite)  # nobody filled it meanwhile
-        _swap_into_place(tmp, out)
+        rels = [p.relative_to(tmp).as_posix() for p in written]
+        (_outdir.fresh_commit(tmp, out, rels) if fresh else _outdir.commit(tmp, out, rels))
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise TenfoldInputError(
+            f"{out}: results could not be written ({exc.strerror or exc}{f': {exc.filename}' if exc.filename else ''}); "
+            "nothing was changed there; free disk space, fix the permissions or choose another folder"
+        ) from exc
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    return sorted(out / p.relative_to(tmp) for p in written)
-
-
-def _swap_into_place(tmp: Path, out: Path) -> None:
-    old = None
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
-        out.rename(old)
-    try:
-        tmp.rename(out)
-    except BaseException:
-        if old is not None:
-            old.rename(out)
-        raise
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
+    return sorted(out / r for r in rels)
 
 
 def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) -> list[Path]:

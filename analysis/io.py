@@ -7,14 +7,20 @@ functions that need them, so ``import tenfold.analysis.io`` stays light.
 from __future__ import annotations
 
 import hashlib
+import logging
 import math
+import stat
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
+from ._sanitize import check_memory
+
+_log = logging.getLogger("tenfold")
 
 __all__ = ["write_tiff", "read_micrograph", "micrograph_from_array", "supported_suffixes"]
 
@@ -22,7 +28,12 @@ __all__ = ["write_tiff", "read_micrograph", "micrograph_from_array", "supported_
 _IMAGEJ_DTYPES = (np.uint8, np.uint16, np.float32)
 
 
-def _check_pixel_size(pixel_size_nm, what: str = "pixel_size_nm") -> float | None:
+#: pixel sizes of atomic-resolution images lie well inside this range (nm per pixel); outside it a value is a
+#: unit mistake or a broken tag (common practice: 0.005-0.5 nm for HAADF-STEM/HRTEM lattice images)
+PLAUSIBLE_PIXEL_NM = (1e-4, 10.0)
+
+
+def _check_pixel_size(pixel_size_nm, what: str = "pixel_size_nm", *, plausible: bool = True) -> float | None:
     if pixel_size_nm is None:
         return None
     try:
@@ -34,6 +45,12 @@ def _check_pixel_size(pixel_size_nm, what: str = "pixel_size_nm") -> float | Non
     if not math.isfinite(value) or value <= 0:
         raise TenfoldInputError(
             f"{what}={pixel_size_nm!r} must be a positive finite number of nm per pixel, e.g. 0.015"
+        )
+    lo, hi = PLAUSIBLE_PIXEL_NM
+    if plausible and not lo <= value <= hi:
+        raise TenfoldInputError(
+            f"{what}={pixel_size_nm!r} nm per pixel is outside {lo:g} - {hi:g} nm, the range of atomic-resolution "
+            "images; give the pixel size in nm, e.g. 0.015 (check the unit: 1 A = 0.1 nm, 1 um = 1000 nm)"
         )
     return value
 
@@ -85,7 +102,7 @@ def write_tiff(
     import tifffile
 
     path = Path(path)
-    pixel_size_nm = _check_pixel_size(pixel_size_nm)
+    pixel_size_nm = _check_pixel_size(pixel_size_nm, plausible=False)
     arr = np.asarray(image)
     if arr.ndim != 2:
         raise TenfoldInputError(
@@ -217,6 +234,15 @@ def _resolve_calibration(cal: _Calib, name: str) -> tuple[float | None, str]:
             "give pixel_size_nm to calibrate"
         )
         return None, "none"
+    lo, hi = PLAUSIBLE_PIXEL_NM
+    if min(px_x, px_y) < lo:
+        cal.warnings.append(f"{name}: the file's pixel size ({min(px_x, px_y):.3g} nm, from {cal.source}) is below "
+                            f"{lo:g} nm, which no micrograph has (a broken tag); treated as uncalibrated, "
+                            "give pixel_size_nm to calibrate")
+        return None, "none"
+    if max(px_x, px_y) > hi:
+        cal.warnings.append(f"{name}: the file's pixel size ({max(px_x, px_y):.4g} nm, from {cal.source}) is above "
+                            f"{hi:g} nm, coarse for atomic columns; check the calibration (a unit mistake?)")
     if abs(px_x - px_y) > _ANISO_TOL * 0.5 * (px_x + px_y):
         mean = 0.5 * (px_x + px_y)
         cal.warnings.append(
@@ -283,25 +309,68 @@ def _tiff_calibration(tf, cal: _Calib, name: str) -> None:
         cal.set(factor / xres, factor / yres, "tiff-resolution")
 
 
+class _LogCapture(logging.Handler):
+    """Collects what a format library logs while it reads (instead of letting it print to stderr)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.messages: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.messages.append(record.getMessage().splitlines()[0] if record.getMessage() else "")
+
+    def first(self) -> str:
+        if not self.messages:
+            return ""
+        more = f" (+{len(self.messages) - 1} more)" if len(self.messages) > 1 else ""
+        return f"; the reader said: {self.messages[0][:200]}{more}"
+
+
+@contextmanager
+def _captured_log(name: str):
+    logger = logging.getLogger(name)
+    cap = _LogCapture()
+    old = logger.propagate
+    logger.addHandler(cap)
+    logger.propagate = False
+    try:
+        yield cap
+    finally:
+        logger.removeHandler(cap)
+        logger.propagate = old
+        for m in cap.messages:  # kept for the --debug log, never printed by default
+            _log.debug("%s: %s", name, m)
+
+
+def _planar_shape(shape) -> tuple[int, int]:
+    """(rows, cols) of the image a reader will return for data of ``shape`` (channels and frames dropped)."""
+    big = [int(n) for n in shape if int(n) > 4]
+    return (big[-2], big[-1]) if len(big) >= 2 else (0, 0)
+
+
 def _read_tiff(path: Path, cal: _Calib) -> np.ndarray:
     import tifffile
 
-    try:
-        with tifffile.TiffFile(path) as tf:
-            if not tf.series:
-                raise TenfoldInputError(f"{path}: TIFF holds no image data; check the file")
-            series = tf.series[0]
-            if len(tf.series) > 1:
-                cal.notes.append(f"{path.name}: file has {len(tf.series)} image series; read the first ({series.axes} {series.shape})")
-            data = series.asarray()
-            _tiff_calibration(tf, cal, path.name)
-            expected = int(np.prod(series.shape))
-    except TenfoldInputError:
-        raise
-    except Exception as exc:  # tifffile raises many kinds for damaged files
-        raise TenfoldInputError(
-            f"{path}: not a readable TIFF ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not a TIFF"
-        ) from None
+    with _captured_log("tifffile") as log:
+        try:
+            with tifffile.TiffFile(path) as tf:
+                if not tf.series:
+                    raise TenfoldInputError(f"{path}: TIFF holds no image data; the file is corrupt or not an image{log.first()}")
+                series = tf.series[0]
+                if len(tf.series) > 1:
+                    cal.notes.append(f"{path.name}: file has {len(tf.series)} image series; read the first ({series.axes} {series.shape})")
+                check_memory(_planar_shape(series.shape), label=str(path),
+                             raw_bytes=int(np.prod(series.shape)) * np.dtype(series.dtype).itemsize)
+                data = series.asarray()
+                _tiff_calibration(tf, cal, path.name)
+                expected = int(np.prod(series.shape))
+        except TenfoldInputError:
+            raise
+        except Exception as exc:  # tifffile raises many kinds for damaged files
+            raise TenfoldInputError(
+                f"{path}: not a readable TIFF ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not a "
+                f"TIFF{log.first()}"
+            ) from None
     if data is None or data.size != expected:
         raise TenfoldInputError(f"{path}: TIFF image data is incomplete; the file is truncated or corrupt")
     return data
@@ -314,11 +383,17 @@ def _read_mrc(path: Path, cal: _Calib) -> np.ndarray:
         # mrcfile raises for damaged files and warns (RuntimeWarning) about odd but readable headers
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
+            with mrcfile.open(path, mode="r", header_only=True) as mrc:
+                hd = mrc.header
+                dims = (int(hd.nz), int(hd.ny), int(hd.nx))
+            check_memory(_planar_shape(dims), label=str(path), raw_bytes=4 * int(np.prod(dims, dtype=np.float64)))
             with mrcfile.open(path, mode="r") as mrc:
                 data = np.array(mrc.data)
                 vs = mrc.voxel_size
                 vx, vy = float(vs.x), float(vs.y)
         cal.notes.extend(f"{path.name}: MRC header: {w.message}" for w in caught)
+    except TenfoldInputError:
+        raise
     except Exception as exc:
         raise TenfoldInputError(
             f"{path}: not a readable MRC file ({type(exc).__name__}: {exc}); the file is corrupt, truncated or not MRC"
@@ -334,7 +409,14 @@ def _read_imageio(path: Path, cal: _Calib) -> np.ndarray:
     import imageio.v3 as iio
 
     try:
+        from PIL import Image
+
+        with Image.open(path) as im:
+            w, h = im.size
+        check_memory((h, w), label=str(path), raw_bytes=8 * h * w)
         data = np.asarray(iio.imread(path, plugin="pillow"))
+    except TenfoldInputError:
+        raise
     except Exception as exc:
         raise TenfoldInputError(
             f"{path}: not a readable {path.suffix.lstrip('.').upper()} image ({type(exc).__name__}: {exc}); "
@@ -419,6 +501,9 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         raise TenfoldInputError(f"{label}: data is {arr.ndim}-D (shape {np.shape(raw)}); a micrograph must be 2-D")
     if override is not None:
         px, source = override, "user"
+        if cal.px_x and cal.px_x > 0 and abs(override - cal.px_x) > 0.01 * cal.px_x:
+            cal.notes.append(f"{label}: the given pixel size {override:.6g} nm overrides the file's {cal.px_x:.6g} nm "
+                             f"(from {cal.source}), {100 * (override / cal.px_x - 1):+.1f} %")
     else:
         px, source = _resolve_calibration(cal, label)
     converted = False
@@ -466,11 +551,17 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
             "read, save the image you want as a 2-D file"
         )
     rows, cols = data.shape
+    if min(rows, cols) == 0 and sha256:
+        raise TenfoldInputError(f"{label}: the file's header gives an empty image ({rows} x {cols} px); the file is "
+                                "corrupt or truncated")
     if min(rows, cols) < _MIN_SIDE:
         raise TenfoldInputError(
             f"{label}: image is {rows} x {cols} px, too small to hold several column spacings "
             f"(need at least {_MIN_SIDE} px on a side)"
         )
+    data, scale_note = _fit_float32(data, label)
+    if scale_note:
+        warn.append(scale_note)
     data32 = data.astype(np.float32)
     with np.errstate(over="ignore", invalid="ignore"):
         valid = np.isfinite(data32)
@@ -506,6 +597,23 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         notes=list(dict.fromkeys(warn + notes)),
     )
     return Micrograph(data=data32, meta=meta, valid=valid)
+
+
+#: largest magnitude kept as it is in float32 (its limit is 3.4e38; filters square values, so keep far below)
+_FLOAT32_SAFE = 1e30
+
+
+def _fit_float32(data: np.ndarray, label: str) -> tuple[np.ndarray, str]:
+    """Scale values beyond float32's range by a power of ten (with a note) instead of letting them overflow."""
+    with np.errstate(invalid="ignore"):
+        finite = np.isfinite(data)
+        peak = float(np.max(np.abs(data), where=finite, initial=0.0))
+    if peak <= _FLOAT32_SAFE:
+        return data, ""
+    exponent = int(math.floor(math.log10(peak))) - 6
+    factor = 10.0 ** exponent
+    return data / factor, (f"{label}: values up to {peak:.3g} exceed the float32 range of the analysis; divided by "
+                           f"1e{exponent} (intensities are in units of 1e{exponent}, positions are unaffected)")
 
 
 def _check_index(frame, n: int, label: str) -> int:
@@ -586,6 +694,9 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -
         raise TenfoldInputError(f"{p}: no such file; check the path")
     if p.is_dir():
         raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
+    if not stat.S_ISREG(p.stat().st_mode):
+        raise TenfoldInputError(f"{p}: is not a regular file (a pipe, device or socket); give an image file saved "
+                                "on disk")
     suffix = p.suffix.lower()
     if suffix not in _SUFFIXES:
         raise TenfoldInputError(
@@ -628,6 +739,7 @@ def micrograph_from_array(
     """
     override = _check_pixel_size(pixel_size_nm)
     label = f"array {name!r}" if name else "array"
+    check_memory(_planar_shape(np.shape(array)), label=label)
     return _build(
         array, label=label, cal=_Calib(), override=override, frame=frame, frame_range=frame_range,
         path=str(name), sha256="",

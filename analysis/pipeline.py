@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from . import __version__
+from . import __version__, _guards
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
 from ._progress import ProgressCallback, report, sub_progress
@@ -111,6 +111,13 @@ class Parameters:
             v = getattr(self, name)
             if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
                 raise TenfoldInputError(f"parameter {name} must be a positive number (or empty for automatic), got {v!r}")
+        if self.pixel_size_nm is not None:
+            from .io import _check_pixel_size
+
+            _check_pixel_size(self.pixel_size_nm, "parameter pixel_size_nm")
+        if not isinstance(self.rng, np.random.Generator) and (
+                isinstance(self.rng, bool) or not (isinstance(self.rng, (int, np.integer)) and self.rng >= 0)):
+            raise TenfoldInputError(f"parameter rng must be a whole number 0 or larger (the seed), got {self.rng!r}")
         for base in _LENGTHS:
             if getattr(self, f"{base}_nm") is not None and getattr(self, f"{base}_px") is not None:
                 raise TenfoldInputError(f"parameters {base}_nm and {base}_px both given; give the length in one unit")
@@ -153,8 +160,12 @@ def _calibrated(micrograph: Micrograph, params: Parameters) -> Micrograph:
     """The micrograph with the user's pixel size applied (never modifies the caller's record)."""
     if params.pixel_size_nm is None:
         return micrograph
-    meta = dataclasses.replace(micrograph.meta, pixel_size_nm=float(params.pixel_size_nm), calibration_source="user",
-                               notes=list(micrograph.meta.notes))
+    old, new = micrograph.meta.pixel_size_nm, float(params.pixel_size_nm)
+    notes = list(micrograph.meta.notes)
+    if old and micrograph.meta.calibration_source != "user" and abs(new - old) > 0.01 * old:
+        notes.append(f"the given pixel size {new:.6g} nm overrides the file's {old:.6g} nm (from "
+                     f"{micrograph.meta.calibration_source}), {100 * (new / old - 1):+.1f} %")
+    meta = dataclasses.replace(micrograph.meta, pixel_size_nm=new, calibration_source="user", notes=notes)
     return Micrograph(micrograph.data, meta, micrograph.valid)
 
 
@@ -168,7 +179,11 @@ def estimate_defaults(micrograph: Micrograph, *, dark_columns: bool = False) -> 
     """
     from .scale import estimate_scale
 
-    est = estimate_scale(micrograph.data, valid=micrograph.valid, dark_columns=dark_columns)
+    try:
+        with _guards.small_image_hint(micrograph.data.shape):
+            est = estimate_scale(micrograph.data, valid=micrograph.valid, dark_columns=dark_columns)
+    except TenfoldInputError as exc:
+        raise _guards.with_file(exc, micrograph.meta.path) from None
     ps = micrograph.meta.pixel_size_nm
     diameter_px = 4.5 * est.sigma_px
     return {
@@ -194,6 +209,7 @@ def _region_summaries(result: AnalysisResult, regions) -> list[dict]:
             "n_complete_rings": int((m["kind"].str.startswith("ring") & m["complete"]).sum()) if len(m) else 0,
             "n_pentagons": int((m["kind"] == "pentagon").sum()) if len(m) else 0,
             "mean_psi_n": float(m["psi_n"].mean()) if len(m) else None,
+            "mean_psi_n_over": "ring motifs and pentagons",
             "mean_pos_err_nm": float(c["pos_err_nm"].mean()) if len(c) and c["pos_err_nm"].notna().any() else None,
         }
         for sp, n in c["species"].value_counts().sort_index().items():
@@ -224,6 +240,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     )
     result.tables["motifs"] = motifs
     result.summary["motifs"] = m_info
+    m_info["mean_psi_n_over"] = "ring motifs only (the per-region rows average rings and pentagons)"
     shape = m_info.get("ring_shape") or {}
     if shape.get("warning"):
         result.summary.setdefault("notes", []).append(
@@ -313,6 +330,10 @@ def _finish(result: AnalysisResult, regions, caught: list) -> AnalysisResult:
         msg = "uncalibrated: no pixel size in the file and none given; positions are in px and every *_nm column is empty"
         if msg not in notes:
             notes.insert(0, msg)
+    for note in _guards.empty_result_notes(result.summary, result.tables, result.meta.shape):
+        if note not in notes:
+            notes.append(note)
+    notes[:] = _guards.name_the_file(notes, result.meta.path)
     result.summary["n_columns"] = int(len(result.tables["columns"]))
     result.summary["n_motifs"] = int(len(result.tables["motifs"]))
     result.summary["regions"] = _region_summaries(result, regions)
@@ -353,16 +374,26 @@ def run_pipeline(
     """
     params = (params or Parameters()).validate()
     micrograph = _calibrated(micrograph, params)
+    try:
+        return _run_regions(micrograph, params, regions, progress)
+    except TenfoldInputError as exc:  # the one line names the file, whichever stage raised
+        raise _guards.with_file(exc, micrograph.meta.path) from None
+
+
+def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:
+    _guards.check_regions(regions, micrograph.data.shape)
     if regions:
         # small regions of a large image: analyse their bounding box (with a margin) and shift the tables back
         from ._crop import crop_to_regions, shift_result
 
         work, work_regions, offset = crop_to_regions(micrograph, regions)
         if work is not micrograph:
-            result = _run(work, params, work_regions, progress)
+            with _guards.small_image_hint(work.data.shape):
+                result = _run(work, params, work_regions, progress)
             shift_result(result, micrograph, offset)
             return result
-    return _run(micrograph, params, regions, progress)
+    with _guards.small_image_hint(micrograph.data.shape):
+        return _run(micrograph, params, regions, progress)
 
 
 def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:
@@ -392,9 +423,10 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
             progress=sub_progress(progress, 0.0, 0.55),
         )
         result.tables["columns"] = cols
-        result.summary["columns"] = c_info
         result.summary["automatic"] = c_info.get("automatic", c_info)
         result.summary["species"] = c_info.get("species")
+        # each block once: 'automatic' and 'species' live at the top level only
+        result.summary["columns"] = {k: v for k, v in c_info.items() if k not in ("automatic", "species")}
         _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
         if params.fourier:
             report(progress, 0.9, "power spectrum")
@@ -441,6 +473,9 @@ def rerun_from_columns(
     if not {"x_px", "y_px"} <= set(columns.columns):
         raise TenfoldInputError("re-run from columns: the edited table needs x_px and y_px columns")
     params = (params or Parameters.from_dict(result.parameters)).validate()
+    shape = result.image.shape if result.image is not None else result.meta.shape
+    _guards.check_positions(pd.to_numeric(columns["x_px"], errors="coerce"),
+                            pd.to_numeric(columns["y_px"], errors="coerce"), shape)
     ps = result.meta.pixel_size_nm
     cols = columns.copy().reset_index(drop=True)
     old = result.tables.get("columns", empty_table(COLUMNS))

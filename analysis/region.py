@@ -48,6 +48,9 @@ class Region:
         v = np.asarray(self.vertices_px, dtype=np.float64)
         if v.ndim != 2 or v.shape[1] != 2 or not np.all(np.isfinite(v)):
             raise TenfoldInputError(f"Region {self.label}: vertices_px must be a finite (N, 2) array of (x, y) px")
+        if np.abs(v).max(initial=0.0) > _MAX_COORD_PX:
+            raise TenfoldInputError(f"Region {self.label}: a vertex lies beyond {_MAX_COORD_PX:g} px from the image "
+                                    "origin; check the corners and their unit (nm or px)")
         if self.kind in ("rectangle", "ellipse"):
             if v.shape[0] == 2:
                 (x0, y0), (x1, y1) = v
@@ -57,13 +60,19 @@ class Region:
                                         f"got {v.shape[0]}")
         elif v.shape[0] < 3:
             raise TenfoldInputError(f"Region {self.label}: a polygon needs at least 3 vertices, got {v.shape[0]}")
-        if _area(v) <= 0:
-            raise TenfoldInputError(f"Region {self.label}: the {self.kind} has zero area; give distinct corners")
+        if not _area(v) >= _MIN_AREA_PX2:
+            raise TenfoldInputError(f"Region {self.label}: the {self.kind} has (almost) zero area "
+                                    f"({_area(v):.3g} px^2); give distinct corners")
         self.vertices_px = v
 
     def to_dict(self) -> dict:
         """JSON-safe description."""
         return {"label": self.label, "kind": self.kind, "vertices_px": self.vertices_px.tolist()}
+
+
+#: a region smaller than a hundredth of a pixel holds no column; coordinates beyond a billion px are unit mistakes
+_MIN_AREA_PX2 = 0.01
+_MAX_COORD_PX = 1e9
 
 
 def _area(v: np.ndarray) -> float:
@@ -137,7 +146,7 @@ def _inside(x: np.ndarray, y: np.ndarray, region: Region) -> np.ndarray:
             xint = xa + (y - ya) * (xb - xa) / (yb - ya)
         inside ^= crosses & (x < xint)
         ex, ey = xb - xa, yb - ya
-        t = np.clip(((x - xa) * ex + (y - ya) * ey) / (ex * ex + ey * ey), 0.0, 1.0)
+        t = np.clip(((x - xa) * ex + (y - ya) * ey) / max(ex * ex + ey * ey, 1e-300), 0.0, 1.0)  # repeated vertex
         on_edge |= np.hypot(x - (xa + t * ex), y - (ya + t * ey)) <= 1e-9 * max(1.0, abs(ex) + abs(ey))
     return inside | on_edge
 

@@ -17,6 +17,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
+from . import _sanitize
 from ._errors import TenfoldInputError
 
 __all__ = ["ScaleEstimate", "estimate_scale", "radial_autocorrelation"]
@@ -286,6 +287,9 @@ def estimate_scale(image, *, valid=None, dark_columns=False) -> ScaleEstimate:
     img, ok = _prepare(image, valid)
     h, w = img.shape
     details: dict = {"dark_columns": bool(dark_columns), "shape": [int(h), int(w)]}
+    if min(h, w) >= 16:  # (analysis/_sanitize.py) the most valid window, hot pixels clipped
+        img, ok, details["sanitized"] = _sanitize.prepare_for_scale(img, ok, MAX_CROP_PX)
+        h, w = img.shape
     if min(h, w) < 16:
         raise TenfoldInputError(f"estimate_scale: image {h}x{w} px is too small to find a column scale (need 16x16)")
     c = min(MAX_CROP_PX, h), min(MAX_CROP_PX, w)

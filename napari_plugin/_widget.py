@@ -501,7 +501,7 @@ class PipelineWidget(QWidget):
 
     def _ask_overwrite(self, folder: Path) -> bool:
         answer = QMessageBox.question(
-            self, "Overwrite results?", f"{folder} already holds files. Overwrite the Tenfold results there?",
+            self, "Overwrite results?", f"{folder} already holds files. Replace Tenfold's earlier results there? Other files are kept.",
             QMessageBox.Yes | QMessageBox.No, QMessageBox.No,
         )
         return answer == QMessageBox.Yes

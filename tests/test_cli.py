@@ -144,4 +144,4 @@ def test_pixel_lengths_work_on_uncalibrated_images(tmp_path):
     s = json.loads((out / "summary.json").read_text())
     assert s["parameters"]["ring_radius_px"] == 11.25 and s["parameters"]["ring_radius_nm"] is None
     assert s["motifs"]["radius_px"] == pytest.approx(11.25, rel=0.02)
-    assert s["columns"]["automatic"]["sigma"]["value_px"] == pytest.approx(1.5)
+    assert s["automatic"]["sigma"]["value_px"] == pytest.approx(1.5)

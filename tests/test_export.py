@@ -122,12 +122,14 @@ def test_refuses_file_as_dir(tmp_path, result):
         write_results(result, f, figures=False)
 
 
-def test_overwrite_replaces_old_folder(tmp_path, result):
+def test_overwrite_replaces_own_results_keeps_user_file(tmp_path, result):
     out = tmp_path / "res"
     write_results(result, out, figures=False)
-    (out / "stale.txt").write_text("old")
+    (out / "mine.txt").write_text("the user's")
+    stamp = (out / "columns.csv").stat().st_mtime_ns
     write_results(result, out, overwrite=True, figures=False)
-    assert not (out / "stale.txt").exists()
+    assert (out / "mine.txt").read_text() == "the user's"
+    assert (out / "columns.csv").stat().st_mtime_ns >= stamp
     assert (out / "results.xlsx").is_file()
     assert [p.name for p in tmp_path.iterdir()] == ["res"]
 
@@ -148,7 +150,7 @@ def test_failure_with_overwrite_keeps_old_folder(tmp_path, result, monkeypatch):
     write_results(result, out, figures=False)
     (out / "marker.txt").write_text("previous run")
     monkeypatch.setattr(export, "_write_json", lambda *a, **k: (_ for _ in ()).throw(OSError("injected")))
-    with pytest.raises(OSError, match="injected"):
+    with pytest.raises(TenfoldInputError, match=r"res: results could not be written \(injected"):
         write_results(result, out, overwrite=True, figures=False)
     assert (out / "marker.txt").read_text() == "previous run"
     assert [p.name for p in tmp_path.iterdir()] == ["res"]

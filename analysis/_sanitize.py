@@ -1,0 +1,231 @@
+"""Image sanitising before the stages measure anything: flat areas, outliers, memory, and the notes that say so.
+
+* **Flat areas** (padding, zero corners after a rotation, a blanked or partly read file: pixels that are exactly
+  constant over at least ``FLAT_WINDOW_PX`` x ``FLAT_WINDOW_PX``) are masked like NaN pixels, with a note giving
+  their share. No detector noise is exactly constant over such an area; left in, every pixel of it is a tied local
+  maximum and the detection time and memory grow with the flat area instead of with the columns.
+* **Outliers** (hot pixels, a stray 1e38: beyond the 0.5-99.5 percentile range by 3 x its width) are clipped
+  to the other pixels' range for the scale estimate only; the fits see the data as recorded.
+* **Masked reach**: no column is reported within ``2 sigma + 0.5`` px of a masked pixel, so sparse masked pixels
+  remove far more columns than their own share; the note gives that share too.
+* **Memory**: an image whose analysis would not fit into the memory available is refused before it is read.
+
+Every function is vectorised (filters over the whole image, no per-pixel loop) and allocates a few image-sized
+byte or float32 arrays at most.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+from scipy import ndimage
+
+from ._errors import TenfoldInputError
+
+__all__ = ["mask_flat", "clip_for_scale", "masked_reach_note", "check_memory", "available_memory",
+           "BYTES_PER_PIXEL", "BYTES_PER_COLUMN"]
+
+#: side of the smallest exactly constant square treated as a flat (non-image) area
+FLAT_WINDOW_PX = 15
+#: share of exactly-zero pixels outside flat areas above which a note warns of a damaged or partly read file
+ZERO_SHARE_NOTE = 0.25
+#: percentile range kept for the scale estimate (hot pixels and single wild values lie beyond it)
+CLIP_PERCENTILES = (0.5, 99.5)
+#: an outlier lies this many percentile-range widths beyond the range (the bundled samples' extremes reach 1.5)
+OUTLIER_SPANS = 3.0
+#: measured peak memory of one analysis (benchmarks/bench_memory.py): below this per pixel, plus per column
+BYTES_PER_PIXEL = 40
+BYTES_PER_COLUMN = 2048
+
+
+def mask_flat(image, ok: np.ndarray, *, label: str = "image") -> tuple[np.ndarray, list[str]]:
+    """Mask exactly constant areas of at least ``FLAT_WINDOW_PX`` squared; return the new mask and notes.
+
+    Parameters
+    ----------
+    image : (H, W) array
+        The micrograph (any real dtype; not modified).
+    ok : (H, W) bool array
+        Valid pixels so far (not modified).
+    label : str
+        Name of the image in messages.
+
+    Returns
+    -------
+    ok : (H, W) bool array
+        ``ok`` without the flat areas (the same object when there are none).
+    notes : list of str
+        What was masked and its share of the image; a note on a large share of exact zeros elsewhere.
+
+    Raises
+    ------
+    TenfoldInputError
+        Fewer than 16 valid pixels are left outside the flat areas.
+    """
+    img = np.asarray(image)
+    h, w = img.shape
+    notes: list[str] = []
+    if min(h, w) < FLAT_WINDOW_PX:
+        return ok, notes
+    # a pixel whose 3 x 3 neighbourhood is exactly constant; then the union of all-such windows (an opening)
+    flat3 = ndimage.maximum_filter(img, size=3) == ndimage.minimum_filter(img, size=3)
+    flat3 &= ok
+    if np.count_nonzero(flat3) >= (FLAT_WINDOW_PX - 2) ** 2:
+        core = ndimage.minimum_filter(flat3.view(np.uint8), size=FLAT_WINDOW_PX - 2)
+        flat = ndimage.maximum_filter(core, size=FLAT_WINDOW_PX).view(bool) & flat3
+        del core
+    else:
+        flat = np.zeros_like(flat3)
+    del flat3
+    n_flat = int(np.count_nonzero(flat))
+    if n_flat:
+        values = np.unique(img[flat][:: max(1, n_flat // 100_000)])
+        shown = ", ".join(f"{float(v):g}" for v in values[:3]) + (" ..." if values.size > 3 else "")
+        notes.append(
+            f"{label}: {100 * n_flat / img.size:.3g} % of the image is flat (exactly constant, value {shown}, over "
+            f"areas of at least {FLAT_WINDOW_PX} x {FLAT_WINDOW_PX} px: padding, rotation corners, a blanked or "
+            "partly read file); masked like NaN pixels, no columns are reported there"
+        )
+        ok = ok & ~flat
+    del flat
+    if np.count_nonzero(ok) < 16:
+        raise TenfoldInputError(f"{label}: the image is flat (exactly constant) almost everywhere; it holds no "
+                                "structure to analyse, check that the file was read completely")
+    zeros = np.count_nonzero((img == 0) & ok)
+    if zeros > ZERO_SHARE_NOTE * img.size:
+        notes.append(f"{label}: {100 * zeros / img.size:.3g} % of the pixels are exactly 0: a damaged, truncated or "
+                     "padded file, or a detector without offset; check the file if that is unexpected")
+    return ok, notes
+
+
+def clip_for_scale(image: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, dict]:
+    """The image with outliers clipped (for the scale estimate), and what was done.
+
+    An outlier lies more than ``OUTLIER_SPANS`` widths of the ``CLIP_PERCENTILES`` range beyond it (hot pixels, a stray
+    1e38); outliers are clipped to the lowest and highest values of the other valid pixels. A clean image comes
+    back unchanged (the same object).
+    """
+    vals = image[ok]
+    if vals.size < 16:
+        return image, {}
+    step = max(1, vals.size // 1_000_000)
+    lo, hi = np.percentile(vals[::step], CLIP_PERCENTILES)
+    span = float(hi - lo)
+    with np.errstate(invalid="ignore", over="ignore"):
+        wild = ok & ((image < lo - OUTLIER_SPANS * span) | (image > hi + OUTLIER_SPANS * span))
+    n = int(np.count_nonzero(wild))
+    if n == 0 or span <= 0:
+        return image, {}
+    tame = image[ok & ~wild]
+    a, b = float(tame.min()), float(tame.max())
+    return np.clip(image, a, b), {"outliers_clipped": n, "clipped_to": [a, b],
+                                  "how": f"values beyond the {CLIP_PERCENTILES} percentile range by more than "
+                                         f"{OUTLIER_SPANS:g} x its width (hot pixels) set to the nearest other value"}
+
+
+def best_window(ok: np.ndarray, size: tuple[int, int]) -> tuple[slice, slice]:
+    """The ``size`` window (on a coarse grid) holding the most valid pixels; centred when all are valid."""
+    h, w = ok.shape
+    ch, cw = min(size[0], h), min(size[1], w)
+    if ok.all() or (ch, cw) == (h, w):
+        r0, c0 = (h - ch) // 2, (w - cw) // 2
+        return slice(r0, r0 + ch), slice(c0, c0 + cw)
+    integ = np.zeros((h + 1, w + 1))
+    integ[1:, 1:] = ok.cumsum(0).cumsum(1)
+    step = max(1, min(ch, cw) // 8)
+    rs = np.unique(np.r_[np.arange(0, h - ch + 1, step), h - ch])
+    cs = np.unique(np.r_[np.arange(0, w - cw + 1, step), w - cw])
+    r, c = np.meshgrid(rs, cs, indexing="ij")
+    count = integ[r + ch, c + cw] - integ[r, c + cw] - integ[r + ch, c] + integ[r, c]
+    k = np.unravel_index(np.argmax(count), count.shape)
+    r0, c0 = int(rs[k[0]]), int(cs[k[1]])
+    return slice(r0, r0 + ch), slice(c0, c0 + cw)
+
+
+def prepare_for_scale(img: np.ndarray, ok: np.ndarray, crop_px: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    """The scale estimate's view: the most valid ``crop_px`` window, outliers clipped; with a record of both."""
+    rows, cols = best_window(ok, (crop_px, crop_px))
+    sub, okc = img[rows, cols], ok[rows, cols]
+    sub, clip = clip_for_scale(sub, okc)
+    return sub, okc, {"window": [rows.start, cols.start, rows.stop - rows.start, cols.stop - cols.start], **clip}
+
+
+def masked_reach_note(ok: np.ndarray, sigma_px: float, *, label: str = "image") -> str | None:
+    """A note when masked pixels exclude columns from a clearly larger share of the image than their own."""
+    masked = ~ok
+    n_masked = int(np.count_nonzero(masked))
+    if n_masked == 0:
+        return None
+    reach = int(math.ceil(2.0 * sigma_px + 0.5))
+    lost = ndimage.maximum_filter(masked.view(np.uint8), size=2 * reach + 1)
+    share_lost = float(np.count_nonzero(lost)) / ok.size
+    share_masked = n_masked / ok.size
+    if share_lost < 1.5 * share_masked or share_lost < 0.01:
+        return None
+    return (f"{label}: masked pixels ({100 * share_masked:.3g} % of the image) keep columns out of "
+            f"{100 * share_lost:.3g} % of it (no column is reported within {reach} px of a masked pixel); "
+            "scattered NaN/inf or flat pixels cost many columns, repair or crop the image if that matters")
+
+
+def available_memory() -> int | None:
+    """Bytes of memory this process can still use: MemAvailable, capped by a cgroup limit (None if unknown)."""
+    avail = None
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    avail = int(line.split()[1]) * 1024
+                    break
+    except OSError:
+        pass
+    if avail is None:
+        try:
+            avail = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+        except (ValueError, OSError, AttributeError):
+            return None
+    for path, used in (("/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory.current"),
+                       ("/sys/fs/cgroup/memory/memory.limit_in_bytes", "/sys/fs/cgroup/memory/memory.usage_in_bytes")):
+        try:
+            with open(path) as fh:
+                limit = fh.read().strip()
+            with open(used) as fh:
+                cur = int(fh.read().strip())
+        except (OSError, ValueError):
+            continue
+        if limit.isdigit() and int(limit) < 2**60:
+            avail = min(avail, max(int(limit) - cur, 0))
+        break
+    return avail
+
+
+def _size(n: float) -> str:
+    return f"{n / 2**30:.1f} GB" if n >= 2**30 else f"{n / 2**20:.1f} MB"
+
+
+def check_memory(shape, *, label: str, raw_bytes: int = 0, available: int | None = None) -> None:
+    """Refuse an image whose analysis would not fit into the memory available, before it is read.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        (rows, cols) of the analysed 2-D image.
+    label : str
+        File or array name for the message.
+    raw_bytes : int
+        Bytes the reader needs for the data as stored (a whole stack), on top of the analysis.
+    available : int, optional
+        Bytes available (default: :func:`available_memory`).
+    """
+    rows, cols = (int(s) for s in shape[-2:])
+    need = BYTES_PER_PIXEL * rows * cols + int(raw_bytes)
+    avail = available_memory() if available is None else available
+    if avail is None or need <= avail:
+        return
+    side = int(math.sqrt(avail / (BYTES_PER_PIXEL + 1)))
+    raise TenfoldInputError(
+        f"{label}: image of {rows} x {cols} px needs about {_size(need)} of memory to analyse "
+        f"({BYTES_PER_PIXEL} bytes per pixel), only {_size(avail)} is available; crop it (e.g. to "
+        f"{side} x {side} px) or bin it 2 x 2 first"
+    )
