@@ -145,7 +145,8 @@ PEAKS = _fields(
     ("height", "float64", "", "peak height of the normalised pair distribution"),
     ("width_px", "float64", "px", "peak standard deviation"),
     ("peak_weight", "float64", "", "share of pair-distance weight in this peak"),
-    ("position_sd_px", "float64", "px", "1-sigma position uncertainty: width / sqrt(pairs) with a 0.2 % floor"),
+    ("position_sd_px", "float64", "px", "1-sigma position uncertainty: width / sqrt(pairs), a 0.2 % floor and the excess width "
+                                       "of a peak holding unresolved distances, in quadrature"),
 )
 
 #: One row per tile type (file DIR/tiles.csv).

@@ -48,6 +48,7 @@ _ORDERS = (5, 6, 8, 10, 12)
 _SCAN_SAMPLE = 2000  # candidate centres used by the radius scan (independent of N, keeps it O(1))
 _SHELL_MIN_COUNT = 3  # fewest regular shells in the scan sample for a shell to count
 _SHELL_MIN_SHARE = 0.2  # ... and at least this share of the most populous shell
+_FLIP_MARGIN_DEG = 6.0  # a pentagon turned within this of halfway between 'up' and 'down' is undecided ('')
 _PRIMARY_SHARE = 0.5  # pentagon shells holding at least this share of the most populous one compete for 'primary'
 
 
@@ -1031,7 +1032,8 @@ def _set_flip(out: pd.DataFrame, edge_phase_deg: float | None, tol: float) -> di
 
     The tiling's edges run along ten directions 36 deg apart; as undirected lines they fix a phase mod 36 deg only,
     so the five reference edge vectors are taken at ``phase + 72 j`` with the phase in [-18, 18) deg. A pentagon
-    whose vertices point within 18 deg of these is 'up', one turned by 36 deg is 'down'.
+    whose vertices point within 18 deg of these is 'up', one turned by 36 deg is 'down'; within
+    ``_FLIP_MARGIN_DEG`` of halfway the state is '' (undecided).
     """
     out["flip_state"] = ""
     src = "given"
@@ -1047,10 +1049,13 @@ def _set_flip(out: pd.DataFrame, edge_phase_deg: float | None, tol: float) -> di
     ref = float(np.mod(edge_phase_deg + 18.0, 36.0) - 18.0)
     five = (out["order"] == 5).to_numpy()
     rel = np.mod(out["orientation_deg"].to_numpy(dtype=float) - ref, 72.0)
-    out.loc[five, "flip_state"] = np.where((rel[five] < 18.0) | (rel[five] >= 54.0), "up", "down")
+    state = np.where((rel < 18.0) | (rel >= 54.0), "up", "down")
+    halfway = np.minimum(np.abs(rel - 18.0), np.abs(rel - 54.0)) < _FLIP_MARGIN_DEG
+    out.loc[five, "flip_state"] = np.where(halfway, "", state)[five]
     return {"phase_deg": ref, "source": src,
             "convention": "flip_state 'up': pentagon vertices along the edge vectors phase + 72 j (phase in "
-                          "[-18, 18) deg, atan2 with y down); 'down': turned by 36 deg"}
+                          "[-18, 18) deg, atan2 with y down); 'down': turned by 36 deg; '' within "
+                          f"{_FLIP_MARGIN_DEG:g} deg of halfway"}
 
 
 def _shell_summary(out: pd.DataFrame, pixel_size_nm) -> list[dict]:
