@@ -118,12 +118,19 @@ def _set_covariance(r: np.ndarray, w: float, h: float) -> np.ndarray:
     return w * h - 2.0 * r * (w + h) / np.pi + r * r / np.pi
 
 
-def _histogram(d: np.ndarray, n_ref: int, xy: np.ndarray, r_max: float, bin_px: float, edge_correction: bool):
-    n = len(xy)
+def _bin_edges(r_max: float, bin_px: float) -> np.ndarray:
     edges = np.arange(0.0, r_max + 0.5 * bin_px, bin_px)
-    if len(edges) < 3:
-        edges = np.linspace(0.0, r_max, 3)
-    cnt, edges = np.histogram(d, bins=edges)
+    return edges if len(edges) >= 3 else np.linspace(0.0, r_max, 3)
+
+
+def _histogram(d: np.ndarray, n_ref: int, xy: np.ndarray, r_max: float, bin_px: float, edge_correction: bool):
+    cnt, edges = np.histogram(d, bins=_bin_edges(r_max, bin_px))
+    return _curve(cnt, edges, n_ref, xy, edge_correction)
+
+
+def _curve(cnt: np.ndarray, edges: np.ndarray, n_ref: int, xy: np.ndarray, edge_correction: bool) -> pd.DataFrame:
+    """g(r) and pair counts from ordered reference-pair counts per bin."""
+    n = len(xy)
     r = 0.5 * (edges[1:] + edges[:-1])
     dr = np.diff(edges)
     w, h = np.ptp(xy[:, 0]), np.ptp(xy[:, 1])
@@ -545,17 +552,35 @@ def fit_ladder(
         side = max(2.0 * r_max, float(span.max()) / np.sqrt(_JACKKNIFE_BLOCKS))
         blk, n_blk = _blocks(xy, ref_points, side)
 
-        def locate(mask, targets, widths):
-            """Peak positions nearest ``targets`` (within 2 widths) from the pairs of the reference points in mask."""
-            n_sub = int(np.unique(ref_i[mask]).size)
-            c = _histogram(d[mask], max(n_sub, 1), xy, r_max, bin_px, True)
-            pk_b = locate_peaks(c)
-            if len(pk_b) == 0:
-                return np.full(len(targets), np.nan)
-            pk_b = _rice_corrected(_refine_narrow(pk_b, np.sort(d[mask]), bin_px), w_noise)
-            q_b = pk_b["distance_px"].to_numpy()
-            j = np.argmin(np.abs(q_b[None, :] - targets[:, None]), axis=1)
-            return np.where(np.abs(q_b[j] - targets) <= 2.0 * np.maximum(widths, bin_px), q_b[j], np.nan)
+        edges = _bin_edges(r_max, bin_px)
+        order_d = np.argsort(d, kind="stable")
+        d_sorted, blk_sorted = d[order_d], blk[ref_i][order_d]
+        nb = len(edges) - 1
+        b_idx = np.clip(np.searchsorted(edges, d_sorted, side="right") - 1, 0, nb - 1)
+        cnt_blk = np.bincount(blk_sorted * nb + b_idx, minlength=n_blk * nb).reshape(n_blk, nb)
+        cnt_all = cnt_blk.sum(axis=0)
+        ref_blk = np.bincount(blk, minlength=n_blk)
+
+        def locate(b, targets, widths):
+            """Peak positions nearest ``targets`` (within 2 widths) without the pairs of block b's reference points;
+            only a window of the pair distribution around each target is searched."""
+            c = _curve(cnt_all - cnt_blk[b], edges, max(int(len(blk) - ref_blk[b]), 1), xy, True)
+            rr = c["r_px"].to_numpy()
+            out = np.full(len(targets), np.nan)
+            for t, (tg, wd) in enumerate(zip(targets, widths)):  # a handful of rungs
+                half = max(8.0 * wd, 8.0 * bin_px)
+                sub = c[(rr >= tg - half) & (rr <= tg + half)].reset_index(drop=True)
+                pk_b = locate_peaks(sub)
+                if len(pk_b) == 0:
+                    continue
+                lo, hi = np.searchsorted(d_sorted, [tg - half, tg + half])
+                raw = d_sorted[lo:hi][blk_sorted[lo:hi] != b]
+                pk_b = _rice_corrected(_refine_narrow(pk_b, raw, bin_px), w_noise)
+                q_b = pk_b["distance_px"].to_numpy()
+                j = int(np.argmin(np.abs(q_b - tg)))
+                if abs(q_b[j] - tg) <= 2.0 * max(wd, bin_px):
+                    out[t] = q_b[j]
+            return out
 
         u = _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, unresolved, locate)
         unc = u["ratio_pct"]
@@ -671,7 +696,7 @@ def _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, 
 
     * **block jackknife of the whole estimator**: the reference points are grouped into image blocks (``blk``),
       and the pair distribution, its peaks and their positions are recomputed with each block left out in turn
-      (``locate(mask)``); the jackknife variance (K - 1) / K sum (theta_k - mean)^2 then holds pair-to-pair noise,
+      (``locate(block)``); the jackknife variance (K - 1) / K sum (theta_k - mean)^2 then holds pair-to-pair noise,
       what the peak fit itself does, and regional differences (strain, drift, distortion gradients, fit bias that
       varies over the field). M. H. Quenouille, Biometrika 43 (1956) 353; J. W. Tukey, Ann. Math. Statist. 29
       (1958) 614; blocks for spatially dependent data: H. R. Kunsch, Ann. Statist. 17 (1989) 1217.
@@ -703,7 +728,7 @@ def _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, 
     if n_boot > 0 and k > 0 and n_blk >= 4:
         theta = np.full((n_blk, k), np.nan)
         for b in range(n_blk):  # at most _JACKKNIFE_BLOCKS re-runs of the peak estimator
-            theta[b] = locate(blk[ref_i] != b, p[idx], wpx[idx])
+            theta[b] = locate(b, p[idx], wpx[idx])
         good = np.isfinite(theta).all(axis=0)
         if good.any():
             th = np.where(np.isfinite(theta), theta, p[idx][None, :])  # a block that loses a peak counts as no shift

@@ -17,13 +17,21 @@ a small group of columns. The search is vectorised throughout:
    the ring edge) are merged, keeping the best score.
 
 Radius, when not given, comes from a ring-shell scan: for a sample of candidate centres, every trial radius on a
-geometric grid from 0.8 to 6 nearest-neighbour distances is tested and the radius holding the most n-fold regular
-shells wins; it is then set to the median member distance of those shells.
+geometric grid from 0.8 to 6 nearest-neighbour distances is tested and the number of n-fold regular shells counted.
+Every significant maximum of that count is a shell (at least 3 shells and a fifth of the best, standing out by half
+its height); each is searched and reported (``shell_radius_px``), and the most populous is the primary one.
 
-Pentagons are (a) the same-species five-column subsets in alternate slots of every complete ten-membered ring
-(``parent_ring`` set), and (b) free pentagons: five columns alone in a shell about a point, found by the same
-engine with n = 5 and its own radius scan, kept when their edges agree within the tolerance and diagonal / edge is
-within the tolerance of tau.
+Pentagons are (a) both five-column halves in alternate slots of every complete ten-membered ring (``parent_ring``
+set), labelled ``half`` = 'brighter' / 'dimmer' by their members' mean species class (then mean intensity), so
+that both appear whatever the species split; and (b) free pentagons: five columns alone in a shell about a point,
+found by the same engine with n = 5 at every significant shell of its own radius scan, kept when their edges agree
+within the tolerance and diagonal / edge is within the tolerance of tau, when not all five members belong to rings
+(the rings explain them) and, unless ``mixed_pentagons``, when the members are of one species class. Without rings
+the primary pentagon shell is chosen by :data:`SHELL_RULE` (the brightest of the populous shells).
+
+Every row carries ``species`` (the members' common class, -1 if mixed) and five-fold rows a ``flip_state``: 'up'
+when the vertices point along the tiling edge vectors (phase + 72 j, the ten-fold edge phase measured on the
+network of the primary centres and taken in [-18, 18) deg), 'down' when turned by 36 deg.
 
 References
 ----------
@@ -41,7 +49,7 @@ from ._errors import TenfoldInputError
 from ._progress import ProgressCallback, report
 from ._schema import MOTIFS, conform, empty_table
 
-__all__ = ["TAU", "find_motifs", "ring_search"]
+__all__ = ["TAU", "SHELL_RULE", "find_motifs", "ring_search"]
 
 TAU = (1.0 + np.sqrt(5.0)) / 2.0
 _ORDERS = (5, 6, 8, 10, 12)
@@ -724,9 +732,14 @@ def find_motifs(
         ``_schema.MOTIFS`` columns: motif_id, kind ('ring<n>' or 'pentagon'), order, centre_x/y_px/nm,
         radius_px/nm, radial_rms_px/nm, psi_n, orientation_deg, edge_px/nm, diag_edge_ratio, n_members, members,
         centre_content, centre_ids, species_makeup, completeness, complete, score, overlaps, parent_ring, region.
+        Also species, half ('brighter' / 'dimmer' for ring halves), flip_state, shell_radius_px, primary.
     info : dict
-        JSON-safe summary: 'n_columns', counts per kind, 'complete'/'incomplete', 'radius_px', 'radius_source',
-        'radius_scan', 'mean_psi_n', 'orientation_domains', 'message' (when nothing was found), 'warnings'.
+        JSON-safe summary: 'n_columns', counts per kind (primary rings; other ring shells as
+        'ring<n>_other_shells'), 'complete'/'incomplete', 'radius_px', 'radius_source', 'radius_scan',
+        'mean_psi_n', 'orientation_domains', 'shells' (one entry per reported shell: kind, order, radius,
+        n_motifs, mean_species, primary), 'shell_rule', 'pentagons' (counts by half, species, flip state),
+        'flip_reference', 'free_pentagons' (radius, scan, dropped counts), 'message' (when nothing was found),
+        'warnings'.
 
     Notes
     -----

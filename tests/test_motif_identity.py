@@ -291,3 +291,35 @@ def test_notes_say_why_motifs_are_empty():
                             ladder_info={}, tiling_info={"n_vertices": 0, "n_faces": 0,
                                                          "message": "too few ring centres (0)"})
     assert any(n.startswith("motifs: no motifs") for n in notes)
+
+
+# --------------------------------------------------------------------------------------------- pipeline
+def _rerun(cols):
+    from tenfold.analysis._image import ImageMeta
+    from tenfold.analysis._result import AnalysisResult
+    from tenfold.analysis._schema import COLUMNS, empty_table
+    from tenfold.analysis.pipeline import Parameters, rerun_from_columns
+
+    base = AnalysisResult(meta=ImageMeta(pixel_size_nm=S.PX_NM), parameters=Parameters(fourier=False).to_dict(),
+                          tables={"columns": empty_table(COLUMNS)})
+    return rerun_from_columns(base, cols[["x_px", "y_px", "species"]])
+
+
+def test_pipeline_fivefold_network_on_the_primary_shell():
+    cols, truth = S.fivefold(6.0, angle_deg=5.0, rng=8)
+    res = _rerun(cols)
+    t = res.summary["tiling"]
+    assert res.summary["cluster_vertices"] == "pentagon"
+    assert t["n_vertices"] == pytest.approx(len(truth["centres"]), rel=0.02)  # one vertex per cluster, not two
+    tiles = res.tables["tiles"].set_index("tile")["count"]
+    assert tiles["thick_rhombus"] / tiles["thin_rhombus"] == pytest.approx(TAU, rel=0.25)  # small patch
+    assert res.summary["ladder"]["centres"]["holds"]
+    assert "agreement" in res.summary["ladder"]
+    assert not any(n.startswith("tiling:") for n in res.summary["notes"])
+
+
+def test_pipeline_notes_an_empty_network():
+    cols, _ = S.square(25)
+    res = _rerun(cols)
+    notes = " ".join(res.summary["notes"])
+    assert "motifs: no motifs" in notes and "tiling: network empty or tiny" in notes
