@@ -99,7 +99,8 @@ MOTIFS = _fields(
     ("overlaps", "int64", "", "number of other motifs of the same kind sharing at least one member"),
     ("parent_ring", "int64", "", "for pentagons inside a ring: that ring's motif_id; -1 otherwise"),
     ("region", "int64", "", "region label"),
-    ("species", "int64", "", "the members' common species class; -1 when they are of mixed (or unclassified) species"),
+    ("species", "int64", "", "the members' common species class (one odd member allowed: a classification slip); -1 when "
+                            "they are of mixed (or unclassified) species"),
     ("half", "object", "", "pentagons inside a ten-membered ring: 'brighter' or 'dimmer' half of the parent ring "
                            "(by mean species class, then mean intensity); '' otherwise"),
     ("flip_state", "object", "", "five-fold motifs: 'up' when the vertices point along the tiling edge vectors "

@@ -497,15 +497,7 @@ def fit_ladder(
     pk = _rice_corrected(_refine_narrow(pk, np.sort(d), bin_px))
     p = pk["distance_px"].to_numpy()
     wpx = np.maximum(pk["width_px"].to_numpy(), bin_px)
-    if d0_px is None:
-        short = pk[pk["distance_px"] <= 2.0 * p[0]]
-        d0 = float(short.loc[short["height"].idxmax(), "distance_px"])
-        info["d0_source"] = (f"automatic: strongest pair-distribution peak closer than twice the first peak "
-                             f"({p[0]:.4g} px)")
-    else:
-        d0 = float(d0_px)
-        info["d0_source"] = "given"
-    # Pairs per peak window (+-2 widths), for weights and the bootstrap.
+    # Pairs per peak window (+-2 widths), for weights and the uncertainties.
     lo, hi = p - 2 * wpx, p + 2 * wpx
     jn = np.clip(np.searchsorted(p, d), 0, len(p) - 1)
     jp = np.clip(jn - 1, 0, len(p) - 1)
@@ -519,24 +511,59 @@ def fit_ladder(
     # Fitted widths scatter by some 20 %: only a peak clearly broader than the narrowest ones (by more than
     # _UNRESOLVED_FACTOR) counts as holding unresolved distances, and only its width beyond that.
     unresolved = np.sqrt(np.maximum(pk["width_px"].to_numpy() ** 2 - (_UNRESOLVED_FACTOR * w_noise) ** 2, 0.0))
+    # Position uncertainty of each peak for the model comparison: width / sqrt(pairs), with a 0.2 % floor for
+    # systematic effects (finite-size and overlap shifts; common practice). The unresolved width is left out
+    # here: it would let the dense periodic sequences explain every broad peak.
+    n_pairs = np.maximum(weight * len(d), 1.0)
+    sig_pos = np.sqrt((wpx / np.sqrt(n_pairs)) ** 2 + (0.002 * p) ** 2)
     step = 0.5 if half_step else 1.0
-    rungs = np.arange(np.floor(np.log(p.min() / d0) / np.log(TAU)) - 1, np.ceil(np.log(r_max / d0) / np.log(TAU)) + 1,
-                      step)
     sig_rel = np.clip(np.maximum(1.5 * wpx, 2 * bin_px) / p, 0.01, 0.05)
-    for _ in range(2):  # match, refit d0 on the matched rungs, match again
+
+    def scale_and_match(d0):
+        rungs = np.arange(np.floor(np.log(p.min() / d0) / np.log(TAU)) - 1,
+                          np.ceil(np.log(r_max / d0) / np.log(TAU)) + 1, step)
+        for _ in range(2):  # match, refit d0 on the matched rungs, match again
+            on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
+            if not on.any():
+                break
+            # The scale comes from the short rungs (|n| <= 2), where pairs are many and specific; longer rungs are
+            # then tested against it instead of pulling it (a coincidental long distance near tau^4 would otherwise
+            # shift every short rung by its own error).
+            use = on & (np.abs(np.nan_to_num(rung, nan=99.0)) <= 2)
+            if use.sum() < 2:
+                use = on
+            w = fit_w[use]
+            q = TAU ** rung[use]
+            d0 = float((w * p[use] * q).sum() / (w * q * q).sum())
         on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
-        if not on.any():
-            break
-        # The scale comes from the short rungs (|n| <= 2), where pairs are many and specific; longer rungs are then
-        # tested against it instead of pulling it (a coincidental long distance near tau^4 would otherwise shift
-        # every short rung by its own error).
-        use = on & (np.abs(np.nan_to_num(rung, nan=99.0)) <= 2)
-        if use.sum() < 2:
-            use = on
-        w = fit_w[use]
-        q = TAU ** rung[use]
-        d0 = float((w * p[use] * q).sum() / (w * q * q).sum())
-    on, rung, label = _match(p, sig_rel, d0, rungs, half_step)
+        return d0, rungs, on, rung, label
+
+    if d0_px is None:
+        # Every peak closer than twice the first is tried as the base; the one whose ladder the evidence supports
+        # best wins. The strongest short peak alone can be a chord such as 2 sin 36 x edge.
+        short = np.flatnonzero(p <= 2.0 * p[0])
+        trials = []
+        for j in short:  # a handful of candidates
+            d0_j, rungs_j, on_j, rung_j, _ = scale_and_match(float(p[j]))
+            ev_j, _ = _evidence(pk, sig_pos, d0_j, rungs_j, rung_j[on_j], float(weight[on_j].sum()))
+            trials.append((ev_j.get("two_ln_likelihood_ratio", -np.inf), float(pk["height"].iloc[j]), float(p[j]),
+                           d0_j))
+        # Bases tau^k apart give the same ladder shifted by k rungs (their likelihood ratios differ only through
+        # the compared range): of the ladder the evidence supports best, the highest peak is the base, as it
+        # always was.
+        top = max(trials)
+        k = np.log(np.array([t[3] for t in trials]) / top[3]) / np.log(TAU)
+        same = [t for t, kk in zip(trials, k) if abs(kk - np.round(kk)) < 0.03]
+        best = max(same, key=lambda t: t[1])
+        d0 = best[2]
+        info["d0_source"] = (f"automatic: of the {len(short)} pair-distribution peaks closer than twice the first "
+                             f"({p[0]:.4g} px), the highest of those whose ladder the evidence supports "
+                             f"best (2 ln LR {best[0]:.1f}, within 2 of the best)")
+        info["d0_trials"] = [{"start_px": t[2], "two_ln_lr": float(t[0])} for t in trials]
+    else:
+        d0 = float(d0_px)
+        info["d0_source"] = "given"
+    d0, rungs, on, rung, label = scale_and_match(d0)
     info["d0_px"] = float(d0)
     info["d0_nm"] = float(d0 * pixel_size_nm) if pixel_size_nm else None
     rung_share = float(weight[on].sum())
@@ -602,14 +629,10 @@ def fit_ladder(
         on[dup] = False  # a second peak near an already matched rung is not a rung
         label[dup] = "unassigned"
         rung[dup] = np.nan
-    # Position uncertainty of each peak: width / sqrt(pairs), with a 0.2 % floor for systematic effects
-    # (finite-size and overlap shifts; common practice).
-    n_pairs = np.maximum(weight * len(d), 1.0)
-    sig_pos = np.sqrt((wpx / np.sqrt(n_pairs)) ** 2 + (0.002 * p) ** 2 + unresolved ** 2)
     peaks = pd.DataFrame({
         "set": point_set, "distance_px": p, "distance_nm": p * scale, "ratio_to_d0": p / d0, "on_ladder": on,
         "rung": rung, "label": label, "height": pk["height"].to_numpy(), "width_px": pk["width_px"].to_numpy(),
-        "peak_weight": weight, "position_sd_px": sig_pos,
+        "peak_weight": weight, "position_sd_px": np.hypot(sig_pos, unresolved),
     })
     ev, holds = _evidence(pk, sig_pos, d0, rungs, rung[on], rung_share)
     info["holds"] = holds

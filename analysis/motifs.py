@@ -471,9 +471,7 @@ def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None,
         piece = (f"{int(s)}:" + pd.Series(c.astype(str), dtype=object)).where(c > 0, "")
         sep = pd.Series(np.where((makeup != "") & (c > 0), " ", ""), dtype=object)
         makeup = makeup + sep + piece
-    first = sp[np.arange(k), np.argmax(valid, axis=1)] if k else np.zeros(0, dtype=np.int64)
-    common = valid.any(axis=1) & ((sp == first[:, None]) | ~valid).all(axis=1) & (first >= 0)
-    common_sp = np.where(common, first, -1)
+    common_sp = _common_species(sp, valid)
     br = _nanmean_rows(np.where(valid, brightness[np.maximum(slots, 0)], np.nan)) if (brightness is not None and k) \
         else np.full(k, np.nan)
     # Region: of the member column closest to the centre.
@@ -510,6 +508,27 @@ def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None,
         "mean_brightness": br,
     })
     return out
+
+
+def _common_species(sp: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """The members' common species class per row, -1 when mixed or unclassified.
+
+    One odd member is allowed (all but one member share the class): a single column put in a neighbouring class
+    is far more often a classification slip than a cluster of mixed species, whose halves differ by two or more
+    members. ``species_makeup`` keeps the exact counts.
+    """
+    k = len(sp)
+    if k == 0:
+        return np.zeros(0, dtype=np.int64)
+    m = valid.sum(axis=1)
+    classes = np.unique(sp[valid & (sp >= 0)])
+    best = np.full(k, -1, dtype=np.int64)
+    best_n = np.zeros(k, dtype=np.int64)
+    for c in classes:  # a handful of species classes
+        n_c = ((sp == c) & valid).sum(axis=1)
+        better = n_c > best_n
+        best[better], best_n[better] = c, n_c[better]
+    return np.where((best_n >= np.maximum(m - 1, 1)) & (m > 0) & (best_n * 2 > m), best, -1)
 
 
 def _nanmean_rows(a: np.ndarray) -> np.ndarray:

@@ -37,6 +37,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 import _structures as S  # noqa: E402
 
+from tenfold.analysis._errors import TenfoldInputError  # noqa: E402
 from tenfold.analysis._stage_notes import structure_notes  # noqa: E402
 from tenfold.analysis.ladder import TAU, fit_ladder  # noqa: E402
 from tenfold.analysis.motifs import find_motifs  # noqa: E402
@@ -45,6 +46,7 @@ from tenfold.analysis.tiling import build_network  # noqa: E402
 PX_NM = 0.03
 SIGMA_NM = 0.06
 COUNTS = {0: 400.0, 1: 900.0, 2: 2000.0}  # electrons per column by species
+DARK_GAIN = 20.0  # dark contrast: column signal x 20 on a 3000-count bright level
 
 
 def _structure(name: str, hw: float):
@@ -66,16 +68,25 @@ def _image_columns(cols: pd.DataFrame, dark: bool, rng: int):
     from tenfold.analysis.synthetic import render_image
 
     shape = (int(cols["y_px"].max() + 40), int(cols["x_px"].max() + 40))
-    counts = cols["species"].map(COUNTS).to_numpy()
+    # dark (HRTEM-like) contrast: columns dip 10-50 % below a bright level of 3000 counts per px
+    counts = cols["species"].map(COUNTS).to_numpy() * (DARK_GAIN if dark else 1.0)
     img = render_image(cols["x_px"].to_numpy(), cols["y_px"].to_numpy(), counts, shape=shape,
                        sigma_px=SIGMA_NM / PX_NM, background=3000.0 if dark else 20.0, rng=rng, dark_columns=dark)
-    found, info = find_columns(img, pixel_size_nm=PX_NM, dark_columns=dark, rng=0)
+    try:
+        found, info = find_columns(img, pixel_size_nm=PX_NM, dark_columns=dark, rng=0)
+        how = "automatic"
+    except TenfoldInputError as exc:  # as a user would: type the spacing and diameter the message asks for
+        spacing = float(np.median(cKDTree(cols[["x_px", "y_px"]].to_numpy()).query(
+            cols[["x_px", "y_px"]].to_numpy(), k=2)[0][:, 1])) * PX_NM
+        found, info = find_columns(img, pixel_size_nm=PX_NM, dark_columns=dark, rng=0,
+                                   column_spacing_nm=spacing, column_diameter_nm=4.5 * SIGMA_NM)
+        how = f"given (automatic failed: {str(exc)[:60]}...)"
     found = found[found["fit_status"].isin(["ok", "fixed_width"])].reset_index(drop=True)
     d, _ = cKDTree(cols[["x_px", "y_px"]].to_numpy()).query(found[["x_px", "y_px"]].to_numpy())
     tol = 0.1 / PX_NM
     recall = float(np.mean(cKDTree(found[["x_px", "y_px"]].to_numpy()).query(cols[["x_px", "y_px"]].to_numpy())[0]
                            <= tol)) if len(found) else 0.0
-    return found, info, recall, float(np.mean(d <= tol)) if len(found) else float("nan")
+    return found, how, recall, float(np.mean(d <= tol)) if len(found) else float("nan")
 
 
 def _pent_sets(found: pd.DataFrame):
@@ -119,7 +130,8 @@ def run_cell(name: str, mode: str, hw: float) -> dict:
         found_cols = cols.copy()
         row["col_recall"] = 1.0
     else:
-        found_cols, _, row["col_recall"], _ = _image_columns(cols, dark=(mode == "image-dark"), rng=5)
+        found_cols, row["scale"], row["col_recall"], row["col_precision"] = _image_columns(
+            cols, dark=(mode == "image-dark"), rng=5)
         # species from the column finder are its own classes; ring halves use them as they come
     motifs, m_info = find_motifs(found_cols, pixel_size_nm=PX_NM)
     tm = truth["motifs"]
@@ -171,17 +183,25 @@ def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--points-only", action="store_true", help="skip the rendered images")
     ap.add_argument("--half-width", type=float, default=6.0, help="pentagrid patch half-width (edges)")
+    ap.add_argument("--cells", nargs="+", metavar="STRUCTURE/MODE",
+                    help="only these cells, e.g. decagonal/image-dark fivefold/points")
     args = ap.parse_args(argv)
     cells = [(s, "points") for s in ("decagonal", "shared", "fivefold", "square", "hexagonal")]
     if not args.points_only:
         cells += [(s, "image") for s in ("decagonal", "shared", "fivefold", "square", "hexagonal")]
         cells += [("decagonal", "image-dark")]
-    rows = [run_cell(s, m, args.half_width) for s, m in cells]
+    if args.cells:
+        cells = [tuple(c.split("/")) for c in args.cells]
+    rows = []
+    for s, m in cells:  # one line per cell as it finishes (image cells take a minute each)
+        rows.append(run_cell(s, m, args.half_width))
+        print({k: (round(v, 4) if isinstance(v, float) else v) for k, v in rows[-1].items() if k != "note_text"},
+              flush=True)
     df = pd.DataFrame(rows)
-    cols = [c for c in ("structure", "mode", "col_recall", "ring_R", "ring_P", "p1_R", "p1_P", "p0_R", "p0_P",
+    cols = [c for c in ("structure", "mode", "col_recall", "col_precision", "ring_R", "ring_P", "p1_R", "p1_P", "p0_R", "p0_P",
                         "p1_radius_nm", "p1_orient_med", "p1_orient_1deg", "p1_flip", "columns_holds",
                         "centres_holds", "n_rungs", "max_err_pct", "within_1s", "within_k2", "thick", "thin",
-                        "tiles_ok", "notes", "seconds") if c in df]
+                        "tiles_ok", "rings_found", "notes", "seconds") if c in df]
     with pd.option_context("display.width", 250, "display.max_columns", 40, "display.float_format", "{:.3f}".format):
         print(df[cols].to_string(index=False))
     for r in rows:

@@ -145,7 +145,8 @@ def _mixed_fivefold():
     # every outer pentagon gets one column of the other species
     outer = cols.index[: len(truth["centres"]) * 5]
     sp = cols["species"].to_numpy().copy()
-    sp[outer[::5]] = 0
+    sp[outer[::5]] = 0  # two odd members of five: mixed (one would be a classification slip)
+    sp[outer[1::5]] = 0
     return cols.assign(species=sp), truth
 
 
