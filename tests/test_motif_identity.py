@@ -324,3 +324,11 @@ def test_pipeline_notes_an_empty_network():
     res = _rerun(cols)
     notes = " ".join(res.summary["notes"])
     assert "motifs: no motifs" in notes and "tiling: network empty or tiny" in notes
+
+
+def test_cli_line_points_at_the_tiling_note():
+    from tenfold.analysis.cli import _na_why
+
+    assert _na_why({"notes": ["tiling: network empty or tiny: too few ring centres (0)"]}) == \
+        "n/a (see the tiling note below)"
+    assert _na_why({"notes": []}) == "n/a"
