@@ -332,3 +332,18 @@ def test_cli_line_points_at_the_tiling_note():
     assert _na_why({"notes": ["tiling: network empty or tiny: too few ring centres (0)"]}) == \
         "n/a (see the tiling note below)"
     assert _na_why({"notes": []}) == "n/a"
+
+
+def test_ladder_holds_with_broader_column_errors():
+    # columns measured less precisely (0.014 nm per axis in all, as on a noisy HRTEM-like image): peaks broaden
+    # and a weak distance on a strong one's shoulder must not be read as one shifted peak; the decagonal model
+    # still wins (Kass & Raftery 1995 scale)
+    cols, _ = S.decagonal(10.0, angle_deg=5.0, rng=3)
+    g = np.random.default_rng(1)
+    x = cols["x_px"].to_numpy() + g.normal(0.0, 0.25, len(cols))
+    y = cols["y_px"].to_numpy() + g.normal(0.0, 0.25, len(cols))
+    _, pk, info = fit_ladder(x, y)
+    assert info["holds"], info["evidence"]["verdict"]
+    sq, _ = S.square(60)
+    assert not fit_ladder(sq["x_px"] + g.normal(0.0, 0.25, len(sq)), sq["y_px"] + g.normal(0.0, 0.25, len(sq)))[2][
+        "holds"]
