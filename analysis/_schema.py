@@ -100,6 +100,16 @@ MOTIFS = _fields(
     ("overlaps", "int64", "", "number of other motifs of the same kind sharing at least one member"),
     ("parent_ring", "int64", "", "for pentagons inside a ring: that ring's motif_id; -1 otherwise"),
     ("region", "int64", "", "region label"),
+    ("species", "int64", "", "the members' common species class (one odd member allowed: a classification slip); -1 when "
+                            "they are of mixed (or unclassified) species"),
+    ("half", "object", "", "pentagons inside a ten-membered ring: 'brighter' or 'dimmer' half of the parent ring "
+                           "(by mean species class, then mean intensity); '' otherwise"),
+    ("flip_state", "object", "", "five-fold motifs: 'up' when the vertices point along the tiling edge vectors "
+                                 "(summary motifs.flip_reference), 'down' when turned by 36 deg; '' otherwise"),
+    ("shell_radius_px", "float64", "px", "radius of the shell the motif was searched in (every significant shell "
+                                         "of the radius scan is reported)"),
+    ("primary", "bool", "", "True for the default cluster shell (rule in summary motifs.shell_rule); the network "
+                            "and the centre ladder use these"),
 )
 
 #: One row per matched ladder rung (file DIR/ladder.csv).
@@ -113,8 +123,16 @@ LADDER = _fields(
     ("measured_nm", "float64", "nm", "located peak position; NaN when uncalibrated"),
     ("ratio", "float64", "", "measured / d0"),
     ("deviation_pct", "float64", "%", "100 * (ratio / ideal_ratio - 1)"),
-    ("uncertainty_pct", "float64", "%", "1-sigma uncertainty of the ratio, in percent of the ideal ratio"),
+    ("uncertainty_pct", "float64", "%", "1-sigma uncertainty of the ratio, in percent of the ideal ratio "
+                                        "(block bootstrap and estimator spread, docs/structure.md)"),
     ("peak_weight", "float64", "", "share of pair-distance weight in this peak"),
+    ("position_uncertainty_pct", "float64", "%", "1-sigma uncertainty of measured_px in percent: block bootstrap, "
+                                                 "estimator spread (docs/structure.md)"),
+    ("expanded_uncertainty_pct", "float64", "%", "2 x position_uncertainty_pct: expanded uncertainty with coverage "
+                                                 "factor k = 2 (about 95 %; JCGM 100:2008, section 6)"),
+    ("estimator_spread_pct", "float64", "%", "systematic allowance for the peak estimator: half the fit-vs-window-"
+                                             "mean difference and the excess width over the narrowest peaks "
+                                             "(unresolved distances), in quadrature; part of both uncertainties"),
 )
 
 #: One row per located pair-distribution peak, on or off the ladder (file DIR/pair_peaks.csv).
@@ -129,6 +147,8 @@ PEAKS = _fields(
     ("height", "float64", "", "peak height of the normalised pair distribution"),
     ("width_px", "float64", "px", "peak standard deviation"),
     ("peak_weight", "float64", "", "share of pair-distance weight in this peak"),
+    ("position_sd_px", "float64", "px", "1-sigma position uncertainty: width / sqrt(pairs), a 0.2 % floor and the excess width "
+                                       "of a peak holding unresolved distances, in quadrature"),
 )
 
 #: One row per tile type (file DIR/tiles.csv).

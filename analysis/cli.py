@@ -302,10 +302,16 @@ def _analyze(args) -> int:
     ratio = (s.get("tiling") or {}).get("thick_thin_ratio")
     print(f"{args.image}: {s['n_columns']} columns, {n_rings} ring motifs, "
           f"{int((m['kind'] == 'pentagon').sum()) if len(m) else 0} pentagons, thick/thin = "
-          f"{'n/a' if ratio is None else f'{ratio:.3f}'}; calibration {cal}; results in {args.out}")
+          f"{_na_why(s) if ratio is None else f'{ratio:.3f}'}; calibration {cal}; results in {args.out}")
     for note in s.get("notes", []):
         print(f"note: {_flag_names(note)}", file=sys.stderr)
     return 0
+
+
+def _na_why(summary: dict) -> str:
+    """'n/a' for an empty tiling, pointing at the note that says why when there is one."""
+    why = [n for n in summary.get("notes", []) if n.startswith("tiling:")]
+    return "n/a (see the tiling note below)" if why else "n/a"
 
 
 def _info(args) -> int:

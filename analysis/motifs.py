@@ -17,13 +17,21 @@ a small group of columns. The search is vectorised throughout:
    the ring edge) are merged, keeping the best score.
 
 Radius, when not given, comes from a ring-shell scan: for a sample of candidate centres, every trial radius on a
-geometric grid from 0.8 to 6 nearest-neighbour distances is tested and the radius holding the most n-fold regular
-shells wins; it is then set to the median member distance of those shells.
+geometric grid from 0.8 to 6 nearest-neighbour distances is tested and the number of n-fold regular shells counted.
+Every significant maximum of that count is a shell (at least 3 shells and a fifth of the best, standing out by half
+its height); each is searched and reported (``shell_radius_px``), and the most populous is the primary one.
 
-Pentagons are (a) the same-species five-column subsets in alternate slots of every complete ten-membered ring
-(``parent_ring`` set), and (b) free pentagons: five columns alone in a shell about a point, found by the same
-engine with n = 5 and its own radius scan, kept when their edges agree within the tolerance and diagonal / edge is
-within the tolerance of tau.
+Pentagons are (a) both five-column halves in alternate slots of every complete ten-membered ring (``parent_ring``
+set), labelled ``half`` = 'brighter' / 'dimmer' by their members' mean species class (then mean intensity), so
+that both appear whatever the species split; and (b) free pentagons: five columns alone in a shell about a point,
+found by the same engine with n = 5 at every significant shell of its own radius scan, kept when their edges agree
+within the tolerance and diagonal / edge is within the tolerance of tau, when not all five members belong to rings
+(the rings explain them) and, unless ``mixed_pentagons``, when the members are of one species class. Without rings
+the primary pentagon shell is chosen by :data:`SHELL_RULE` (the brightest of the populous shells).
+
+Every row carries ``species`` (the members' common class, -1 if mixed) and five-fold rows a ``flip_state``: 'up'
+when the vertices point along the tiling edge vectors (phase + 72 j, the ten-fold edge phase measured on the
+network of the primary centres and taken in [-18, 18) deg), 'down' when turned by 36 deg.
 
 References
 ----------
@@ -41,11 +49,15 @@ from ._errors import TenfoldInputError
 from ._progress import ProgressCallback, report
 from ._schema import MOTIFS, conform, empty_table
 
-__all__ = ["TAU", "find_motifs", "ring_search"]
+__all__ = ["TAU", "SHELL_RULE", "find_motifs", "ring_search"]
 
 TAU = (1.0 + np.sqrt(5.0)) / 2.0
 _ORDERS = (5, 6, 8, 10, 12)
 _SCAN_SAMPLE = 2000  # candidate centres used by the radius scan (independent of N, keeps it O(1))
+_SHELL_MIN_COUNT = 3  # fewest regular shells in the scan sample for a shell to count
+_SHELL_MIN_SHARE = 0.2  # ... and at least this share of the most populous shell
+_FLIP_MARGIN_DEG = 6.0  # a pentagon turned within this of halfway between 'up' and 'down' is undecided ('')
+_PRIMARY_SHARE = 0.5  # pentagon shells holding at least this share of the most populous one compete for 'primary'
 
 
 # --------------------------------------------------------------------------------------------- padded shells
@@ -386,19 +398,55 @@ def _scan_radius(xy, tree, cand, *, order, tol, min_members, psi_min, d_nn, rng,
     best = int(np.argmax(counts))
     info = {"method": "ring-shell scan", "trial_radii": int(len(radii)),
             "scan_range_px": [float(radii[0]), float(radii[-1])], "sample_centres": int(len(cand)),
-            "best_count": int(counts[best])}
-    if counts[best] < 3:
+            "best_count": int(counts[best]), "shells": []}
+    if counts[best] < _SHELL_MIN_COUNT:
         return None, info
-    r = radii[best]
-    good, ins = _good(r)
-    r_med = float(np.median(dd[ins & good[:, None]]))
-    info["best_trial_px"] = float(r)
-    return r_med, info
+    shells = []
+    for k in _shell_peaks(counts):  # a handful of peaks
+        good, ins = _good(radii[k])
+        sel = ins & good[:, None]
+        if sel.any():
+            shells.append({"radius_px": float(np.median(dd[sel])), "trial_px": float(radii[k]),
+                           "scan_count": int(counts[k])})
+    shells = _merge_shells(shells, tol)
+    info["shells"] = shells
+    top = max(shells, key=lambda s: s["scan_count"])
+    info["best_trial_px"] = top["trial_px"]
+    return top["radius_px"], info
+
+
+def _shell_peaks(counts: np.ndarray) -> np.ndarray:
+    """Indices of the significant maxima of a shell-count curve.
+
+    A maximum is a shell when it holds at least ``_SHELL_MIN_COUNT`` regular shells and ``_SHELL_MIN_SHARE`` of
+    the best one, and stands out: its prominence is at least half its height (a shoulder of a larger peak is not a
+    shell of its own). The curve is padded with zeros so that a peak at either end of the scan counts.
+    """
+    from scipy.signal import find_peaks
+
+    c = np.concatenate([[0], counts, [0]]).astype(float)
+    floor = max(_SHELL_MIN_COUNT, _SHELL_MIN_SHARE * c.max())
+    idx, props = find_peaks(c, height=floor, prominence=0.0)
+    keep = props["prominences"] >= 0.5 * props["peak_heights"]
+    return idx[keep] - 1
+
+
+def _merge_shells(shells: list[dict], tol: float) -> list[dict]:
+    """Shells whose radii agree within the tolerance are one shell (the one with more regular shells)."""
+    out: list[dict] = []
+    for s in sorted(shells, key=lambda s: -s["scan_count"]):
+        if all(abs(s["radius_px"] / o["radius_px"] - 1.0) > tol for o in out):
+            out.append(s)
+    return sorted(out, key=lambda s: s["radius_px"])
 
 
 # --------------------------------------------------------------------------------------------- motif rows
-def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None):
-    """Turn a ring_search-style result into MOTIFS rows (vectorised over motifs, loops over the n slots)."""
+def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None, brightness=None):
+    """Turn a ring_search-style result into MOTIFS rows (vectorised over motifs, loops over the n slots).
+
+    Besides the schema columns: ``mean_brightness`` (mean intensity of the members; NaN without intensities),
+    used to pick the primary pentagon shell and dropped before the table is returned.
+    """
     slots = res["slots"]
     k = len(slots)
     valid = slots >= 0
@@ -423,6 +471,9 @@ def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None)
         piece = (f"{int(s)}:" + pd.Series(c.astype(str), dtype=object)).where(c > 0, "")
         sep = pd.Series(np.where((makeup != "") & (c > 0), " ", ""), dtype=object)
         makeup = makeup + sep + piece
+    common_sp = _common_species(sp, valid)
+    br = _nanmean_rows(np.where(valid, brightness[np.maximum(slots, 0)], np.nan)) if (brightness is not None and k) \
+        else np.full(k, np.nan)
     # Region: of the member column closest to the centre.
     dist = np.where(valid, np.hypot(px - res["cx"][:, None], py - res["cy"][:, None]), np.inf)
     near = slots[np.arange(k), np.argmin(dist, axis=1)] if k else np.zeros(0, dtype=np.int64)
@@ -451,8 +502,33 @@ def _rows(xy, ids, species, region, res, *, n, kind, pixel_size_nm, parent=None)
         "overlaps": 0,
         "parent_ring": -1 if parent is None else parent,
         "region": region[near] if k else np.zeros(0, dtype=np.int64),
+        "species": common_sp.astype(np.int64),
+        "half": "",
+        "flip_state": "",
+        "mean_brightness": br,
     })
     return out
+
+
+def _common_species(sp: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """The members' common species class per row, -1 when mixed or unclassified.
+
+    One odd member is allowed (all but one member share the class): a single column put in a neighbouring class
+    is far more often a classification slip than a cluster of mixed species, whose halves differ by two or more
+    members. ``species_makeup`` keeps the exact counts.
+    """
+    k = len(sp)
+    if k == 0:
+        return np.zeros(0, dtype=np.int64)
+    m = valid.sum(axis=1)
+    classes = np.unique(sp[valid & (sp >= 0)])
+    best = np.full(k, -1, dtype=np.int64)
+    best_n = np.zeros(k, dtype=np.int64)
+    for c in classes:  # a handful of species classes
+        n_c = ((sp == c) & valid).sum(axis=1)
+        better = n_c > best_n
+        best[better], best_n[better] = c, n_c[better]
+    return np.where((best_n >= np.maximum(m - 1, 1)) & (m > 0) & (best_n * 2 > m), best, -1)
 
 
 def _nanmean_rows(a: np.ndarray) -> np.ndarray:
@@ -509,20 +585,21 @@ def _overlaps(slots: np.ndarray, n_cols: int) -> np.ndarray:
     return np.diff(share.indptr).astype(np.int64)
 
 
-def _inner_pentagons(rings: dict, species: np.ndarray, xy: np.ndarray) -> tuple[dict, np.ndarray]:
-    """Alternate-slot same-species pentagons inside complete ten-membered rings; returns (search dict, parent)."""
-    slots = rings["slots"]
+def _inner_pentagons(slots: np.ndarray, xy: np.ndarray) -> tuple[dict, np.ndarray, np.ndarray]:
+    """Both alternate-slot pentagons of every complete ten-membered ring, whatever their species.
+
+    Returns (search dict, parent ring row, which half: 0 = even slots, 1 = odd slots).
+    """
     if slots.shape[1] != 10 or len(slots) == 0:
-        return _empty_search(5), np.zeros(0, dtype=np.int64)
+        z = np.zeros(0, dtype=np.int64)
+        return _empty_search(5), z, z
     sub = np.concatenate([slots[:, 0::2], slots[:, 1::2]])
     parent = np.concatenate([np.arange(len(slots))] * 2)
-    full = (sub >= 0).all(axis=1)
-    sp = species[np.maximum(sub, 0)]
-    same = (sp == sp[:, :1]).all(axis=1) | (sp < 0).all(axis=1)
-    ok = full & same
-    sub, parent = sub[ok], parent[ok]
+    which = np.repeat([0, 1], len(slots))
+    ok = (sub >= 0).all(axis=1)
+    sub, parent, which = sub[ok], parent[ok], which[ok]
     res = _describe_fixed(sub, xy, 5)
-    return res, parent
+    return res, parent, which
 
 
 def _describe_fixed(slots: np.ndarray, xy: np.ndarray, n: int) -> dict:
@@ -627,6 +704,8 @@ def find_motifs(
     pixel_size_nm: float | None = None,
     regions=None,
     psi_min: float = 0.8,
+    mixed_pentagons: bool = False,
+    edge_phase_deg: float | None = None,
     rng: np.random.Generator | int | None = 0,
     progress: ProgressCallback | None = None,
 ) -> tuple[pd.DataFrame, dict]:
@@ -655,6 +734,12 @@ def find_motifs(
         nearest the centre.
     psi_min : float
         Smallest accepted |psi_n| of a ring (1 = ideal n-gon).
+    mixed_pentagons : bool
+        Keep free pentagons whose members are of more than one species class (default False: such a pentagon is
+        a chance arrangement of columns from different clusters, not a cluster).
+    edge_phase_deg : float, optional
+        Direction of the tiling edges (mod 36 deg) that ``flip_state`` refers to; default: measured on the
+        cluster network of the primary motif centres (``tiling.edge_phase``).
     rng : Generator or int
         Seeds the sample of candidate centres used by the radius scan.
     progress : callable, optional
@@ -666,9 +751,14 @@ def find_motifs(
         ``_schema.MOTIFS`` columns: motif_id, kind ('ring<n>' or 'pentagon'), order, centre_x/y_px/nm,
         radius_px/nm, radial_rms_px/nm, psi_n, orientation_deg, edge_px/nm, diag_edge_ratio, n_members, members,
         centre_content, centre_ids, species_makeup, completeness, complete, score, overlaps, parent_ring, region.
+        Also species, half ('brighter' / 'dimmer' for ring halves), flip_state, shell_radius_px, primary.
     info : dict
-        JSON-safe summary: 'n_columns', counts per kind, 'complete'/'incomplete', 'radius_px', 'radius_source',
-        'radius_scan', 'mean_psi_n', 'orientation_domains', 'message' (when nothing was found), 'warnings'.
+        JSON-safe summary: 'n_columns', counts per kind (primary rings; other ring shells as
+        'ring<n>_other_shells'), 'complete'/'incomplete', 'radius_px', 'radius_source', 'radius_scan',
+        'mean_psi_n', 'orientation_domains', 'shells' (one entry per reported shell: kind, order, radius,
+        n_motifs, mean_species, primary), 'shell_rule', 'pentagons' (counts by half, species, flip state),
+        'flip_reference', 'free_pentagons' (radius, scan, dropped counts), 'message' (when nothing was found),
+        'warnings'.
 
     Notes
     -----
@@ -721,6 +811,8 @@ def find_motifs(
                else np.full(len(xy), -1, dtype=np.int64))
     region = (columns["region"].to_numpy()[fin].astype(np.int64) if "region" in columns
               else np.zeros(len(xy), dtype=np.int64))
+    b_col = next((c for c in ("intensity", "amplitude") if c in columns), None)
+    brightness = (columns[b_col].to_numpy(dtype=float)[fin] if b_col else np.full(len(xy), np.nan))
     info["n_columns"] = int(len(xy))
     _set_counts(info, None, order)
 
@@ -769,59 +861,46 @@ def find_motifs(
 
     report(progress, 0.3, "motifs: ring search")
     tol = radius_tolerance
-    if r is not None:
-        cand = np.concatenate([xy, _ring_candidates(xy, tree, r, tol, order)])
-        rings = ring_search(xy, tree, cand, order=order, radius_px=r, radius_tolerance=tol,
-                            min_members=min_members, psi_min=psi_min)
-    else:
-        rings = _empty_search(order)
     kind = f"ring{order}"
-    tables = []
-    ring_df = _rows(xy, ids, species, region, rings, n=order, kind=kind, pixel_size_nm=pixel_size_nm)
-    ring_df["score"] = _score(rings["psi"], ring_df["completeness"].to_numpy(), rings["rms"], tol * (r or 1.0))
-    ring_df["overlaps"] = _overlaps(rings["slots"], len(xy))
-    shape_info, ring_df["axis_ratio"] = ring_shape(xy, rings["cx"], rings["cy"], rings["slots"], rng=gen)
+    ring_radii = [r] if r is not None else []
+    if r is not None and radius_px is None:  # every significant shell of the scan, the most populous first
+        ring_radii += [s["radius_px"] for s in info["radius_scan"]["shells"] if s["radius_px"] != r]
+    ring_df, ring_slots = _ring_shells(xy, tree, ids, species, region, ring_radii, order=order, tol=tol,
+                                       min_members=min_members, psi_min=psi_min, pixel_size_nm=pixel_size_nm)
+    shape_info, ring_df["axis_ratio"] = ring_shape(xy, ring_df["centre_x_px"].to_numpy(),
+                                                   ring_df["centre_y_px"].to_numpy(), ring_slots, rng=gen)
     info["ring_shape"] = shape_info
-    tables.append(ring_df)
+    tables = [(ring_df, ring_slots)]
 
     report(progress, 0.7, "motifs: pentagons")
     if pentagons:
-        pent_tables = []
         if order == 10 and len(ring_df):
-            ip, parent = _inner_pentagons(rings, species, xy)
-            pdf = _rows(xy, ids, species, region, ip, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
-            ok = _pentagon_ok(pdf, xy, ip["slots"], tol)
-            pdf["parent_ring"] = parent  # ring row index for now; turned into a motif_id below
-            pdf = pdf[ok]
-            ip_slots = ip["slots"][ok]
-            pdf["score"] = _score(pdf["psi_n"].to_numpy(), 1.0, pdf["radial_rms_px"].to_numpy(),
-                                  tol * np.maximum(pdf["radius_px"].to_numpy(), 1e-9))
-            pent_tables.append((pdf, ip_slots))
-        free_df, free_slots, free_info = _free_pentagons(xy, tree, cc, cr, ids, species, region, d_nn, tol,
-                                                         pixel_size_nm, gen)
+            tables.append(_ring_halves(xy, ids, species, brightness, region, ring_df, ring_slots, tol,
+                                       pixel_size_nm))
+        free_df, free_slots, free_info = _free_pentagons(xy, tree, cc, cr, ids, species, brightness, region, d_nn,
+                                                         tol, pixel_size_nm, gen, ring_slots=ring_slots,
+                                                         mixed=mixed_pentagons)
         info["free_pentagons"] = free_info
-        if len(free_df):
-            # a free pentagon already reported inside a ring (same five members) is not reported twice: compare
-            # the sorted member rows as one structured key each (vectorised)
-            known = np.concatenate([np.sort(sl, axis=1) for _, sl in pent_tables]) if pent_tables else \
-                np.zeros((0, 5), dtype=np.int64)
-            key = np.dtype([(f"m{i}", np.int64) for i in range(5)])
-            as_key = lambda a: np.ascontiguousarray(a.astype(np.int64)).view(key).ravel()  # noqa: E731
-            fresh = ~np.isin(as_key(np.sort(free_slots, axis=1)), as_key(known))
-            pent_tables.append((free_df[fresh], free_slots[fresh]))
-        if pent_tables:
-            pdf = pd.concat([p for p, _ in pent_tables], ignore_index=True)
-            psl = np.concatenate([s for _, s in pent_tables]) if len(pdf) else np.zeros((0, 5), dtype=np.int64)
-            pdf["overlaps"] = _overlaps(psl, len(xy))
-            tables.append(pdf)
+        tables.append((free_df, free_slots))
 
-    out = pd.concat([t for t in tables if len(t)], ignore_index=True) if any(len(t) for t in tables) else None
+    tables = [(t, sl) for t, sl in tables if len(t)]
     at = f"at radius {r:.4g} px" if r is not None else "(no ring radius found)"
-    if out is None:
+    if not tables:
         return _nothing(f"no {kind} motifs {at} (tolerance {tol:.2f}); no motifs reported")
+    out = pd.concat([t for t, _ in tables], ignore_index=True)
+    all_slots = np.full((len(out), max(sl.shape[1] for _, sl in tables)), -1, dtype=np.int64)
+    k0 = 0
+    for t, sl in tables:
+        all_slots[k0:k0 + len(t), :sl.shape[1]] = sl
+        k0 += len(t)
     out["motif_id"] = np.arange(len(out), dtype=np.int64)
     is_p = (out["kind"] == "pentagon").to_numpy() & (out["parent_ring"].to_numpy() >= 0)
     out.loc[is_p, "parent_ring"] = out["motif_id"].to_numpy()[:len(ring_df)][out.loc[is_p, "parent_ring"].to_numpy()]
+    # overlaps: with other motifs of the same kind
+    out["overlaps"] = 0
+    for kd in out["kind"].unique():  # two kinds
+        sel = (out["kind"] == kd).to_numpy()
+        out.loc[sel, "overlaps"] = _overlaps(all_slots[sel], len(xy))
     centres = out[["centre_x_px", "centre_y_px"]].to_numpy()
     content, cids = _centre_content(tree, ids, centres, out["radius_px"].to_numpy())
     out["centre_content"] = content
@@ -834,34 +913,195 @@ def find_motifs(
                                     "nearest the centre")
         else:
             out["region"] = np.asarray(label_points(centres[:, 0], centres[:, 1], regions), dtype=np.int64)
-    out = conform(out, MOTIFS)
+    _primary_pentagon_shell(out, info, has_rings=bool(out["primary"].to_numpy()[:len(ring_df)].any()))
+    info["flip_reference"] = _set_flip(out, edge_phase_deg, tol)
+    out = conform(out.drop(columns=["mean_brightness"]), MOTIFS)
     _set_counts(info, out, order)
+    info["shells"] = _shell_summary(out, pixel_size_nm)
+    info["shell_rule"] = SHELL_RULE
     if info["counts"].get(kind, 0) == 0:
         info["message"] = f"no {kind} motifs {at} (tolerance {tol:.2f})"
     from .tiling import orientation_domains
 
-    rr = out[out["kind"] == kind]
+    rr = out[(out["kind"] == kind) & out["primary"]]
     info["orientation_domains"] = orientation_domains(rr["orientation_deg"].to_numpy(), period_deg=360.0 / order)
     report(progress, 1.0, "motifs: done")
     return out, info
 
 
-def _free_pentagons(xy, tree, cc, cr, ids, species, region, d_nn, tol, pixel_size_nm, gen):
-    """Five columns alone on a circle (exact shell), found with the ring engine at n = 5 and its own scan."""
+#: How the default ('primary') shell is chosen; written to ``info['shell_rule']``.
+SHELL_RULE = ("rings: the shell of the chosen order holding the most regular rings in the radius scan (or the given "
+              "radius) is primary, with the pentagon halves of its rings; other significant shells are reported "
+              "with primary = False. Free pentagons: when no primary ring was found, the pentagon shells holding "
+              "at least half as many pentagons as the most populous one compete, and the one with the brightest "
+              "members (highest mean species class, then highest mean intensity, then the larger radius) is "
+              "primary: the heavy-atom pentagon is the cluster's skeleton in a HAADF image.")
+
+
+def _ring_shells(xy, tree, ids, species, region, radii, *, order, tol, min_members, psi_min, pixel_size_nm):
+    """Ring motifs at each shell radius (the first is the primary shell); rows and (R x n) member slots."""
+    dfs, slots = [], []
+    for k, r in enumerate(radii):  # one or a few shells
+        cand = np.concatenate([xy, _ring_candidates(xy, tree, r, tol, order)])
+        res = ring_search(xy, tree, cand, order=order, radius_px=r, radius_tolerance=tol,
+                          min_members=min_members, psi_min=psi_min)
+        df = _rows(xy, ids, species, region, res, n=order, kind=f"ring{order}", pixel_size_nm=pixel_size_nm)
+        df["score"] = _score(res["psi"], df["completeness"].to_numpy(), res["rms"], tol * r)
+        df["shell_radius_px"] = float(r)
+        df["primary"] = k == 0
+        dfs.append(df)
+        slots.append(res["slots"])
+    if not dfs:
+        df = _rows(xy, ids, species, region, _empty_search(order), n=order, kind=f"ring{order}",
+                   pixel_size_nm=pixel_size_nm)
+        df["shell_radius_px"] = np.zeros(0)
+        df["primary"] = np.zeros(0, bool)
+        return df, np.zeros((0, order), dtype=np.int64)
+    return pd.concat(dfs, ignore_index=True), np.concatenate(slots)
+
+
+def _ring_halves(xy, ids, species, brightness, region, ring_df, ring_slots, tol, pixel_size_nm):
+    """Both five-membered halves (alternate slots) of every complete ten-membered ring, labelled by brightness."""
+    ip, parent, which = _inner_pentagons(ring_slots, xy)
+    pdf = _rows(xy, ids, species, region, ip, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
+    pdf["parent_ring"] = parent  # ring row index for now; turned into a motif_id by the caller
+    pdf["score"] = _score(pdf["psi_n"].to_numpy(), 1.0, pdf["radial_rms_px"].to_numpy(),
+                          tol * np.maximum(pdf["radius_px"].to_numpy(), 1e-9))
+    pdf["half"] = _halves(ip["slots"], parent, which, species, brightness)
+    pdf["shell_radius_px"] = ring_df["shell_radius_px"].to_numpy()[parent]
+    pdf["primary"] = ring_df["primary"].to_numpy()[parent]
+    ok = _pentagon_ok(pdf, xy, ip["slots"], tol)
+    return pdf[ok].reset_index(drop=True), ip["slots"][ok]
+
+
+def _halves(slots, parent, which, species, brightness) -> np.ndarray:
+    """'brighter' / 'dimmer' for the two halves of each ring: by mean species class, else by mean intensity."""
+    sp = np.where(slots >= 0, species[np.maximum(slots, 0)], -1).astype(float)
+    sp = np.where(sp >= 0, sp, np.nan)
+    br = np.where(slots >= 0, brightness[np.maximum(slots, 0)], np.nan)
+    key_sp = _nanmean_rows(sp)
+    key_br = _nanmean_rows(br)
+    out = np.full(len(slots), "", dtype=object)
+    # partner: the other half of the same ring (parent, 1 - which)
+    lut = {(int(p), int(w)): i for i, (p, w) in enumerate(zip(parent, which))}
+    partner = np.array([lut.get((int(p), 1 - int(w)), -1) for p, w in zip(parent, which)], dtype=np.int64)
+    has = partner >= 0
+    pp = np.maximum(partner, 0)
+    d_sp = key_sp - key_sp[pp]
+    d_br = key_br - key_br[pp]
+    diff = np.where(np.isfinite(d_sp) & (d_sp != 0), d_sp, np.where(np.isfinite(d_br), d_br, 0.0))
+    out[has & (diff > 0)] = "brighter"
+    out[has & (diff < 0)] = "dimmer"
+    return out
+
+
+def _free_pentagons(xy, tree, cc, cr, ids, species, brightness, region, d_nn, tol, pixel_size_nm, gen, *,
+                    ring_slots, mixed):
+    """Five columns alone on a circle (exact shell), found with the ring engine at n = 5, at every significant
+    shell of its own radius scan. Dropped: pentagons whose five members all belong to rings (the rings explain
+    them) and, unless ``mixed``, pentagons whose members are of more than one species class."""
     scan_c = np.concatenate([xy, cc[(cr > 0.5 * d_nn) & (cr < 7 * d_nn)]])
     r5, scan = _scan_radius(xy, tree, scan_c, order=5, tol=tol, min_members=5, psi_min=0.9, d_nn=d_nn, rng=gen,
                             exact=True)
-    empty = empty_table(MOTIFS), np.zeros((0, 5), dtype=np.int64)
+    empty = _rows(xy, ids, species, region, _empty_search(5), n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
+    empty["shell_radius_px"] = np.zeros(0)
+    empty["primary"] = np.zeros(0, bool)
+    info = {"radius_px": None, "scan": scan, "count": 0, "dropped_explained_by_rings": 0,
+            "dropped_mixed_species": 0, "mixed_species_allowed": bool(mixed)}
     if r5 is None:
-        return (*empty, {"radius_px": None, "scan": scan, "count": 0})
-    cand = np.concatenate([xy, _ring_candidates(xy, tree, r5, tol, 5)])
-    res = ring_search(xy, tree, cand, order=5, radius_px=r5, radius_tolerance=tol, min_members=5, psi_min=0.9,
-                      exact=True)
-    df = _rows(xy, ids, species, region, res, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm)
-    ok = _pentagon_ok(df, xy, res["slots"], tol) if len(df) else np.zeros(0, bool)
-    df = df[ok]
-    df["score"] = _score(df["psi_n"].to_numpy(), 1.0, df["radial_rms_px"].to_numpy(), tol * r5)
-    return df, res["slots"][ok], {"radius_px": float(r5), "scan": scan, "count": int(ok.sum())}
+        return empty, np.zeros((0, 5), dtype=np.int64), info
+    in_ring = np.zeros(len(xy), bool)
+    in_ring[ring_slots[ring_slots >= 0]] = True
+    dfs, slots = [], []
+    for sh in scan["shells"]:  # one or a few shells
+        rs = sh["radius_px"]
+        cand = np.concatenate([xy, _ring_candidates(xy, tree, rs, tol, 5)])
+        res = ring_search(xy, tree, cand, order=5, radius_px=rs, radius_tolerance=tol, min_members=5,
+                          psi_min=0.9, exact=True)
+        df = _rows(xy, ids, species, region, res, n=5, kind="pentagon", pixel_size_nm=pixel_size_nm,
+                   brightness=brightness)
+        ok = _pentagon_ok(df, xy, res["slots"], tol) if len(df) else np.zeros(0, bool)
+        explained = in_ring[res["slots"]].all(axis=1) if len(df) else np.zeros(0, bool)
+        is_mixed = (df["species"].to_numpy() < 0) & (species[res["slots"]] >= 0).any(axis=1) if len(df) else \
+            np.zeros(0, bool)
+        info["dropped_explained_by_rings"] += int((ok & explained).sum())
+        info["dropped_mixed_species"] += int((ok & ~explained & is_mixed).sum()) if not mixed else 0
+        ok &= ~explained
+        if not mixed:
+            ok &= ~is_mixed
+        df = df[ok].copy()
+        df["score"] = _score(df["psi_n"].to_numpy(), 1.0, df["radial_rms_px"].to_numpy(), tol * rs)
+        df["shell_radius_px"] = float(rs)
+        df["primary"] = False  # decided once all shells are known (_primary_pentagon_shell)
+        dfs.append(df)
+        slots.append(res["slots"][ok])
+    df = pd.concat(dfs, ignore_index=True) if dfs else empty
+    sl = np.concatenate(slots) if slots else np.zeros((0, 5), dtype=np.int64)
+    info.update(radius_px=float(r5), count=int(len(df)))
+    return df, sl, info
+
+
+def _primary_pentagon_shell(out: pd.DataFrame, info: dict, *, has_rings: bool) -> None:
+    """Mark the free pentagons of the primary shell (see SHELL_RULE), in place."""
+    free = ((out["kind"] == "pentagon") & (out["parent_ring"] < 0)).to_numpy()
+    if has_rings or not free.any():
+        return
+    f = out[free]
+    g = f.groupby("shell_radius_px")
+    n = g.size()
+    sp = f["species"].where(f["species"] >= 0)
+    stats = pd.DataFrame({"n": n, "species": sp.groupby(f["shell_radius_px"]).mean(),
+                          "brightness": f["mean_brightness"].groupby(f["shell_radius_px"]).mean()})
+    stats = stats[stats["n"] >= _PRIMARY_SHARE * stats["n"].max()].fillna(-np.inf)
+    stats["radius"] = stats.index.to_numpy()
+    best = stats.sort_values(["species", "brightness", "radius"]).index[-1]
+    out.loc[free & (out["shell_radius_px"] == best).to_numpy(), "primary"] = True
+    info["free_pentagons"]["primary_radius_px"] = float(best)
+
+
+def _set_flip(out: pd.DataFrame, edge_phase_deg: float | None, tol: float) -> dict:
+    """Fill ``flip_state`` of five-fold rows from their orientation against the tiling edge vectors, in place.
+
+    The tiling's edges run along ten directions 36 deg apart; as undirected lines they fix a phase mod 36 deg only,
+    so the five reference edge vectors are taken at ``phase + 72 j`` with the phase in [-18, 18) deg. A pentagon
+    whose vertices point within 18 deg of these is 'up', one turned by 36 deg is 'down'; within
+    ``_FLIP_MARGIN_DEG`` of halfway the state is '' (undecided).
+    """
+    out["flip_state"] = ""
+    src = "given"
+    if edge_phase_deg is None:
+        from .tiling import edge_phase
+
+        prim = out[out["primary"] & ((out["kind"] != "pentagon") | (out["parent_ring"] < 0))]
+        xy = prim[["centre_x_px", "centre_y_px"]].to_numpy(dtype=float)
+        edge_phase_deg, how = edge_phase(xy, tol=min(tol, 0.1))
+        src = how
+    if edge_phase_deg is None:
+        return {"phase_deg": None, "source": src}
+    ref = float(np.mod(edge_phase_deg + 18.0, 36.0) - 18.0)
+    five = (out["order"] == 5).to_numpy()
+    rel = np.mod(out["orientation_deg"].to_numpy(dtype=float) - ref, 72.0)
+    state = np.where((rel < 18.0) | (rel >= 54.0), "up", "down")
+    halfway = np.minimum(np.abs(rel - 18.0), np.abs(rel - 54.0)) < _FLIP_MARGIN_DEG
+    out.loc[five, "flip_state"] = np.where(halfway, "", state)[five]
+    return {"phase_deg": ref, "source": src,
+            "convention": "flip_state 'up': pentagon vertices along the edge vectors phase + 72 j (phase in "
+                          "[-18, 18) deg, atan2 with y down); 'down': turned by 36 deg; '' within "
+                          f"{_FLIP_MARGIN_DEG:g} deg of halfway"}
+
+
+def _shell_summary(out: pd.DataFrame, pixel_size_nm) -> list[dict]:
+    """One entry per reported shell: kind, order, radius, number of motifs, mean species, primary."""
+    rows = []
+    key = out["kind"] + np.where((out["kind"] == "pentagon") & (out["parent_ring"] >= 0), " (ring half)", "")
+    for (k, rad), g in out.groupby([key, "shell_radius_px"], sort=True):  # a few shells
+        sp = g["species"][g["species"] >= 0]
+        rows.append({"kind": str(k), "order": int(g["order"].iloc[0]), "shell_radius_px": float(rad),
+                     "radius_px": float(g["radius_px"].median()),
+                     "radius_nm": float(g["radius_px"].median() * pixel_size_nm) if pixel_size_nm else None,
+                     "n_motifs": int(len(g)), "mean_species": float(sp.mean()) if len(sp) else None,
+                     "primary": bool(g["primary"].any())})
+    return rows
 
 
 def _set_counts(info: dict, df: pd.DataFrame | None, order: int) -> None:
@@ -872,11 +1112,25 @@ def _set_counts(info: dict, df: pd.DataFrame | None, order: int) -> None:
         info["incomplete"] = 0
         info["mean_psi_n"] = None
         info["orientation_domains"] = []
+        info["pentagons"] = {"in_ring_brighter": 0, "in_ring_dimmer": 0, "free": 0, "free_primary": 0,
+                             "by_species": {}}
         return
-    rings = df[df["kind"] == kind]
-    info["counts"] = {kind: int(len(rings)), "pentagon": int((df["kind"] == "pentagon").sum()),
-                      "pentagon_in_ring": int(((df["kind"] == "pentagon") & (df["parent_ring"] >= 0)).sum())}
+    rings = df[(df["kind"] == kind) & df["primary"]]
+    pent = df[df["kind"] == "pentagon"]
+    info["counts"] = {kind: int(len(rings)), "pentagon": int(len(pent)),
+                      "pentagon_in_ring": int((pent["parent_ring"] >= 0).sum())}
+    other = int(((df["kind"] == kind) & ~df["primary"]).sum())
+    if other:
+        info["counts"][f"{kind}_other_shells"] = other
     info["complete"] = int(rings["complete"].sum())
     info["incomplete"] = int((~rings["complete"]).sum())
     info["mean_psi_n"] = float(rings["psi_n"].mean()) if len(rings) else None
     info["centre_content"] = {k: int(v) for k, v in rings["centre_content"].value_counts().items()}
+    free = pent[pent["parent_ring"] < 0]
+    info["pentagons"] = {
+        "in_ring_brighter": int((pent["half"] == "brighter").sum()),
+        "in_ring_dimmer": int((pent["half"] == "dimmer").sum()),
+        "free": int(len(free)), "free_primary": int(free["primary"].sum()),
+        "by_species": {str(int(k)): int(v) for k, v in pent["species"].value_counts().sort_index().items()},
+        "flip_states": {str(k): int(v) for k, v in pent["flip_state"].value_counts().items() if k},
+    }

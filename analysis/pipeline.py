@@ -258,11 +258,12 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     rmax = _length_px(params, "ladder_r_max", ps)
     d0 = _length_px(params, "d0", ps)
     ladders, peaks, l_info = [], [], {}
-    rings = motifs[motifs["kind"].str.startswith("ring")] if len(motifs) else motifs
+    # one shell per cluster: the primary one (motifs.SHELL_RULE); other shells share its centres
+    rings = motifs[motifs["kind"].str.startswith("ring") & motifs["primary"]] if len(motifs) else motifs
     # the clusters are the rings; without rings, free-standing pentagons (five-fold views) take their place
     vertex_kind = "ring"
     if len(rings) < 3 and len(motifs):
-        free = motifs[(motifs["kind"] == "pentagon") & (motifs["parent_ring"] < 0)]
+        free = motifs[(motifs["kind"] == "pentagon") & (motifs["parent_ring"] < 0) & motifs["primary"]]
         if len(free) >= 3:
             rings, vertex_kind = free, "pentagon"
     result.summary["cluster_vertices"] = vertex_kind
@@ -288,6 +289,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
         l_info[name] = info
     result.tables["ladder"] = conform(pd.concat(ladders, ignore_index=True), LADDER) if ladders else empty_table(LADDER)
     result.tables["pair_peaks"] = conform(pd.concat(peaks, ignore_index=True), PEAKS) if peaks else empty_table(PEAKS)
+    l_info["agreement"] = _ladder.ladder_agreement(result.tables["ladder"], result.tables["pair_peaks"])
     result.summary["ladder"] = l_info
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
@@ -297,6 +299,12 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     result.tables["network"] = network
     result.tables["tiles"] = tiles
     result.summary["tiling"] = t_info
+    from ._stage_notes import structure_notes  # say why a stage came out empty or tiny
+
+    notes = result.summary.setdefault("notes", [])
+    notes.extend(n for n in structure_notes(
+        n_columns=len(ok), columns_info=result.summary.get("columns"), motifs=motifs, motifs_info=m_info,
+        ladder_info=l_info, tiling_info=t_info, pair_peaks=result.tables["pair_peaks"]) if n not in notes)
     report(progress, 1.0, "structure done")
 
 

@@ -32,7 +32,7 @@ from ._errors import TenfoldInputError
 from ._progress import ProgressCallback, report
 from ._schema import NETWORK, TILES, conform, empty_table
 
-__all__ = ["TAU", "TILE_TYPES", "TILE_COLOURS", "build_network", "orientation_domains", "faces",
+__all__ = ["TAU", "TILE_TYPES", "TILE_COLOURS", "build_network", "edge_phase", "orientation_domains", "faces",
            "tiling_figure"]
 
 TAU = (1.0 + np.sqrt(5.0)) / 2.0
@@ -242,6 +242,29 @@ def _choose_edge(xy: np.ndarray, tol: float) -> tuple[float | None, dict]:
     return best["distance_px"], info
 
 
+def edge_phase(xy: np.ndarray, *, tol: float = 0.1) -> tuple[float | None, str]:
+    """Direction of the tiling edges, mod 36 deg, measured on a point set of cluster centres.
+
+    The edge is chosen as in :func:`build_network` (centre pair-distance peaks, planar, degree ~4), the centres are
+    linked at it and the ten-fold phase of the link directions is returned with a sentence saying how it was
+    found; (None, why) when there are too few centres or no edge.
+    """
+    xy = np.asarray(xy, dtype=float).reshape(-1, 2)
+    xy = xy[np.isfinite(xy).all(axis=1)]
+    if len(xy) < 4:
+        return None, f"too few cluster centres ({len(xy)}) for tiling edge directions"
+    edge, _ = _choose_edge(xy, tol)
+    if edge is None:
+        return None, "no peak in the centre pair distribution to link at"
+    e = _links(xy, edge, tol)
+    if len(e) < 2:
+        return None, f"fewer than two centre pairs at the edge length {edge:.4g} px"
+    vec = xy[e[:, 1]] - xy[e[:, 0]]
+    ph = _edge_orientation(np.rad2deg(np.arctan2(vec[:, 1], vec[:, 0])))["phase_deg"]
+    return float(ph), (f"measured: ten-fold phase of {len(e)} links between {len(xy)} primary cluster centres at "
+                       f"the tiling edge {edge:.4g} px")
+
+
 # --------------------------------------------------------------------------------------------- public
 def build_network(
     motifs: pd.DataFrame,
@@ -300,6 +323,8 @@ def build_network(
     rings = motifs[motifs["kind"].astype(str).str.startswith(vertex_kind)]
     if vertex_kind == "pentagon" and "parent_ring" in rings:
         rings = rings[rings["parent_ring"] < 0]  # pentagons inside a ring are not clusters of their own
+    if "primary" in rings and rings["primary"].any():
+        rings = rings[rings["primary"].astype(bool)]  # one shell per cluster: other shells share its centres
     xy = rings[["centre_x_px", "centre_y_px"]].to_numpy(dtype=float)
     ok = np.isfinite(xy).all(axis=1)
     rings, xy = rings[ok], xy[ok]

@@ -61,7 +61,11 @@ def test_ladder_on_high_dose_sample(high_dose):
     lad = result.tables["ladder"]
     cols = lad[lad["set"] == "columns"]
     assert result.summary["ladder"]["columns"]["holds"]
-    assert len(cols) >= 3 and (cols["deviation_pct"].abs() < 0.5).all()
+    # every rung within 0.5 % of d0 tau^n, or (a broad peak holding unresolved distances) within its own
+    # expanded uncertainty
+    dev = cols["deviation_pct"].abs()
+    assert len(cols) >= 3 and ((dev < 0.5) | (dev < cols["expanded_uncertainty_pct"])).all()
+    assert (dev < 0.5).sum() >= 3
     # the base rung is the ring edge 2 r sin 18 deg = 0.2781 nm for r = 0.45 nm (regular decagon)
     d0 = result.summary["ladder"]["columns"]["d0_nm"]
     assert d0 == pytest.approx(2 * 0.45 * np.sin(np.radians(18)), rel=0.005)
