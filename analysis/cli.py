@@ -99,6 +99,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "formats with the 'vendor' extra")
     a.add_argument("--out", type=Path, required=True, metavar="DIR", help="results folder (must not exist or be empty)")
     a.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    a.add_argument("--params", type=Path, metavar="FILE",
+                   help="parameters file (the parameters.toml every run writes) to repeat a run; options given on "
+                   "the command line as well override the file's values")
     cal = a.add_argument_group("calibration and image")
     cal.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm; overrides the file")
     cal.add_argument("--frame", type=int, metavar="K", help="for a stack: analyse frame K (0-based)")
@@ -195,6 +198,55 @@ def _params(args) -> "object":
     )
 
 
+#: command-line option (argparse dest) -> the Parameters fields it sets
+_DEST_FIELDS = {
+    "pixel_size": ("pixel_size_nm",), "dark_columns": ("dark_columns",), "species": ("n_species",),
+    "flatten": ("flatten",), "min_mass": ("min_mass",), "ring_order": ("ring_order",),
+    "radius_tolerance": ("radius_tolerance",), "no_pentagons": ("pentagons",), "half_step": ("half_step",),
+    "no_fourier": ("fourier",), "seed": ("rng",),
+    **{dest: (f"{base}_nm", f"{base}_px") for dest, base in (
+        ("column_diameter", "column_diameter"), ("column_spacing", "column_spacing"), ("ring_radius", "ring_radius"),
+        ("ladder_range", "ladder_r_max"), ("ladder_base", "d0"), ("tiling_edge", "tiling_edge"))},
+}
+
+
+def _explicit_options(parser: argparse.ArgumentParser, argv: list[str] | None, command: str) -> set[str]:
+    """The dests of the options actually typed after ``command`` (a default is not a choice)."""
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    sp = sub.choices[command]
+    saved = [(a, a.default, a.required) for a in sp._actions]
+    try:
+        for a in sp._actions:
+            a.default = argparse.SUPPRESS
+            a.required = False
+        ns, _ = parser.parse_known_args(argv)
+    finally:
+        for a, d, r in saved:
+            a.default, a.required = d, r
+    return set(vars(ns)) - {"command"}
+
+
+def _params_with_file(args):
+    """Parameters from ``--params FILE`` (if given) with the options typed on the command line on top."""
+    from .pipeline import Parameters
+
+    cli = _params(args).validate()
+    if getattr(args, "params", None) is None:
+        return cli
+    from ._params_file import load_parameters
+
+    try:
+        base = load_parameters(args.params)
+    except TenfoldInputError as exc:
+        raise TenfoldInputError(f"--params {exc}") from None
+    explicit = getattr(args, "explicit_options", set())
+    merged = base.to_dict()
+    for dest in explicit & set(_DEST_FIELDS):
+        for name in _DEST_FIELDS[dest]:  # a length typed in one unit replaces the file's value in either unit
+            merged[name] = getattr(cli, name)
+    return Parameters.from_dict(merged).validate()
+
+
 def _check_out(out: Path, overwrite: bool) -> None:
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"--out {out}: exists and is not a folder; choose another path")
@@ -208,7 +260,7 @@ def _analyze(args) -> int:
     from .pipeline import run_pipeline
 
     _check_out(args.out, args.overwrite)  # before any work: fail in a second, not after a minute
-    params = _params(args).validate()
+    params = _params_with_file(args)
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
     mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
@@ -267,6 +319,8 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     debug = getattr(args, "debug", False)
+    if args.command in ("analyze", "batch"):
+        args.explicit_options = _explicit_options(parser, argv, args.command)
     handler = {"analyze": _analyze, "info": _info, "samples": _samples}[args.command]
 
     def _show(message, category, filename, lineno, file=None, line=None):

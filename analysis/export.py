@@ -6,6 +6,7 @@ Layout of ``DIR``::
     curves/<name>.csv                                                                  curves behind the figures
     summary.json                                                                       result.summary, JSON-safe
     provenance.json                                                                    input, calibration, parameters, versions
+    parameters.toml                                                                    the parameters as set, to repeat the run
     results.xlsx                                                                       one sheet per table + 'regions' + 'provenance'
     figures/<name>.png, figures/<name>.svg                                             every registered figure that applies
 
@@ -588,6 +589,7 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
         job(f"curves/{path.name}", lambda df=df, path=path: (_write_csv(pd.DataFrame(df), path), [path])[1])
     job("summary.json", lambda: (_write_json(result.summary, tmp / "summary.json"), [tmp / "summary.json"])[1])
     job("provenance.json", lambda: (_write_json(prov, tmp / "provenance.json"), [tmp / "provenance.json"])[1])
+    job("parameters.toml", lambda: _write_parameters(result, tmp))
 
     def workbook() -> list[Path]:
         sheets = {_safe_stem(name)[:31]: (df, _units(name, df)) for name, df in tables.items()
@@ -614,6 +616,24 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
         written.extend(func())
     report(progress, 1.0, "results written")
     return written
+
+
+def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:
+    """``parameters.toml``: the run's parameters as set (automatic ones as "auto"), to repeat the run.
+
+    Only for results whose ``parameters`` are a full ``Parameters`` record (every pipeline run); a result put
+    together by hand with other keys has nothing a re-run could use, so no file is written for it.
+    """
+    import dataclasses
+
+    from ._params_file import PARAMETERS_FILE, parameters_to_toml
+    from .pipeline import Parameters
+
+    if set(result.parameters or {}) != {f.name for f in dataclasses.fields(Parameters)}:
+        return []
+    path = tmp / PARAMETERS_FILE
+    path.write_text(parameters_to_toml(result.parameters), encoding="utf-8")
+    return [path]
 
 
 def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:

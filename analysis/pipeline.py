@@ -120,6 +120,8 @@ class Parameters:
             raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
         if not (0 < self.radius_tolerance < 0.5):
             raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
+        if not (isinstance(self.rng, (int, np.integer)) and 0 <= self.rng < 2**63):
+            raise TenfoldInputError(f"parameter rng must be a whole number >= 0 (a seed), got {self.rng!r}")
         return self
 
 
