@@ -4,6 +4,7 @@ Sub-commands
 ------------
 ``tenfold analyze IMAGE --out DIR``  find columns, motifs, ladders, tiling and Fourier spots; write tables,
                                      workbook, figures and summary.json to DIR.
+``tenfold batch INPUTS --out DIR``   the same on many images, one sub-folder each, plus DIR/comparison.csv.
 ``tenfold info IMAGE``               print the calibration and size the reader finds, and the automatic scale.
 ``tenfold samples``                  list the bundled synthetic micrographs (paths to try the tool on).
 
@@ -78,6 +79,66 @@ def _frames(text: str) -> tuple[int, int]:
     return a, b
 
 
+def _tile_size(text: str) -> int | None:
+    if text.lower() == "auto":
+        return None
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected 'auto', 0 (never tile) or a whole number >= 64, got {text!r}") from None
+    if v != 0 and v < 64:
+        raise argparse.ArgumentTypeError(f"expected 'auto', 0 (never tile) or a whole number >= 64, got {text!r}")
+    return v
+
+
+def _workers(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return v
+
+
+def _add_scale_out_options(p: argparse.ArgumentParser) -> None:
+    """--tile-size, --workers, --scheduler (same meaning on analyze and batch)."""
+    from .parallel import AUTO_TILE_ABOVE_PX, AUTO_TILE_SIZE
+
+    g = p.add_argument_group("large images and parallel work (dask)")
+    g.add_argument("--tile-size", type=_tile_size, default=None, metavar="PX|auto",
+                   help=f"find columns in overlapping tiles of PX x PX pixels (0 = never); default auto: tiles of "
+                   f"{AUTO_TILE_SIZE} px when a side exceeds {AUTO_TILE_ABOVE_PX} px. Uncompressed TIFF and MRC "
+                   "files are then memory-mapped, not read whole")
+    g.add_argument("--workers", type=_workers, default=None, metavar="N",
+                   help="worker processes for tiles (analyze) or images (batch) on an embedded dask cluster; "
+                   "default: the number of CPU cores; 1 = serial")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="use a running dask scheduler (e.g. tcp://host:8786) instead of an embedded cluster; its "
+                   "workers must see the same files and output folder")
+
+
+def _execution(args):
+    from .parallel import Execution
+
+    return Execution(tile_size=args.tile_size, workers=args.workers, scheduler=args.scheduler)
+
+
+def _read_for(args, execution):
+    """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
+    from .io import read_micrograph
+    from .parallel import read_micrograph_mapped
+
+    if args.frames is None and Path(args.image).suffix.lower() in (".tif", ".tiff", ".mrc", ".mrcs", ".st"):
+        try:
+            mg = read_micrograph_mapped(args.image, pixel_size_nm=args.pixel_size, frame=args.frame)
+        except TenfoldInputError:
+            mg = None
+        if mg is not None and execution.tiles_for(mg.data.shape) is not None:
+            return mg
+    return read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="tenfold", description=_DESCRIPTION)
     p.add_argument("--version", action="version", version=f"tenfold {__version__}")
@@ -141,6 +202,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=int, default=0, help="seed for bootstraps and mixture fits (default 0)")
+    _add_scale_out_options(a)
     a.add_argument("--quiet", action="store_true", help="no progress messages")
     a.add_argument("--debug", action="store_true", help="show the full traceback on failure")
 
@@ -153,6 +215,32 @@ def build_parser() -> argparse.ArgumentParser:
     i.add_argument("--frames", type=_frames, metavar="A:B")
     i.add_argument("--dark-columns", action="store_true")
     i.add_argument("--debug", action="store_true")
+
+    b = sub.add_parser(
+        "batch",
+        help="analyse many micrographs with the same parameters and compare them",
+        description=(
+            "Analyse every image (files, folders, glob patterns) with the same parameters into DIR/<image stem>/, "
+            "then write DIR/comparison.csv, DIR/comparison.xlsx and DIR/figures/comparison.png|svg: one row per "
+            "image and region with the status ('ok' or the error), column counts and density, species fractions, "
+            "ring and pentagon counts, ladder base and verdict, thick/thin ratio with its uncertainty, Fourier "
+            "order and distortion, notes. A failed image is recorded and skipped; running the same command again "
+            "skips finished images (resume)."
+        ),
+    )
+    b.add_argument("inputs", nargs="+", metavar="INPUT", help="image files, folders or glob patterns")
+    b.add_argument("--out", type=Path, required=True, metavar="DIR", help="batch folder (created if needed)")
+    b.add_argument("--params", type=Path, metavar="FILE", help="parameters file (parameters.toml) for every image")
+    b.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm for every image; overrides "
+                   "the files and the parameters file")
+    b.add_argument("--frame", type=int, metavar="K", help="for stacks: analyse frame K")
+    b.add_argument("--frames", type=_frames, metavar="A:B", help="for stacks: analyse the mean of frames A..B-1")
+    b.add_argument("--rerun", action="store_true",
+                   help="analyse every image again and replace its sub-folder (default: skip finished images)")
+    b.add_argument("--no-figures", action="store_true", help="no per-image figures (the comparison figure is drawn)")
+    _add_scale_out_options(b)
+    b.add_argument("--quiet", action="store_true", help="no progress bar")
+    b.add_argument("--debug", action="store_true", help="show the full traceback on failure")
 
     sub.add_parser("samples", help="list the bundled synthetic sample micrographs",
                    description="Print the paths of the synthetic decagonal micrographs shipped with Tenfold, with "
@@ -256,14 +344,14 @@ def _check_out(out: Path, overwrite: bool) -> None:
 
 def _analyze(args) -> int:
     from .export import write_results
-    from .io import read_micrograph
     from .pipeline import run_pipeline
 
     _check_out(args.out, args.overwrite)  # before any work: fail in a second, not after a minute
     params = _params_with_file(args)
+    execution = _execution(args)
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
-    mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+    mg = _read_for(args, execution)
     regions = None
     if args.region:
         from .region import parse_region
@@ -274,7 +362,7 @@ def _analyze(args) -> int:
             reg = parse_region(text, pixel_size_nm=ps, unit=args.region_unit)
             reg.label = k
             regions.append(reg)
-    result = run_pipeline(mg, params, regions=regions, progress=prog)
+    result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution)
     prog(1.0, f"writing {args.out}")
     write_results(result, args.out, overwrite=args.overwrite, figures=not args.no_figures)
     s = result.summary
@@ -288,6 +376,51 @@ def _analyze(args) -> int:
     for note in s.get("notes", []):
         print(f"note: {note}", file=sys.stderr)
     return 0
+
+
+def _batch(args) -> int:
+    from .batch import run_batch
+    from .pipeline import Parameters
+
+    params = Parameters()
+    if args.params is not None:
+        from ._params_file import load_parameters
+
+        try:
+            params = load_parameters(args.params)
+        except TenfoldInputError as exc:
+            raise TenfoldInputError(f"--params {exc}") from None
+    if args.pixel_size is not None:
+        params.pixel_size_nm = args.pixel_size
+    params.validate()
+    from tqdm import tqdm
+
+    bar = None
+
+    def progress(done: int, total: int, message: str) -> None:
+        nonlocal bar
+        if bar is None:
+            bar = tqdm(total=total, initial=done, unit="image", file=sys.stderr, disable=args.quiet,
+                       dynamic_ncols=True)
+            bar.set_postfix_str(message[:60])
+            return
+        bar.update(done - bar.n)
+        bar.set_postfix_str(message[:60])
+
+    try:
+        table = run_batch(args.inputs, args.out, params, frame=args.frame, frame_range=args.frames,
+                          rerun=args.rerun, figures=not args.no_figures, execution=_execution(args),
+                          progress=progress)
+    finally:
+        if bar is not None:
+            bar.close()
+    failed = table[table["status"] != "ok"]
+    n_img = table["image"].nunique()
+    print(f"{n_img - failed['image'].nunique()} of {n_img} images analysed; comparison in "
+          f"{args.out / 'comparison.csv'}")
+    for _, row in failed.iterrows():
+        print(f"failed: {row['image']}: {row['status']}", file=sys.stderr)
+    return 0 if failed.empty else 1
 
 
 def _info(args) -> int:
@@ -319,9 +452,9 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     debug = getattr(args, "debug", False)
-    if args.command in ("analyze", "batch"):
+    if args.command == "analyze":
         args.explicit_options = _explicit_options(parser, argv, args.command)
-    handler = {"analyze": _analyze, "info": _info, "samples": _samples}[args.command]
+    handler = {"analyze": _analyze, "batch": _batch, "info": _info, "samples": _samples}[args.command]
 
     def _show(message, category, filename, lineno, file=None, line=None):
         print(f"warning: {message}", file=sys.stderr)
