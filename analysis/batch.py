@@ -173,17 +173,12 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", TenfoldWarning)  # recorded in the summary notes; not printed per image
-            from .parallel import Execution, read_micrograph_mapped
+            from .parallel import Execution, mapped_if_tiled
 
             ex = Execution(**execution)
-            mg = None
-            if frame_range is None and Path(path).suffix.lower() in (".tif", ".tiff", ".mrc", ".mrcs", ".st"):
-                try:  # a large image that will be tiled is memory-mapped, not read whole
-                    mg = read_micrograph_mapped(path, pixel_size_nm=params.get("pixel_size_nm"), frame=frame)
-                except TenfoldInputError:
-                    mg = None
-                if mg is not None and ex.tiles_for(mg.data.shape) is None:
-                    mg = None
+            # a large image that will be tiled is memory-mapped, not read whole
+            mg = mapped_if_tiled(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
+                                 frame_range=frame_range)
             if mg is None:
                 mg = read_micrograph(path, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
                                      frame_range=frame_range)

@@ -127,15 +127,12 @@ def _execution(args):
 def _read_for(args, execution):
     """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
     from .io import read_micrograph
-    from .parallel import read_micrograph_mapped
+    from .parallel import mapped_if_tiled
 
-    if args.frames is None and Path(args.image).suffix.lower() in (".tif", ".tiff", ".mrc", ".mrcs", ".st"):
-        try:
-            mg = read_micrograph_mapped(args.image, pixel_size_nm=args.pixel_size, frame=args.frame)
-        except TenfoldInputError:
-            mg = None
-        if mg is not None and execution.tiles_for(mg.data.shape) is not None:
-            return mg
+    mg = mapped_if_tiled(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
+                         frame_range=args.frames)
+    if mg is not None:
+        return mg
     return read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
 
 

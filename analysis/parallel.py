@@ -45,7 +45,8 @@ from ._errors import TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
 from ._progress import report
 
-__all__ = ["Execution", "find_columns_tiled", "map_tasks", "read_micrograph_mapped", "tile_grid",
+__all__ = ["Execution", "find_columns_tiled", "map_tasks", "read_micrograph_mapped", "mapped_if_tiled",
+           "image_shape", "tile_grid",
            "AUTO_TILE_ABOVE_PX", "AUTO_TILE_SIZE", "SCALE_CROP_PX", "SEAM_BAND_PX"]
 
 #: images with more pixels than this square are tiled automatically (an untiled 4096^2 run peaks near 2 GB)
@@ -423,6 +424,41 @@ def _lazy_tasks(tasks, execution):
 
 # --------------------------------------------------------------------------------------------------------------
 # memory-mapped reading
+
+
+def image_shape(path) -> tuple[int, ...] | None:
+    """Shape of the image data in a TIFF or MRC file from its header (nothing read); None for other files or
+    when the header cannot be read."""
+    p = Path(path)
+    try:
+        if p.suffix.lower() in (".tif", ".tiff"):
+            import tifffile
+
+            with tifffile.TiffFile(p) as tf:
+                return tuple(int(s) for s in tf.series[0].shape)
+        if p.suffix.lower() in (".mrc", ".mrcs", ".st"):
+            import mrcfile
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                with mrcfile.open(p, mode="r", header_only=True) as mrc:
+                    nz, ny, nx = (int(mrc.header.nz), int(mrc.header.ny), int(mrc.header.nx))
+                    return (ny, nx) if nz <= 1 else (nz, ny, nx)
+    except Exception:
+        return None
+    return None
+
+
+def mapped_if_tiled(path, execution: Execution, *, pixel_size_nm=None, frame=None, frame_range=None):
+    """The memory-mapped micrograph when ``execution`` will tile this file's image and the file can be mapped;
+    None otherwise (read it whole with ``read_micrograph``)."""
+    shape = image_shape(path)
+    if frame_range is not None or shape is None or len(shape) < 2 or execution.tiles_for(shape[-2:]) is None:
+        return None
+    try:
+        return read_micrograph_mapped(path, pixel_size_nm=pixel_size_nm, frame=frame)
+    except TenfoldInputError:
+        return None
 
 
 def read_micrograph_mapped(path, *, pixel_size_nm=None, frame=None) -> Micrograph:

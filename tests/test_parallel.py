@@ -159,3 +159,22 @@ def test_cli_tiled_analyze(grid640, tmp_path):
     with pytest.raises(SystemExit) as e:
         main(["analyze", str(path), "--out", str(tmp_path / "o2"), "--tile-size", "10"])
     assert e.value.code == 2
+
+
+def test_image_shape_from_headers_and_mapping_only_when_tiled(tmp_path):
+    import mrcfile
+    import tifffile
+
+    from tenfold.analysis.parallel import image_shape, mapped_if_tiled
+
+    img = np.zeros((70, 90), dtype=np.float32)
+    tifffile.imwrite(tmp_path / "a.tif", img)
+    with mrcfile.new(tmp_path / "a.mrc") as m:
+        m.set_data(np.zeros((3, 70, 90), dtype=np.float32))
+    assert image_shape(tmp_path / "a.tif") == (70, 90)
+    assert image_shape(tmp_path / "a.mrc") == (3, 70, 90)
+    assert image_shape(tmp_path / "none.png") is None
+    assert mapped_if_tiled(tmp_path / "a.tif", Execution()) is None  # small: read whole
+    mg = mapped_if_tiled(tmp_path / "a.tif", Execution(tile_size=64))
+    assert mg is not None and isinstance(mg.data, np.memmap)
+    assert mapped_if_tiled(tmp_path / "a.mrc", Execution(tile_size=64), frame=2).meta.frames == "frame 2"
