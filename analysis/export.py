@@ -384,13 +384,18 @@ RASTER_ABOVE = 3000
 
 
 def _rasterise_dense_layers(fig) -> int:
-    """Mark every dense collection (scatter, line or patch collection) of ``fig`` as rasterised; returns how many."""
+    """Mark every dense layer of ``fig`` (collection, marker line, or a crowd of patches) as rasterised; returns
+    how many."""
     n = 0
     for ax in fig.axes:
         for coll in ax.collections:
             marks = max(len(coll.get_offsets()), len(coll.get_paths()))
             if marks > RASTER_ABOVE:
                 coll.set_rasterized(True)
+                n += 1
+        for line in ax.lines:
+            if len(line.get_xdata()) > RASTER_ABOVE:
+                line.set_rasterized(True)
                 n += 1
         if len(ax.patches) > RASTER_ABOVE:
             for p in ax.patches:
@@ -441,9 +446,13 @@ def species_histogram(result: AnalysisResult):
     ax = fig.add_subplot()
     classes = sorted(set(species[ok].tolist()))
     data = [intensity[ok & (species == s)] for s in classes]
-    ax.hist(data, bins=edges, stacked=True, color=[_species_colour(s)[0] for s in classes],
-            label=[f"{_species_label(s)} (n={len(d)})" for s, d in zip(classes, data)],
-            edgecolor="black", linewidth=0.4)
+    # stacked steps, one artist per class (a bar per bin and class is hundreds of patches, seconds to draw)
+    base = np.zeros(len(edges) - 1)
+    for s, d in zip(classes, data):
+        counts, _ = np.histogram(d, bins=edges)
+        ax.stairs(base + counts, edges, baseline=base.copy(), fill=True, color=_species_colour(s)[0],
+                  edgecolor="black", linewidth=0.4, label=f"{_species_label(s)} (n={len(d)})")
+        base = base + counts
     ax.set_xlabel("integrated column intensity (counts px$^2$)")
     ax.set_ylabel("number of columns")
     ax.set_title(f"column intensities by species ({int(ok.sum())} columns)")
@@ -508,8 +517,9 @@ def columns_overlay(result: AnalysisResult):
         for s in sorted(set(species.tolist())):
             sel = species == s
             colour, marker = _species_colour(s)
-            ax.scatter(x[sel], y[sel], s=size, c=colour, marker=marker, edgecolors="black", linewidths=0.4,
-                       label=f"{_species_label(s)} (n={int(sel.sum())})")
+            # a marker line, not a scatter: Agg stamps one cached marker (several times faster for 50 000 points)
+            ax.plot(x[sel], y[sel], linestyle="none", marker=marker, markersize=math.sqrt(size), color=colour,
+                    markeredgecolor="black", markeredgewidth=0.4, label=f"{_species_label(s)} (n={int(sel.sum())})")
         n = len(table)
         ax.legend(loc="upper right", fontsize="small", framealpha=0.8)
     ax.set_xlim(-0.5, cols_px - 0.5)

@@ -85,8 +85,9 @@ def test_dense_scatter_rasterised_sparse_kept_vector():
     ax = fig.add_subplot()
     dense = ax.scatter(np.arange(export.RASTER_ABOVE + 1), np.zeros(export.RASTER_ABOVE + 1))
     sparse = ax.scatter([0, 1], [1, 2])
-    assert export._rasterise_dense_layers(fig) == 1
-    assert dense.get_rasterized() and not sparse.get_rasterized()
+    (line,) = ax.plot(np.arange(export.RASTER_ABOVE + 1), np.ones(export.RASTER_ABOVE + 1), "o")
+    assert export._rasterise_dense_layers(fig) == 2
+    assert dense.get_rasterized() and line.get_rasterized() and not sparse.get_rasterized()
 
 
 def test_display_image_block_mean_keeps_small_images():
