@@ -149,7 +149,8 @@ def build_parser() -> argparse.ArgumentParser:
             "uncertainty), classify them into species by integrated intensity, find ring and pentagon cluster "
             "motifs, fit golden-ratio distance ladders to column and cluster-centre pair distances, classify the "
             "cluster tiling and analyse the power spectrum. Writes columns.csv, motifs.csv, ladder.csv, "
-            "pair_peaks.csv, tiles.csv, network.csv, spots.csv, results.xlsx, figures/ and summary.json into DIR. "
+            "pair_peaks.csv, tiles.csv, network.csv, spots.csv, results.xlsx, figures/, summary.json and "
+            "parameters.toml (repeat the run with --params DIR/parameters.toml) into DIR. "
             "Every automatic choice is recorded in summary.json and can be overridden below."
         ),
     )
