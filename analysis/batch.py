@@ -359,6 +359,9 @@ def comparison_table(items: list[BatchItem], out_dir) -> pd.DataFrame:
             df[c] = pd.to_numeric(df[c], errors="coerce").astype(np.float64)
     for c in ("ladder_holds", "centre_ladder_holds", "distortion_warning"):
         df[c] = df[c].map({True: "yes", False: "no"}).fillna("")
+    for c in ("n_columns", "n_ring_motifs", "n_complete_rings", "n_pentagons", "n_thick", "n_thin",
+              "fourier_order"):
+        df[c] = df[c].round().astype("Int64")  # counts stay whole numbers; empty for failed images
     df["region"] = df["region"].fillna(0).astype(np.int64)
     df["notes"] = df["notes"].fillna("")
     return df
