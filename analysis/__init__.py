@@ -35,6 +35,8 @@ __all__ = [
     "rerun_from_columns",
     "Parameters",
     "write_results",
+    "load_parameters",
+    "save_parameters",
 ]
 
 
@@ -52,4 +54,8 @@ def __getattr__(name: str):
         from .export import write_results
 
         return write_results
+    if name in ("load_parameters", "save_parameters"):
+        from . import _params_file
+
+        return getattr(_params_file, name)
     raise AttributeError(f"module 'tenfold.analysis' has no attribute {name!r}")

@@ -4,6 +4,7 @@ Sub-commands
 ------------
 ``tenfold analyze IMAGE --out DIR``  find columns, motifs, ladders, tiling and Fourier spots; write tables,
                                      workbook, figures and summary.json to DIR.
+``tenfold batch INPUTS --out DIR``   the same on many images, one sub-folder each, plus DIR/comparison.csv.
 ``tenfold info IMAGE``               print the calibration and size the reader finds, and the automatic scale.
 ``tenfold samples``                  list the bundled synthetic micrographs (paths to try the tool on).
 
@@ -119,6 +120,63 @@ def _frames(text: str) -> tuple[int, int]:
     return a, b
 
 
+def _tile_size(text: str) -> int | None:
+    if text.lower() == "auto":
+        return None
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected 'auto', 0 (never tile) or a whole number >= 64, got {text!r}") from None
+    if v != 0 and v < 64:
+        raise argparse.ArgumentTypeError(f"expected 'auto', 0 (never tile) or a whole number >= 64, got {text!r}")
+    return v
+
+
+def _workers(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return v
+
+
+def _add_scale_out_options(p: argparse.ArgumentParser) -> None:
+    """--tile-size, --workers, --scheduler (same meaning on analyze and batch)."""
+    from .parallel import AUTO_TILE_ABOVE_PX, AUTO_TILE_SIZE
+
+    g = p.add_argument_group("large images and parallel work (dask)")
+    g.add_argument("--tile-size", type=_tile_size, default=None, metavar="PX|auto",
+                   help=f"find columns in overlapping tiles of PX x PX pixels (0 = never); default auto: tiles of "
+                   f"{AUTO_TILE_SIZE} px when a side exceeds {AUTO_TILE_ABOVE_PX} px. Uncompressed TIFF and MRC "
+                   "files are then memory-mapped, not read whole")
+    g.add_argument("--workers", type=_workers, default=None, metavar="N",
+                   help="worker processes for tiles (analyze) or images (batch) on an embedded dask cluster; "
+                   "default: the number of CPU cores; 1 = serial")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="use a running dask scheduler (e.g. tcp://host:8786) instead of an embedded cluster; its "
+                   "workers must see the same files and output folder")
+
+
+def _execution(args):
+    from .parallel import Execution
+
+    return Execution(tile_size=args.tile_size, workers=args.workers, scheduler=args.scheduler)
+
+
+def _read_for(args, execution):
+    """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
+    from .io import read_micrograph
+    from .parallel import mapped_if_tiled
+
+    mg = mapped_if_tiled(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
+                         frame_range=args.frames)
+    if mg is not None:
+        return mg
+    return read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="tenfold", description=_DESCRIPTION)
     p.add_argument("--version", action="version", version=f"tenfold {__version__}")
@@ -132,7 +190,8 @@ def build_parser() -> argparse.ArgumentParser:
             "uncertainty), classify them into species by integrated intensity, find ring and pentagon cluster "
             "motifs, fit golden-ratio distance ladders to column and cluster-centre pair distances, classify the "
             "cluster tiling and analyse the power spectrum. Writes columns.csv, motifs.csv, ladder.csv, "
-            "pair_peaks.csv, tiles.csv, network.csv, spots.csv, results.xlsx, figures/ and summary.json into DIR. "
+            "pair_peaks.csv, tiles.csv, network.csv, spots.csv, results.xlsx, figures/, summary.json and "
+            "parameters.toml (repeat the run with --params DIR/parameters.toml) into DIR. "
             "Every automatic choice is recorded in summary.json and can be overridden below."
         ),
     )
@@ -140,6 +199,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "formats with the 'vendor' extra")
     a.add_argument("--out", type=Path, required=True, metavar="DIR", help="results folder (must not exist or be empty)")
     a.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    a.add_argument("--params", type=Path, metavar="FILE",
+                   help="parameters file (the parameters.toml every run writes) to repeat a run; options given on "
+                   "the command line as well override the file's values")
     cal = a.add_argument_group("calibration and image")
     cal.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
     cal.add_argument("--frame", type=int, metavar="K", help="for a stack: analyse frame K (0-based)")
@@ -180,6 +242,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=_seed, default=0, help="seed for bootstraps and mixture fits (default 0)")
+    _add_scale_out_options(a)
     a.add_argument("--quiet", action="store_true", help="no progress messages")
     a.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
 
@@ -194,6 +257,32 @@ def build_parser() -> argparse.ArgumentParser:
                    help="columns darker than the background (HRTEM-like contrast), for the automatic scale; "
                    "default: bright (HAADF)")
     i.add_argument("--debug", action="store_true", help="show the full traceback and the readers' messages on failure")
+
+    b = sub.add_parser(
+        "batch",
+        help="analyse many micrographs with the same parameters and compare them",
+        description=(
+            "Analyse every image (files, folders, glob patterns) with the same parameters into DIR/<image stem>/, "
+            "then write DIR/comparison.csv, DIR/comparison.xlsx and DIR/figures/comparison.png|svg: one row per "
+            "image and region with the status ('ok' or the error), column counts and density, species fractions, "
+            "ring and pentagon counts, ladder base and verdict, thick/thin ratio with its uncertainty, Fourier "
+            "order and distortion, notes. A failed image is recorded and skipped; running the same command again "
+            "skips finished images (resume)."
+        ),
+    )
+    b.add_argument("inputs", nargs="+", metavar="INPUT", help="image files, folders or glob patterns")
+    b.add_argument("--out", type=Path, required=True, metavar="DIR", help="batch folder (created if needed)")
+    b.add_argument("--params", type=Path, metavar="FILE", help="parameters file (parameters.toml) for every image")
+    b.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm for every image; overrides "
+                   "the files and the parameters file")
+    b.add_argument("--frame", type=int, metavar="K", help="for stacks: analyse frame K")
+    b.add_argument("--frames", type=_frames, metavar="A:B", help="for stacks: analyse the mean of frames A..B-1")
+    b.add_argument("--rerun", action="store_true",
+                   help="analyse every image again and replace its sub-folder (default: skip finished images)")
+    b.add_argument("--no-figures", action="store_true", help="no per-image figures (the comparison figure is drawn)")
+    _add_scale_out_options(b)
+    b.add_argument("--quiet", action="store_true", help="no progress bar")
+    b.add_argument("--debug", action="store_true", help="show the full traceback on failure")
 
     sub.add_parser("samples", help="list the bundled synthetic sample micrographs",
                    description="Print the paths of the synthetic decagonal micrographs shipped with Tenfold, with "
@@ -269,19 +358,68 @@ def _install_signal_handlers() -> dict:
     return old
 
 
+#: command-line option (argparse dest) -> the Parameters fields it sets
+_DEST_FIELDS = {
+    "pixel_size": ("pixel_size_nm",), "dark_columns": ("dark_columns",), "species": ("n_species",),
+    "flatten": ("flatten",), "min_mass": ("min_mass",), "ring_order": ("ring_order",),
+    "radius_tolerance": ("radius_tolerance",), "no_pentagons": ("pentagons",), "half_step": ("half_step",),
+    "no_fourier": ("fourier",), "seed": ("rng",),
+    **{dest: (f"{base}_nm", f"{base}_px") for dest, base in (
+        ("column_diameter", "column_diameter"), ("column_spacing", "column_spacing"), ("ring_radius", "ring_radius"),
+        ("ladder_range", "ladder_r_max"), ("ladder_base", "d0"), ("tiling_edge", "tiling_edge"))},
+}
+
+
+def _explicit_options(parser: argparse.ArgumentParser, argv: list[str] | None, command: str) -> set[str]:
+    """The dests of the options actually typed after ``command`` (a default is not a choice)."""
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    sp = sub.choices[command]
+    saved = [(a, a.default, a.required) for a in sp._actions]
+    try:
+        for a in sp._actions:
+            a.default = argparse.SUPPRESS
+            a.required = False
+        ns, _ = parser.parse_known_args(argv)
+    finally:
+        for a, d, r in saved:
+            a.default, a.required = d, r
+    return set(vars(ns)) - {"command"}
+
+
+def _params_with_file(args):
+    """Parameters from ``--params FILE`` (if given) with the options typed on the command line on top."""
+    from .pipeline import Parameters
+
+    cli = _params(args).validate()
+    if getattr(args, "params", None) is None:
+        return cli
+    from ._params_file import load_parameters
+
+    try:
+        base = load_parameters(args.params)
+    except TenfoldInputError as exc:
+        raise TenfoldInputError(f"--params {exc}") from None
+    explicit = getattr(args, "explicit_options", set())
+    merged = base.to_dict()
+    for dest in explicit & set(_DEST_FIELDS):
+        for name in _DEST_FIELDS[dest]:  # a length typed in one unit replaces the file's value in either unit
+            merged[name] = getattr(cli, name)
+    return Parameters.from_dict(merged).validate()
+
+
 def _analyze(args) -> int:
     from .export import write_results
-    from .io import read_micrograph
     from .pipeline import run_pipeline
 
     from ._outdir import check_output_folder
 
     # before any work: fail in a second, not after a minute
     check_output_folder(args.out, overwrite=args.overwrite, inputs=[args.image], flag="--out")
-    params = _params(args).validate()
+    params = _params_with_file(args)
+    execution = _execution(args)
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
-    mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+    mg = _read_for(args, execution)
     regions = None
     if args.region:
         from .region import parse_region
@@ -292,7 +430,7 @@ def _analyze(args) -> int:
             reg = parse_region(text, pixel_size_nm=ps, unit=args.region_unit)
             reg.label = k
             regions.append(reg)
-    result = run_pipeline(mg, params, regions=regions, progress=prog)
+    result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution)
     prog(1.0, f"writing {args.out}")
     write_results(result, args.out, overwrite=args.overwrite, figures=not args.no_figures)
     s = result.summary
@@ -312,6 +450,51 @@ def _na_why(summary: dict) -> str:
     """'n/a' for an empty tiling, pointing at the note that says why when there is one."""
     why = [n for n in summary.get("notes", []) if n.startswith("tiling:")]
     return "n/a (see the tiling note below)" if why else "n/a"
+
+
+def _batch(args) -> int:
+    from .batch import run_batch
+    from .pipeline import Parameters
+
+    params = Parameters()
+    if args.params is not None:
+        from ._params_file import load_parameters
+
+        try:
+            params = load_parameters(args.params)
+        except TenfoldInputError as exc:
+            raise TenfoldInputError(f"--params {exc}") from None
+    if args.pixel_size is not None:
+        params.pixel_size_nm = args.pixel_size
+    params.validate()
+    from tqdm import tqdm
+
+    bar = None
+
+    def progress(done: int, total: int, message: str) -> None:
+        nonlocal bar
+        if bar is None:
+            bar = tqdm(total=total, initial=done, unit="image", file=sys.stderr, disable=args.quiet,
+                       dynamic_ncols=True)
+            bar.set_postfix_str(message[:60])
+            return
+        bar.update(done - bar.n)
+        bar.set_postfix_str(message[:60])
+
+    try:
+        table = run_batch(args.inputs, args.out, params, frame=args.frame, frame_range=args.frames,
+                          rerun=args.rerun, figures=not args.no_figures, execution=_execution(args),
+                          progress=progress)
+    finally:
+        if bar is not None:
+            bar.close()
+    failed = table[table["status"] != "ok"]
+    n_img = table["image"].nunique()
+    print(f"{n_img - failed['image'].nunique()} of {n_img} images analysed; comparison in "
+          f"{args.out / 'comparison.csv'}")
+    for _, row in failed.iterrows():
+        print(f"failed: {row['image']}: {row['status']}", file=sys.stderr)
+    return 0 if failed.empty else 1
 
 
 def _info(args) -> int:
@@ -343,7 +526,9 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     debug = getattr(args, "debug", False)
-    handler = {"analyze": _analyze, "info": _info, "samples": _samples}[args.command]
+    if args.command == "analyze":
+        args.explicit_options = _explicit_options(parser, argv, args.command)
+    handler = {"analyze": _analyze, "batch": _batch, "info": _info, "samples": _samples}[args.command]
 
     def _show(message, category, filename, lineno, file=None, line=None):
         print(f"warning: {_flag_names(str(message))}", file=sys.stderr)

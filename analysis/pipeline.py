@@ -127,6 +127,8 @@ class Parameters:
             raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
         if not (0 < self.radius_tolerance < 0.5):
             raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
+        if not (isinstance(self.rng, (int, np.integer)) and 0 <= self.rng < 2**63):
+            raise TenfoldInputError(f"parameter rng must be a whole number >= 0 (a seed), got {self.rng!r}")
         return self
 
 
@@ -360,6 +362,7 @@ def run_pipeline(
     *,
     regions=None,
     progress: ProgressCallback | None = None,
+    execution=None,
 ) -> AnalysisResult:
     """Run every stage on one micrograph.
 
@@ -373,6 +376,9 @@ def run_pipeline(
         Analyse only inside these regions (labels go to the ``region`` columns); None = whole image (label 0).
     progress : callable(fraction, message) -> bool | None, optional
         Called as the run advances; returning False cancels (raises :class:`Cancelled`).
+    execution : parallel.Execution, optional
+        Tiles, workers and scheduler for the column finding (:mod:`tenfold.analysis.parallel`); default: untiled
+        up to ``AUTO_TILE_ABOVE_PX`` on a side, tiled above, serial.
 
     Returns
     -------
@@ -397,22 +403,59 @@ def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress) 
         work, work_regions, offset = crop_to_regions(micrograph, regions)
         if work is not micrograph:
             with _guards.small_image_hint(work.data.shape):
-                result = _run(work, params, work_regions, progress)
+                result = _run(work, params, work_regions, progress, execution)
             shift_result(result, micrograph, offset)
             return result
     with _guards.small_image_hint(micrograph.data.shape):
-        return _run(micrograph, params, regions, progress)
+        return _run(micrograph, params, regions, progress, execution)
 
 
-def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:
+def _column_finder(micrograph: Micrograph, params: Parameters, execution):
+    """(finder, tiled): find_columns, or its tiled version when the image is large or tiles were asked for."""
     from .columns import find_columns
+    from .parallel import Execution, find_columns_tiled
 
+    execution = execution or Execution(workers=1)
+    tile = execution.tiles_for(micrograph.data.shape)
+    if tile is None:
+        return find_columns, False
+    if params.flatten:
+        warnings.warn(f"the {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px image is analysed untiled "
+                      "because flatten fits one background to the whole image; this may need a lot of memory "
+                      "(leave flatten off for a tiled run)", TenfoldWarning, stacklevel=4)
+        return find_columns, False
+
+    def tiled(image, **kw):
+        return find_columns_tiled(image, tile_size=tile, execution=execution, overlap=execution.overlap, **kw)
+
+    return tiled, True
+
+
+#: the Fourier stage of a tiled run looks at the central crop of this size (an FFT of a 16k scan needs 4 GB)
+FOURIER_CROP_PX = 4096
+
+
+def _fourier_input(micrograph: Micrograph, tiled: bool):
+    rows, cols = micrograph.data.shape
+    if not tiled or max(rows, cols) <= FOURIER_CROP_PX:
+        return micrograph.data, micrograph.valid, None
+    h, w = min(rows, FOURIER_CROP_PX), min(cols, FOURIER_CROP_PX)
+    r0, c0 = (rows - h) // 2, (cols - w) // 2
+    data = np.asarray(micrograph.data[r0:r0 + h, c0:c0 + w], dtype=np.float32)
+    valid = np.asarray(micrograph.valid[r0:r0 + h, c0:c0 + w], dtype=bool) & np.isfinite(data)
+    note = (f"Fourier analysis on the central {h} x {w} px crop of the {rows} x {cols} px image (tiled run); "
+            "spots and distortion describe that part")
+    return data, valid, note
+
+
+def _run(micrograph: Micrograph, params: Parameters, regions, progress, execution=None) -> AnalysisResult:
     meta = micrograph.meta
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
     result.summary = _base_summary(meta, params)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", TenfoldWarning)
+        find_columns, tiled = _column_finder(micrograph, params, execution)
         report(progress, 0.0, "finding atomic columns")
         cols, c_info = find_columns(
             micrograph.data,
@@ -440,7 +483,10 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
             report(progress, 0.9, "power spectrum")
             from .fourier import analyze_fourier
 
-            spots, f_info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps)
+            f_data, f_valid, f_note = _fourier_input(micrograph, tiled)
+            spots, f_info = analyze_fourier(f_data, valid=f_valid, pixel_size_nm=ps)
+            if f_note:
+                f_info = {**f_info, "notes": [*(f_info.get("notes") or []), f_note], "crop_note": f_note}
             result.tables["spots"] = spots
             result.summary["fourier"] = f_info
         report(progress, 1.0, "analysis done")

@@ -162,7 +162,8 @@ def test_progress_per_file_and_cancel(tmp_path, result, own_figures):
     fractions = [f for f, _ in calls]
     assert fractions == sorted(fractions) and fractions[0] == 0.0 and fractions[-1] == 1.0
     assert any("columns.csv" in m for _, m in calls) and any("results.xlsx" in m for _, m in calls)
-    assert len(calls) == len(S.TABLES) + 1 + 3 + 1  # tables, one curve, summary/provenance/workbook, done
+    # tables, one curve, summary/provenance/parameters/workbook, done
+    assert len(calls) == len(S.TABLES) + 1 + 4 + 1
 
     seen = []
 
