@@ -389,12 +389,12 @@ def run_pipeline(
     params = (params or Parameters()).validate()
     micrograph = _calibrated(micrograph, params)
     try:
-        return _run_regions(micrograph, params, regions, progress)
+        return _run_regions(micrograph, params, regions, progress, execution)
     except TenfoldInputError as exc:  # the one line names the file, whichever stage raised
         raise _guards.with_file(exc, micrograph.meta.path) from None
 
 
-def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress) -> AnalysisResult:
+def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress, execution=None) -> AnalysisResult:
     _guards.check_regions(regions, micrograph.data.shape)
     if regions:
         # small regions of a large image: analyse their bounding box (with a margin) and shift the tables back
