@@ -21,6 +21,8 @@ D. R. Nelson and B. I. Halperin, Phys. Rev. B 19 (1979) 2457 (bond-orientational
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import pandas as pd
 from scipy import ndimage
@@ -315,6 +317,7 @@ def analyze_fourier(
             "axis_ratio": ratio,
             "major_axis_deg": angle,
             "shells_used": [sh["shell"] for sh in used],
+            "metric": metric.tolist(),
             "warning": bool(warn),
         }
         if warn:
@@ -326,3 +329,348 @@ def analyze_fourier(
     else:
         info["notes"].append("too few symmetric Fourier spot shells: scan distortion not estimated")
     return spots, info
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Decagonal indexing, scan distortion and phason strain from the spots
+# ----------------------------------------------------------------------------------------------------------------
+
+#: Largest |h_j| searched when indexing (11^4 candidate index vectors).
+_H_MAX = 5
+#: Index tolerances (fraction of |k|, plus 3/4 of a frequency step) of the successive passes, and whether the
+#: phason term is fitted in that pass: looser first, then tight (the start is already corrected for the shell
+#: ellipticity, so the scan distortion is known to ~1e-3 from the beginning; the dense Z-module
+#: offers a candidate near any point, so a loose final tolerance would pick wrong indices at large |k|).
+_TOLERANCES = ((0.012, False), (0.006, False), (0.004, False), (0.004, True))
+#: Largest |g_perp| / a* accepted for an index vector (spots farther out in perpendicular space are too weak to
+#: be seen in an image; the bound also keeps the Z-module's dense set of candidates finite).
+_GPERP_MAX = 4.0
+
+
+@functools.lru_cache(maxsize=4)
+def _candidates(h_max: int = _H_MAX) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """All index vectors h (4 integers) with their canonical g_par and g_perp (basis length 1, orientation 0)."""
+    from ._pentagrid import E_PAR, E_PERP
+
+    r = np.arange(-h_max, h_max + 1)
+    h = np.stack(np.meshgrid(r, r, r, r, indexing="ij"), axis=-1).reshape(-1, 4)
+    h = h[np.any(h != 0, axis=1)]
+    gpar = h @ E_PAR[1:]
+    gperp = h @ E_PERP[1:]
+    keep = np.hypot(gperp[:, 0], gperp[:, 1]) <= _GPERP_MAX
+    return h[keep], gpar[keep], gperp[keep]
+
+
+def _assign(k: np.ndarray, b: np.ndarray, cand, tol_rel: float, tol_abs: float) -> tuple[np.ndarray, np.ndarray]:
+    """Index of the best candidate per spot (-1 if none within tolerance): the smallest |g_perp| among those
+    predicted within ``tol_rel |k| + tol_abs`` of the spot. Returns (candidate row, distance).
+
+    Predictions use B alone: a phason strain moves spots by ``W^T g_perp``, far less than the tolerance for the
+    small-|g_perp| spots that are seen, while letting a fitted C steer the assignment would let wrong
+    high-|g_perp| indices confirm a spurious strain."""
+    from scipy.spatial import cKDTree
+
+    h, gpar, gperp = cand
+    pred = gpar @ b.T
+    tree = cKDTree(pred)
+    kk = np.hypot(k[:, 0], k[:, 1])
+    radius = tol_rel * kk + tol_abs
+    nn = min(48, len(pred))
+    dist, idx = tree.query(k, k=nn)
+    inside = dist <= radius[:, None]
+    perp = np.hypot(gperp[idx, 0], gperp[idx, 1])
+    # smallest |g_perp| first; among equal |g_perp| (same star) the nearest
+    score = np.where(inside, perp + 1e-6 * dist / np.maximum(radius[:, None], 1e-12), np.inf)
+    best = np.argmin(score, axis=1)
+    rows = np.arange(len(k))
+    found = np.isfinite(score[rows, best])
+    return np.where(found, idx[rows, best], -1), np.where(found, dist[rows, best], np.nan)
+
+
+def _fit_affine(k, gpar, gperp, weight, phason: bool):
+    """Least squares ``k = B g_par + C g_perp`` (C = 0 without phason); parameter vectors and covariances."""
+    x = np.hstack([gpar, gperp]) if phason else gpar
+    sw = np.sqrt(weight)[:, None]
+    xw = x * sw
+    coefs, covs = [], []
+    for axis in range(2):
+        yw = k[:, axis] * sw[:, 0]
+        sol, *_ = np.linalg.lstsq(xw, yw, rcond=None)
+        res = yw - xw @ sol
+        dof = max(len(yw) - x.shape[1], 1)
+        cov = np.linalg.pinv(xw.T @ xw) * float(res @ res) / dof
+        coefs.append(sol)
+        covs.append(cov)
+    p = x.shape[1]
+    b = np.array([coefs[0][:2], coefs[1][:2]])
+    c = np.array([coefs[0][2:4], coefs[1][2:4]]) if phason else np.zeros((2, 2))
+    return b, c, coefs, covs, p
+
+
+def _rq_upper(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``h = U Q`` with U upper triangular (positive diagonal) and Q a rotation (2x2)."""
+    # h = U Q  <=>  h^-1 = Q^T U^-1: a QR decomposition of h^-1 ... done directly for 2x2 with Givens.
+    a, bb = h[1, 0], h[1, 1]
+    r = np.hypot(a, bb)
+    q = np.array([[bb / r, -a / r], [a / r, bb / r]])  # rotation with (h q^T)[1, 0] = 0
+    u = h @ q.T
+    if u[0, 0] < 0:  # a reflection cannot be told from the crystal; keep det Q = +1 and U's diagonal positive
+        u = u.copy()
+    return u, q
+
+
+def _decompose(b: np.ndarray, c: np.ndarray) -> dict:
+    """Basis length, orientation, distortion (unit-determinant correction) and phason strain from (B, C)."""
+    det = float(np.linalg.det(b))
+    a_star = float(np.sqrt(abs(det)))
+    h = np.linalg.inv(b).T  # real-space map from the canonical frame to the image: U Q / a*
+    u, q = _rq_upper(h * a_star)
+    u = u / np.sqrt(abs(np.linalg.det(u)))
+    corr = np.linalg.inv(u)
+    theta = float(np.degrees(np.arctan2(q[1, 0], q[0, 0])))
+    strain = c.T @ u / a_star
+    return {"a_star": a_star, "theta": theta, "u": u, "correction": corr, "strain": strain, "det_sign": np.sign(det)}
+
+
+def _fit_summary(k, cand, rows, weight, phason, n_draws, rng):
+    h, gpar, gperp = cand
+    b, c, coefs, covs, p = _fit_affine(k, gpar[rows], gperp[rows], weight, phason)
+    best = _decompose(b, c)
+    gen = np.random.default_rng(rng)
+    draws = [gen.multivariate_normal(coefs[a], covs[a], size=n_draws, check_valid="ignore") for a in range(2)]
+    corr_s, strain_s, sv_s, theta_s, astar_s = [], [], [], [], []
+    for i in range(n_draws):  # a few hundred parameter draws, not a loop over spots
+        bi = np.array([draws[0][i, :2], draws[1][i, :2]])
+        ci = np.array([draws[0][i, 2:4], draws[1][i, 2:4]]) if phason else np.zeros((2, 2))
+        d = _decompose(bi, ci)
+        corr_s.append(d["correction"])
+        strain_s.append(d["strain"])
+        sv_s.append(np.linalg.svd(d["strain"], compute_uv=False))
+        theta_s.append(d["theta"])
+        astar_s.append(d["a_star"])
+    pred = gpar[rows] @ b.T + gperp[rows] @ c.T
+    return b, c, best, {
+        "correction_se": np.std(corr_s, axis=0),
+        "strain_se": np.std(strain_s, axis=0),
+        "sv_se": np.std(sv_s, axis=0),
+        "theta_se": float(np.std(theta_s)),
+        "a_star_se": float(np.std(astar_s)),
+        "residual": np.hypot(*(k - pred).T),
+    }
+
+
+def index_decagonal(
+    spots: pd.DataFrame,
+    *,
+    n_image: int,
+    pixel_size_nm: float | None = None,
+    edge_px: float | None = None,
+    orientation_deg: float | None = None,
+    metric: np.ndarray | None = None,
+    phason: bool = True,
+    n_draws: int = 300,
+    rng: np.random.Generator | int | None = 0,
+) -> tuple[pd.DataFrame, dict]:
+    """Index Fourier spots on the decagonal basis and fit scan distortion and linear phason strain.
+
+    Every spot gets four integers ``h1..h4`` with ``g = sum_j h_j a*_j``, the basis ``a*_j = a* e_j`` four unit
+    vectors at ``orientation + 72 j`` deg (j = 1..4; the fifth, at ``orientation``, is minus their sum). Its
+    perpendicular-space partner is ``g_perp = a* sum_j h_j e_perp_j`` with ``e_perp_j`` at ``144 j`` deg. The
+    observed positions are then fitted by least squares as ``k = B g_par + C g_perp`` (canonical ``g``: a* = 1,
+    orientation 0), which is linear in the eight entries of B and C:
+
+    * ``B = a* U^-T R(orientation)``: basis length, orientation and the scan distortion ``U`` (upper triangular,
+      unit determinant: the fast-scan axis x keeps its direction, so U holds the x/y scale difference and the
+      shear). The correction ``U^-1`` maps measured positions to corrected ones.
+    * ``C = a* U^-T W^T``: a linear phason strain ``x_perp = W x_par`` shifts every spot by ``W^T g_perp``
+      (Lubensky, Socolar, Steinhardt, Bancel & Heiney 1986), so ``W = C^T U / a*`` in the corrected image frame.
+
+    Parameters
+    ----------
+    spots : DataFrame
+        ``_schema.SPOTS`` table (``kx_per_px``, ``ky_per_px``, ``strength``).
+    n_image : int
+        Side of the square the spectrum was taken on, px (one frequency step is ``1 / n_image``).
+    pixel_size_nm : float, optional
+        For the ``*_nm_inv`` columns (NaN without it).
+    edge_px : float, optional
+        Tiling edge length in px (from the cluster network). Fixes the tau-scaling of the basis: the 5-D lattice
+        with edge L has reciprocal basis ``a* = 1 / (5/2 L)``; the basis is the tau^n multiple of the spot
+        star nearest to it. Without it the convention is intensity-based (see Notes) and the phason strain is only
+        defined up to factors of tau^2.
+    orientation_deg : float, optional
+        Preferred orientation (e.g. of the real-space edges); the fitted one is reported in the 36-deg period
+        nearest to it so both sides label the five directions alike.
+    metric : (2, 2) array, optional
+        Shell ellipse ``k^T M k = const`` with det M = 1 (from :func:`analyze_fourier`): the starting basis is
+        distorted by ``M^-1/2`` so that the first pass already allows for the scan distortion.
+    phason : bool
+        Fit C (default True); False fits B alone.
+    n_draws : int
+        Parameter draws for the uncertainties of derived quantities (from the least-squares covariance).
+    rng : Generator or int seed
+        For those draws.
+
+    Returns
+    -------
+    spots : DataFrame
+        The input with ``h1..h4``, ``indexed``, ``index_error`` (|k - k_fit| / |k|), ``g_par_nm_inv``,
+        ``g_perp_nm_inv``, ``g_perp_rel`` (|g_perp| / a*).
+    info : dict
+        JSON-safe: ``ok``, ``n_indexed``, ``n_spots``, ``basis_per_px``, ``basis_nm_inv``, ``orientation_deg``
+        (+ ``_se``), ``tau_scale`` ('real_space' or 'intensity'), ``distortion_matrix`` (2x2, unit determinant) and
+        ``distortion_matrix_se``, ``scale_x_over_y``, ``shear``, ``phason`` (``strain_matrix``,
+        ``strain_matrix_se``, ``singular_values``, ``singular_values_se``, ``n_used``), ``rms_index_error``, ``notes``.
+
+    Notes
+    -----
+    The Fourier module of a decagonal quasicrystal is closed under multiplication by tau, so the basis length is
+    fixed only up to tau^n; |g_perp| of a given spot grows by tau^2 with every step up. With the real-space edge
+    the choice is physical. Without it, the strongest spot star is indexed with |g_perp| / |g_par| in
+    [tau^-2, 1) (a convention of this program; the strongest stars of decorated Penrose tilings commonly have the
+    smallest perpendicular component, e.g. Steurer & Deloudi, Crystallography of Quasicrystals, Springer 2009,
+    from memory).
+
+    References
+    ----------
+    T. C. Lubensky, J. E. S. Socolar, P. J. Steinhardt, P. A. Bancel, P. A. Heiney, "Distortion and peak
+    broadening in quasicrystal diffraction patterns", Phys. Rev. Lett. 57 (1986) 1440.
+    """
+    from ._pentagrid import TAU
+
+    out = spots.copy()
+    for j in range(1, 5):
+        out[f"h{j}"] = 0
+    out["indexed"] = False
+    for name in ("index_error", "g_par_nm_inv", "g_perp_nm_inv", "g_perp_rel"):
+        out[name] = np.nan
+    info: dict = {"ok": False, "n_spots": int(len(spots)), "n_indexed": 0, "notes": []}
+    if len(spots) < 8:
+        info["notes"].append(f"decagonal indexing needs at least 8 spots, found {len(spots)}")
+        return out, info
+    k = spots[["kx_per_px", "ky_per_px"]].to_numpy(dtype=float)
+    w = spots["strength"].to_numpy(dtype=float)
+    kk = np.hypot(k[:, 0], k[:, 1])
+    ang = np.arctan2(k[:, 1], k[:, 0])
+    # starting basis: the strongest spot's star gives length and orientation (10-fold phase of the strong spots)
+    strongest = int(np.argmax(w))
+    k0 = kk[strongest]
+    near = np.abs(kk - k0) < 0.03 * k0
+    theta0 = np.angle(np.sum(w[near] * np.exp(10j * ang[near]))) / 10.0
+    if orientation_deg is not None:
+        ref = np.radians(orientation_deg)
+        theta0 = ref + (theta0 - ref + np.pi / 10) % (np.pi / 5) - np.pi / 10
+    step = 1.0 / n_image
+    if edge_px is not None and edge_px > 0:
+        # the 5-D lattice with tiling edge L has the reciprocal basis a* = 1 / (5/2 L): fixed, only orientation
+        # (basis star along the strongest spots or halfway between them) is searched
+        a_ref = 1.0 / (2.5 * float(edge_px))
+        h_max = int(np.clip(np.ceil(np.percentile(kk, 90) / a_ref), _H_MAX, 12))
+        starts = [(a_ref, theta0), (a_ref, theta0 + np.pi / 10)]
+        info["tau_scale"] = "real_space"
+    else:
+        # the strongest star lies along the basis directions (|g| = a* tau^n) or halfway between them
+        # (|g| = 2 cos 18 a* tau^n, e.g. e_1 - e_4): both families of starting bases are tried
+        h_max = _H_MAX
+        starts = [(k0 * TAU**m, theta0) for m in (0, -1, 1)]
+        starts += [(k0 / (2 * np.cos(np.pi / 10)) * TAU**m, theta0 + np.pi / 10) for m in (0, -1, 1)]
+        info["tau_scale"] = "intensity"
+    cand = _candidates(h_max)
+    best = None
+    pre = np.eye(2)
+    if metric is not None:
+        ev, evec = np.linalg.eigh(np.asarray(metric, dtype=float))
+        if np.all(ev > 0):
+            pre = evec @ np.diag(ev**-0.5) @ evec.T
+            pre /= np.sqrt(np.linalg.det(pre))
+    for a0, t0 in starts:
+        rot = np.array([[np.cos(t0), -np.sin(t0)], [np.sin(t0), np.cos(t0)]])
+        b, c = a0 * pre @ rot, np.zeros((2, 2))
+        # loose first (scan distortion of a few % is not yet known), strongest spots only, then tighter on all
+        for rel, use_phason in _TOLERANCES:
+            rows, dist = _assign(k, b, cand, rel, 0.75 * step)
+            ok = rows >= 0
+            if ok.sum() < 8:
+                break
+            fit_phason = use_phason and phason and ok.sum() >= 12
+            b, c, *_ = _fit_affine(k[ok], cand[1][rows[ok]], cand[2][rows[ok]], w[ok], fit_phason)
+        # strong spots sit close to the origin of perpendicular space: a wrong basis indexes them at large |g_perp|
+        perp = np.hypot(*cand[2][rows[ok]].T)
+        score = float(np.sum(w[ok] * np.exp(-0.5 * perp**2))) if ok.sum() >= 8 else -1.0
+        if info["tau_scale"] == "real_space" and abs(np.sqrt(abs(np.linalg.det(b))) / a0 - 1) > 0.03:
+            score = -1.0  # drifted to another basis of the module (e.g. the index-5 sublattice of strong spots)
+        if score > 0 and (best is None or score > best[0]):
+            best = (score, b, c)
+    if best is None:
+        info["notes"].append("decagonal indexing failed: fewer than 8 spots fit the ten-fold basis")
+        return out, info
+    _, b, c = best
+    if info["tau_scale"] == "intensity":
+        rows, _ = _assign(k, b, cand, _TOLERANCES[-1][0], 0.75 * step)
+        r = rows[strongest]
+        ratio = (np.hypot(*cand[2][r]) / np.hypot(*cand[1][r])) if r >= 0 else 0.5
+        # |g_perp| / |g_par| of a spot scales by tau^2 per step up of a*: bring the strongest into [tau^-2, 1)
+        n_up = -(int(np.floor(np.log(ratio) / np.log(TAU**2))) + 1)
+        if n_up:  # a* -> a* tau^n: B scales by tau^n and C by (-1/tau)^n in the new indices
+            b = b * TAU**n_up
+            c = c * (-1.0 / TAU) ** n_up
+        info["notes"].append(
+            "decagonal basis length chosen by the intensity convention (no tiling edge given): the phason strain "
+            "from the spots is defined only up to factors of tau^2 = 2.618"
+        )
+    phason_fit = phason
+    for _ in range(3):
+        rows, dist = _assign(k, b, cand, _TOLERANCES[-1][0], 0.75 * step)
+        ok = rows >= 0
+        if ok.sum() < 8:
+            info["notes"].append("decagonal indexing failed after the tau-scale choice")
+            return out, info
+        phason_fit = phason and ok.sum() >= 12
+        b, c, *_ = _fit_affine(k[ok], cand[1][rows[ok]], cand[2][rows[ok]], w[ok], phason_fit)
+    b, c, dec, unc = _fit_summary(k[ok], cand, rows[ok], w[ok], phason_fit, n_draws, rng)
+    theta = dec["theta"]
+    h_idx = cand[0][rows[ok]]
+    for j in range(4):
+        col = np.zeros(len(out), dtype=np.int64)
+        col[ok] = h_idx[:, j]
+        out[f"h{j + 1}"] = col
+    out["indexed"] = ok
+    a_star = dec["a_star"]
+    gpar_abs = np.full(len(out), np.nan)
+    gperp_abs = np.full(len(out), np.nan)
+    gpar_abs[ok] = a_star * np.hypot(*cand[1][rows[ok]].T)
+    gperp_abs[ok] = a_star * np.hypot(*cand[2][rows[ok]].T)
+    err = np.full(len(out), np.nan)
+    err[ok] = unc["residual"] / kk[ok]
+    out["index_error"] = err
+    out["g_perp_rel"] = gperp_abs / a_star
+    ps = pixel_size_nm
+    out["g_par_nm_inv"] = gpar_abs / ps if ps else np.nan
+    out["g_perp_nm_inv"] = gperp_abs / ps if ps else np.nan
+    corr = dec["correction"]
+    strain = dec["strain"]
+    sv = np.linalg.svd(strain, compute_uv=False)
+    u = dec["u"]
+    info.update({
+        "ok": True,
+        "n_indexed": int(ok.sum()),
+        "basis_per_px": a_star,
+        "basis_per_px_se": unc["a_star_se"],
+        "basis_nm_inv": (a_star / ps) if ps else None,
+        "orientation_deg": float(theta),
+        "orientation_deg_se": unc["theta_se"],
+        "distortion_matrix": corr.tolist(),
+        "distortion_matrix_se": unc["correction_se"].tolist(),
+        "scale_x_over_y": float(u[0, 0] / u[1, 1]),
+        "shear": float(u[0, 1] / u[1, 1]),
+        "rms_index_error": float(np.sqrt(np.mean(err[ok] ** 2))),
+        "phason": {
+            "strain_matrix": strain.tolist(),
+            "strain_matrix_se": unc["strain_se"].tolist(),
+            "singular_values": sv.tolist(),
+            "singular_values_se": unc["sv_se"].tolist(),
+            "n_used": int(ok.sum()),
+            "fitted": bool(phason_fit),
+        },
+    })
+    return out, info
