@@ -29,6 +29,7 @@ __all__ = [
     "TILES",
     "NETWORK",
     "SPOTS",
+    "PHASON_MAP",
     "TABLES",
     "empty_table",
     "conform",
@@ -162,6 +163,34 @@ SPOTS = _fields(
     ("angle_deg", "float64", "deg", "direction of k, atan2(ky, kx), y down"),
     ("strength", "float64", "", "peak power over local background"),
     ("shell", "int64", "", "index of the |k| shell the spot belongs to (0 = innermost strong shell)"),
+    ("h1", "int64", "", "decagonal index on a*_1 (basis a*_j at orientation + 72 j deg; a*_0 = -(a*_1+..+a*_4)); 0 when not indexed"),
+    ("h2", "int64", "", "decagonal index on a*_2"),
+    ("h3", "int64", "", "decagonal index on a*_3"),
+    ("h4", "int64", "", "decagonal index on a*_4"),
+    ("indexed", "bool", "", "the spot was given decagonal indices"),
+    ("index_error", "float64", "", "|k - k_fit| / |k| of the indexed spot; NaN when not indexed"),
+    ("g_par_nm_inv", "float64", "1/nm", "|g_par| of the index (a* |sum h_j e_j|); NaN when uncalibrated or not indexed"),
+    ("g_perp_nm_inv", "float64", "1/nm", "|g_perp| of the index (a* |sum h_j e_perp_j|, e_perp_j at 144 j deg); NaN when uncalibrated or not indexed"),
+    ("g_perp_rel", "float64", "", "|g_perp| / a* (dimensionless); NaN when not indexed"),
+)
+
+#: One row per lifted tiling vertex (file DIR/phason_map.csv): the real-space phason analysis.
+PHASON_MAP = _fields(
+    ("motif_id", "int64", "", "cluster (ring or pentagon) the vertex is"),
+    ("x_px", "float64", "px", "vertex position x (corrected frame when the distortion was corrected)"),
+    ("y_px", "float64", "px", "vertex position y"),
+    ("x_nm", "float64", "nm", "x; NaN when uncalibrated"),
+    ("y_nm", "float64", "nm", "y; NaN when uncalibrated"),
+    ("k0", "int64", "", "integer coordinate along e_0 (edge direction at the tiling orientation)"),
+    ("k1", "int64", "", "integer coordinate along e_1 (orientation + 72 deg)"),
+    ("k2", "int64", "", "integer coordinate along e_2 (orientation + 144 deg)"),
+    ("k3", "int64", "", "integer coordinate along e_3 (orientation + 216 deg)"),
+    ("k4", "int64", "", "integer coordinate along e_4 (orientation + 288 deg)"),
+    ("x_perp", "float64", "L", "perpendicular-space position sum_j k_j e_perp_j, x component, in edge lengths"),
+    ("y_perp", "float64", "L", "perpendicular-space position, y component, in edge lengths"),
+    ("dx_perp", "float64", "L", "local phason field: x_perp minus the fitted linear strain, in edge lengths"),
+    ("dy_perp", "float64", "L", "local phason field, y component"),
+    ("flip", "bool", "", "residual outside the acceptance window of the ideal tiling (phason-flip site)"),
 )
 
 TABLES: dict[str, tuple[Field, ...]] = {
@@ -172,6 +201,7 @@ TABLES: dict[str, tuple[Field, ...]] = {
     "tiles": TILES,
     "network": NETWORK,
     "spots": SPOTS,
+    "phason_map": PHASON_MAP,
 }
 
 
@@ -216,7 +246,7 @@ def schema_markdown() -> str:
         "",
     ]
     files = {"columns": "columns.csv", "motifs": "motifs.csv", "ladder": "ladder.csv", "pair_peaks": "pair_peaks.csv",
-             "tiles": "tiles.csv", "network": "network.csv", "spots": "spots.csv"}
+             "tiles": "tiles.csv", "network": "network.csv", "spots": "spots.csv", "phason_map": "phason_map.csv"}
     for key, fields in TABLES.items():
         lines += [f"## {key} (`{files[key]}`, workbook sheet `{key}`)", "", "| column | dtype | unit | meaning |",
                   "| --- | --- | --- | --- |"]

@@ -30,7 +30,8 @@ from scipy import ndimage
 from ._errors import TenfoldInputError
 from ._schema import SPOTS, conform, empty_table
 
-__all__ = ["power_spectrum", "find_spots", "analyze_fourier"]
+__all__ = ["power_spectrum", "find_spots", "analyze_fourier", "index_decagonal", "correct_columns", "fourier_stage",
+           "electron_wavelength_nm", "bragg_angle_mrad", "spectrum_figure"]
 
 _ORDERS = (2, 4, 6, 8, 10, 12)
 
@@ -152,13 +153,11 @@ def find_spots(
     order = np.argsort(-excess[py, px])[:max_spots]
     py, px = py[order], px[order]
 
-    # Sub-pixel: parabola through the log power along each axis.
-    def _vertex(lo, mid, hi):
-        den = lo - 2 * mid + hi
-        return np.where(np.abs(den) > 1e-12, 0.5 * (lo - hi) / np.where(den == 0, 1, den), 0.0).clip(-0.5, 0.5)
-
-    dx = _vertex(logp[py, px - 1], logp[py, px], logp[py, px + 1])
-    dy = _vertex(logp[py - 1, px], logp[py, px], logp[py + 1, px])
+    # Sub-pixel: the two-bin amplitude ratio of a Hann-windowed sinusoid along each axis (exact for one plane
+    # wave; Grandke 1983), which a parabola through the log power is not (biased by up to ~0.1 bin).
+    amp = np.sqrt(p)
+    dx = _hann_offset(amp[py, px - 1], amp[py, px], amp[py, px + 1])
+    dy = _hann_offset(amp[py - 1, px], amp[py, px], amp[py + 1, px])
     kx = (px + dx - c) / n
     ky = (py + dy - c) / n
     k = np.hypot(kx, ky)
@@ -180,7 +179,31 @@ def find_spots(
             "shell": shell,
         }
     )
-    return conform(df, SPOTS)
+    return conform(_unindexed(df), SPOTS)
+
+
+def _hann_offset(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Sub-bin offset of a Hann-windowed peak from the amplitudes of the peak bin and its two neighbours.
+
+    With ``a = A_next / A_peak`` for the larger neighbour, the offset towards it is ``(2 a - 1) / (a + 1)``
+    (T. Grandke, IEEE Trans. Instrum. Meas. 32 (1983) 350).
+    """
+    right = hi >= lo
+    nb = np.where(right, hi, lo)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        a = nb / mid
+        d = np.where(mid > 0, (2 * a - 1) / (a + 1), 0.0)
+    return np.where(right, d, -d).clip(-0.5, 0.5)
+
+
+def _unindexed(df: pd.DataFrame) -> pd.DataFrame:
+    """The index columns of ``SPOTS`` filled as 'not indexed'."""
+    for j in range(1, 5):
+        df[f"h{j}"] = 0
+    df["indexed"] = False
+    for name in ("index_error", "g_par_nm_inv", "g_perp_nm_inv", "g_perp_rel"):
+        df[name] = np.nan
+    return df
 
 
 def _split_shells(q: np.ndarray, min_gap: float) -> np.ndarray:
@@ -250,27 +273,131 @@ def analyze_fourier(
     max_spots: int = 80,
     min_strength: float = 8.0,
     distortion_warn: float = 0.005,
+    index_spots: int = 300,
+    edge_px: float | None = None,
+    orientation_deg: float | None = None,
+    rng: np.random.Generator | int | None = 0,
 ) -> tuple[pd.DataFrame, dict]:
-    """Spots, rotational order and a scan-distortion estimate from the power spectrum.
+    """Spots, rotational order, decagonal indexing, scan distortion and phason strain from the power spectrum.
 
     Parameters
     ----------
-    image, valid, pixel_size_nm, max_spots, min_strength
+    image, valid, pixel_size_nm, min_strength
         As for :func:`find_spots`.
+    max_spots : int
+        The strongest spots used for the shells, the rotational order and the shell ellipse.
     distortion_warn : float
         Axis ratio minus one above which the summary warns of scan distortion or anisotropic calibration
         (0.005 = 0.5 %; common practice for drift/scan checks, not a published threshold).
+    index_spots : int
+        Spots (strongest first) offered to the decagonal indexing; weak spots far out in perpendicular space carry
+        the phason signal.
+    edge_px, orientation_deg
+        Tiling edge and orientation from real space, passed to :func:`index_decagonal` (fix the tau-scaling and
+        the labelling of the five directions).
+    rng : Generator or int seed
+        For the uncertainty draws of the indexing fit.
 
     Returns
     -------
     spots : DataFrame
-        ``_schema.SPOTS`` table.
+        ``_schema.SPOTS`` table (``shell`` is -1 for spots beyond ``max_spots``).
     info : dict
         JSON-safe: ``n_spots``, ``shells`` (per shell: k_per_px, d_px, d_nm, n_spots, psi per order, order),
-        ``rotational_order`` (the order of the strongest shells, 0 if none), ``distortion`` (axis_ratio,
-        major_axis_deg, shell used, warning) and ``notes``.
+        ``rotational_order`` and ``dominant_order`` (the order of the strongest shells, 0 if none), ``distortion``
+        (axis_ratio, major_axis_deg, shells used, metric, warning), ``distortion_matrix`` (2x2, x-y order, maps
+        measured positions to corrected ones, unit determinant; the identity when none is found),
+        ``distortion_source`` ('indexing', 'shell_ellipse' or 'none'), ``basis_nm_inv``, ``orientation_deg``,
+        ``indexing`` (see :func:`index_decagonal`), ``lattice`` (periodic patterns: two reciprocal and real
+        lattice vectors), ``notes``.
     """
-    spots = find_spots(image, valid=valid, pixel_size_nm=pixel_size_nm, max_spots=max_spots, min_strength=min_strength)
+    every = find_spots(image, valid=valid, pixel_size_nm=pixel_size_nm, max_spots=max(max_spots, index_spots),
+                       min_strength=min_strength)
+    spots, info = _order_and_shells(every.iloc[:max_spots].copy(), image, pixel_size_nm, distortion_warn)
+    every["shell"] = -1
+    every.loc[: len(spots) - 1, "shell"] = spots["shell"].to_numpy()
+    info["dominant_order"] = info["rotational_order"]
+    info["distortion_matrix"] = np.eye(2).tolist()
+    info["distortion_source"] = "none"
+    info["basis_nm_inv"] = None
+    info["orientation_deg"] = None
+    info["indexing"] = None
+    info["lattice"] = None
+    n_image = min(np.shape(image)) // 2 * 2
+    order = info["rotational_order"]
+    if info["distortion"] is not None:
+        info["distortion_matrix"] = _upper_from_metric(np.asarray(info["distortion"]["metric"])).tolist()
+        info["distortion_source"] = "shell_ellipse"
+    if order == 10:
+        metric = info["distortion"]["metric"] if info["distortion"] else None
+        every, idx = index_decagonal(every, n_image=n_image, pixel_size_nm=pixel_size_nm, edge_px=edge_px,
+                                     orientation_deg=orientation_deg, metric=metric, rng=rng)
+        info["indexing"] = idx
+        info["notes"].extend(idx.get("notes", []))
+        if idx["ok"]:
+            info["distortion_matrix"] = idx["distortion_matrix"]
+            info["distortion_source"] = "indexing"
+            info["basis_nm_inv"] = idx["basis_nm_inv"]
+            info["orientation_deg"] = idx["orientation_deg"]
+    elif order in (2, 4, 6) and len(spots) >= 2:
+        info["lattice"] = _best_lattice(every, n_image, pixel_size_nm)
+        info["notes"].append(
+            f"periodic {order}-fold spot pattern: described by a 2-D lattice (see fourier.lattice); the decagonal "
+            "indexing does not apply"
+        )
+    return conform(every, SPOTS), info
+
+
+def _upper_from_metric(metric: np.ndarray) -> np.ndarray:
+    """Correction ``U^-1`` (unit determinant) for a shell ellipse ``k^T M k = const``, ``M ~ U U^T``.
+
+    A real-space distortion ``r' = D r`` makes ``M`` proportional to ``D D^T``; taking D upper triangular (the
+    fast-scan axis x keeps its direction) makes the split unique: a Cholesky factorisation with the axes swapped.
+    """
+    flip = np.array([[0.0, 1.0], [1.0, 0.0]])
+    try:
+        low = np.linalg.cholesky(flip @ metric @ flip)
+    except np.linalg.LinAlgError:
+        return np.eye(2)
+    u = flip @ low @ flip
+    corr = np.linalg.inv(u)
+    return corr / np.sqrt(abs(np.linalg.det(corr)))
+
+
+def _best_lattice(spots: pd.DataFrame, n_image: int, pixel_size_nm: float | None) -> dict:
+    """Two reciprocal vectors spanning the strong spots, and the real-space lattice they imply."""
+    k = spots[["kx_per_px", "ky_per_px"]].to_numpy(dtype=float)
+    w = spots["strength"].to_numpy(dtype=float)
+    strong = np.argsort(-w)[: max(6, min(len(w), 30))]
+    ks = k[strong]
+    order = np.argsort(np.hypot(ks[:, 0], ks[:, 1]))
+    a1 = ks[order[0]]
+    rest = ks[order[1:]]
+    cross = np.abs(a1[0] * rest[:, 1] - a1[1] * rest[:, 0]) / (np.hypot(*a1) * np.hypot(rest[:, 0], rest[:, 1]))
+    cand = rest[cross > 0.3]
+    if len(cand) == 0:
+        return {"ok": False}
+    a2 = cand[np.argmin(np.hypot(cand[:, 0], cand[:, 1]))]
+    basis = np.stack([a1, a2], axis=1)  # columns a1*, a2*
+    hk = np.linalg.solve(basis, k.T).T
+    idx = np.rint(hk)
+    err = np.hypot(*(k - idx @ basis.T).T) / np.maximum(np.hypot(k[:, 0], k[:, 1]), 1e-12)
+    fits = err < 0.01 + 1.0 / (n_image * np.maximum(np.hypot(k[:, 0], k[:, 1]), 1e-12))
+    real = np.linalg.inv(basis).T  # columns: real-space a1, a2 in px (a_i . a_j* = delta_ij)
+    ps = pixel_size_nm
+    return {
+        "ok": True,
+        "reciprocal_per_px": basis.T.tolist(),
+        "real_px": real.T.tolist(),
+        "real_nm": (real.T * ps).tolist() if ps else None,
+        "lengths_px": np.hypot(real[0], real[1]).tolist(),
+        "angle_deg": float(np.degrees(np.arccos(np.clip(real[:, 0] @ real[:, 1] / np.prod(np.hypot(real[0], real[1])), -1, 1)))),
+        "fraction_indexed": float(fits.mean()),
+    }
+
+
+def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn) -> tuple[pd.DataFrame, dict]:
+    """Shells, rotational order and the shell ellipse of the strongest spots (``analyze_fourier`` steps 1-2)."""
     info: dict = {"n_spots": int(len(spots)), "shells": [], "rotational_order": 0, "distortion": None, "notes": []}
     if len(spots) == 0:
         info["notes"].append("no Fourier spots above the background: no order or distortion estimate")
@@ -407,16 +534,17 @@ def _fit_affine(k, gpar, gperp, weight, phason: bool):
     return b, c, coefs, covs, p
 
 
+def _rot(deg: float) -> np.ndarray:
+    a = np.radians(deg)
+    return np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+
+
 def _rq_upper(h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``h = U Q`` with U upper triangular (positive diagonal) and Q a rotation (2x2)."""
-    # h = U Q  <=>  h^-1 = Q^T U^-1: a QR decomposition of h^-1 ... done directly for 2x2 with Givens.
+    """``h = U Q`` with U upper triangular and Q a rotation (2x2, Givens rotation zeroing ``U[1, 0]``)."""
     a, bb = h[1, 0], h[1, 1]
     r = np.hypot(a, bb)
-    q = np.array([[bb / r, -a / r], [a / r, bb / r]])  # rotation with (h q^T)[1, 0] = 0
-    u = h @ q.T
-    if u[0, 0] < 0:  # a reflection cannot be told from the crystal; keep det Q = +1 and U's diagonal positive
-        u = u.copy()
-    return u, q
+    q = np.array([[bb / r, -a / r], [a / r, bb / r]])
+    return h @ q.T, q
 
 
 def _decompose(b: np.ndarray, c: np.ndarray) -> dict:
@@ -538,12 +666,7 @@ def index_decagonal(
     """
     from ._pentagrid import TAU
 
-    out = spots.copy()
-    for j in range(1, 5):
-        out[f"h{j}"] = 0
-    out["indexed"] = False
-    for name in ("index_error", "g_par_nm_inv", "g_perp_nm_inv", "g_perp_rel"):
-        out[name] = np.nan
+    out = _unindexed(spots.copy())
     info: dict = {"ok": False, "n_spots": int(len(spots)), "n_indexed": 0, "notes": []}
     if len(spots) < 8:
         info["notes"].append(f"decagonal indexing needs at least 8 spots, found {len(spots)}")
@@ -627,8 +750,29 @@ def index_decagonal(
             return out, info
         phason_fit = phason and ok.sum() >= 12
         b, c, *_ = _fit_affine(k[ok], cand[1][rows[ok]], cand[2][rows[ok]], w[ok], phason_fit)
-    b, c, dec, unc = _fit_summary(k[ok], cand, rows[ok], w[ok], phason_fit, n_draws, rng)
+    # label the five directions in the agreed period (orientation in [0, 36) deg, or within 18 deg of the hint):
+    # turning the labels by 36 m deg turns g_par by 36 m and g_perp by 252 m deg (R36 e_j = -e_(j+3))
+    lo = 0.0 if orientation_deg is None else float(orientation_deg) - 18.0
+    theta_fit = _decompose(b, c)["theta"]
+    m = int(np.floor((theta_fit - lo) / 36.0))
+    if m:
+        b = b @ _rot(-36.0 * m)
+        c = c @ _rot(-252.0 * m)
+        rows, _ = _assign(k, b, cand, _TOLERANCES[-1][0], 0.75 * step)
+        ok = rows >= 0
+    # a spot and its Friedel mate carry the same information: fit one of each pair
+    half = ok & ((k[:, 1] > 0) | ((k[:, 1] == 0) & (k[:, 0] > 0)))
+    use = half if half.sum() >= 8 else ok
+    b, c, dec, unc = _fit_summary(k[use], cand, rows[use], w[use], phason_fit, n_draws, rng)
+    unc["residual"] = np.hypot(*(k[ok] - cand[1][rows[ok]] @ b.T - cand[2][rows[ok]] @ c.T).T)
     theta = dec["theta"]
+    # finite-field floor of a window-weighted phason-strain estimate: rms per matrix element of the Hann-weighted
+    # slope over ideal pentagrid tilings, 0.92 (L / half field)^2 (Tenfold's own simulation, 30 tilings each at
+    # 5 to 40 edges; the square law is the hyperuniformity of quasiperiodic point sets)
+    half_field = 0.5 * n_image * 2.5 * dec["a_star"]  # half the field in edge lengths, L = 1 / (5/2 a*)
+    floor = 0.92 / half_field**2
+    unc["strain_se"] = np.sqrt(unc["strain_se"] ** 2 + floor**2)
+    unc["sv_se"] = np.sqrt(unc["sv_se"] ** 2 + floor**2)
     h_idx = cand[0][rows[ok]]
     for j in range(4):
         col = np.zeros(len(out), dtype=np.int64)
@@ -669,8 +813,265 @@ def index_decagonal(
             "strain_matrix_se": unc["strain_se"].tolist(),
             "singular_values": sv.tolist(),
             "singular_values_se": unc["sv_se"].tolist(),
-            "n_used": int(ok.sum()),
+            "n_used": int(use.sum()),
             "fitted": bool(phason_fit),
+            "finite_field_floor": float(floor),
         },
     })
     return out, info
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Pipeline glue: the Fourier stage and the scan-distortion correction of the columns
+# ----------------------------------------------------------------------------------------------------------------
+
+
+def _distortion_significant(info: dict) -> tuple[bool, float]:
+    """Whether the correction differs from the identity by more than 3 standard errors (and that deviation)."""
+    d = np.asarray(info["distortion_matrix"], dtype=float) - np.eye(2)
+    se = (info.get("indexing") or {}).get("distortion_matrix_se")
+    dev = float(np.max(np.abs(d)))
+    if se is None:
+        return dev > 1e-3, dev
+    se = np.asarray(se, dtype=float)
+    return bool(np.any(np.abs(d) > 3 * np.maximum(se, 1e-12))), dev
+
+
+def correct_columns(result, micrograph) -> dict:
+    """Measure the scan distortion from the spectrum and apply it to the column positions of ``result``.
+
+    Positions are mapped about the image centre ``c`` as ``r' = D (r - c) + c`` with ``D`` the unit-determinant
+    ``distortion_matrix`` of :func:`analyze_fourier`; the measured positions stay in ``x_raw_px``, ``y_raw_px``
+    and ``x_nm``, ``y_nm`` follow the corrected ones. ``result.summary['distortion_correction']`` records what
+    was done (matrix, its uncertainty, source, centre, largest shift, whether it was significant) and a note says
+    when the correction is uncertain.
+
+    Returns
+    -------
+    dict
+        The ``distortion_correction`` record.
+    """
+    ps = micrograph.meta.pixel_size_nm
+    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps)
+    result.tables["spots"] = spots
+    result.summary["fourier"] = info
+    notes = result.summary.setdefault("notes", [])
+    d = np.asarray(info["distortion_matrix"], dtype=float)
+    source = info["distortion_source"]
+    h, w = np.shape(micrograph.data)
+    centre = np.array([(w - 1) / 2.0, (h - 1) / 2.0])
+    rec = {"applied": False, "matrix": d.tolist(), "source": source, "centre_px": centre.tolist(),
+           "matrix_se": (info.get("indexing") or {}).get("distortion_matrix_se"), "max_shift_px": 0.0}
+    if source == "none":
+        notes.append("scan-distortion correction asked for, but no symmetric spot pattern was found to measure "
+                     "it: positions are NOT corrected")
+        result.summary["distortion_correction"] = rec
+        return rec
+    cols = result.tables["columns"].copy()
+    xy = cols[["x_px", "y_px"]].to_numpy(dtype=float)
+    new = (xy - centre) @ d.T + centre
+    cols["x_raw_px"] = xy[:, 0]
+    cols["y_raw_px"] = xy[:, 1]
+    cols["x_px"] = new[:, 0]
+    cols["y_px"] = new[:, 1]
+    if ps:
+        cols["x_nm"] = new[:, 0] * ps
+        cols["y_nm"] = new[:, 1] * ps
+    result.tables["columns"] = cols
+    significant, dev = _distortion_significant(info)
+    shift = np.hypot(*(new - xy).T) if len(xy) else np.zeros(0)
+    rec.update(applied=True, significant=significant, max_deviation_from_identity=dev,
+               max_shift_px=float(shift.max()) if len(shift) else 0.0)
+    if source == "shell_ellipse":
+        notes.append("scan-distortion correction from the spot-shell ellipse only (no decagonal indexing): it "
+                     "assumes the true pattern is isotropic and the fast-scan axis x undistorted; treat it as "
+                     "uncertain")
+    elif not significant:
+        notes.append(f"scan-distortion correction applied although it is within 3 standard errors of none "
+                     f"(largest element change {dev:.1e})")
+    result.summary["distortion_correction"] = rec
+    return rec
+
+
+def fourier_stage(result, micrograph) -> None:
+    """Run :func:`analyze_fourier` for the pipeline, with the real-space tiling edge and orientation when known.
+
+    Fills ``tables['spots']``, ``summary['fourier']`` and ``summary['phason']['fourier']``; records the applied
+    correction (``summary['distortion_correction']``) inside ``summary['fourier']`` too.
+    """
+    ps = micrograph.meta.pixel_size_nm
+    tiling = result.summary.get("tiling") or {}
+    real = (result.summary.get("phason") or {}).get("real_space") or {}
+    edge = tiling.get("edge_px") if tiling.get("n_edges") else None
+    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, edge_px=edge,
+                                  orientation_deg=real.get("orientation_deg"))
+    corr = result.summary.get("distortion_correction")
+    if corr is not None:
+        info["correction_applied"] = corr
+        if corr.get("applied"):
+            info["notes"] = [n + " (corrected: the column positions were mapped with fourier.distortion_matrix "
+                             "before motifs, ladders and tiling)" if "elliptical" in n else n for n in info["notes"]]
+    else:
+        significant, dev = _distortion_significant(info)
+        if significant and dev > 0.002:
+            info["notes"].append(
+                f"scan distortion measured (largest element of the correction {dev:.4f}) but not applied; run with "
+                "--correct-distortion to compute the structure in the corrected frame")
+    result.tables["spots"] = spots
+    result.summary["fourier"] = info
+    ph = result.summary.setdefault("phason", {})
+    ph["fourier"] = fourier_phason_summary(info)
+    _compare_phason(ph)
+
+
+def fourier_phason_summary(info: dict) -> dict:
+    """The ``phason.fourier`` section from an :func:`analyze_fourier` info dict."""
+    idx = info.get("indexing") or {}
+    if not idx.get("ok"):
+        return {"ok": False, "n_used": 0, "reason": "no decagonal indexing" if info.get("dominant_order") != 10
+                else "decagonal indexing failed"}
+    p = dict(idx["phason"])
+    p.update(ok=True, tau_scale=idx.get("tau_scale"), orientation_deg=idx.get("orientation_deg"),
+             method="least squares k = B g_par + C g_perp over the indexed spots (Lubensky et al. 1986)")
+    return p
+
+
+def _compare_phason(ph: dict) -> None:
+    """Agreement of the two strain matrices in standard errors (largest element), when both exist."""
+    a, b = ph.get("real_space") or {}, ph.get("fourier") or {}
+    if not (a.get("ok") and b.get("ok")):
+        return
+    wa, wb = np.asarray(a["strain_matrix"]), np.asarray(b["strain_matrix"])
+    se = np.hypot(np.asarray(a["strain_matrix_se"]), np.asarray(b["strain_matrix_se"]))
+    z = np.abs(wa - wb) / np.maximum(se, 1e-12)
+    ph["agreement_max_sigma"] = float(z.max())
+    ph["agree"] = bool(z.max() < 3.0)
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Electron wavelength and Bragg angles
+# ----------------------------------------------------------------------------------------------------------------
+
+
+def electron_wavelength_nm(voltage_kv) -> float | np.ndarray:
+    """Relativistic electron wavelength for an accelerating voltage.
+
+    ``lambda = h / sqrt(2 m0 e V (1 + e V / (2 m0 c^2)))`` with CODATA constants from :mod:`scipy.constants`.
+
+    Parameters
+    ----------
+    voltage_kv : float or array
+        Accelerating voltage, kV (positive).
+
+    Returns
+    -------
+    float or ndarray
+        Wavelength in nm.
+
+    References
+    ----------
+    D. B. Williams, C. B. Carter, Transmission Electron Microscopy, 2nd ed., Springer (2009), eq. 1.6 and
+    Table 1.1.
+
+    Examples
+    --------
+    >>> round(electron_wavelength_nm(200.0) * 1000, 3)   # pm
+    2.508
+    """
+    from scipy import constants as k
+
+    v = np.asarray(voltage_kv, dtype=float) * 1e3
+    if np.any(~np.isfinite(v)) or np.any(v <= 0):
+        raise TenfoldInputError(f"voltage_kv must be positive, got {voltage_kv!r}")
+    ev = k.e * v
+    lam = k.h / np.sqrt(2 * k.m_e * ev * (1 + ev / (2 * k.m_e * k.c**2))) * 1e9
+    return float(lam) if lam.ndim == 0 else lam
+
+
+def bragg_angle_mrad(d_nm, voltage_kv) -> float | np.ndarray:
+    """Bragg angle ``theta = asin(lambda / (2 d))`` of a plane spacing ``d_nm`` at ``voltage_kv``, in mrad."""
+    d = np.asarray(d_nm, dtype=float)
+    if np.any(d <= 0):
+        raise TenfoldInputError("d_nm must be positive plane spacings in nm")
+    out = np.arcsin(np.clip(electron_wavelength_nm(voltage_kv) / (2 * d), -1, 1)) * 1e3
+    return float(out) if np.ndim(out) == 0 else out
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Figure
+# ----------------------------------------------------------------------------------------------------------------
+
+
+def spectrum_figure(result):
+    """Log power spectrum with the spots (indexed spots coloured by |g_perp| / a*) and the fit's key numbers.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        Reads ``image``, ``tables['spots']``, ``summary['fourier']`` and ``meta.pixel_size_nm``.
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None without an image or without the Fourier stage.
+    """
+    info = result.summary.get("fourier")
+    if result.image is None or not info:
+        return None
+    from matplotlib.figure import Figure
+
+    ps = getattr(result.meta, "pixel_size_nm", None)
+    spec, dk = power_spectrum(result.image)
+    s = (1.0 / ps) if ps else 1.0
+    unit = "1/nm" if ps else "1/px"
+    n = spec.shape[0]
+    ext = np.array([-n / 2 - 0.5, n / 2 - 0.5, n / 2 - 0.5, -n / 2 - 0.5]) * dk * s
+    spots = result.tables.get("spots")
+    fig = Figure(figsize=(7.2, 6.2), dpi=120, layout="constrained")
+    ax = fig.add_subplot(1, 1, 1)
+    ax.imshow(spec, cmap="gray", extent=ext, vmax=float(np.percentile(spec, 99.9)))
+    lim = 0.5 * dk * n * s
+    if spots is not None and len(spots):
+        kx, ky = spots["kx_per_px"].to_numpy() * s, spots["ky_per_px"].to_numpy() * s
+        lim = min(lim, 1.15 * float(np.percentile(np.hypot(kx, ky), 95)))
+        ind = spots["indexed"].to_numpy(dtype=bool) if "indexed" in spots else np.zeros(len(spots), bool)
+        ax.scatter(kx[~ind], ky[~ind], s=30, facecolors="none", edgecolors="#bbbbbb", linewidths=0.6,
+                   label="spot (not indexed)")
+        if ind.any():
+            sc = ax.scatter(kx[ind], ky[ind], s=36, facecolors="none", c=spots["g_perp_rel"].to_numpy()[ind],
+                            cmap="plasma", linewidths=1.0, label="indexed spot")
+            sc.set_facecolor("none")
+            fig.colorbar(sc, ax=ax, shrink=0.8, label="|g_perp| / a*")
+        ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    ax.set(xlim=(-lim, lim), ylim=(lim, -lim), xlabel=f"k_x ({unit})", ylabel=f"k_y ({unit})")
+    lines = [f"order {info.get('dominant_order', info.get('rotational_order'))}"]
+    idx = info.get("indexing") or {}
+    if idx.get("ok"):
+        basis = idx["basis_nm_inv"] if ps else idx["basis_per_px"]
+        lines.append(f"a* = {basis:.4f} {unit}, orientation {idx['orientation_deg']:.2f} deg, "
+                     f"{idx['n_indexed']} spots indexed")
+        dm = np.asarray(idx["distortion_matrix"])
+        lines.append(f"shear {idx['shear']:+.4f}, x/y scale {idx['scale_x_over_y']:.4f}; "
+                     f"D = [[{dm[0, 0]:.4f}, {dm[0, 1]:+.4f}], [{dm[1, 0]:.4f}, {dm[1, 1]:.4f}]]")
+        ph = idx.get("phason") or {}
+        if ph.get("fitted"):
+            sv, se = ph["singular_values"], ph["singular_values_se"]
+            lines.append(f"phason strain singular values {sv[0]:.4f} +- {se[0]:.4f}, {sv[1]:.4f} +- {se[1]:.4f}")
+    elif info.get("lattice"):
+        lat = info["lattice"]
+        if lat.get("ok"):
+            lines.append(f"periodic lattice {lat['lengths_px'][0]:.2f} x {lat['lengths_px'][1]:.2f} px, "
+                         f"{lat['angle_deg']:.1f} deg")
+    ax.set_title("\n".join(lines), fontsize=8)
+    return fig
+
+
+def _register_figures() -> None:
+    try:
+        from .export import register_figure
+    except ImportError:  # export not available: the function stays usable on its own
+        return
+    register_figure("power_spectrum")(spectrum_figure)
+
+
+_register_figures()

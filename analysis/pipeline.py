@@ -65,6 +65,12 @@ class Parameters:
         Cluster-network edge length (default: from the centre pair distances).
     fourier : bool
         Run the Fourier stage.
+    correct_distortion : bool
+        Apply the scan-distortion correction measured from the Fourier spots to the column positions before the
+        structure stages (default False): every downstream table is then in the corrected frame, and
+        ``columns`` keeps the measured positions as ``x_raw_px``, ``y_raw_px``.
+    phason : bool
+        Lift the cluster tiling to perpendicular space and fit the linear phason strain (default True).
     rng : int
         Seed for bootstraps and mixture initialisation.
     """
@@ -85,6 +91,8 @@ class Parameters:
     d0_nm: float | None = None
     tiling_edge_nm: float | None = None
     fourier: bool = True
+    correct_distortion: bool = False
+    phason: bool = True
     rng: int = 0
     column_diameter_px: float | None = None
     column_spacing_px: float | None = None
@@ -280,6 +288,10 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     result.tables["network"] = network
     result.tables["tiles"] = tiles
     result.summary["tiling"] = t_info
+    if params.phason:
+        from .phason import phason_stage
+
+        phason_stage(result, rng=params.rng)
     report(progress, 1.0, "structure done")
 
 
@@ -395,14 +407,20 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
         result.summary["columns"] = c_info
         result.summary["automatic"] = c_info.get("automatic", c_info)
         result.summary["species"] = c_info.get("species")
+        if params.fourier and params.correct_distortion:
+            from .fourier import correct_columns
+
+            report(progress, 0.55, "power spectrum and scan-distortion correction")
+            correct_columns(result, micrograph)
+        elif params.correct_distortion:
+            result.summary.setdefault("notes", []).append(
+                "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
         _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
         if params.fourier:
             report(progress, 0.9, "power spectrum")
-            from .fourier import analyze_fourier
+            from .fourier import fourier_stage
 
-            spots, f_info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps)
-            result.tables["spots"] = spots
-            result.summary["fourier"] = f_info
+            fourier_stage(result, micrograph)
         report(progress, 1.0, "analysis done")
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     for w in caught:
