@@ -909,6 +909,8 @@ def fourier_stage(result, micrograph) -> None:
     if corr is not None:
         info["correction_applied"] = corr
         if corr.get("applied"):
+            # the matrix the positions were mapped with (the re-measurement stays in indexing.distortion_matrix)
+            info["distortion_matrix"] = corr["matrix"]
             info["notes"] = [n + " (corrected: the column positions were mapped with fourier.distortion_matrix "
                              "before motifs, ladders and tiling)" if "elliptical" in n else n for n in info["notes"]]
     else:
@@ -1038,10 +1040,16 @@ def spectrum_figure(result):
         ax.scatter(kx[~ind], ky[~ind], s=30, facecolors="none", edgecolors="#bbbbbb", linewidths=0.6,
                    label="spot (not indexed)")
         if ind.any():
-            sc = ax.scatter(kx[ind], ky[ind], s=36, facecolors="none", c=spots["g_perp_rel"].to_numpy()[ind],
-                            cmap="plasma", linewidths=1.0, label="indexed spot")
-            sc.set_facecolor("none")
-            fig.colorbar(sc, ax=ax, shrink=0.8, label="|g_perp| / a*")
+            from matplotlib import colormaps
+            from matplotlib.cm import ScalarMappable
+            from matplotlib.colors import Normalize
+
+            gp = spots["g_perp_rel"].to_numpy()[ind]
+            norm = Normalize(0.0, max(float(gp.max()), 1e-6))
+            cmap = colormaps["plasma"]
+            ax.scatter(kx[ind], ky[ind], s=36, facecolors="none", edgecolors=cmap(norm(gp)), linewidths=1.0,
+                       label="indexed spot")
+            fig.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=ax, shrink=0.8, label="|g_perp| / a*")
         ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
     ax.set(xlim=(-lim, lim), ylim=(lim, -lim), xlabel=f"k_x ({unit})", ylabel=f"k_y ({unit})")
     lines = [f"order {info.get('dominant_order', info.get('rotational_order'))}"]

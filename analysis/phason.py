@@ -178,6 +178,45 @@ def window_contains(p: np.ndarray, *, margin: float = 0.0) -> np.ndarray:
     return np.all(np.abs(np.asarray(p, dtype=float) @ u.T) <= h + margin, axis=1)
 
 
+def _penrose_windows() -> list[tuple[np.ndarray, np.ndarray]]:
+    """Facet normals and offsets of the four pentagonal windows of a Penrose tiling, levels m = 1..4.
+
+    With ``sum_j gamma_j = 0`` a vertex has ``x_perp = c - sum_j f_j e_perp_j`` with ``f`` in the unit 5-cube and
+    ``sum_j f_j = m`` (m = -sum_j K_j, 1..4; de Bruijn 1981): the window of level m is the projection of that
+    slice of the cube, the convex hull of ``-sum_(j in S) e_perp_j`` over the m-subsets S.
+    """
+    from itertools import combinations
+
+    from scipy.spatial import ConvexHull
+
+    out = []
+    for m in range(1, 5):
+        pts = np.array([-E_PERP[list(c)].sum(axis=0) for c in combinations(range(5), m)])
+        hull = ConvexHull(pts)
+        out.append((hull.equations[:, :2], hull.equations[:, 2]))
+    return out
+
+
+def _flip_sites(index: np.ndarray, res: np.ndarray) -> tuple[np.ndarray, str]:
+    """Vertices outside the acceptance window, and which window was used.
+
+    When the index sums ``sum_j K_j`` leave exactly one residue mod 5 (almost) empty, the tiling has the level
+    structure of a Penrose tiling and each vertex is tested against the pentagon of its level (a single flip moves
+    a vertex to another level or out of its pentagon); otherwise against the decagon of the whole 5-cube.
+    """
+    level_sum = index.sum(axis=1)
+    counts = np.bincount(level_sum % 5, minlength=5)
+    empty = np.flatnonzero(counts <= max(2, 0.02 * len(index)))
+    if len(empty) != 1:
+        return ~window_contains(res, margin=FLIP_MARGIN), "decagon (projection of the 5-cube)"
+    m = (empty[0] - level_sum) % 5
+    outside = m == 0
+    for lev, (normal, offset) in enumerate(_penrose_windows(), start=1):
+        sel = m == lev
+        outside[sel] = np.any(res[sel] @ normal.T + offset > FLIP_MARGIN, axis=1)
+    return outside, "Penrose pentagons by level (sum of the integer coordinates mod 5)"
+
+
 def _fit(xpar: np.ndarray, xperp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a = np.hstack([xpar, np.ones((len(xpar), 1))])
     sol, *_ = np.linalg.lstsq(a, xperp, rcond=None)
@@ -254,12 +293,15 @@ def phason_from_network(
     xperp = edge * (index[lifted] @ E_PERP)
     w, c = _fit(xpar, xperp)
     res = xperp - xpar @ w.T - c
-    inside = window_contains(res / edge, margin=FLIP_MARGIN)
+    k_used = index[lifted]
+    outside, window = _flip_sites(k_used, res / edge)
     # refit without the flip sites (their jumps are not part of the linear strain), then re-test
-    if (~inside).any() and inside.sum() >= 10:
-        w, c = _fit(xpar[inside], xperp[inside])
+    if outside.any() and (~outside).sum() >= 10:
+        w, c = _fit(xpar[~outside], xperp[~outside])
         res = xperp - xpar @ w.T - c
-        inside = window_contains(res / edge, margin=FLIP_MARGIN)
+        outside, window = _flip_sites(k_used, res / edge)
+    inside = ~outside
+    info["window"] = window
     gen = np.random.default_rng(rng)
     use = np.flatnonzero(inside) if inside.sum() >= 10 else np.arange(n)
     draws = gen.integers(0, len(use), size=(n_boot, len(use)))
