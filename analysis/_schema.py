@@ -191,6 +191,8 @@ PHASON_MAP = _fields(
     ("dx_perp", "float64", "L", "local phason field: x_perp minus the fitted linear strain, in edge lengths"),
     ("dy_perp", "float64", "L", "local phason field, y component"),
     ("flip", "bool", "", "residual outside the acceptance window of the ideal tiling (phason-flip site)"),
+    ("phason_ux", "float64", "L", "local phason displacement: Gaussian (2 L) average of dx_perp over nearby non-flip vertices"),
+    ("phason_uy", "float64", "L", "local phason displacement, y component"),
 )
 
 TABLES: dict[str, tuple[Field, ...]] = {

@@ -47,6 +47,9 @@ LENGTH_TOL = 0.15
 #: A vertex is a flip site when its residual perpendicular position lies this far (fraction of L) outside the
 #: acceptance window of the ideal tiling (margin for position noise and a locally curved phason field).
 FLIP_MARGIN = 0.1
+#: Gaussian width (in edge lengths) of the local average that turns the per-vertex residual (dominated by the
+#: vertices' scatter inside the acceptance window) into a local phason displacement field.
+SMOOTH_EDGES = 2.0
 
 
 def _orientation(d: np.ndarray) -> float:
@@ -217,6 +220,23 @@ def _flip_sites(index: np.ndarray, res: np.ndarray) -> tuple[np.ndarray, str]:
     return outside, "Penrose pentagons by level (sum of the integer coordinates mod 5)"
 
 
+def _smooth_field(xy: np.ndarray, res: np.ndarray, use: np.ndarray, width: float) -> tuple[np.ndarray, np.ndarray]:
+    """Gaussian-weighted local mean of the residuals (flip sites excluded) at every vertex, within 3 widths."""
+    from scipy.sparse import coo_matrix
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(xy)
+    pairs = tree.query_pairs(3.0 * width, output_type="ndarray")
+    i = np.concatenate([pairs[:, 0], pairs[:, 1], np.arange(len(xy))])
+    j = np.concatenate([pairs[:, 1], pairs[:, 0], np.arange(len(xy))])
+    d2 = np.sum((xy[i] - xy[j]) ** 2, axis=1)
+    wgt = np.exp(-0.5 * d2 / width**2) * use[j]
+    m = coo_matrix((wgt, (i, j)), shape=(len(xy), len(xy))).tocsr()
+    norm = np.asarray(m.sum(axis=1)).ravel()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return m @ res[:, 0] / norm, m @ res[:, 1] / norm
+
+
 def _fit(xpar: np.ndarray, xperp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a = np.hstack([xpar, np.ones((len(xpar), 1))])
     sol, *_ = np.linalg.lstsq(a, xperp, rcond=None)
@@ -322,6 +342,9 @@ def phason_from_network(
     tab["dx_perp"] = res[:, 0] / edge
     tab["dy_perp"] = res[:, 1] / edge
     tab["flip"] = ~inside
+    ux, uy = _smooth_field(xpar, res / edge, inside, SMOOTH_EDGES * edge)
+    tab["phason_ux"] = ux
+    tab["phason_uy"] = uy
     info.update({
         "ok": True,
         "strain_matrix": w.tolist(),
@@ -342,7 +365,12 @@ def phason_from_network(
 
 
 def phason_map_figure(result):
-    """Residual perpendicular displacement over the field of view, with flip sites marked.
+    """Local phason displacement over the field of view and the vertices in perpendicular space.
+
+    Left: the smoothed residual perpendicular displacement (``phason_ux``, ``phason_uy``; the linear strain
+    removed) as arrows coloured by magnitude, its gradient magnitude as the background, flip sites circled in
+    red. Right: every vertex's residual perpendicular position (the linear strain removed), which for an ideal
+    tiling fills the acceptance windows, flip sites in red.
 
     Parameters
     ----------
@@ -358,35 +386,49 @@ def phason_map_figure(result):
     if tab is None or len(tab) == 0:
         return None
     from matplotlib.figure import Figure
+    from scipy.interpolate import griddata
 
     ps = getattr(getattr(result, "meta", None), "pixel_size_nm", None)
     s = ps if ps else 1.0
     unit = "nm" if ps else "px"
     x, y = tab["x_px"].to_numpy() * s, tab["y_px"].to_numpy() * s
-    fig = Figure(figsize=(11, 5), dpi=120, layout="constrained")
-    ax1, ax2 = fig.subplots(1, 2)
-    mag = np.hypot(tab["dx_perp"], tab["dy_perp"])
-    sc = ax1.scatter(x, y, c=mag, s=14, cmap="viridis", vmin=0, vmax=TAU)
-    ax1.quiver(x, y, tab["dx_perp"], tab["dy_perp"], angles="xy", color="#444444", width=0.002)
+    ux, uy = tab["phason_ux"].to_numpy(), tab["phason_uy"].to_numpy()
     fl = tab["flip"].to_numpy(dtype=bool)
-    ax1.scatter(x[fl], y[fl], s=60, facecolors="none", edgecolors="#d62728", linewidths=1.2, label="flip site")
-    ax1.set_aspect("equal")
-    ax1.invert_yaxis()
-    ax1.set(xlabel=f"x ({unit})", ylabel=f"y ({unit})", title="local phason field (residual x_perp / L)")
+    fig = Figure(figsize=(12, 5.4), dpi=120, layout="constrained")
+    ax1, ax2 = fig.subplots(1, 2, width_ratios=[1.25, 1])
+    gx, gy = np.meshgrid(np.linspace(x.min(), x.max(), 80), np.linspace(y.min(), y.max(), 80))
+    ok = np.isfinite(ux)
+    if ok.sum() >= 4:
+        fx = griddata((x[ok], y[ok]), ux[ok], (gx, gy), method="linear")
+        fy = griddata((x[ok], y[ok]), uy[ok], (gx, gy), method="linear")
+        step = (gx[0, 1] - gx[0, 0], gy[1, 0] - gy[0, 0])
+        grad = np.sqrt(sum(np.gradient(f, step[1], step[0])[k] ** 2 for f in (fx, fy) for k in (0, 1)))
+        im = ax1.imshow(grad, extent=(gx.min(), gx.max(), gy.max(), gy.min()), cmap="Greys", alpha=0.6)
+        fig.colorbar(im, ax=ax1, shrink=0.7, label=f"|grad local phason field| (L per {unit})")
+    q = ax1.quiver(x, y, ux, uy, np.hypot(ux, uy), cmap="viridis", angles="xy", width=0.003)
+    fig.colorbar(q, ax=ax1, shrink=0.7, label="|local perpendicular displacement| / L")
     if fl.any():
+        ax1.scatter(x[fl], y[fl], s=70, facecolors="none", edgecolors="#d62728", linewidths=1.4, label="flip site")
         ax1.legend(loc="upper right", fontsize=7)
-    fig.colorbar(sc, ax=ax1, shrink=0.8, label="|residual x_perp| / L")
-    ax2.scatter(tab["x_perp"], tab["y_perp"], s=6, c="#1f5fa8", alpha=0.6)
-    u = np.linspace(0, 2 * np.pi, 11)
+    ax1.set_aspect("equal")
+    ax1.set(xlim=(x.min(), x.max()), ylim=(y.max(), y.min()), xlabel=f"x ({unit})", ylabel=f"y ({unit})",
+            )
+    ax1.set_title(f"local phason field (smoothed over {SMOOTH_EDGES:g} L, linear strain removed)", fontsize=9)
+    ax2.scatter(tab["dx_perp"][~fl], tab["dy_perp"][~fl], s=6, c="#1f5fa8", alpha=0.6, label="vertex")
+    if fl.any():
+        ax2.scatter(tab["dx_perp"][fl], tab["dy_perp"][fl], s=30, c="#d62728", label="flip site")
+    ang = np.linspace(0, 2 * np.pi, 11)  # vertices of the projected 5-cube at 36 k deg
+    ax2.plot(TAU * np.cos(ang), TAU * np.sin(ang), color="#888888", lw=0.8, label="5-cube projection")
     ax2.set_aspect("equal")
+    ax2.legend(loc="upper right", fontsize=7)
     ph = (result.summary.get("phason") or {}).get("real_space") or {}
     sv = ph.get("singular_values")
-    title = "lifted vertices (x_perp / L)"
+    title = "perpendicular positions, linear strain removed"
     if sv:
         se = ph.get("singular_values_se") or [np.nan, np.nan]
         title += f"\nstrain singular values {sv[0]:.4f} +- {se[0]:.4f}, {sv[1]:.4f} +- {se[1]:.4f}"
-    ax2.set(xlabel="x_perp / L", ylabel="y_perp / L", title=title)
-    del u
+    ax2.set(xlabel="x_perp / L", ylabel="y_perp / L")
+    ax2.set_title(title, fontsize=9)
     return fig
 
 
