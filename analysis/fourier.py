@@ -31,7 +31,8 @@ from ._errors import TenfoldInputError
 from ._schema import SPOTS, conform, empty_table
 
 __all__ = ["power_spectrum", "find_spots", "analyze_fourier", "index_decagonal", "correct_columns", "fourier_stage",
-           "electron_wavelength_nm", "bragg_angle_mrad", "spectrum_figure"]
+           "electron_wavelength_nm", "bragg_angle_mrad", "spectrum_figure", "column_diffraction",
+           "diffraction_figure"]
 
 _ORDERS = (2, 4, 6, 8, 10, 12)
 
@@ -1100,6 +1101,113 @@ def _register_figures() -> None:
     except ImportError:  # export not available: the function stays usable on its own
         return
     register_figure("power_spectrum")(spectrum_figure)
+    register_figure("column_diffraction")(diffraction_figure)
+
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Kinematic diffraction of the found columns
+# ----------------------------------------------------------------------------------------------------------------
+
+
+def column_diffraction(
+    x_px, y_px, weights=None, *, n_image: int, n_grid: int | None = None, eps: float = 1e-6
+) -> tuple[np.ndarray, float]:
+    """Kinematic intensity ``|sum_j f_j exp(-2 pi i k . r_j)|^2`` of point scatterers on a square k-grid.
+
+    A type-1 non-uniform FFT (finufft; Barnett, Magland & af Klinteberg, SIAM J. Sci. Comput. 41 (2019) C479)
+    evaluates the sum for every grid frequency at once, so 1e5-1e6 columns take seconds.
+
+    Parameters
+    ----------
+    x_px, y_px : (N,) arrays
+        Column positions, px.
+    weights : (N,) array, optional
+        Scattering weights f_j (e.g. column intensity or a species value); default 1.
+    n_image : int
+        Side of the square the image spectrum was taken on: the grid step is ``1 / n_image`` cycles per px,
+        the same as :func:`power_spectrum`'s.
+    n_grid : int, optional
+        Grid side (default ``n_image``, even); frequencies ``m / n_image`` for m in ``[-n_grid/2, n_grid/2)``.
+    eps : float
+        Requested relative accuracy of the transform.
+
+    Returns
+    -------
+    intensity : (n_grid, n_grid) float64
+        Rows ky, columns kx, zero frequency at ``(n_grid // 2, n_grid // 2)`` (as :func:`power_spectrum`).
+    k_step_per_px : float
+
+    Examples
+    --------
+    >>> i, dk = column_diffraction(np.arange(0, 64, 8.0), np.zeros(8), n_image=64)  # doctest: +SKIP
+    """
+    try:
+        import finufft
+    except ImportError:
+        raise TenfoldInputError(
+            "column diffraction needs the non-uniform FFT package finufft: pip install 'tenfold[diffraction]'"
+        ) from None
+    x = np.asarray(x_px, dtype=np.float64).ravel()
+    y = np.asarray(y_px, dtype=np.float64).ravel()
+    if x.shape != y.shape or not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        raise TenfoldInputError("column diffraction: x_px and y_px must be finite arrays of one length")
+    c = np.ones_like(x) if weights is None else np.asarray(weights, dtype=np.float64).ravel()
+    if c.shape != x.shape:
+        raise TenfoldInputError("column diffraction: weights must have one value per column")
+    n_grid = int(n_image if n_grid is None else n_grid)
+    n_grid += n_grid % 2
+    if n_image < 2 or n_grid < 2:
+        raise TenfoldInputError("column diffraction: n_image and n_grid must be at least 2")
+    # phase 2 pi m x / n_image: scaled positions wrapped into [-pi, pi) (the transform is 2 pi-periodic in them)
+    xs = np.mod(2 * np.pi * x / n_image + np.pi, 2 * np.pi) - np.pi
+    ys = np.mod(2 * np.pi * y / n_image + np.pi, 2 * np.pi) - np.pi
+    f = finufft.nufft2d1(xs, ys, c.astype(np.complex128), (n_grid, n_grid), isign=-1, eps=eps)
+    inten = (f.real**2 + f.imag**2).T  # finufft's first axis is kx
+    return inten, 1.0 / n_image
+
+
+def diffraction_figure(result):
+    """Image power spectrum and the kinematic diffraction of the found columns, side by side.
+
+    Returns None without an image, without columns or without finufft.
+    """
+    cols = result.tables.get("columns")
+    if result.image is None or cols is None or len(cols) < 10:
+        return None
+    try:
+        import finufft  # noqa: F401
+    except ImportError:
+        return None
+    from matplotlib.figure import Figure
+
+    spec, dk = power_spectrum(result.image)
+    n = spec.shape[0]
+    h, w = np.shape(result.image)
+    r0, c0 = (h - n) // 2, (w - n) // 2
+    x = cols["x_raw_px"] if "x_raw_px" in cols else cols["x_px"]
+    y = cols["y_raw_px"] if "y_raw_px" in cols else cols["y_px"]
+    inside = (x >= c0) & (x < c0 + n) & (y >= r0) & (y < r0 + n)
+    wts = cols["intensity"].to_numpy(dtype=float)[inside] if "intensity" in cols else None
+    if wts is not None and not np.all(np.isfinite(wts)):
+        wts = None
+    inten, _ = column_diffraction(x[inside] - c0, y[inside] - r0, wts, n_image=n)
+    kin = np.log10(1.0 + inten / max(float(np.median(inten)), 1e-300))
+    ps = getattr(result.meta, "pixel_size_nm", None)
+    s = (1.0 / ps) if ps else 1.0
+    unit = "1/nm" if ps else "1/px"
+    ext = np.array([-n / 2 - 0.5, n / 2 - 0.5, n / 2 - 0.5, -n / 2 - 0.5]) * dk * s
+    spots = result.tables.get("spots")
+    lim = 0.5 * n * dk * s
+    if spots is not None and len(spots):
+        lim = min(lim, 1.15 * float(np.percentile(np.hypot(spots["kx_per_px"], spots["ky_per_px"]), 95)) * s)
+    fig = Figure(figsize=(11, 5.4), dpi=120, layout="constrained")
+    for ax, img, title in zip(fig.subplots(1, 2), (spec, kin),
+                              ("image power spectrum", "kinematic |sum f exp(-2 pi i k.r)|^2 of the found columns")):
+        ax.imshow(img, cmap="gray", extent=ext, vmax=float(np.percentile(img, 99.9)))
+        ax.set(xlim=(-lim, lim), ylim=(lim, -lim), xlabel=f"k_x ({unit})", ylabel=f"k_y ({unit})")
+        ax.set_title(title, fontsize=9)
+    return fig
 
 
 _register_figures()

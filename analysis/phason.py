@@ -12,7 +12,8 @@ Steps
 3. **Lift.** ``x_perp = L sum_j K_j e_perp_j`` with ``e_perp_j`` unit vectors at ``144 j`` deg and L the edge
    length (the standard lift of the five-dimensional cubic lattice; de Bruijn 1981).
 4. **Fit.** ``x_perp = W x_par + c`` by least squares over the vertices, ``x_par`` the measured positions; W is
-   the linear phason strain (dimensionless), its uncertainty from a bootstrap over vertices. The residual is the
+   the linear phason strain (dimensionless), its uncertainty the larger of a bootstrap over vertices and the
+   finite-field floor ``0.51 (L / half field)^2`` of ideal patches (our simulation, docs/fourier.md). The residual is the
    local phason field; a vertex whose residual leaves the acceptance window of the ideal tiling (the projection of
    the unit 5-cube, a decagon of circumradius tau L) is flagged as a phason-flip site.
 
@@ -138,20 +139,18 @@ def lift_tiling(
     pos[verts] = np.arange(len(verts))
     a, b = pos[e[:, 0]], pos[e[:, 1]]
     m = len(verts)
-    # Laplacian system L K = D^T step with the first vertex pinned (its row replaced by K_0 = 0)
+    # Laplacian system L K = D^T step with the first vertex pinned at K_0 = 0
     rows = np.concatenate([a, b, a, b])
     cols = np.concatenate([a, b, b, a])
     vals = np.concatenate([np.ones(len(a)), np.ones(len(a)), -np.ones(len(a)), -np.ones(len(a))])
-    lap = coo_matrix((vals, (rows, cols)), shape=(m, m)).tocsr()
+    lap = coo_matrix((vals, (rows, cols)), shape=(m, m)).tocsc()
     rhs = np.zeros((m, 5))
     np.add.at(rhs, b, step)
     np.add.at(rhs, a, -step)
-    lap = lap.tolil()
-    lap[0, :] = 0
-    lap[0, 0] = 1.0
-    rhs[0] = 0.0
-    sol = spsolve(lap.tocsc(), rhs)
-    k = np.rint(np.asarray(sol).reshape(m, 5)).astype(np.int64)
+    k = np.zeros((m, 5), dtype=np.int64)
+    if m > 1:  # vertex 0 pinned at K = 0: solve the reduced system
+        sol = spsolve(lap[1:, 1:], rhs[1:])
+        k[1:] = np.rint(np.asarray(sol).reshape(m - 1, 5)).astype(np.int64)
     bad = np.any(k[b] - k[a] != step, axis=1)
     index[verts] = k
     lifted[verts] = True
@@ -221,12 +220,12 @@ def _flip_sites(index: np.ndarray, res: np.ndarray) -> tuple[np.ndarray, str]:
 
 
 def _smooth_field(xy: np.ndarray, res: np.ndarray, use: np.ndarray, width: float) -> tuple[np.ndarray, np.ndarray]:
-    """Gaussian-weighted local mean of the residuals (flip sites excluded) at every vertex, within 3 widths."""
+    """Gaussian-weighted local mean of the residuals (flip sites excluded) at every vertex, within 2.5 widths."""
     from scipy.sparse import coo_matrix
     from scipy.spatial import cKDTree
 
     tree = cKDTree(xy)
-    pairs = tree.query_pairs(3.0 * width, output_type="ndarray")
+    pairs = tree.query_pairs(2.5 * width, output_type="ndarray")
     i = np.concatenate([pairs[:, 0], pairs[:, 1], np.arange(len(xy))])
     j = np.concatenate([pairs[:, 1], pairs[:, 0], np.arange(len(xy))])
     d2 = np.sum((xy[i] - xy[j]) ** 2, axis=1)
@@ -235,6 +234,19 @@ def _smooth_field(xy: np.ndarray, res: np.ndarray, use: np.ndarray, width: float
     norm = np.asarray(m.sum(axis=1)).ravel()
     with np.errstate(invalid="ignore", divide="ignore"):
         return m @ res[:, 0] / norm, m @ res[:, 1] / norm
+
+
+def _bootstrap(xpar: np.ndarray, xperp: np.ndarray, n_boot: int, gen: np.random.Generator) -> np.ndarray:
+    """Slopes W of ``n_boot`` resamples (with replacement), all at once through weighted normal equations."""
+    if n_boot <= 0:
+        return np.zeros((0, 2, 2))
+    n = len(xpar)
+    a = np.hstack([xpar - xpar.mean(axis=0), np.ones((n, 1))])
+    counts = gen.multinomial(n, np.full(n, 1.0 / n), size=n_boot).astype(np.float64)
+    ata = (counts @ (a[:, :, None] * a[:, None, :]).reshape(n, 9)).reshape(n_boot, 3, 3)
+    atb = (counts @ (a[:, :, None] * xperp[:, None, :]).reshape(n, 6)).reshape(n_boot, 3, 2)
+    sol = np.linalg.solve(ata, atb)  # (n_boot, 3, 2): rows x, y, 1
+    return np.transpose(sol[:, :2, :], (0, 2, 1))
 
 
 def _fit(xpar: np.ndarray, xperp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -324,10 +336,15 @@ def phason_from_network(
     info["window"] = window
     gen = np.random.default_rng(rng)
     use = np.flatnonzero(inside) if inside.sum() >= 10 else np.arange(n)
-    draws = gen.integers(0, len(use), size=(n_boot, len(use)))
-    boot_w = np.array([_fit(xpar[use[d]], xperp[use[d]])[0] for d in draws]) if n_boot else np.zeros((0, 2, 2))
+    boot_w = _bootstrap(xpar[use], xperp[use], n_boot, gen)
     sv = np.linalg.svd(w, compute_uv=False)
     boot_sv = np.linalg.svd(boot_w, compute_uv=False) if n_boot else np.zeros((0, 2))
+    # finite-field floor: rms per element of the slope over ideal pentagrid patches, 0.51 (L / half field)^2
+    # (Tenfold's own simulation, 30 tilings each at 5-40 edges; see docs/fourier.md)
+    half_field = 0.25 * float(np.sum(np.ptp(xpar, axis=0))) / edge
+    floor = 0.51 / max(half_field, 1.0) ** 2
+    boot_se = boot_w.std(axis=0) if n_boot > 1 else np.full((2, 2), np.nan)
+    boot_sv_se = boot_sv.std(axis=0) if n_boot > 1 else np.full(2, np.nan)
     # local gradient of the residual field: least-squares plane through each vertex's lifted neighbours
     ps = pixel_size_nm
     tab = pd.DataFrame({
@@ -348,9 +365,10 @@ def phason_from_network(
     info.update({
         "ok": True,
         "strain_matrix": w.tolist(),
-        "strain_matrix_se": (boot_w.std(axis=0) if n_boot > 1 else np.full((2, 2), np.nan)).tolist(),
+        "strain_matrix_se": np.fmax(boot_se, floor).tolist(),
         "singular_values": sv.tolist(),
-        "singular_values_se": (boot_sv.std(axis=0) if n_boot > 1 else np.full(2, np.nan)).tolist(),
+        "singular_values_se": np.fmax(boot_sv_se, floor).tolist(),
+        "finite_field_floor": floor,
         "n_used": int(len(use)),
         "n_flips": int((~inside).sum()),
         "residual_rms": float(np.sqrt(np.mean(np.sum(res[inside] ** 2, axis=1))) / edge) if inside.any() else None,

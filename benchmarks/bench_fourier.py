@@ -4,6 +4,7 @@
   (the phason-strained generator of ``analysis/_phason_sample.py``, 0.04 nm/px). Target: under 5 s.
 * Real-space lift of a tiling with about 10 000 vertices (pentagrid, edge 40 px): integer coordinates, strain fit,
   bootstrap (200 resamples) and flip test. Target: under 1 s.
+* Kinematic diffraction (non-uniform FFT) of 1e6 columns on a 1024 x 1024 grid. Target: under 10 s.
 
 Run: ``python benchmarks/bench_fourier.py [--size 4096] [--half 55]``
 """
@@ -50,6 +51,13 @@ def main(argv=None) -> int:
     print(f"real-space lift + fit + 200 bootstraps, {len(t.vertices)} vertices: {t1 - t0:.2f} s "
           f"(singular values {np.round(pinfo['singular_values'], 4).tolist()} +- "
           f"{np.round(pinfo['singular_values_se'], 4).tolist()})")
+    from tenfold.analysis.fourier import column_diffraction
+
+    rng = np.random.default_rng(0)
+    x, y = rng.uniform(0, 4096, 1_000_000), rng.uniform(0, 4096, 1_000_000)
+    t0 = time.perf_counter()
+    inten, _ = column_diffraction(x, y, n_image=4096, n_grid=1024)
+    print(f"kinematic diffraction, 1e6 columns on a 1024^2 grid: {time.perf_counter() - t0:.2f} s")
     return 0
 
 

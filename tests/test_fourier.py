@@ -250,3 +250,46 @@ def test_too_few_spots_is_not_indexed():
     spots = find_spots(_wave_image([0, 90], 12.0))
     out, idx = index_decagonal(spots.iloc[:4], n_image=N)
     assert not idx["ok"] and not out["indexed"].any() and "at least 8" in idx["notes"][0]
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Kinematic diffraction of columns (non-uniform FFT) against a direct sum, and against the image spectrum
+# ---------------------------------------------------------------------------------------------------------------
+
+
+def test_column_diffraction_matches_a_direct_sum():
+    from tenfold.analysis.fourier import column_diffraction
+
+    rng = np.random.default_rng(2)
+    x, y, w = rng.uniform(0, 32, 40), rng.uniform(0, 32, 40), rng.uniform(0.5, 2, 40)
+    inten, dk = column_diffraction(x, y, w, n_image=32, n_grid=16, eps=1e-10)
+    m = np.arange(-8, 8)
+    kx, ky = np.meshgrid(m * dk, m * dk)  # rows ky, columns kx
+    direct = np.abs(np.exp(-2j * np.pi * (kx[..., None] * x + ky[..., None] * y)) @ w) ** 2
+    np.testing.assert_allclose(inten, direct, rtol=1e-7, atol=1e-7 * direct.max())
+
+
+def test_column_diffraction_peaks_where_the_image_spots_are(high_dose):
+    import pandas as pd
+
+    from tenfold.analysis.fourier import column_diffraction
+
+    mg, (spots, _) = high_dose
+    truth = pd.read_csv(SAMPLES / "decagonal_haadf_high_dose_columns.csv")
+    inten, dk = column_diffraction(truth["x_px"], truth["y_px"], truth["counts"], n_image=1024)
+    c = 512
+    for _, s in spots.nlargest(10, "strength").iterrows():
+        px, py = int(round(s["kx_per_px"] / dk)) + c, int(round(s["ky_per_px"] / dk)) + c
+        win = inten[py - 2 : py + 3, px - 2 : px + 3]
+        iy, ix = np.unravel_index(np.argmax(win), win.shape)
+        assert abs(iy - 2) <= 1 and abs(ix - 2) <= 1  # the same spot within one frequency bin
+        assert win.max() > 20 * np.median(inten)
+
+
+def test_column_diffraction_bad_input():
+    from tenfold.analysis.fourier import column_diffraction
+
+    with pytest.raises(TenfoldInputError, match="one length"):
+        column_diffraction([0.0, 1.0], [0.0], n_image=16)
+    with pytest.raises(TenfoldInputError, match="weights"):
+        column_diffraction([0.0, 1.0], [0.0, 1.0], [1.0], n_image=16)
