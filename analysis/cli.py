@@ -140,6 +140,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="apply the scan-distortion correction measured from the Fourier spots to the column "
                         "positions before motifs, ladders, tiling and phasons (raw positions kept in columns.csv)")
     a.add_argument("--no-phason", action="store_true", help="skip the perpendicular-space (phason) analysis")
+    a.add_argument("--fourier-window", choices=("hann", "periodic_smooth"), default="hann",
+                   help="power-spectrum window: Hann (default) or the periodic-plus-smooth decomposition")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=int, default=0, help="seed for bootstraps and mixture fits (default 0)")
     a.add_argument("--quiet", action="store_true", help="no progress messages")
@@ -196,6 +198,7 @@ def _params(args) -> "object":
         fourier=not args.no_fourier,
         correct_distortion=args.correct_distortion,
         phason=not args.no_phason,
+        fourier_window=args.fourier_window,
         rng=args.seed,
         **lengths,
     )

@@ -52,15 +52,39 @@ def _square_crop(image: np.ndarray, valid: np.ndarray | None) -> tuple[np.ndarra
     return crop, ok
 
 
-def _power(image: np.ndarray, valid: np.ndarray | None) -> np.ndarray:
+WINDOWS = ("hann", "periodic_smooth")
+
+
+def _periodic_component(u: np.ndarray) -> np.ndarray:
+    """Periodic part p of u = p + s (s smooth): s solves a Poisson equation driven by the jumps across the image
+    border (L. Moisan, "Periodic plus smooth image decomposition", J. Math. Imaging Vis. 39 (2011) 161-179)."""
+    n0, n1 = u.shape
+    v = np.zeros_like(u)
+    v[0, :] += u[-1, :] - u[0, :]
+    v[-1, :] += u[0, :] - u[-1, :]
+    v[:, 0] += u[:, -1] - u[:, 0]
+    v[:, -1] += u[:, 0] - u[:, -1]
+    q = 2 * np.cos(2 * np.pi * np.arange(n0) / n0)[:, None] + 2 * np.cos(2 * np.pi * np.arange(n1) / n1)[None, :] - 4
+    q[0, 0] = 1.0
+    sh = np.fft.fft2(v) / q
+    sh[0, 0] = 0.0
+    return u - np.fft.ifft2(sh).real.astype(u.dtype)
+
+
+def _power(image: np.ndarray, valid: np.ndarray | None, window: str = "hann") -> np.ndarray:
+    if window not in WINDOWS:
+        raise TenfoldInputError(f"power spectrum: unknown window {window!r}; use one of {list(WINDOWS)}")
     crop, ok = _square_crop(image, valid)
     if not ok.any():
         raise TenfoldInputError("power spectrum: every pixel of the central square is masked")
     n = crop.shape[0]
-    w = np.hanning(n).astype(np.float32)
     work = np.where(ok, crop - crop[ok].mean(), 0.0).astype(np.float32)
-    work *= w[:, None]
-    work *= w[None, :]
+    if window == "hann":
+        w = np.hanning(n).astype(np.float32)
+        work *= w[:, None]
+        work *= w[None, :]
+    else:
+        work = _periodic_component(work)
     # real input: the half-plane transform and Friedel symmetry P(-k) = P(k) give the whole plane at half the cost
     from scipy import fft as _fft
 
@@ -86,8 +110,9 @@ def power_spectrum(
         False where pixels are masked (set to the mean before the transform).
     pixel_size_nm : float, optional
         Only used to validate; the returned step is per pixel. Multiply by ``1 / pixel_size_nm`` for 1/nm.
-    window : {'hann'}
-        Apodisation window (Harris 1978).
+    window : {'hann', 'periodic_smooth'}
+        Hann apodisation (Harris 1978), or no window on the periodic component of the periodic-plus-smooth
+        decomposition (Moisan 2011), which removes the edge cross without weighting the centre of the field.
 
     Returns
     -------
@@ -104,11 +129,9 @@ def power_spectrum(
     >>> int(np.argmax(s[32])) - 32 in (-8, 8), dk
     (True, 0.015625)
     """
-    if window != "hann":
-        raise TenfoldInputError(f"power spectrum: unknown window {window!r}; use 'hann'")
     if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
         raise TenfoldInputError(f"power spectrum: pixel_size_nm must be a positive number, got {pixel_size_nm}")
-    p = _power(image, valid)
+    p = _power(image, valid, window)
     med = np.median(p)
     scale = med if med > 0 else max(p.max(), 1e-300)
     return np.log10(1.0 + p / scale).astype(np.float32), 1.0 / p.shape[0]
@@ -122,6 +145,7 @@ def find_spots(
     max_spots: int = 80,
     min_strength: float = 8.0,
     k_min_per_px: float | None = None,
+    window: str = "hann",
 ) -> pd.DataFrame:
     """Strong spots of the power spectrum.
 
@@ -139,13 +163,15 @@ def find_spots(
         Minimum ratio of spot power to the azimuthal-average background at the same ``|k|``.
     k_min_per_px : float, optional
         Ignore frequencies below this (default ``4 / N``: the window's central lobe).
+    window : {'hann', 'periodic_smooth'}
+        As for :func:`power_spectrum`; the sub-pixel estimator follows the window.
 
     Returns
     -------
     DataFrame
         ``_schema.SPOTS`` columns: spot_id, kx_per_px, ky_per_px, k_per_nm, d_nm, d_px, angle_deg, strength, shell.
     """
-    p = _power(image, valid)
+    p = _power(image, valid, window)
     n = p.shape[0]
     c = n // 2
     ax = (np.arange(n) - c).astype(np.float32)
@@ -177,8 +203,9 @@ def find_spots(
     # Sub-pixel: the two-bin amplitude ratio of a Hann-windowed sinusoid along each axis (exact for one plane
     # wave; Grandke 1983), which a parabola through the log power is not (biased by up to ~0.1 bin).
     amp = np.sqrt(p)
-    dx = _hann_offset(amp[py, px - 1], amp[py, px], amp[py, px + 1])
-    dy = _hann_offset(amp[py - 1, px], amp[py, px], amp[py + 1, px])
+    offset = _hann_offset if window == "hann" else _rect_offset
+    dx = offset(amp[py, px - 1], amp[py, px], amp[py, px + 1])
+    dy = offset(amp[py - 1, px], amp[py, px], amp[py + 1, px])
     kx = (px + dx - c) / n
     ky = (py + dy - c) / n
     k = np.hypot(kx, ky)
@@ -214,6 +241,17 @@ def _hann_offset(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         a = nb / mid
         d = np.where(mid > 0, (2 * a - 1) / (a + 1), 0.0)
+    return np.where(right, d, -d).clip(-0.5, 0.5)
+
+
+def _rect_offset(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Sub-bin offset of an unwindowed (rectangular) peak: ``a / (1 + a)`` towards the larger neighbour, with
+    ``a = A_next / A_peak`` (the Dirichlet-kernel ratio; B. G. Quinn, IEEE Trans. Signal Process. 42 (1994) 1264)."""
+    right = hi >= lo
+    nb = np.where(right, hi, lo)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        a = nb / mid
+        d = np.where(mid > 0, a / (1 + a), 0.0)
     return np.where(right, d, -d).clip(-0.5, 0.5)
 
 
@@ -298,6 +336,7 @@ def analyze_fourier(
     edge_px: float | None = None,
     orientation_deg: float | None = None,
     rng: np.random.Generator | int | None = 0,
+    window: str = "hann",
 ) -> tuple[pd.DataFrame, dict]:
     """Spots, rotational order, decagonal indexing, scan distortion and phason strain from the power spectrum.
 
@@ -318,6 +357,8 @@ def analyze_fourier(
         the labelling of the five directions).
     rng : Generator or int seed
         For the uncertainty draws of the indexing fit.
+    window : {'hann', 'periodic_smooth'}
+        As for :func:`power_spectrum` (recorded as ``info['window']``).
 
     Returns
     -------
@@ -333,11 +374,12 @@ def analyze_fourier(
         lattice vectors), ``notes``.
     """
     every = find_spots(image, valid=valid, pixel_size_nm=pixel_size_nm, max_spots=max(max_spots, index_spots),
-                       min_strength=min_strength)
+                       min_strength=min_strength, window=window)
     spots, info = _order_and_shells(every.iloc[:max_spots].copy(), image, pixel_size_nm, distortion_warn)
     every["shell"] = -1
     every.loc[: len(spots) - 1, "shell"] = spots["shell"].to_numpy()
     info["dominant_order"] = info["rotational_order"]
+    info["window"] = window
     info["distortion_matrix"] = np.eye(2).tolist()
     info["distortion_source"] = "none"
     info["basis_nm_inv"] = None
@@ -352,7 +394,8 @@ def analyze_fourier(
     if order == 10:
         metric = info["distortion"]["metric"] if info["distortion"] else None
         every, idx = index_decagonal(every, n_image=n_image, pixel_size_nm=pixel_size_nm, edge_px=edge_px,
-                                     orientation_deg=orientation_deg, metric=metric, rng=rng)
+                                     orientation_deg=orientation_deg, metric=metric, rng=rng,
+                                     window_weighted=window == "hann")
         info["indexing"] = idx
         info["notes"].extend(idx.get("notes", []))
         if idx["ok"]:
@@ -619,6 +662,7 @@ def index_decagonal(
     phason: bool = True,
     n_draws: int = 300,
     rng: np.random.Generator | int | None = 0,
+    window_weighted: bool = True,
 ) -> tuple[pd.DataFrame, dict]:
     """Index Fourier spots on the decagonal basis and fit scan distortion and linear phason strain.
 
@@ -659,6 +703,9 @@ def index_decagonal(
         Parameter draws for the uncertainties of derived quantities (from the least-squares covariance).
     rng : Generator or int seed
         For those draws.
+    window_weighted : bool
+        The spectrum was Hann-windowed (True) or not (periodic-plus-smooth): selects the finite-field floor
+        added to the phason-strain uncertainty (Notes).
 
     Returns
     -------
@@ -787,11 +834,11 @@ def index_decagonal(
     b, c, dec, unc = _fit_summary(k[use], cand, rows[use], w[use], phason_fit, n_draws, rng)
     unc["residual"] = np.hypot(*(k[ok] - cand[1][rows[ok]] @ b.T - cand[2][rows[ok]] @ c.T).T)
     theta = dec["theta"]
-    # finite-field floor of a window-weighted phason-strain estimate: rms per matrix element of the Hann-weighted
-    # slope over ideal pentagrid tilings, 0.92 (L / half field)^2 (Tenfold's own simulation, 30 tilings each at
-    # 5 to 40 edges; the square law is the hyperuniformity of quasiperiodic point sets)
+    # finite-field floor of the phason-strain estimate: rms per matrix element of the Hann-weighted slope over
+    # ideal pentagrid tilings, 0.92 (L / half field)^2, unweighted 0.51 (L / half field)^2 (Tenfold's own
+    # simulation, 30 tilings each at 5 to 40 edges; the square law is the hyperuniformity of quasiperiodic sets)
     half_field = 0.5 * n_image * 2.5 * dec["a_star"]  # half the field in edge lengths, L = 1 / (5/2 a*)
-    floor = 0.92 / half_field**2
+    floor = (0.92 if window_weighted else 0.51) / half_field**2
     unc["strain_se"] = np.sqrt(unc["strain_se"] ** 2 + floor**2)
     unc["sv_se"] = np.sqrt(unc["sv_se"] ** 2 + floor**2)
     h_idx = cand[0][rows[ok]]
@@ -858,7 +905,7 @@ def _distortion_significant(info: dict) -> tuple[bool, float]:
     return bool(np.any(np.abs(d) > 3 * np.maximum(se, 1e-12))), dev
 
 
-def correct_columns(result, micrograph) -> dict:
+def correct_columns(result, micrograph, *, window: str = "hann") -> dict:
     """Measure the scan distortion from the spectrum and apply it to the column positions of ``result``.
 
     Positions are mapped about the image centre ``c`` as ``r' = D (r - c) + c`` with ``D`` the unit-determinant
@@ -873,7 +920,7 @@ def correct_columns(result, micrograph) -> dict:
         The ``distortion_correction`` record.
     """
     ps = micrograph.meta.pixel_size_nm
-    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps)
+    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, window=window)
     result.tables["spots"] = spots
     result.summary["fourier"] = info
     notes = result.summary.setdefault("notes", [])
@@ -903,6 +950,9 @@ def correct_columns(result, micrograph) -> dict:
     shift = np.hypot(*(new - xy).T) if len(xy) else np.zeros(0)
     rec.update(applied=True, significant=significant, max_deviation_from_identity=dev,
                max_shift_px=float(shift.max()) if len(shift) else 0.0)
+    notes.append(f"scan distortion corrected: x_px, y_px and every structure table are in the corrected frame "
+                 f"(measured positions in x_raw_px, y_raw_px); the image itself is not resampled, so overlays on "
+                 f"it are offset by up to {rec['max_shift_px']:.1f} px")
     if source == "shell_ellipse":
         notes.append("scan-distortion correction from the spot-shell ellipse only (no decagonal indexing): it "
                      "assumes the true pattern is isotropic and the fast-scan axis x undistorted; treat it as "
@@ -914,7 +964,7 @@ def correct_columns(result, micrograph) -> dict:
     return rec
 
 
-def fourier_stage(result, micrograph) -> None:
+def fourier_stage(result, micrograph, *, window: str = "hann") -> None:
     """Run :func:`analyze_fourier` for the pipeline, with the real-space tiling edge and orientation when known.
 
     Fills ``tables['spots']``, ``summary['fourier']`` and ``summary['phason']['fourier']``; records the applied
@@ -925,7 +975,7 @@ def fourier_stage(result, micrograph) -> None:
     real = (result.summary.get("phason") or {}).get("real_space") or {}
     edge = tiling.get("edge_px") if tiling.get("n_edges") else None
     spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, edge_px=edge,
-                                  orientation_deg=real.get("orientation_deg"))
+                                  orientation_deg=real.get("orientation_deg"), window=window)
     corr = result.summary.get("distortion_correction")
     if corr is not None:
         info["correction_applied"] = corr

@@ -71,6 +71,9 @@ class Parameters:
         ``columns`` keeps the measured positions as ``x_raw_px``, ``y_raw_px``.
     phason : bool
         Lift the cluster tiling to perpendicular space and fit the linear phason strain (default True).
+    fourier_window : str
+        'hann' (default) or 'periodic_smooth' (periodic-plus-smooth decomposition, no window: about half the
+        finite-field uncertainty of the phason strain from the spots; see docs/fourier.md).
     rng : int
         Seed for bootstraps and mixture initialisation.
     """
@@ -93,6 +96,7 @@ class Parameters:
     fourier: bool = True
     correct_distortion: bool = False
     phason: bool = True
+    fourier_window: str = "hann"
     rng: int = 0
     column_diameter_px: float | None = None
     column_spacing_px: float | None = None
@@ -126,6 +130,9 @@ class Parameters:
             raise TenfoldInputError(f"parameter n_species must be empty (automatic), 0 (skip) or 1-8, got {self.n_species!r}")
         if self.ring_order not in (5, 6, 8, 10, 12):
             raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
+        if self.fourier_window not in ("hann", "periodic_smooth"):
+            raise TenfoldInputError(
+                f"parameter fourier_window must be 'hann' or 'periodic_smooth', got {self.fourier_window!r}")
         if not (0 < self.radius_tolerance < 0.5):
             raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
         return self
@@ -411,7 +418,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
             from .fourier import correct_columns
 
             report(progress, 0.55, "power spectrum and scan-distortion correction")
-            correct_columns(result, micrograph)
+            correct_columns(result, micrograph, window=params.fourier_window)
         elif params.correct_distortion:
             result.summary.setdefault("notes", []).append(
                 "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
@@ -420,7 +427,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress) -> Analy
             report(progress, 0.9, "power spectrum")
             from .fourier import fourier_stage
 
-            fourier_stage(result, micrograph)
+            fourier_stage(result, micrograph, window=params.fourier_window)
         report(progress, 1.0, "analysis done")
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     for w in caught:

@@ -293,3 +293,18 @@ def test_column_diffraction_bad_input():
         column_diffraction([0.0, 1.0], [0.0], n_image=16)
     with pytest.raises(TenfoldInputError, match="weights"):
         column_diffraction([0.0, 1.0], [0.0, 1.0], [1.0], n_image=16)
+
+
+def test_periodic_smooth_spectrum_has_no_edge_cross_and_finds_the_frequency():
+    # an image whose left and right edges differ (a ramp) has a strong cross in the unwindowed spectrum; the
+    # periodic component of Moisan's decomposition (J. Math. Imaging Vis. 39 (2011) 161) has none
+    y, x = np.mgrid[:128, :128].astype(float)
+    img = np.cos(2 * np.pi * x / 8.0) + x / 16.0
+    s, _ = power_spectrum(img, window="periodic_smooth")
+    c = 64
+    assert abs(int(np.argmax(s[c])) - c) == 16  # 128 / 8 cycles
+    assert np.median(s[c + 5 : c + 30, c]) < 0.05 * s[c, c + 16]
+    spots = find_spots(img, window="periodic_smooth")
+    assert spots["d_px"].iloc[0] == pytest.approx(8.0, rel=1e-3)
+    with pytest.raises(TenfoldInputError, match="window"):
+        power_spectrum(img, window="blackman")
