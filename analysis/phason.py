@@ -471,7 +471,14 @@ def phason_stage(result, *, rng=0) -> None:
     ph = result.summary.setdefault("phason", {})
     info["method"] = "lift of the cluster tiling, least squares x_perp = W x_par + c, bootstrap over vertices"
     ph["real_space"] = info
-    ph.setdefault("fourier", {"ok": False, "n_used": 0, "reason": "Fourier stage not run"})
+    f_info = result.summary.get("fourier")
+    if f_info:  # a re-run from edited columns keeps the Fourier side of the earlier run
+        from .fourier import _compare_phason, fourier_phason_summary
+
+        ph["fourier"] = fourier_phason_summary(f_info)
+        _compare_phason(ph)
+    else:
+        ph.setdefault("fourier", {"ok": False, "n_used": 0, "reason": "Fourier stage not run"})
     notes = result.summary.setdefault("notes", [])
     for n in info.get("notes", []):
         if n not in notes:

@@ -230,3 +230,15 @@ def test_sheared_and_strained_with_the_periodic_smooth_spectrum():
         assert np.max(ph[key]["strain_matrix_se"]) < 0.007
     assert ph["agree"] and ph["agreement_max_sigma"] < 2.0
     assert result.summary["fourier"]["window"] == "periodic_smooth"
+
+
+def test_rerun_from_columns_keeps_both_sides(strained_run):
+    from tenfold.analysis.pipeline import rerun_from_columns
+
+    result, _ = strained_run
+    cols = result.tables["columns"].iloc[5:]  # drop a few columns by hand
+    new = rerun_from_columns(result, cols)
+    ph = new.summary["phason"]
+    assert ph["real_space"]["ok"] and ph["fourier"]["ok"]
+    assert ph["fourier"]["strain_matrix"] == result.summary["phason"]["fourier"]["strain_matrix"]
+    assert "agree" in ph
