@@ -242,3 +242,13 @@ def test_rerun_from_columns_keeps_both_sides(strained_run):
     assert ph["real_space"]["ok"] and ph["fourier"]["ok"]
     assert ph["fourier"]["strain_matrix"] == result.summary["phason"]["fourier"]["strain_matrix"]
     assert "agree" in ph
+
+
+def test_grid_normals_and_phason_strain_give_the_same_tiling():
+    from tenfold.analysis._pentagrid import E_PAR
+
+    a = pentagrid_tiling(5.0, rng=2, phason_strain=W_TRUE)
+    b = pentagrid_tiling(5.0, rng=2, normals=E_PAR + E_PERP @ W_TRUE)
+    np.testing.assert_array_equal(a.index, b.index)
+    with pytest.raises(ValueError, match="normals"):
+        pentagrid_tiling(5.0, rng=2, normals=E_PAR + 0.6)
