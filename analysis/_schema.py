@@ -31,6 +31,7 @@ __all__ = [
     "SPOTS",
     "PHASON_MAP",
     "TABLES",
+    "SUMMARY_KEYS",
     "empty_table",
     "conform",
 ]
@@ -207,6 +208,42 @@ TABLES: dict[str, tuple[Field, ...]] = {
 }
 
 
+#: Keys of summary.json that other tools read (section -> [(key, meaning)]); sections of other stages are
+#: described in their modules.
+SUMMARY_KEYS: dict[str, tuple[tuple[str, str], ...]] = {
+    "fourier": (
+        ("dominant_order", "integer n of the strongest rotational symmetry of the spot pattern (0: none)"),
+        ("distortion_matrix", "2x2, x-y order, maps measured positions to corrected ones, unit determinant; "
+                              "the identity when none is found (the applied one after --correct-distortion)"),
+        ("distortion_source", "'indexing', 'shell_ellipse' or 'none'"),
+        ("basis_nm_inv", "decagonal reciprocal basis length a* (1/nm); null when not indexed or uncalibrated"),
+        ("orientation_deg", "direction of the basis vector a*_0 (= tiling edge e_0), deg in [0, 36); null when "
+                            "not indexed"),
+        ("window", "'hann' or 'periodic_smooth'"),
+        ("indexing", "decagonal indexing: n_indexed, tau_scale ('real_space' or 'intensity'), shear, "
+                     "scale_x_over_y, distortion_matrix(_se), rms_index_error, phason (the spot fit)"),
+        ("lattice", "periodic patterns: reciprocal_per_px, real_px, real_nm, lengths_px, angle_deg"),
+    ),
+    "phason": (
+        ("real_space", "lift of the cluster tiling: strain_matrix (2x2, d x_perp / d x_par, x_perp = "
+                       "L sum_j K_j e_perp_j), strain_matrix_se, singular_values (descending), "
+                       "singular_values_se, n_used, n_flips, window, orientation_deg, edge_px"),
+        ("fourier", "the same keys from the spot positions (k = B g_par + C g_perp), plus tau_scale and "
+                    "finite_field_floor"),
+        ("agreement_max_sigma", "largest |W_real - W_fourier| / combined standard error over the four elements"),
+        ("agree", "agreement_max_sigma < 3"),
+    ),
+    "distortion_correction": (
+        ("applied", "whether the column positions were mapped (only with --correct-distortion)"),
+        ("matrix", "the 2x2 map applied about centre_px: r' = D (r - c) + c"),
+        ("matrix_se", "its standard errors (null when from the shell ellipse)"),
+        ("source", "'indexing' or 'shell_ellipse'"),
+        ("significant", "the matrix differs from the identity by more than 3 standard errors"),
+        ("max_shift_px", "largest position change"),
+    ),
+}
+
+
 def empty_table(fields: tuple[Field, ...]) -> pd.DataFrame:
     """An empty DataFrame with exactly the given columns and dtypes."""
     return pd.DataFrame({f.name: pd.Series([], dtype=f.dtype) for f in fields})
@@ -253,6 +290,11 @@ def schema_markdown() -> str:
         lines += [f"## {key} (`{files[key]}`, workbook sheet `{key}`)", "", "| column | dtype | unit | meaning |",
                   "| --- | --- | --- | --- |"]
         lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in fields]
+        lines.append("")
+    lines += ["## summary.json sections (contract keys)", ""]
+    for section, keys in SUMMARY_KEYS.items():
+        lines += [f"### `{section}`", "", "| key | meaning |", "| --- | --- |"]
+        lines += [f"| `{k}` | {doc} |" for k, doc in keys]
         lines.append("")
     return "\n".join(lines)
 

@@ -72,3 +72,10 @@ def test_cli_flags():
     assert p.correct_distortion and not p.phason
     p = _params(build_parser().parse_args(["analyze", "x.tif", "--out", "o"]))
     assert not p.correct_distortion and p.phason
+
+
+def test_correction_summary_keys(corrected):
+    from tenfold.analysis._schema import SUMMARY_KEYS
+
+    _, result = corrected
+    assert {k for k, _ in SUMMARY_KEYS["distortion_correction"]} <= set(result.summary["distortion_correction"])

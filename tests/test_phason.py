@@ -252,3 +252,12 @@ def test_grid_normals_and_phason_strain_give_the_same_tiling():
     np.testing.assert_array_equal(a.index, b.index)
     with pytest.raises(ValueError, match="normals"):
         pentagrid_tiling(5.0, rng=2, normals=E_PAR + 0.6)
+
+
+def test_summary_contract_keys_are_present(strained_run):
+    from tenfold.analysis._schema import SUMMARY_KEYS
+
+    result, _ = strained_run
+    for section in ("fourier", "phason"):
+        assert {k for k, _ in SUMMARY_KEYS[section]} <= set(result.summary[section]), section
+    assert "distortion_correction" not in result.summary  # only with --correct-distortion
