@@ -79,3 +79,15 @@ def test_correction_summary_keys(corrected):
 
     _, result = corrected
     assert {k for k, _ in SUMMARY_KEYS["distortion_correction"]} <= set(result.summary["distortion_correction"])
+
+
+def test_columns_csv_keeps_raw_and_corrected_positions(corrected, tmp_path):
+    import pandas as pd
+
+    from tenfold.analysis.export import write_results
+
+    _, result = corrected
+    write_results(result, tmp_path / "out", figures=False)
+    cols = pd.read_csv(tmp_path / "out" / "columns.csv")
+    assert {"x_px", "y_px", "x_raw_px", "y_raw_px"} <= set(cols.columns)
+    assert np.abs(cols["x_px"] - cols["x_raw_px"]).max() > 5  # 3 % of up to 384 px from the centre
