@@ -544,12 +544,19 @@ def _candidates(h_max: int = _H_MAX) -> tuple[np.ndarray, np.ndarray, np.ndarray
     from ._pentagrid import E_PAR, E_PERP
 
     r = np.arange(-h_max, h_max + 1)
-    h = np.stack(np.meshgrid(r, r, r, r, indexing="ij"), axis=-1).reshape(-1, 4)
+    # |g_perp| <= _GPERP_MAX is tested on the broadcast sum of the four perpendicular components (float32), so
+    # only the few per cent of index vectors that pass are ever materialised
+    px = sum(r.reshape([-1 if i == j else 1 for i in range(4)]).astype(np.float32) * np.float32(E_PERP[j + 1, 0])
+             for j in range(4))
+    py = sum(r.reshape([-1 if i == j else 1 for i in range(4)]).astype(np.float32) * np.float32(E_PERP[j + 1, 1])
+             for j in range(4))
+    idx = np.nonzero(px * px + py * py <= np.float32(_GPERP_MAX**2 * (1 + 1e-5)))
+    h = np.stack(idx, axis=1).astype(np.int64) - h_max
     h = h[np.any(h != 0, axis=1)]
-    gpar = h @ E_PAR[1:]
     gperp = h @ E_PERP[1:]
     keep = np.hypot(gperp[:, 0], gperp[:, 1]) <= _GPERP_MAX
-    return h[keep], gpar[keep], gperp[keep]
+    h = h[keep]
+    return h, h @ E_PAR[1:], gperp[keep]
 
 
 def _assign(k: np.ndarray, b: np.ndarray, cand, tol_rel: float, tol_abs: float) -> tuple[np.ndarray, np.ndarray]:
