@@ -21,10 +21,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["RhombusTiling", "pentagrid_tiling"]
+__all__ = ["RhombusTiling", "pentagrid_tiling", "E_PAR", "E_PERP"]
 
 TAU = (1.0 + np.sqrt(5.0)) / 2.0
 _E = np.stack([np.cos(2 * np.pi * np.arange(5) / 5), np.sin(2 * np.pi * np.arange(5) / 5)], axis=1)
+#: Unit star vectors of the five edge directions (physical space), e_j at 72 j deg.
+E_PAR = _E
+#: Their partners in perpendicular space, e_perp_j at 144 j deg (the standard lift of the 5-D cubic lattice; with
+#: E_PAR they satisfy sum_j e_j e_perp_j^T = 0 and sum_j e_perp_j e_perp_j^T = 5/2 I).
+E_PERP = np.stack([np.cos(4 * np.pi * np.arange(5) / 5), np.sin(4 * np.pi * np.arange(5) / 5)], axis=1)
 
 
 @dataclass
@@ -65,6 +70,8 @@ def pentagrid_tiling(
     half_height: float | None = None,
     gamma: np.ndarray | None = None,
     rng: np.random.Generator | int | None = None,
+    phason_strain: np.ndarray | None = None,
+    normals: np.ndarray | None = None,
 ) -> RhombusTiling:
     """Penrose rhombus tiling covering a rectangle, by de Bruijn's pentagrid method.
 
@@ -78,6 +85,17 @@ def pentagrid_tiling(
         Default: drawn from ``rng`` (a generic grid, with no three lines through one point).
     rng : numpy Generator or int seed, optional
         Source of the random offsets.
+    phason_strain : (2, 2) array, optional
+        Linear phason strain ``W = d x_perp / d x_par`` of the tiling (in the frame of this unrotated patch, edge
+        1; ``x_perp = sum_j K_j e_perp_j``). The grid offsets then vary linearly across the plane: the lines of
+        family j are ``x . (e_j + c_j) + gamma_j = k`` with ``c_j = W^T e_perp_j``, so a vertex's perpendicular
+        position ``sum_j K_j e_perp_j ~ sum_j e_perp_j (c_j . x) = 5/2 W x`` follows ``W x_par`` (``x_par ~ 5/2 x``,
+        and ``sum_j e_j c_j^T = 0`` leaves the physical positions unstrained). Small strains (singular values
+        well below 1) keep every grid generic and the dual a rhombus tiling.
+    normals : (5, 2) array, optional
+        The five grid normals themselves (instead of ``phason_strain``); edges stay the unit ``e_j``. Normals
+        with ``n_j . a_i`` integer for two vectors a_1, a_2 give a tiling periodic under those translations (a
+        periodic approximant; de Bruijn's dualisation holds for any such generic grid).
 
     Returns
     -------
@@ -98,6 +116,16 @@ def pentagrid_tiling(
         gamma = gen.uniform(0.0, 1.0, 5)
     gamma = np.asarray(gamma, dtype=float).reshape(5)
     gamma = gamma - gamma.mean()
+    grid = _E
+    if phason_strain is not None:
+        w = np.asarray(phason_strain, dtype=float)
+        if w.shape != (2, 2) or not np.all(np.isfinite(w)) or np.linalg.norm(w, 2) >= 0.5:
+            raise ValueError(f"pentagrid_tiling: phason_strain must be a finite 2x2 matrix with norm < 0.5, got {w.tolist()}")
+        grid = _E + E_PERP @ w  # row j: e_j + W^T e_perp_j
+    if normals is not None:
+        grid = np.asarray(normals, dtype=float).reshape(5, 2)
+        if not np.all(np.isfinite(grid)) or np.max(np.abs(grid - _E)) >= 0.5:
+            raise ValueError("pentagrid_tiling: normals must stay within 0.5 of the unit star e_j")
 
     # Vertices sit near (5/2) x for grid point x, so the grid region needed is the target region / 2.5 plus margin.
     reach = np.hypot(half_width, half_height) / 2.5 + 2.0
@@ -109,12 +137,12 @@ def pentagrid_tiling(
         for l in range(j + 1, 5):
             kj, kl = np.meshgrid(ks, ks, indexing="ij")
             kj, kl = kj.ravel(), kl.ravel()
-            a = np.stack([_E[j], _E[l]])  # rows: normals
+            a = np.stack([grid[j], grid[l]])  # rows: normals
             rhs = np.stack([kj - gamma[j], kl - gamma[l]], axis=1)
             p = np.linalg.solve(a, rhs.T).T  # (M, 2) intersection points
             keep = np.hypot(p[:, 0], p[:, 1]) <= reach
             p, kj, kl = p[keep], kj[keep], kl[keep]
-            base = np.floor(p @ _E.T + gamma).astype(np.int64)  # (M, 5)
+            base = np.floor(p @ grid.T + gamma).astype(np.int64)  # (M, 5)
             base[:, j] = kj - 1
             base[:, l] = kl - 1
             corners = np.repeat(base[:, None, :], 4, axis=1)

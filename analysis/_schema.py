@@ -29,8 +29,10 @@ __all__ = [
     "TILES",
     "NETWORK",
     "SPOTS",
+    "PHASON_MAP",
     "TABLES",
     "EXTRAS",
+    "SUMMARY_KEYS",
     "empty_table",
     "conform",
 ]
@@ -183,6 +185,36 @@ SPOTS = _fields(
     ("angle_deg", "float64", "deg", "direction of k, atan2(ky, kx), y down"),
     ("strength", "float64", "", "peak power over local background"),
     ("shell", "int64", "", "index of the |k| shell the spot belongs to (0 = innermost strong shell)"),
+    ("h1", "int64", "", "decagonal index on a*_1 (basis a*_j at orientation + 72 j deg; a*_0 = -(a*_1+..+a*_4)); 0 when not indexed"),
+    ("h2", "int64", "", "decagonal index on a*_2"),
+    ("h3", "int64", "", "decagonal index on a*_3"),
+    ("h4", "int64", "", "decagonal index on a*_4"),
+    ("indexed", "bool", "", "the spot was given decagonal indices"),
+    ("index_error", "float64", "", "|k - k_fit| / |k| of the indexed spot; NaN when not indexed"),
+    ("g_par_nm_inv", "float64", "1/nm", "|g_par| of the index (a* |sum h_j e_j|); NaN when uncalibrated or not indexed"),
+    ("g_perp_nm_inv", "float64", "1/nm", "|g_perp| of the index (a* |sum h_j e_perp_j|, e_perp_j at 144 j deg); NaN when uncalibrated or not indexed"),
+    ("g_perp_rel", "float64", "", "|g_perp| / a* (dimensionless); NaN when not indexed"),
+)
+
+#: One row per lifted tiling vertex (file DIR/phason_map.csv): the real-space phason analysis.
+PHASON_MAP = _fields(
+    ("motif_id", "int64", "", "cluster (ring or pentagon) the vertex is"),
+    ("x_px", "float64", "px", "vertex position x (corrected frame when the distortion was corrected)"),
+    ("y_px", "float64", "px", "vertex position y"),
+    ("x_nm", "float64", "nm", "x; NaN when uncalibrated"),
+    ("y_nm", "float64", "nm", "y; NaN when uncalibrated"),
+    ("k0", "int64", "", "integer coordinate along e_0 (edge direction at the tiling orientation)"),
+    ("k1", "int64", "", "integer coordinate along e_1 (orientation + 72 deg)"),
+    ("k2", "int64", "", "integer coordinate along e_2 (orientation + 144 deg)"),
+    ("k3", "int64", "", "integer coordinate along e_3 (orientation + 216 deg)"),
+    ("k4", "int64", "", "integer coordinate along e_4 (orientation + 288 deg)"),
+    ("x_perp", "float64", "L", "perpendicular-space position sum_j k_j e_perp_j, x component, in edge lengths"),
+    ("y_perp", "float64", "L", "perpendicular-space position, y component, in edge lengths"),
+    ("dx_perp", "float64", "L", "local phason field: x_perp minus the fitted linear strain, in edge lengths"),
+    ("dy_perp", "float64", "L", "local phason field, y component"),
+    ("flip", "bool", "", "residual outside the acceptance window of the ideal tiling (phason-flip site)"),
+    ("phason_ux", "float64", "L", "local phason displacement: Gaussian (2 L) average of dx_perp over nearby non-flip vertices"),
+    ("phason_uy", "float64", "L", "local phason displacement, y component"),
 )
 
 #: Further columns a stage writes after the contract columns (documented, with units; not a contract).
@@ -203,6 +235,43 @@ TABLES: dict[str, tuple[Field, ...]] = {
     "tiles": TILES,
     "network": NETWORK,
     "spots": SPOTS,
+    "phason_map": PHASON_MAP,
+}
+
+
+#: Keys of summary.json that other tools read (section -> [(key, meaning)]); sections of other stages are
+#: described in their modules.
+SUMMARY_KEYS: dict[str, tuple[tuple[str, str], ...]] = {
+    "fourier": (
+        ("dominant_order", "integer n of the strongest rotational symmetry of the spot pattern (0: none)"),
+        ("distortion_matrix", "2x2, x-y order, maps measured positions to corrected ones, unit determinant; "
+                              "the identity when none is found (the applied one after --correct-distortion)"),
+        ("distortion_source", "'indexing', 'shell_ellipse' or 'none'"),
+        ("basis_nm_inv", "decagonal reciprocal basis length a* (1/nm); null when not indexed or uncalibrated"),
+        ("orientation_deg", "direction of the basis vector a*_0 (= tiling edge e_0), deg in [0, 36); null when "
+                            "not indexed"),
+        ("window", "'hann' or 'periodic_smooth'"),
+        ("indexing", "decagonal indexing: n_indexed, tau_scale ('real_space' or 'intensity'), shear, "
+                     "scale_x_over_y, distortion_matrix(_se), rms_index_error, phason (the spot fit)"),
+        ("lattice", "periodic patterns: reciprocal_per_px, real_px, real_nm, lengths_px, angle_deg"),
+    ),
+    "phason": (
+        ("real_space", "lift of the cluster tiling: strain_matrix (2x2, d x_perp / d x_par, x_perp = "
+                       "L sum_j K_j e_perp_j), strain_matrix_se, singular_values (descending), "
+                       "singular_values_se, n_used, n_flips, window, orientation_deg, edge_px"),
+        ("fourier", "the same keys from the spot positions (k = B g_par + C g_perp), plus tau_scale and "
+                    "finite_field_floor"),
+        ("agreement_max_sigma", "largest |W_real - W_fourier| / combined standard error over the four elements"),
+        ("agree", "agreement_max_sigma < 3"),
+    ),
+    "distortion_correction": (
+        ("applied", "whether the column positions were mapped (only with --correct-distortion)"),
+        ("matrix", "the 2x2 map applied about centre_px: r' = D (r - c) + c"),
+        ("matrix_se", "its standard errors (null when from the shell ellipse)"),
+        ("source", "'indexing' or 'shell_ellipse'"),
+        ("significant", "the matrix differs from the identity by more than 3 standard errors"),
+        ("max_shift_px", "largest position change"),
+    ),
 }
 
 
@@ -247,12 +316,17 @@ def schema_markdown() -> str:
         "",
     ]
     files = {"columns": "columns.csv", "motifs": "motifs.csv", "ladder": "ladder.csv", "pair_peaks": "pair_peaks.csv",
-             "tiles": "tiles.csv", "network": "network.csv", "spots": "spots.csv"}
+             "tiles": "tiles.csv", "network": "network.csv", "spots": "spots.csv", "phason_map": "phason_map.csv"}
     for key, fields in TABLES.items():
         lines += [f"## {key} (`{files[key]}`, workbook sheet `{key}`)", "", "| column | dtype | unit | meaning |",
                   "| --- | --- | --- | --- |"]
         lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in fields]
         lines += [f"| `{f.name}` (extra) | {f.dtype} | {f.unit} | {f.doc} |" for f in EXTRAS.get(key, ())]
+        lines.append("")
+    lines += ["## summary.json sections (contract keys)", ""]
+    for section, keys in SUMMARY_KEYS.items():
+        lines += [f"### `{section}`", "", "| key | meaning |", "| --- | --- |"]
+        lines += [f"| `{k}` | {doc} |" for k, doc in keys]
         lines.append("")
     return "\n".join(lines)
 

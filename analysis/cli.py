@@ -240,6 +240,12 @@ def build_parser() -> argparse.ArgumentParser:
     mot.add_argument("--tiling-edge", type=_length, metavar="LEN",
                      help="cluster-network edge length, nm or px suffix; default: automatic")
     a.add_argument("--no-fourier", action="store_true", help="skip the power-spectrum analysis")
+    a.add_argument("--correct-distortion", action="store_true",
+                   help="apply the scan-distortion correction measured from the Fourier spots to the column "
+                        "positions before motifs, ladders, tiling and phasons (raw positions kept in columns.csv)")
+    a.add_argument("--no-phason", action="store_true", help="skip the perpendicular-space (phason) analysis")
+    a.add_argument("--fourier-window", choices=("hann", "periodic_smooth"), default="hann",
+                   help="power-spectrum window: Hann (default) or the periodic-plus-smooth decomposition")
     a.add_argument("--no-figures", action="store_true", help="do not draw PNG/SVG figures")
     a.add_argument("--seed", type=_seed, default=0, help="seed for bootstraps and mixture fits (default 0)")
     _add_scale_out_options(a)
@@ -323,6 +329,9 @@ def _params(args) -> "object":
         pentagons=not args.no_pentagons,
         half_step=args.half_step,
         fourier=not args.no_fourier,
+        correct_distortion=args.correct_distortion,
+        phason=not args.no_phason,
+        fourier_window=args.fourier_window,
         rng=args.seed,
         **lengths,
     )

@@ -63,7 +63,7 @@ SPECIES_MARKERS = ("o", "s", "^", "D", "v", "P")
 _UNCLASSIFIED_COLOUR = "#9e9e9e"
 
 #: stage modules that may register figure makers; imported (if present) before figures are drawn
-_FIGURE_MODULES = ("species", "motifs", "ladder", "tiling", "fourier", "region")
+_FIGURE_MODULES = ("species", "motifs", "ladder", "tiling", "fourier", "region", "phason")
 
 #: the versions recorded in the provenance (distribution names)
 _VERSIONED = ("tenfold", "numpy", "scipy", "pandas", "trackpy", "scikit-image", "numba", "tifffile", "openpyxl",

@@ -65,6 +65,15 @@ class Parameters:
         Cluster-network edge length (default: from the centre pair distances).
     fourier : bool
         Run the Fourier stage.
+    correct_distortion : bool
+        Apply the scan-distortion correction measured from the Fourier spots to the column positions before the
+        structure stages (default False): every downstream table is then in the corrected frame, and
+        ``columns`` keeps the measured positions as ``x_raw_px``, ``y_raw_px``.
+    phason : bool
+        Lift the cluster tiling to perpendicular space and fit the linear phason strain (default True).
+    fourier_window : str
+        'hann' (default) or 'periodic_smooth' (periodic-plus-smooth decomposition, no window: about half the
+        finite-field uncertainty of the phason strain from the spots; see docs/fourier.md).
     rng : int
         Seed for bootstraps and mixture initialisation.
     """
@@ -85,6 +94,9 @@ class Parameters:
     d0_nm: float | None = None
     tiling_edge_nm: float | None = None
     fourier: bool = True
+    correct_distortion: bool = False
+    phason: bool = True
+    fourier_window: str = "hann"
     rng: int = 0
     column_diameter_px: float | None = None
     column_spacing_px: float | None = None
@@ -125,6 +137,9 @@ class Parameters:
             raise TenfoldInputError(f"parameter n_species must be empty (automatic), 0 (skip) or 1-8, got {self.n_species!r}")
         if self.ring_order not in (5, 6, 8, 10, 12):
             raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
+        if self.fourier_window not in ("hann", "periodic_smooth"):
+            raise TenfoldInputError(
+                f"parameter fourier_window must be 'hann' or 'periodic_smooth', got {self.fourier_window!r}")
         if not (0 < self.radius_tolerance < 0.5):
             raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
         if not (isinstance(self.rng, (int, np.integer)) and 0 <= self.rng < 2**63):
@@ -307,6 +322,10 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     notes.extend(n for n in structure_notes(
         n_columns=len(ok), columns_info=result.summary.get("columns"), motifs=motifs, motifs_info=m_info,
         ladder_info=l_info, tiling_info=t_info, pair_peaks=result.tables["pair_peaks"]) if n not in notes)
+    if params.phason:
+        from .phason import phason_stage
+
+        phason_stage(result, rng=params.rng)
     report(progress, 1.0, "structure done")
 
 
@@ -478,17 +497,26 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
         result.summary["species"] = c_info.get("species")
         # each block once: 'automatic' and 'species' live at the top level only
         result.summary["columns"] = {k: v for k, v in c_info.items() if k not in ("automatic", "species")}
+        f_data, f_valid, f_note = _fourier_input(micrograph, tiled)
+        f_micrograph = micrograph if f_note is None else dataclasses.replace(micrograph, data=f_data, valid=f_valid)
+        if params.fourier and params.correct_distortion:
+            from .fourier import correct_columns
+
+            report(progress, 0.55, "power spectrum and scan-distortion correction")
+            correct_columns(result, f_micrograph, window=params.fourier_window)
+        elif params.correct_distortion:
+            result.summary.setdefault("notes", []).append(
+                "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
         _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
         if params.fourier:
             report(progress, 0.9, "power spectrum")
-            from .fourier import analyze_fourier
+            from .fourier import fourier_stage
 
-            f_data, f_valid, f_note = _fourier_input(micrograph, tiled)
-            spots, f_info = analyze_fourier(f_data, valid=f_valid, pixel_size_nm=ps)
+            fourier_stage(result, f_micrograph, window=params.fourier_window)
             if f_note:
-                f_info = {**f_info, "notes": [*(f_info.get("notes") or []), f_note], "crop_note": f_note}
-            result.tables["spots"] = spots
-            result.summary["fourier"] = f_info
+                f_info = result.summary["fourier"]
+                f_info["notes"] = [*(f_info.get("notes") or []), f_note]
+                f_info["crop_note"] = f_note
         report(progress, 1.0, "analysis done")
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     for w in caught:

@@ -29,6 +29,7 @@ __all__ = [
     "motifs_layer_kwargs",
     "centres_layer_kwargs",
     "network_layer_kwargs",
+    "phason_layer_kwargs",
     "motif_polygons",
     "spectrum_layer_kwargs",
 ]
@@ -369,6 +370,29 @@ def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dic
     )
 
 
+def phason_layer_kwargs(phason_map: pd.DataFrame, edge_px: float | None, frame: dict) -> dict:
+    """The 'phason field' Vectors layer: at every lifted tiling vertex, its residual perpendicular displacement
+    (drawn at half an edge length per edge length of displacement), red at phason-flip sites."""
+    if len(phason_map):
+        start = phason_map[["y_px", "x_px"]].to_numpy(float)
+        scale = 0.5 * float(edge_px or 1.0)
+        disp = phason_map[["dy_perp", "dx_perp"]].to_numpy(float) * scale
+        vectors = np.stack([start, disp], axis=1)
+        flip = phason_map["flip"].to_numpy(bool)
+        colours = np.where(flip[:, None], np.array([[0.85, 0.15, 0.15, 1.0]]), np.array([[0.2, 0.8, 0.9, 1.0]]))
+    else:
+        vectors, colours = np.zeros((0, 2, 2)), np.zeros((0, 4))
+    return dict(
+        data=vectors,
+        features=phason_map.reset_index(drop=True),
+        edge_color=colours,
+        edge_width=0.15 * _point_size(frame),
+        name="phason field",
+        vector_style="arrow",
+        **_frame_kwargs(frame),
+    )
+
+
 def spectrum_layer_kwargs(spectrum: np.ndarray, k_step: float, calibrated: bool) -> dict:
     """The 'power spectrum' image layer: centred, scale in 1/nm (1/px when uncalibrated)."""
     n_rows, n_cols = spectrum.shape
@@ -407,6 +431,10 @@ def result_layers(result, frame: dict, *, columns: bool = True, colour_by: str =
     out.append(_chunked_shapes(motifs_layer_kwargs(motifs, cols, frame)))
     out.append(Points(**centres_layer_kwargs(motifs, frame)))
     out.append(Vectors(**network_layer_kwargs(result.tables["network"], motifs, frame)))
+    phason_map = result.tables.get("phason_map")
+    if phason_map is not None and len(phason_map):
+        edge = (result.summary.get("tiling") or {}).get("edge_px")
+        out.append(Vectors(**phason_layer_kwargs(phason_map, edge, frame)))
     return out
 
 

@@ -187,6 +187,16 @@ class PipelineWidget(QWidget):
         for w in (self.pentagons, self.half_step, self.fourier):
             row.addWidget(w)
         form.addRow(row)
+        self.correct_distortion = QCheckBox("correct scan distortion")
+        self.correct_distortion.setToolTip(
+            "apply the distortion measured from the Fourier spots to the column positions before motifs, "
+            "ladders, tiling and phasons (overlays are then in the corrected frame)")
+        self.phason = QCheckBox("phason analysis")
+        self.phason.setChecked(True)
+        row = QHBoxLayout()
+        for w in (self.correct_distortion, self.phason):
+            row.addWidget(w)
+        form.addRow(row)
         root.addWidget(box)
 
         row = QHBoxLayout()
@@ -279,6 +289,8 @@ class PipelineWidget(QWidget):
             pentagons=self.pentagons.isChecked(),
             half_step=self.half_step.isChecked(),
             fourier=self.fourier.isChecked(),
+            correct_distortion=self.correct_distortion.isChecked(),
+            phason=self.phason.isChecked(),
         )
         return Parameters(**values).validate()
 

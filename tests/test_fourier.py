@@ -117,3 +117,194 @@ def test_bundled_sheared_sample_against_its_recorded_shear():
     mg = read_micrograph(here / "decagonal_haadf_vacancies.tif")
     _, info = analyze_fourier(mg.data, valid=mg.valid)
     assert info["rotational_order"] == 10 and not info["distortion"]["warning"]
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Indexing, scan distortion, periodic lattices, wavelength
+# ---------------------------------------------------------------------------------------------------------------
+
+from tenfold.analysis.fourier import (  # noqa: E402
+    _rq_upper,
+    _upper_from_metric,
+    bragg_angle_mrad,
+    electron_wavelength_nm,
+    index_decagonal,
+)
+
+SAMPLES = __import__("pathlib").Path(__file__).resolve().parents[1] / "sample_images"
+
+
+@pytest.fixture(scope="module")
+def high_dose():
+    from tenfold.analysis.io import read_micrograph
+
+    mg = read_micrograph(SAMPLES / "decagonal_haadf_high_dose.tif")
+    return mg, analyze_fourier(mg.data, valid=mg.valid, pixel_size_nm=mg.meta.pixel_size_nm, edge_px=50.0)
+
+
+@pytest.mark.parametrize("kv, pm", [(80, 4.18), (200, 2.51), (300, 1.97)], ids=["80kV", "200kV", "300kV"])
+def test_electron_wavelength_against_handbook(kv, pm):
+    # Williams & Carter, Transmission Electron Microscopy (2009), Table 1.1 (relativistic), from memory (0.01 pm)
+    assert electron_wavelength_nm(kv) * 1000 == pytest.approx(pm, abs=0.006)
+
+
+def test_bragg_angle_and_bad_voltage():
+    # theta = asin(lambda / 2d): 2.5079 pm / 0.4 nm at 200 kV
+    assert bragg_angle_mrad(0.2, 200) == pytest.approx(np.arcsin(electron_wavelength_nm(200) / 0.4) * 1e3)
+    assert bragg_angle_mrad(0.2, 200) == pytest.approx(6.27, abs=0.01)
+    with pytest.raises(TenfoldInputError, match="voltage_kv"):
+        electron_wavelength_nm(-5)
+    with pytest.raises(TenfoldInputError, match="d_nm"):
+        bragg_angle_mrad(0.0, 200)
+
+
+def test_rq_split_against_product():
+    rng = np.random.default_rng(0)
+    for _ in range(5):
+        h = rng.normal(size=(2, 2)) + 2 * np.eye(2)
+        u, q = _rq_upper(h)
+        assert u[1, 0] == pytest.approx(0.0, abs=1e-12)
+        np.testing.assert_allclose(u @ q, h, atol=1e-12)
+        np.testing.assert_allclose(q @ q.T, np.eye(2), atol=1e-12)
+
+
+def test_correction_from_shell_ellipse_inverts_a_known_shear():
+    # r' = D r with D = [[1, s], [0, 1]] makes the shell metric M ~ D D^T (k' = D^-T k; linear algebra)
+    s = 0.03
+    d = np.array([[1.0, s], [0.0, 1.0]])
+    np.testing.assert_allclose(_upper_from_metric(d @ d.T), np.linalg.inv(d), atol=1e-12)
+
+
+def test_decagonal_indexing_of_the_bundled_sample(high_dose):
+    mg, (spots, info) = high_dose
+    idx = info["indexing"]
+    assert idx["ok"] and idx["tau_scale"] == "real_space"
+    # the model's tiling edge is 2 nm: reciprocal basis a* = 1 / (5/2 L) = 0.2 1/nm (lift of the 5-D cubic
+    # lattice, de Bruijn 1981); orientation 7 deg from the generator
+    assert idx["basis_nm_inv"] == pytest.approx(0.2, rel=1e-3)
+    assert info["basis_nm_inv"] == idx["basis_nm_inv"]
+    assert idx["orientation_deg"] == pytest.approx(7.0, abs=0.05)
+    assert idx["n_indexed"] >= 60
+    assert idx["rms_index_error"] < 1e-3
+    ind = spots[spots["indexed"]]
+    # integer indices reproduce the spot positions: k = a* R(theta) sum h_j e_j
+    from tenfold.analysis._pentagrid import E_PAR
+
+    h = ind[["h1", "h2", "h3", "h4"]].to_numpy()
+    t = np.radians(idx["orientation_deg"])
+    rot = np.array([[np.cos(t), -np.sin(t)], [np.sin(t), np.cos(t)]])
+    pred = idx["basis_per_px"] * (h @ E_PAR[1:]) @ rot.T
+    k = ind[["kx_per_px", "ky_per_px"]].to_numpy()
+    assert np.max(np.hypot(*(k - pred).T) / np.hypot(*k.T)) < 0.005
+    # strong spots sit near the origin of perpendicular space
+    strongest = ind.nlargest(10, "strength")
+    assert strongest["g_perp_rel"].max() < 1.0
+    np.testing.assert_allclose(info["distortion_matrix"], np.eye(2), atol=1e-3)
+    assert info["dominant_order"] == 10 and info["distortion_source"] == "indexing"
+
+
+def test_intensity_convention_without_real_space_edge(high_dose):
+    mg, (spots, _) = high_dose
+    out, idx = index_decagonal(spots, n_image=1024, pixel_size_nm=mg.meta.pixel_size_nm)
+    assert idx["ok"] and idx["tau_scale"] == "intensity"
+    assert any("tau^2" in n for n in idx["notes"])
+    # whatever tau^n is chosen, the basis is a tau power of the physical one (0.2 1/nm) possibly times 2 cos 18
+    tau = (1 + 5**0.5) / 2
+    r = np.log(idx["basis_nm_inv"] / 0.2) / np.log(tau)
+    r2 = np.log(idx["basis_nm_inv"] / (0.2 * 2 * np.cos(np.pi / 10))) / np.log(tau)
+    assert min(abs(r - round(r)), abs(r2 - round(r2))) < 0.01
+
+
+def test_sheared_sample_distortion_recovered():
+    from tenfold.analysis.io import read_micrograph
+
+    import json
+
+    shear = json.loads((SAMPLES / "decagonal_haadf_sheared_truth.json").read_text())["shear"]
+    mg = read_micrograph(SAMPLES / "decagonal_haadf_sheared.tif")
+    _, info = analyze_fourier(mg.data, valid=mg.valid, pixel_size_nm=mg.meta.pixel_size_nm, edge_px=50.0)
+    # the generator moves x' = x + shear y: the correction is its inverse (unit determinant already)
+    truth = np.linalg.inv(np.array([[1.0, shear], [0.0, 1.0]]))
+    np.testing.assert_allclose(info["distortion_matrix"], truth, atol=0.002)
+    assert info["indexing"]["shear"] == pytest.approx(shear, abs=0.001)
+    se = np.asarray(info["indexing"]["distortion_matrix_se"])
+    assert np.all(se[[0, 0, 1], [0, 1, 1]] < 0.002)
+
+
+def test_hexagonal_pattern_gives_a_lattice_not_a_decagonal_index():
+    d = 10.3
+    spots, info = analyze_fourier(_wave_image([0, 60, 120], d))
+    assert info["dominant_order"] == 6
+    assert info["indexing"] is None
+    lat = info["lattice"]
+    assert lat["ok"]
+    # plane spacing d of a hexagonal lattice: a = 2 d / sqrt(3), 60 or 120 deg between the vectors (Kittel ch. 2)
+    np.testing.assert_allclose(lat["lengths_px"], 2 * d / np.sqrt(3), rtol=0.01)
+    assert min(abs(lat["angle_deg"] - 60), abs(lat["angle_deg"] - 120)) < 1.0
+    assert lat["fraction_indexed"] > 0.8  # the rest: weak noise maxima that pass the strength cut
+    assert any("decagonal indexing does not apply" in n for n in info["notes"])
+    assert not spots["indexed"].any()
+
+
+def test_too_few_spots_is_not_indexed():
+    spots = find_spots(_wave_image([0, 90], 12.0))
+    out, idx = index_decagonal(spots.iloc[:4], n_image=N)
+    assert not idx["ok"] and not out["indexed"].any() and "at least 8" in idx["notes"][0]
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Kinematic diffraction of columns (non-uniform FFT) against a direct sum, and against the image spectrum
+# ---------------------------------------------------------------------------------------------------------------
+
+
+def test_column_diffraction_matches_a_direct_sum():
+    from tenfold.analysis.fourier import column_diffraction
+
+    rng = np.random.default_rng(2)
+    x, y, w = rng.uniform(0, 32, 40), rng.uniform(0, 32, 40), rng.uniform(0.5, 2, 40)
+    inten, dk = column_diffraction(x, y, w, n_image=32, n_grid=16, eps=1e-10)
+    m = np.arange(-8, 8)
+    kx, ky = np.meshgrid(m * dk, m * dk)  # rows ky, columns kx
+    direct = np.abs(np.exp(-2j * np.pi * (kx[..., None] * x + ky[..., None] * y)) @ w) ** 2
+    np.testing.assert_allclose(inten, direct, rtol=1e-7, atol=1e-7 * direct.max())
+
+
+def test_column_diffraction_peaks_where_the_image_spots_are(high_dose):
+    import pandas as pd
+
+    from tenfold.analysis.fourier import column_diffraction
+
+    mg, (spots, _) = high_dose
+    truth = pd.read_csv(SAMPLES / "decagonal_haadf_high_dose_columns.csv")
+    inten, dk = column_diffraction(truth["x_px"], truth["y_px"], truth["counts"], n_image=1024)
+    c = 512
+    for _, s in spots.nlargest(10, "strength").iterrows():
+        px, py = int(round(s["kx_per_px"] / dk)) + c, int(round(s["ky_per_px"] / dk)) + c
+        win = inten[py - 2 : py + 3, px - 2 : px + 3]
+        iy, ix = np.unravel_index(np.argmax(win), win.shape)
+        assert abs(iy - 2) <= 1 and abs(ix - 2) <= 1  # the same spot within one frequency bin
+        assert win.max() > 20 * np.median(inten)
+
+
+def test_column_diffraction_bad_input():
+    from tenfold.analysis.fourier import column_diffraction
+
+    with pytest.raises(TenfoldInputError, match="one length"):
+        column_diffraction([0.0, 1.0], [0.0], n_image=16)
+    with pytest.raises(TenfoldInputError, match="weights"):
+        column_diffraction([0.0, 1.0], [0.0, 1.0], [1.0], n_image=16)
+
+
+def test_periodic_smooth_spectrum_has_no_edge_cross_and_finds_the_frequency():
+    # an image whose left and right edges differ (a ramp) has a strong cross in the unwindowed spectrum; the
+    # periodic component of Moisan's decomposition (J. Math. Imaging Vis. 39 (2011) 161) has none
+    y, x = np.mgrid[:128, :128].astype(float)
+    img = np.cos(2 * np.pi * x / 8.0) + x / 16.0
+    s, _ = power_spectrum(img, window="periodic_smooth")
+    c = 64
+    assert abs(int(np.argmax(s[c])) - c) == 16  # 128 / 8 cycles
+    assert np.median(s[c + 5 : c + 30, c]) < 0.05 * s[c, c + 16]
+    spots = find_spots(img, window="periodic_smooth")
+    assert spots["d_px"].iloc[0] == pytest.approx(8.0, rel=1e-3)
+    with pytest.raises(TenfoldInputError, match="window"):
+        power_spectrum(img, window="blackman")
