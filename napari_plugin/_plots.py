@@ -78,7 +78,9 @@ def _canvas(figsize=(4.2, 3.4)):
     from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
     from matplotlib.figure import Figure
 
-    figure = Figure(figsize=figsize, dpi=90, layout="constrained")
+    # fixed margins: matplotlib's constrained layout took about as long as the drawing itself
+    figure = Figure(figsize=figsize, dpi=90)
+    figure.subplots_adjust(left=0.16, right=0.97, bottom=0.2, top=0.9)
     canvas = FigureCanvasQTAgg(figure)
     canvas.setMinimumHeight(240)
     return figure, canvas
@@ -138,6 +140,8 @@ class PlotsWidget(QWidget):
         self.tabs.addTab(self.species_canvas, "Species")
 
         self.table = _table(_TABLE_COLUMNS)
+        rows = self.table.verticalHeader().defaultSectionSize()
+        self.table.setMinimumHeight(int(self.table.horizontalHeader().sizeHint().height() + 10.5 * rows + 4))
         self.table.setToolTip("Motifs, best score first; click a row to select the motif and zoom to it")
         self.tabs.addTab(self.table, "Motifs")
 
@@ -183,6 +187,8 @@ class PlotsWidget(QWidget):
         self.pair_canvas.mpl_connect("button_press_event", self._on_pair_click)
         self.species_canvas.mpl_connect("button_press_event", self._on_species_click)
         self.session.changed.connect(self.refresh)
+        self.tabs.currentChanged.connect(lambda _: self._draw_stale())
+        self._stale: set = set()
         self.refresh()
 
     # ---------------------------------------------------------------- drawing
@@ -199,7 +205,7 @@ class PlotsWidget(QWidget):
                 ax = fig.add_subplot()
                 ax.text(0.5, 0.5, "run an analysis", ha="center", va="center", transform=ax.transAxes)
                 ax.set_axis_off()
-                canvas.draw_idle()
+                self._redraw(canvas)
             self._fill_table(None)
             return
         self._draw_pairs(result)
@@ -208,6 +214,25 @@ class PlotsWidget(QWidget):
         self._draw_tiling(result)
         self._draw_fourier_text(result)
         self._fill_notes(result)
+
+    def showEvent(self, event) -> None:  # noqa: N802 (Qt's name)
+        super().showEvent(event)
+        from qtpy.QtCore import QTimer
+
+        QTimer.singleShot(0, self._draw_stale)
+
+    def _redraw(self, canvas) -> None:
+        """Draw a canvas now if its tab is shown, else when its tab is opened (drawing is the slow part)."""
+        if canvas.isVisible():
+            canvas.draw_idle()
+        else:
+            self._stale.add(canvas)
+
+    def _draw_stale(self) -> None:
+        for canvas in list(self._stale):
+            if canvas.isVisible():
+                self._stale.discard(canvas)
+                canvas.draw_idle()
 
     def _unit(self, result):
         ps = result.meta.pixel_size_nm
@@ -236,7 +261,7 @@ class PlotsWidget(QWidget):
         self._pair_ax = ax
         peaks = result.tables.get("pair_peaks")
         self._peaks = peaks[peaks["set"] == "columns"] if peaks is not None and len(peaks) else None
-        self.pair_canvas.draw_idle()
+        self._redraw(self.pair_canvas)
         rows = ladder.copy() if ladder is not None and len(ladder) else pd.DataFrame(columns=_LADDER_COLUMNS)
         if len(rows):
             rows["ideal"] = rows["ideal_px"] * f
@@ -265,7 +290,7 @@ class PlotsWidget(QWidget):
         ax.set_title("Column intensities by species (click a bar)", fontsize=9)
         ax.tick_params(labelsize=7)
         self._species_ax = ax
-        self.species_canvas.draw_idle()
+        self._redraw(self.species_canvas)
 
     def _draw_tiling(self, result) -> None:
         info = result.summary.get("tiling") or {}
@@ -307,7 +332,7 @@ class PlotsWidget(QWidget):
         ax.set_ylabel(f"y ({unit})", fontsize=8)
         ax.set_title("Tiling map (edge colour: tile beside it)", fontsize=9)
         ax.tick_params(labelsize=7)
-        self.tiling_canvas.draw_idle()
+        self._redraw(self.tiling_canvas)
 
     def _draw_fourier_text(self, result) -> None:
         info = result.summary.get("fourier") or {}
@@ -337,7 +362,7 @@ class PlotsWidget(QWidget):
         ax = self.fourier_figure.add_subplot()
         ax.text(0.5, 0.5, "press 'Show power spectrum'", ha="center", va="center", transform=ax.transAxes)
         ax.set_axis_off()
-        self.fourier_canvas.draw_idle()
+        self._redraw(self.fourier_canvas)
 
     def _fill_notes(self, result) -> None:
         notes = list(result.summary.get("notes", []))
@@ -529,7 +554,7 @@ class PlotsWidget(QWidget):
         ax.set_title(f"Log power spectrum of the {where}", fontsize=9)
         ax.tick_params(labelsize=7)
         self._spectrum = {"data": spectrum, "step": step, "unit": unit, "source": where, "extent": extent}
-        self.fourier_canvas.draw_idle()
+        self._redraw(self.fourier_canvas)
         self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())
         self.info.setText(f"power spectrum of the {where}, {step:.3g} {unit} per pixel")
 

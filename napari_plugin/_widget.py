@@ -33,7 +33,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._layers import colour_kwargs, columns_from_points, frame_of, micrograph_from_layer, regions_from_shapes
-from ._layers import fit_added, result_layers
+from ._layers import result_layers
 from ._session import session_for
 
 
@@ -72,15 +72,15 @@ class _Bridge(QObject):
 
 
 def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outcome:
-    """Worker body: run ``compute(progress)``, build the result layers, report every failure as text."""
+    """Worker body: run ``compute = (fn, args, kwargs)`` in the helper process (see ``_compute``), build the
+    result layers here, report every failure as text."""
     from tenfold.analysis._errors import Cancelled, TenfoldInputError
 
-    def progress(fraction: float, message: str) -> bool:
-        emit(float(fraction), str(message))
-        return not cancel.is_set()
+    from ._compute import run_in_process
 
+    fn, args, kwargs = compute
     try:
-        result = compute(progress)
+        result = run_in_process(fn, *args, emit=emit, cancel=cancel, **kwargs)
         if frame is None:  # export, estimate: no layers; export returns its message
             return _Outcome("ok", message=str(result), result=result, kind=kind)
         emit(1.0, "building layers")
@@ -131,6 +131,25 @@ def status_counts(result) -> str:
             f"({thick} thick, {thin} thin)")
 
 
+_FROZEN = False
+
+
+def _freeze_startup_objects() -> None:
+    """Move every object alive once napari and Tenfold are loaded into the collector's permanent generation.
+
+    napari runs a full ``gc.collect()`` whenever a layer is removed; with the ~350 000 objects of napari, Qt,
+    pandas and scipy that took 0.6-1 s of frozen GUI per removal on our test machine. Those objects live as long
+    as the viewer anyway; objects made later (results, layers) are still collected as usual.
+    """
+    global _FROZEN
+    if not _FROZEN:
+        import gc
+
+        gc.collect()
+        gc.freeze()
+        _FROZEN = True
+
+
 def _nm_text(value) -> str:
     return "-" if value is None or not math.isfinite(value) else f"{value:.3g}"
 
@@ -145,6 +164,10 @@ class PipelineWidget(QWidget):
 
     def __init__(self, napari_viewer) -> None:
         super().__init__()
+        _freeze_startup_objects()
+        from ._compute import start
+
+        start()  # the helper process loads the analysis code while the user sets up the first run
         self.viewer = napari_viewer
         self.session = session_for(napari_viewer)
         self.worker = None
@@ -240,6 +263,7 @@ class PipelineWidget(QWidget):
         self.progress_bar.setRange(0, 1000)
         self.status = QLabel("")
         self.status.setWordWrap(True)
+        self.status.setMinimumHeight(3 * self.status.fontMetrics().lineSpacing())
         root.addWidget(self.progress_bar)
         root.addWidget(self.status)
 
@@ -425,7 +449,7 @@ class PipelineWidget(QWidget):
         """Show the automatic column spacing and diameter next to their fields (in a worker)."""
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis.pipeline import estimate_defaults
+        from ._compute import estimate_job
 
         if self.worker is not None:
             return
@@ -435,10 +459,7 @@ class PipelineWidget(QWidget):
             show_error(str(exc))
             return
 
-        def compute(progress):
-            progress(0.1, "estimating column spacing and diameter")
-            return estimate_defaults(micrograph, dark_columns=params.dark_columns)
-
+        compute = (estimate_job, (micrograph,), {"dark_columns": params.dark_columns})
         self._launch("estimate", compute, None, None, build_columns=False)
 
     def _show_estimate(self, est: dict) -> None:
@@ -472,8 +493,7 @@ class PipelineWidget(QWidget):
             show_error(str(exc))
             return
 
-        def compute(progress):
-            return run_pipeline(micrograph, params, regions=regions or None, progress=progress)
+        compute = (run_pipeline, (micrograph, params), {"regions": regions or None})
 
         context = (image_layer, frame, regions)
         self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)
@@ -482,7 +502,7 @@ class PipelineWidget(QWidget):
         """Recompute motifs, ladder and tiling from the (edited) 'columns' layer, without re-detecting."""
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis import pipeline
+        from ._compute import rerun_job
 
         session = self.session
         points = self._layer("columns")
@@ -499,9 +519,7 @@ class PipelineWidget(QWidget):
             return
         result, regions = session.result, session.regions or None
 
-        def compute(progress):
-            fitted = fit_added(result, columns, dark_columns=params.dark_columns)
-            return pipeline.rerun_from_columns(result, fitted, params=params, regions=regions, progress=progress)
+        compute = (rerun_job, (result, columns), {"params": params, "regions": regions})
 
         context = (session.image_layer, session.frame, session.regions)
         self._launch("re-run", compute, session.frame, context, build_columns=False)
@@ -553,7 +571,9 @@ class PipelineWidget(QWidget):
         if outcome.kind == "estimate":
             self._show_estimate(outcome.result)
             return
-        # one layer per event-loop turn, so the GUI never stalls for the sum of all insertions
+        # the old result layers go in one batch (napari cleans its scene graph once, not once per layer), the
+        # new ones one per event-loop turn, so the GUI never stalls for the sum of all insertions
+        self._places = self._remove_old([ly.name for ly in outcome.layers])
         self._pending = list(outcome.layers)
         self._pending_outcome = outcome
         QTimer.singleShot(0, self._insert_next)
@@ -615,22 +635,40 @@ class PipelineWidget(QWidget):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
+    def _remove_old(self, names) -> dict:
+        """Remove the previous layers of these names in one batch; returns name -> (index among the layers left,
+        visible, opacity), so that the new layers take their places."""
+        layers = self.viewer.layers
+        old = [layers[n] for n in names if n in layers]
+        if not old:
+            return {}
+        removed = sorted(layers.index(ly) for ly in old)
+        places = {}
+        for ly in old:
+            i = layers.index(ly)
+            places[ly.name] = (i - sum(r < i for r in removed), ly.visible, ly.opacity)
+        with layers.batched_update():
+            for ly in old:
+                layers.remove(ly)
+        return places
+
     def _put_layer(self, new) -> None:
-        """Insert a finished layer; one of the same name is replaced in place (same position, visibility) when
-        that place is above the analysed image, else it goes on top (a second image opened since)."""
-        old = self._layer(new.name)
+        """Insert a finished layer where the old one of its name was (same visibility and opacity) when that
+        place is above the analysed image, else on top (a second image opened since)."""
         if new.name == "columns":
             new.events.data.connect(self._on_columns_edited)
-        if old is None:
+        place = getattr(self, "_places", {}).pop(new.name, None)
+        if place is None:
             self.viewer.add_layer(new)
             return
-        new.visible, new.opacity = old.visible, old.opacity
-        index = self.viewer.layers.index(old)
-        self.viewer.layers.remove(old)
+        index, new.visible, new.opacity = place
         image = self._context[0] if getattr(self, "_context", None) else None
         if image is not None and image in self.viewer.layers and index <= self.viewer.layers.index(image):
             index = len(self.viewer.layers)
-        self.viewer.layers.insert(index, new)
+        for other, (j, *_rest) in self._places.items():  # the later layers sit above this one
+            if j >= index:
+                self._places[other] = (j + 1, *_rest)
+        self.viewer.layers.insert(min(index, len(self.viewer.layers)), new)
 
     def _on_columns_edited(self, event) -> None:
         """A point added by hand is a new column: its own id, NaN measurements, species -1, status 'added'
@@ -678,7 +716,7 @@ class PipelineWidget(QWidget):
         """
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis.export import write_results
+        from ._compute import export_job
 
         if self.worker is not None:
             return
@@ -700,8 +738,6 @@ class PipelineWidget(QWidget):
                 return
             overwrite = True
 
-        def compute(progress):
-            write_results(result, folder, overwrite=overwrite, figures=True, progress=progress)
-            return f"results written to {folder}"
+        compute = (export_job, (result, folder), {"overwrite": overwrite})
 
         self._launch("export", compute, None, None, build_columns=False)
