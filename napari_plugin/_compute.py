@@ -11,63 +11,72 @@ messages on and sets the cancel flag. No Qt or napari in this module: the child 
 from __future__ import annotations
 
 import atexit
-import queue as _queue
+import os
+import pickle
+import subprocess
+import sys
 import threading
 
-__all__ = ["run_in_process", "rerun_job", "estimate_job", "export_job", "shutdown"]
+__all__ = ["run_in_process", "rerun_job", "estimate_job", "export_job", "start", "shutdown"]
 
 _LOCK = threading.Lock()
-_STATE: dict = {}  # pool, progress queue, cancel event of the one helper process
-_CHILD: dict = {}  # in the helper process: its queue and cancel event
+_STATE: dict = {}  # the helper process
 
 
-def _init_child(progress_queue, cancel_event) -> None:
-    _CHILD["queue"], _CHILD["cancel"] = progress_queue, cancel_event
+def _send(stream, obj) -> None:
+    pickle.dump(obj, stream, protocol=pickle.HIGHEST_PROTOCOL)
+    stream.flush()
 
 
-def _progress(fraction: float, message: str) -> bool:
-    _CHILD["queue"].put((float(fraction), str(message)))
-    return not _CHILD["cancel"].is_set()
-
-
-def _call(fn, args, kwargs):
-    """Runs in the helper process: ``fn(*args, progress=..., **kwargs)``."""
-    return fn(*args, progress=_progress, **kwargs)
-
-
-def _warm():
-    from tenfold.analysis import pipeline  # noqa: F401  (imports and numba caches loaded before the first run)
+def _serve() -> None:
+    """The helper process's loop: read a job, run it, send progress (waiting for 'go on' or 'stop' after each)
+    and then the outcome. Runs as ``python -m tenfold.napari_plugin._compute``."""
+    requests = sys.stdin.buffer
+    replies = os.fdopen(os.dup(1), "wb")
+    os.dup2(2, 1)  # anything printed by the analysis goes to stderr, never into the reply stream
+    from tenfold.analysis import pipeline  # noqa: F401  (imports and numba caches loaded before the first job)
     from tenfold.analysis.refine import warm_up
 
     warm_up()
-    return True
+    while True:
+        try:
+            fn, args, kwargs = pickle.load(requests)
+        except EOFError:
+            return
+
+        def progress(fraction: float, message: str) -> bool:
+            _send(replies, ("progress", float(fraction), str(message)))
+            return pickle.load(requests) == "go on"
+
+        try:
+            _send(replies, ("done", fn(*args, progress=progress, **kwargs)))
+        except BaseException as exc:  # sent back and raised in the GUI process's worker thread
+            _send(replies, ("failed", exc))
 
 
-def _pool():
+def _helper() -> subprocess.Popen:
     with _LOCK:
-        if "pool" not in _STATE:
-            import multiprocessing as mp
-            from concurrent.futures import ProcessPoolExecutor
-
-            ctx = mp.get_context("spawn")
-            _STATE["queue"], _STATE["cancel"] = ctx.Queue(), ctx.Event()
-            _STATE["pool"] = ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_init_child,
-                                                 initargs=(_STATE["queue"], _STATE["cancel"]))
-            _STATE["pool"].submit(_warm)
-        return _STATE["pool"]
+        proc = _STATE.get("proc")
+        if proc is None or proc.poll() is not None:
+            # a fresh interpreter running only this module: no Qt state copied, the user's script not re-run
+            proc = subprocess.Popen([sys.executable, "-m", "tenfold.napari_plugin._compute"],
+                                    stdin=subprocess.PIPE, stdout=subprocess.PIPE)
+            _STATE["proc"] = proc
+        return proc
 
 
 def start() -> None:
     """Start the helper process now (it loads the analysis code while the user sets up the first run)."""
-    _pool()
+    _helper()
 
 
 def shutdown() -> None:
-    """Stop the helper process (at exit; a new one starts on the next job)."""
+    """Stop the helper process (at exit; a new one starts with the next job)."""
     with _LOCK:
-        pool = _STATE.pop("pool", None)
-    if pool is not None:
-        pool.shutdown(wait=False, cancel_futures=True)
+        proc = _STATE.pop("proc", None)
+    if proc is not None and proc.poll() is None:
+        proc.kill()
+        proc.wait()
 
 
 atexit.register(shutdown)
@@ -76,39 +85,26 @@ atexit.register(shutdown)
 def run_in_process(fn, *args, emit, cancel: threading.Event, **kwargs):
     """Call ``fn(*args, progress=..., **kwargs)`` in the helper process and return its value.
 
-    ``emit(fraction, message)`` is called (in the calling thread) for every progress report; setting ``cancel``
-    makes the job's next progress report return False, so the pipeline raises ``Cancelled``, which is raised here
-    too. ``fn`` and its arguments must be picklable (module-level functions, tables, arrays).
+    ``emit(fraction, message)`` is called (in the calling thread) for every progress report; once ``cancel`` is
+    set the job's next progress report returns False, so the pipeline raises ``Cancelled``, which is raised here
+    too (as is any other error of the job). ``fn`` and its arguments must be picklable (module-level functions,
+    tables, arrays). One job at a time.
     """
-    from concurrent.futures.process import BrokenProcessPool
-
-    pool = _pool()
-    progress_queue, child_cancel = _STATE["queue"], _STATE["cancel"]
-    child_cancel.clear()
-    while True:  # leftovers of an earlier job
-        try:
-            progress_queue.get_nowait()
-        except _queue.Empty:
-            break
+    proc = _helper()
     try:
-        future = pool.submit(_call, fn, args, kwargs)
-    except BrokenProcessPool:
-        shutdown()
-        future = _pool().submit(_call, fn, args, kwargs)
-        progress_queue, child_cancel = _STATE["queue"], _STATE["cancel"]
-    while True:
-        try:
-            emit(*progress_queue.get(timeout=0.05))
-        except _queue.Empty:
-            if future.done():
-                break
-        if cancel.is_set():
-            child_cancel.set()
-    try:
-        return future.result()
-    except BrokenProcessPool:
-        shutdown()  # the next job starts a fresh helper
-        raise
+        _send(proc.stdin, (fn, args, kwargs))
+        while True:
+            reply = pickle.load(proc.stdout)
+            if reply[0] == "progress":
+                emit(reply[1], reply[2])
+                _send(proc.stdin, "stop" if cancel.is_set() else "go on")
+            elif reply[0] == "done":
+                return reply[1]
+            else:
+                raise reply[1]
+    except (EOFError, BrokenPipeError, pickle.UnpicklingError) as exc:
+        shutdown()  # the helper died (killed, out of memory): the next job starts a fresh one
+        raise RuntimeError(f"the analysis process stopped unexpectedly ({type(exc).__name__}); try again") from None
 
 
 # ---------------------------------------------------------------- job bodies (run in the helper process)
@@ -134,3 +130,7 @@ def export_job(result, folder, *, overwrite, progress):
 
     write_results(result, folder, overwrite=overwrite, figures=True, progress=progress)
     return f"results written to {folder}"
+
+
+if __name__ == "__main__":
+    _serve()
