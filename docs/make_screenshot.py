@@ -92,6 +92,7 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900), state
     viewer.scene.camera.zoom *= ZOOM
     viewer.scene.camera.center = tuple(centre)
     viewer.layers.selection.active = viewer.layers["columns"]
+    plots.draw_all()
     viewer.screenshot(str(path), canvas_only=False, flash=False)
     if not states:
         return path

@@ -92,18 +92,22 @@ def _table(headers) -> QTableWidget:
     table.setSelectionBehavior(QAbstractItemView.SelectRows)
     table.setSelectionMode(QAbstractItemView.SingleSelection)
     table.setEditTriggers(QAbstractItemView.NoEditTriggers)
-    table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+    # column widths are fitted once after filling (ResizeToContents would refit every column on every cell set)
+    table.horizontalHeader().setSectionResizeMode(QHeaderView.Interactive)
     table.verticalHeader().setVisible(False)
     return table
 
 
 def _fill(table: QTableWidget, frame: pd.DataFrame) -> None:
+    table.setUpdatesEnabled(False)
     table.setRowCount(0)
     table.setRowCount(len(frame))
     for j, name in enumerate(frame.columns):
         for i, v in enumerate(frame[name].to_numpy()):  # small tables only (at most MAX_TABLE_ROWS rows)
             text = f"{v:.4g}" if isinstance(v, (float, np.floating)) else str(v)
             table.setItem(i, j, QTableWidgetItem(text))
+    table.resizeColumnsToContents()
+    table.setUpdatesEnabled(True)
 
 
 class PlotsWidget(QWidget):
@@ -187,13 +191,13 @@ class PlotsWidget(QWidget):
         self.pair_canvas.mpl_connect("button_press_event", self._on_pair_click)
         self.species_canvas.mpl_connect("button_press_event", self._on_species_click)
         self.session.changed.connect(self.refresh)
-        self.tabs.currentChanged.connect(lambda _: self._draw_stale())
-        self._stale: set = set()
+        self.tabs.currentChanged.connect(lambda _: self._draw_current())
         self.refresh()
 
     # ---------------------------------------------------------------- drawing
     def refresh(self) -> None:
-        """Redraw every tab from the session's current result."""
+        """Redraw from the session's current result: the shown tab now, every other tab when it is opened
+        (building and drawing the figures is the slow part, and it runs on the GUI thread)."""
         result = self.session.result
         self._spectrum = None
         self._bins = None
@@ -205,34 +209,31 @@ class PlotsWidget(QWidget):
                 ax = fig.add_subplot()
                 ax.text(0.5, 0.5, "run an analysis", ha="center", va="center", transform=ax.transAxes)
                 ax.set_axis_off()
-                self._redraw(canvas)
+                canvas.draw_idle()
             self._fill_table(None)
+            self._todo = {}
             return
-        self._draw_pairs(result)
-        self._draw_species(result)
-        self._fill_table(result.tables["motifs"])
-        self._draw_tiling(result)
-        self._draw_fourier_text(result)
-        self._fill_notes(result)
+        n = len(result.tables["motifs"])
+        self.info.setText(f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
+        self._todo = {0: self._draw_pairs, 1: self._draw_species, 2: lambda r: self._fill_table(r.tables["motifs"]),
+                      3: self._draw_tiling, 4: self._draw_fourier_text, 5: self._fill_notes}
+        self._draw_current()
 
-    def showEvent(self, event) -> None:  # noqa: N802 (Qt's name)
-        super().showEvent(event)
-        from qtpy.QtCore import QTimer
+    def draw_all(self) -> None:
+        """Build every tab now (for scripts and screenshots)."""
+        for index in list(getattr(self, "_todo", {})):
+            self._draw_tab(index)
 
-        QTimer.singleShot(0, self._draw_stale)
+    def _draw_current(self) -> None:
+        self._draw_tab(self.tabs.currentIndex())
+
+    def _draw_tab(self, index: int) -> None:
+        draw = getattr(self, "_todo", {}).pop(index, None)
+        if draw is not None and self.session.result is not None:
+            draw(self.session.result)
 
     def _redraw(self, canvas) -> None:
-        """Draw a canvas now if its tab is shown, else when its tab is opened (drawing is the slow part)."""
-        if canvas.isVisible():
-            canvas.draw_idle()
-        else:
-            self._stale.add(canvas)
-
-    def _draw_stale(self) -> None:
-        for canvas in list(self._stale):
-            if canvas.isVisible():
-                self._stale.discard(canvas)
-                canvas.draw_idle()
+        canvas.draw_idle()
 
     def _unit(self, result):
         ps = result.meta.pixel_size_nm
@@ -383,8 +384,6 @@ class PlotsWidget(QWidget):
         order = np.argsort(-motifs["score"].to_numpy(float), kind="stable")[:MAX_TABLE_ROWS]
         self._table_rows = order
         _fill(self.table, motifs.iloc[order][list(_TABLE_COLUMNS)])
-        n = len(motifs)
-        self.info.setText(f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
 
     # ---------------------------------------------------------------- selection in the viewer
     def _zoom_to(self, world: np.ndarray) -> None:
@@ -534,6 +533,7 @@ class PlotsWidget(QWidget):
             self.info.setText(f"power spectrum: {error}")
             return
         spectrum, k_step = value
+        self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())  # builds the tab's text first
         unit = "1/nm" if px else "1/px"
         step = k_step / px if px else k_step
         n_rows, n_cols = spectrum.shape
@@ -555,7 +555,6 @@ class PlotsWidget(QWidget):
         ax.tick_params(labelsize=7)
         self._spectrum = {"data": spectrum, "step": step, "unit": unit, "source": where, "extent": extent}
         self._redraw(self.fourier_canvas)
-        self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())
         self.info.setText(f"power spectrum of the {where}, {step:.3g} {unit} per pixel")
 
     add_power_spectrum = show_power_spectrum  # the older name

@@ -112,6 +112,7 @@ def test_plugin_menu_docks_share_one_session(make_napari_viewer, sample_path, qt
     add_box(viewer, image)
     run_and_wait(qtbot, analysis)
     assert notes["error"] == [], notes["error"]
+    plots.tabs.setCurrentWidget(plots.table)
     assert plots.table.rowCount() > 0
     assert len(plots.pair_figure.axes[0].lines) >= 1
 

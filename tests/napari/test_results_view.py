@@ -101,6 +101,7 @@ def test_histogram_bar_click_selects_those_columns(small_run):
     cols = plots.session.result.tables["columns"]
     inten = cols["intensity"].to_numpy(float)
     target = float(np.nanmedian(inten))
+    plots.tabs.setCurrentWidget(plots.species_canvas)
     _click(plots.species_canvas, plots._species_ax, target)
     bins = plots._bins
     k = np.searchsorted(bins, target) - 1
@@ -144,6 +145,8 @@ def test_tau_labels_are_powers_and_do_not_overlap(small_run):
 def test_tiling_fourier_and_notes_tabs_show_the_results(small_run):
     _, _, plots, _ = small_run
     summary = plots.session.result.summary
+    for i in range(plots.tabs.count()):  # each tab is built when it is opened
+        plots.tabs.setCurrentIndex(i)
     counts = summary["tiling"]["tile_counts"]
     text = plots.tiling_label.text()
     assert f"thick rhombi {counts['thick_rhombus']}" in text and f"thin rhombi {counts['thin_rhombus']}" in text

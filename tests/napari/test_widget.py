@@ -219,6 +219,7 @@ def test_plots_dock_follows_results(analysed, qtbot):
     viewer, widget, image = analysed
     plots = PlotsWidget(viewer)
     viewer.window.add_dock_widget(plots, name="Tenfold plots")
+    plots.tabs.setCurrentWidget(plots.table)  # a tab is built when it is opened
     assert plots.table.rowCount() == min(len(viewer.layers["motifs"].data), 400)
     axes = plots.pair_figure.axes
     assert len(axes) == 1 and len(axes[0].lines) >= 1
