@@ -70,7 +70,13 @@ _FLAG_RE = re.compile(r"(?<![\w-])(?:parameter )?(" + "|".join(re.escape(k) for 
 
 
 def _flag_names(message: str) -> str:
-    """A core message with the Python parameter names replaced by the command-line options."""
+    """A core message with the Python parameter names replaced by the command-line options.
+
+    A message about a parameters file (``--params FILE: ...``) keeps the file's key names: that is what the user
+    has to edit.
+    """
+    if message.startswith("--params "):
+        return message
     return _FLAG_RE.sub(lambda m: _FLAGS[m.group(1)], message)
 
 

@@ -1,7 +1,9 @@
 """Screenshot of the Tenfold napari plugin on a bundled sample: docs/images/viewer.png.
 
-Run ``xvfb-run -a python docs/make_screenshot.py`` (or with a display). It opens the high-dose sample, marks a
-region, runs the analysis dock, opens the plots dock and saves a window screenshot.
+Run ``xvfb-run -a -s "-screen 0 1600x1200x24" python docs/make_screenshot.py [--all]`` (or with a display). It
+opens the high-dose sample, marks a region, runs the analysis dock, opens the plots dock and saves a window
+screenshot; with ``--all`` also one per state a user passes through (``docs/images/state_*.png``: opened, region
+drawn, after the run, zoom on a cluster, each plots tab, after an edit and re-run, after export).
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ def _default_wait(widget) -> None:
         time.sleep(0.01)
 
 
-def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900)) -> Path:
+def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900), states: bool = False) -> Path:
     """Analyse a region of the sample in a viewer and save a screenshot of the window.
 
     Parameters
@@ -43,6 +45,8 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900)) -> Pa
         Blocks until ``widget.worker`` is None (tests pass a pytest-qt wait); default: a processEvents loop.
     size : (int, int)
         Window size in pixels.
+    states : bool
+        Also save ``state_*.png`` beside ``path``, one per step a user goes through.
 
     Returns
     -------
@@ -57,34 +61,68 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900)) -> Pa
 
     viewer = viewer or napari.Viewer()
     wait = wait or _default_wait
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+
+    def shot(name):
+        if states:
+            viewer.screenshot(str(path.parent / f"state_{name}.png"), canvas_only=False, flash=False)
+
     data, kwargs, _ = load_sample(SAMPLE)[0]
     image = viewer.add_image(data, **kwargs)
-    r0, c0, r1, c1 = REGION_PX
-    px = image.scale[-1]
-    corners = np.array([[r0, c0], [r0, c1], [r1, c1], [r1, c0]], float) * px
-    viewer.add_shapes([corners], shape_type="rectangle", name="regions", edge_color="white",
-                      face_color="transparent", edge_width=0.08, units=("nm", "nm"))
     widget = PipelineWidget(viewer)
     plots = PlotsWidget(viewer)
     viewer.window.add_dock_widget(widget, name="Tenfold analysis", area="right")
     viewer.window.add_dock_widget(plots, name="Tenfold plots", area="right")
-    widget.regions_combo.setCurrentText("regions")
+    viewer.window._qt_window.resize(*size)
+    shot("1_opened")
+    r0, c0, r1, c1 = REGION_PX
+    px = image.scale[-1]
+    corners = np.array([[r0, c0], [r0, c1], [r1, c1], [r1, c0]], float) * px
+    regions = viewer.add_shapes([corners], shape_type="rectangle", name="regions", edge_width=0.08,
+                                units=("nm", "nm"))
+    assert widget.regions_combo.currentText() == regions.name  # chosen and restyled by the dock
+    shot("2_region_drawn")
     widget.run()
     wait(widget)
-    viewer.layers["network"].visible = True
     viewer.canvas.overlays.scale_bar.visible = True
     viewer.canvas.overlays.scale_bar.font_size = 14
-    viewer.window._qt_window.resize(*size)
     centre = np.array([(r0 + r1) / 2, (c0 + c1) / 2]) * px
     viewer.reset_view()
     viewer.scene.camera.zoom *= ZOOM
     viewer.scene.camera.center = tuple(centre)
     viewer.layers.selection.active = viewer.layers["columns"]
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
+    plots.draw_all()
     viewer.screenshot(str(path), canvas_only=False, flash=False)
+    if not states:
+        return path
+    shot("3_after_run")
+    plots.tabs.setCurrentIndex(2)  # motifs table
+    plots.select_motif_row(0)
+    shot("4_zoom_on_a_cluster")
+    for i in range(plots.tabs.count()):
+        plots.tabs.setCurrentIndex(i)
+        if plots.tabs.tabText(i) == "Fourier":
+            plots.show_power_spectrum()
+            wait(plots)  # the plots dock's worker, same protocol
+        shot(f"5_plots_{plots.tabs.tabText(i).lower()}")
+    points = viewer.layers["columns"]
+    points.selected_data = {len(points.data) // 2}
+    points.remove_selected()
+    widget.rerun_from_columns()
+    wait(widget)
+    shot("6_after_edit_and_rerun")
+    import tempfile
+
+    widget.choose_folder = lambda: tempfile.mkdtemp(prefix="tenfold_shot_")
+    widget.export()
+    wait(widget)
+    shot("7_after_export")
     return path
 
 
 if __name__ == "__main__":
-    print(make_screenshot())
+    import sys
+
+    print(make_screenshot(states="--all" in sys.argv))
+    os._exit(0)  # skip Qt/vispy teardown

@@ -31,7 +31,10 @@ __all__ = [
     "network_layer_kwargs",
     "phason_layer_kwargs",
     "motif_polygons",
-    "spectrum_layer_kwargs",
+    "SPECIES_PALETTE",
+    "species_colours",
+    "added_row_values",
+    "fit_added",
 ]
 
 #: Layer-metadata key of the :class:`ImageMeta` record (as a dict) of an image opened by Tenfold.
@@ -51,9 +54,26 @@ PALETTE = (
     "#8cc6ea",  # sky
     "#7a7a7a",  # grey
 )
-#: Motif kinds to colours: rings blue, pentagons orange, other ring orders teal; incomplete ones are dashed by
-#: a lighter edge and a transparent face.
-KIND_COLOURS = {"ring": PALETTE[0], "pentagon": PALETTE[1], "other": PALETTE[2]}
+#: Species colours in the viewer and the plots dock, dimmest class first: the colour-universal-design set of
+#: Okabe & Ito (2008, "Color Universal Design", J*FLY) without its black and yellow, which vanish on the dark
+#: background and on bright columns. Relative luminance 0.15-0.42 keeps every colour at a WCAG contrast of at
+#: least 2:1 against both black and white; tests/napari/test_bugs.py checks that and the separation under
+#: simulated protan, deutan and tritan vision.
+SPECIES_PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#56B4E9", "#CC79A7")
+#: Marker symbol per species (so colour is never the only cue; the 7th and 8th species reuse colours).
+SPECIES_SYMBOLS = ("disc", "square", "triangle_up", "diamond", "triangle_down", "star", "clobber", "cross")
+#: Unclassified (-1) and hand-added columns: mid grey, visible on black and white alike.
+UNCLASSIFIED_COLOUR = "#8c8c8c"
+#: Dark outline of every column marker, so light markers stay visible on bright columns.
+BORDER_COLOUR = "#141414"
+#: Numeric features are coloured on this part of matplotlib's 'viridis' (its darkest and lightest ends vanish on a
+#: HAADF background).
+NUMERIC_RANGE = (0.15, 0.92)
+#: Motif kinds to colours, apart from the species colours of the column markers: rings white, pentagons yellow
+#: (Okabe & Ito 2008), other ring orders cyan; incomplete motifs magenta (cyan and magenta from Paul Tol's
+#: "vibrant" set, 2021, SRON/EPS/TN/09-002); the network cyan too, thinner.
+KIND_COLOURS = {"ring": "#f5f5f5", "pentagon": "#F0E442", "other": "#33BBEE", "incomplete": "#EE3377"}
+NETWORK_COLOUR = "#33BBEE"
 
 
 def _layer_scale(meta: ImageMeta) -> tuple[float, float]:
@@ -183,6 +203,49 @@ def columns_from_points(points_layer, frame: dict) -> pd.DataFrame:
     return table
 
 
+def fit_added(result, columns: pd.DataFrame, *, dark_columns: bool = False) -> pd.DataFrame:
+    """Fit the hand-added columns (``fit_status`` 'added') of an edited table on the result's image.
+
+    Each gets the same pixel-integrated Gaussian fit as detected columns (``refine.refine_columns``, started at
+    the run's median column width); where the fit converges its position, width, intensity and uncertainty are
+    filled in, elsewhere (e.g. a point on empty background) they stay NaN. The status stays 'added', species -1.
+    """
+    if "fit_status" not in columns or result.image is None:
+        return columns
+    added = columns["fit_status"].astype(str).to_numpy() == ADDED_STATUS
+    old = result.tables.get("columns")
+    good_old = old["fit_status"].isin(["ok", "fixed_width"]) & old["sigma_px"].notna() if old is not None else []
+    if not added.any() or not np.any(good_old):
+        return columns  # no measured width to start from: nothing is guessed
+    from tenfold.analysis.refine import refine_columns
+
+    image = np.asarray(result.image, np.float32)
+    if dark_columns:
+        image = np.nanmax(image) - image
+    from scipy.spatial import cKDTree
+
+    sigma = float(np.median(old.loc[good_old, "sigma_px"]))
+    # fitted together with the columns around them, so that their neighbours' light is modelled, not taken
+    # for background (as in detection)
+    xy = columns[["x_px", "y_px"]].to_numpy(float)
+    near = np.zeros(len(xy), bool)
+    hits = cKDTree(xy[added]).query_ball_point(xy, r=12.0 * sigma, return_length=True)
+    near[hits > 0] = True
+    near &= np.all(np.isfinite(xy), axis=1)
+    sub = np.flatnonzero(near)
+    fit = refine_columns(image, xy[sub], sigma_px=sigma, counts=False, neighbour_passes=1,
+                         fixed_width_fallback=False)
+    fit = fit[added[sub]].reset_index(drop=True)
+    ok = fit["fit_status"].eq("ok").to_numpy()
+    out = columns.copy()
+    rows = np.flatnonzero(added)[ok]
+    for name in ("x_px", "y_px", "sigma_px", "amplitude", "background", "intensity", "residual", "pos_err_px"):
+        values = out[name].to_numpy(float, copy=True) if name in out else np.full(len(out), np.nan)
+        values[rows] = fit[name].to_numpy(float)[ok]
+        out[name] = values
+    return out
+
+
 def frame_of(image_layer, *, offset_px=(0, 0)) -> dict:
     """The pixel frame results are drawn in: the image layer's scale, translate and units, plus the (row, col)
     offset of the analysed crop inside the image (non-zero for a preview)."""
@@ -210,14 +273,20 @@ def _frame_kwargs(frame: dict) -> dict:
 
 
 def columns_layer_kwargs(columns: pd.DataFrame, frame: dict, *, colour_by: str = "species") -> dict:
-    """Data and keyword arguments of the 'columns' Points layer (features = the columns table)."""
+    """Data and keyword arguments of the 'columns' Points layer (features = the columns table).
+
+    Markers carry a dark outline and one symbol per species, so they read on bright columns and dark background
+    alike and colour is never the only cue.
+    """
     data = columns[["y_px", "x_px"]].to_numpy(float) if len(columns) else np.zeros((0, 2))
     kwargs = dict(
         data=data,
         features=columns.reset_index(drop=True),
         size=_point_size(frame),
-        symbol="disc",
-        border_width=0.0,
+        symbol=species_symbols(columns) if len(columns) else "disc",
+        border_width=0.12,
+        border_width_is_relative=True,
+        border_color=BORDER_COLOUR,
         opacity=0.9,
         name="columns",
         **_frame_kwargs(frame),
@@ -226,36 +295,100 @@ def columns_layer_kwargs(columns: pd.DataFrame, frame: dict, *, colour_by: str =
     return kwargs
 
 
+def species_symbols(table: pd.DataFrame) -> np.ndarray:
+    """One marker symbol per row by species (unclassified and added columns: a disc)."""
+    if "species" not in table:
+        return np.full(len(table), "disc", dtype=object)
+    sp = pd.to_numeric(table["species"], errors="coerce").fillna(-1).to_numpy().astype(np.int64)
+    return np.where(sp >= 0, np.array(SPECIES_SYMBOLS, dtype=object)[np.maximum(sp, 0) % len(SPECIES_SYMBOLS)],
+                    "disc")
+
+
 def _point_size(frame: dict) -> float:
     """Marker size in px: 0.6 x the median nearest-neighbour column distance of the result (set by
     :func:`result_layers`), else a few pixels."""
     return float(frame.get("marker_px") or max(3.0, min(frame["shape"]) / 170.0))
 
 
+def species_colours(species) -> np.ndarray:
+    """(N, 4) RGBA of species numbers from :data:`SPECIES_PALETTE` (by value; -1 / NaN: unclassified grey)."""
+    from matplotlib.colors import to_rgba_array
+
+    sp = pd.to_numeric(pd.Series(np.asarray(species)), errors="coerce").fillna(-1).to_numpy().astype(np.int64)
+    table = to_rgba_array(list(SPECIES_PALETTE) + [UNCLASSIFIED_COLOUR])
+    return table[np.where(sp >= 0, sp % len(SPECIES_PALETTE), len(SPECIES_PALETTE))]
+
+
 def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
-    """face_color arguments colouring points by one feature: categories from PALETTE, numbers on 'viridis'."""
-    if prop not in table or len(table) == 0:
-        return {"face_color": PALETTE[6]}
+    """``face_color`` (an explicit (N, 4) RGBA array) colouring points by one feature.
+
+    Species by value from :data:`SPECIES_PALETTE`; other categories from :data:`PALETTE`; numbers on the
+    :data:`NUMERIC_RANGE` part of 'viridis', scaled between this feature's own 2nd and 98th percentiles (so each
+    feature gets its own gradient); NaN (e.g. hand-added columns) grey. Explicit colours, not napari's colour
+    cycles or colormaps, so a later choice never inherits an earlier one's contrast limits.
+    """
+    from matplotlib import colormaps
+    from matplotlib.colors import to_rgba, to_rgba_array
+
+    n = len(table)
+    if prop not in table or n == 0:
+        return {"face_color": np.tile(to_rgba(UNCLASSIFIED_COLOUR), (n, 1)) if n else UNCLASSIFIED_COLOUR}
     values = table[prop]
-    numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
-    if numeric and (prop != "species" and values.nunique() > len(PALETTE)):
-        return {"face_color": prop, "face_colormap": "viridis"}
-    cats = sorted(pd.unique(values.astype(str)))
     if prop == "species":
-        # the same species colours as the exported figures (tenfold.analysis.export.SPECIES_COLOURS, checked for
-        # colour-blind separation there); unclassified (-1) grey
-        from matplotlib.colors import to_rgba_array
+        return {"face_color": species_colours(values)}
+    numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
+    if numeric and values.nunique() > len(PALETTE):
+        v = values.to_numpy(float)
+        ok = np.isfinite(v)
+        lo, hi = np.percentile(v[ok], [2, 98]) if ok.any() else (0.0, 1.0)
+        if not hi > lo and ok.any():  # most values equal (e.g. probabilities near 1): use the full range
+            lo, hi = v[ok].min(), v[ok].max()
+        t = np.clip((v - lo) / (hi - lo), 0, 1) if hi > lo else np.full(n, 0.5)
+        lo_c, hi_c = NUMERIC_RANGE
+        rgba = colormaps["viridis"](lo_c + (hi_c - lo_c) * np.nan_to_num(t))
+        rgba[~ok] = to_rgba(UNCLASSIFIED_COLOUR)
+        return {"face_color": rgba, "limits": (float(lo), float(hi))}
+    text = values.astype(str).to_numpy()
+    cats = sorted(pd.unique(text))
+    lookup = to_rgba_array([PALETTE[i % len(PALETTE)] for i in range(len(cats))])
+    return {"face_color": lookup[np.searchsorted(cats, text)]}
 
-        from tenfold.analysis.export import SPECIES_COLOURS
 
-        # one explicit colour per point: a colour cycle would be assigned in order of first appearance, so
-        # species 0 would not always get the first colour
-        table_colours = np.array(list(SPECIES_COLOURS) + [PALETTE[7]])
-        sp = values.to_numpy().astype(np.int64)
-        idx = np.where(sp >= 0, sp % len(SPECIES_COLOURS), len(SPECIES_COLOURS))
-        return {"face_color": to_rgba_array(table_colours[idx])}
-    cycle = [PALETTE[i % len(PALETTE)] for i in range(len(cats))]
-    return {"face_color": prop, "face_color_cycle": cycle}
+#: Features of a column the user adds by hand: nothing is measured yet (NaN), species unclassified, status 'added'.
+ADDED_STATUS = "added"
+
+
+def added_row_values(features: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
+    """``features`` with ``rows`` reset to a hand-added column's values: a new unique id, NaN measurements,
+    species -1, status 'added' (napari would otherwise copy the last selected point's features)."""
+    feats = features.copy()
+    rows = np.asarray(rows, np.int64)
+    if not len(rows):
+        return feats
+    others = np.setdiff1d(np.arange(len(feats)), rows)
+    for name in feats.columns:
+        col = feats[name]
+        if name == "id":
+            ids = pd.to_numeric(col, errors="coerce")
+            start = int(np.nanmax(ids.to_numpy(float)[others])) + 1 if len(others) and ids.iloc[others].notna().any() else 0
+            new = col.to_numpy(copy=True)
+            new[rows] = np.arange(start, start + len(rows))
+            feats[name] = new
+        elif name == "fit_status":
+            feats[name] = feats[name].astype(object)
+            feats.loc[rows, name] = ADDED_STATUS
+        elif name in ("species", "region"):
+            new = col.to_numpy(copy=True)
+            new[rows] = -1 if name == "species" else 0
+            feats[name] = new
+        elif pd.api.types.is_float_dtype(col):
+            new = col.to_numpy(copy=True)
+            new[rows] = np.nan
+            feats[name] = new
+        else:
+            feats[name] = col.astype(object)
+            feats.loc[rows, name] = np.nan
+    return feats
 
 
 def motif_polygons(motifs: pd.DataFrame, columns: pd.DataFrame) -> list[np.ndarray]:
@@ -288,55 +421,59 @@ def motif_polygons(motifs: pd.DataFrame, columns: pd.DataFrame) -> list[np.ndarr
 
 
 def _kind_colours(motifs: pd.DataFrame) -> np.ndarray:
-    from matplotlib.colors import to_rgba
+    from matplotlib.colors import to_rgba_array
 
     kinds = motifs["kind"].astype(str)
     hexes = np.where(kinds.str.startswith("ring"), KIND_COLOURS["ring"],
                      np.where(kinds == "pentagon", KIND_COLOURS["pentagon"], KIND_COLOURS["other"]))
-    rgba = np.array([to_rgba(h) for h in hexes]) if len(hexes) else np.zeros((0, 4))
-    return rgba
+    return to_rgba_array(list(hexes)) if len(hexes) else np.zeros((0, 4))
 
 
 def motifs_layer_kwargs(motifs: pd.DataFrame, columns: pd.DataFrame, frame: dict) -> dict:
-    """Data and keyword arguments of the 'motifs' Shapes layer: rings and pentagons as polygons.
+    """Data and keyword arguments of the 'motifs' Shapes layer: rings and pentagons as outlines (no fill).
 
-    Edge colour by kind (rings blue, pentagons orange), edge opacity by score; incomplete motifs get a thin
-    brick-red edge so vacancies stand out.
+    Edge colour by kind (:data:`KIND_COLOURS`), edge opacity by score; incomplete motifs magenta so vacancies
+    stand out. Pentagons are drawn above the rings with half their line width, so both stay visible where they
+    share edges.
     """
+    from matplotlib.colors import to_rgba
+
     polys = motif_polygons(motifs, columns) if len(motifs) else []
     edge = _kind_colours(motifs)
+    width = 0.2 * _point_size(frame)
+    widths, z = width, 0
     if len(motifs):
         score = np.clip(motifs["score"].to_numpy(float), 0, 1)
-        edge[:, 3] = 0.45 + 0.55 * np.nan_to_num(score)
+        edge[:, 3] = 0.5 + 0.5 * np.nan_to_num(score)
         incomplete = ~motifs["complete"].to_numpy(bool)
-        from matplotlib.colors import to_rgba
-
-        edge[incomplete] = to_rgba(PALETTE[4])
-    face = edge.copy()
-    face[:, 3] = 0.08
-    width = 0.18 * _point_size(frame)
+        edge[incomplete] = to_rgba(KIND_COLOURS["incomplete"])
+        pent = motifs["kind"].astype(str).to_numpy() == "pentagon"
+        widths = np.where(pent, 0.5 * width, width).tolist()
+        z = pent.astype(int).tolist()  # napari wants lists here
     return dict(
         data=polys,
         shape_type="polygon",
         features=motifs.reset_index(drop=True),
         edge_color=edge if len(motifs) else "white",
-        face_color=face if len(motifs) else "transparent",
-        edge_width=width,
+        face_color="transparent",
+        edge_width=widths,
+        z_index=z,
         name="motifs",
         **_frame_kwargs(frame),
     )
 
 
 def centres_layer_kwargs(motifs: pd.DataFrame, frame: dict) -> dict:
-    """The 'motif centres' Points layer: a cross per motif, coloured by kind."""
+    """The 'motif centres' Points layer: a hollow ring per motif, coloured by kind, wide enough to leave a
+    column at the centre visible inside it."""
     data = motifs[["centre_y_px", "centre_x_px"]].to_numpy(float) if len(motifs) else np.zeros((0, 2))
     return dict(
         data=data,
         features=motifs[["motif_id", "kind", "complete", "score"]].reset_index(drop=True)
         if len(motifs) else pd.DataFrame(),
-        symbol="cross",
-        size=1.4 * _point_size(frame),
-        face_color=_kind_colours(motifs) if len(motifs) else PALETTE[0],
+        symbol="ring",
+        size=1.9 * _point_size(frame),
+        face_color=_kind_colours(motifs) if len(motifs) else KIND_COLOURS["ring"],
         border_width=0.0,
         name="motif centres",
         **_frame_kwargs(frame),
@@ -344,7 +481,7 @@ def centres_layer_kwargs(motifs: pd.DataFrame, frame: dict) -> dict:
 
 
 def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dict) -> dict:
-    """The 'network' Vectors layer: one segment per edge between motif centres (yellow).
+    """The 'network' Vectors layer: one segment per edge between motif centres.
 
     A Vectors layer (start + displacement per edge) draws tens of thousands of segments as one mesh; as Shapes
     lines the same network took seconds to triangulate.
@@ -361,9 +498,9 @@ def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dic
     return dict(
         data=vectors,
         features=network.reset_index(drop=True),
-        edge_color=PALETTE[3],
-        edge_width=0.12 * _point_size(frame),
-        opacity=0.8,
+        edge_color=NETWORK_COLOUR,
+        edge_width=0.1 * _point_size(frame),
+        opacity=0.7,
         name="network",
         vector_style="line",
         **_frame_kwargs(frame),
@@ -390,21 +527,6 @@ def phason_layer_kwargs(phason_map: pd.DataFrame, edge_px: float | None, frame: 
         name="phason field",
         vector_style="arrow",
         **_frame_kwargs(frame),
-    )
-
-
-def spectrum_layer_kwargs(spectrum: np.ndarray, k_step: float, calibrated: bool) -> dict:
-    """The 'power spectrum' image layer: centred, scale in 1/nm (1/px when uncalibrated)."""
-    n_rows, n_cols = spectrum.shape
-    unit = "1/nm" if calibrated else "1/pixel"
-    return dict(
-        data=spectrum,
-        name="power spectrum",
-        scale=(k_step, k_step),
-        translate=(-(n_rows // 2) * k_step, -(n_cols // 2) * k_step),
-        units=(unit, unit),
-        colormap="magma",
-        metadata={"k_per_px_step": k_step, "unit": unit},
     )
 
 
@@ -455,16 +577,16 @@ def _chunked_shapes(kwargs: dict, chunk: int = 500):
         return Shapes(**kwargs)
 
     def part(value, lo, hi):
-        return value[lo:hi] if isinstance(value, np.ndarray) and len(value) == n else value
+        return value[lo:hi] if isinstance(value, (np.ndarray, list)) and len(value) == n else value
 
-    colours = {k: kwargs[k] for k in ("edge_color", "face_color") if k in kwargs}
+    per_shape = {k: kwargs[k] for k in ("edge_color", "face_color", "edge_width", "z_index") if k in kwargs}
     first = {**kwargs, "data": data[:chunk], "features": kwargs["features"].iloc[:chunk],
-             **{k: part(v, 0, chunk) for k, v in colours.items()}}
+             **{k: part(v, 0, chunk) for k, v in per_shape.items()}}
     layer = Shapes(**first)
     for lo in range(chunk, n, chunk):
         time.sleep(0.001)  # let the GUI thread take the GIL
         hi = min(lo + chunk, n)
-        layer.add(data[lo:hi], shape_type=kwargs["shape_type"], edge_width=kwargs["edge_width"],
-                  **{k: part(v, lo, hi) for k, v in colours.items()})
+        layer.add(data[lo:hi], shape_type=kwargs["shape_type"],
+                  **{k: part(v, lo, hi) for k, v in per_shape.items()})
     layer.features = kwargs["features"]
     return layer

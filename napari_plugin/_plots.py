@@ -1,28 +1,113 @@
-"""The plots dock: pair distribution with the tau ladder, species intensity histogram, motif table, FFT layer."""
+"""The plots dock: every result of the current run, readable without export.
+
+Tabs: distances (pair distribution with the tau ladder and the ladder table), species (intensity histogram),
+motifs (table), tiling (counts, thick/thin ratio, map), Fourier (dominant order, distortion, spots, power
+spectrum as a plot in 1/nm: never a layer beside the nm layers) and notes (the run's notes and checks).
+Clicking a pair-distance peak, a histogram bar or a table row selects those columns or motifs in the viewer
+and zooms to them.
+"""
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
+import pandas as pd
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QHBoxLayout,
+    QHeaderView,
     QLabel,
+    QPlainTextEdit,
     QPushButton,
     QTableWidget,
     QTableWidgetItem,
+    QTabWidget,
     QVBoxLayout,
     QWidget,
 )
 
-from ._layers import PALETTE, data_to_data, spectrum_layer_kwargs
+from ._layers import KIND_COLOURS, NETWORK_COLOUR, PALETTE, SPECIES_PALETTE, UNCLASSIFIED_COLOUR, data_to_data
 from ._session import session_for
 
 
-__all__ = ["PlotsWidget", "MAX_TABLE_ROWS"]
+__all__ = ["PlotsWidget", "MAX_TABLE_ROWS", "spacing_check", "SPACING_TOLERANCE"]
 
 #: The motif table lists at most this many motifs (best score first); the layers always hold all of them.
 MAX_TABLE_ROWS = 400
 _TABLE_COLUMNS = ("motif_id", "kind", "complete", "score", "radius_nm", "n_members")
+_LADDER_COLUMNS = ("set", "rung", "ideal", "measured", "deviation_pct", "uncertainty_pct")
+#: Relative disagreement between the column spacing used and the first pair-distance peak above which the dock
+#: warns (our choice: a tenth of the spacing is more than any column-position error of a working fit).
+SPACING_TOLERANCE = 0.10
+#: Tile types to colours in the tiling map.
+TILE_COLOURS = {"thick_rhombus": PALETTE[0], "thin_rhombus": PALETTE[1], "pentagon": PALETTE[2],
+                "star": PALETTE[4], "boat": PALETTE[5], "hexagon": PALETTE[6], "other": PALETTE[7]}
+#: The golden ratio tau = (1 + sqrt 5) / 2; in an infinite Penrose rhombus tiling thick : thin = tau
+#: (de Bruijn, Indag. Math. 43 (1981) 39; from memory).
+TAU = (1 + math.sqrt(5)) / 2
+
+
+def spacing_check(result) -> str | None:
+    """A warning when the column spacing used differs from the first column pair-distance peak by more than
+    :data:`SPACING_TOLERANCE`, else None."""
+    summary = result.summary
+    used = ((summary.get("automatic") or {}).get("spacing") or {}).get("value_px")
+    params = result.parameters or {}
+    ps = result.meta.pixel_size_nm
+    if params.get("column_spacing_px"):
+        used = params["column_spacing_px"]
+    elif params.get("column_spacing_nm") and ps:
+        used = params["column_spacing_nm"] / ps
+    peaks = result.tables.get("pair_peaks")
+    if not used or peaks is None or not len(peaks):
+        return None
+    first = peaks[peaks["set"] == "columns"]["distance_px"].dropna()
+    if not len(first):
+        return None
+    d = float(first.min())
+    if abs(used / d - 1) <= SPACING_TOLERANCE:
+        return None
+    unit, f = ("nm", ps) if ps else ("px", 1.0)
+    return (f"column spacing used ({used * f:.3g} {unit}) differs from the first peak of the pair distribution "
+            f"({d * f:.3g} {unit}) by {100 * (used / d - 1):+.0f} %: check 'Column spacing (nm)' (columns may be "
+            "missed or split)")
+
+
+def _canvas(figsize=(4.2, 3.4)):
+    from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
+    from matplotlib.figure import Figure
+
+    # fixed margins: matplotlib's constrained layout took about as long as the drawing itself
+    figure = Figure(figsize=figsize, dpi=90)
+    figure.subplots_adjust(left=0.16, right=0.97, bottom=0.2, top=0.9)
+    canvas = FigureCanvasQTAgg(figure)
+    canvas.setMinimumHeight(240)
+    return figure, canvas
+
+
+def _table(headers) -> QTableWidget:
+    table = QTableWidget(0, len(headers))
+    table.setHorizontalHeaderLabels(list(headers))
+    table.setSelectionBehavior(QAbstractItemView.SelectRows)
+    table.setSelectionMode(QAbstractItemView.SingleSelection)
+    table.setEditTriggers(QAbstractItemView.NoEditTriggers)
+    # column widths are fitted once after filling (ResizeToContents would refit every column on every cell set)
+    table.horizontalHeader().setSectionResizeMode(QHeaderView.Interactive)
+    table.verticalHeader().setVisible(False)
+    return table
+
+
+def _fill(table: QTableWidget, frame: pd.DataFrame) -> None:
+    table.setUpdatesEnabled(False)
+    table.setRowCount(0)
+    table.setRowCount(len(frame))
+    for j, name in enumerate(frame.columns):
+        for i, v in enumerate(frame[name].to_numpy()):  # small tables only (at most MAX_TABLE_ROWS rows)
+            text = f"{v:.4g}" if isinstance(v, (float, np.floating)) else str(v)
+            table.setItem(i, j, QTableWidgetItem(text))
+    table.resizeColumnsToContents()
+    table.setUpdatesEnabled(True)
 
 
 class PlotsWidget(QWidget):
@@ -30,156 +115,446 @@ class PlotsWidget(QWidget):
 
     def __init__(self, napari_viewer) -> None:
         super().__init__()
-        from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
-        from matplotlib.figure import Figure
-
         self.viewer = napari_viewer
         self.session = session_for(napari_viewer)
+        self.worker = None
+        self._spectrum = None
         root = QVBoxLayout(self)
-        self.figure = Figure(figsize=(4.2, 5.0), dpi=90, layout="constrained")
-        self.canvas = FigureCanvasQTAgg(self.figure)
-        self.canvas.setMinimumHeight(360)
-        root.addWidget(self.canvas, 3)
+        self.tabs = QTabWidget()
+        root.addWidget(self.tabs, 1)
+        self.info = QLabel("")
+        self.info.setWordWrap(True)
+        root.addWidget(self.info)
+
+        page, lay = QWidget(), QVBoxLayout()
+        page.setLayout(lay)
+        self.pair_figure, self.pair_canvas = _canvas()
+        self.pair_canvas.setToolTip("Column pair distribution g(r) with the matched tau-ladder rungs; click a peak "
+                                    "to select the column pairs at that distance")
+        lay.addWidget(self.pair_canvas, 3)
+        self.ladder_table = _table(_LADDER_COLUMNS)
+        self.ladder_table.setToolTip("Golden-ratio ladder d0 x tau^n: measured peak, deviation from the ideal "
+                                     "ratio and its 1-sigma uncertainty, both in percent")
+        lay.addWidget(self.ladder_table, 2)
+        self.tabs.addTab(page, "Distances")
+
+        self.species_figure, self.species_canvas = _canvas()
+        self.species_canvas.setToolTip("Integrated column intensities by species; click a bar to select those "
+                                       "columns")
+        self.tabs.addTab(self.species_canvas, "Species")
+
+        self.table = _table(_TABLE_COLUMNS)
+        rows = self.table.verticalHeader().defaultSectionSize()
+        self.table.setMinimumHeight(int(self.table.horizontalHeader().sizeHint().height() + 10.5 * rows + 4))
+        self.table.setToolTip("Motifs, best score first; click a row to select the motif and zoom to it")
+        self.tabs.addTab(self.table, "Motifs")
+
+        page, lay = QWidget(), QVBoxLayout()
+        page.setLayout(lay)
+        self.tiling_label = QLabel("")
+        self.tiling_label.setWordWrap(True)
+        lay.addWidget(self.tiling_label)
+        self.tiling_figure, self.tiling_canvas = _canvas()
+        self.tiling_canvas.setToolTip("Cluster network edges coloured by the tile on their side")
+        lay.addWidget(self.tiling_canvas, 1)
+        self.tabs.addTab(page, "Tiling")
+
+        page, lay = QWidget(), QVBoxLayout()
+        page.setLayout(lay)
+        self.fourier_label = QLabel("")
+        self.fourier_label.setWordWrap(True)
+        lay.addWidget(self.fourier_label)
         row = QHBoxLayout()
-        self.spectrum_button = QPushButton("Add power spectrum")
+        self.spectrum_button = QPushButton("Show power spectrum")
         self.spectrum_button.setToolTip(
-            "log power spectrum of the image, or of the selected shape's bounding box in a regions layer"
+            "Log power spectrum of the image, or of the selected shape's bounding box in a regions layer, drawn "
+            "here in 1/nm (1/px uncalibrated) with the located spots circled; computed in the background"
         )
         row.addWidget(self.spectrum_button)
-        self.info = QLabel("")
-        row.addWidget(self.info, 1)
-        root.addLayout(row)
-        self.table = QTableWidget(0, len(_TABLE_COLUMNS))
-        self.table.setHorizontalHeaderLabels(list(_TABLE_COLUMNS))
-        self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
-        self.table.setSelectionMode(QAbstractItemView.SingleSelection)
-        self.table.setEditTriggers(QAbstractItemView.NoEditTriggers)
-        root.addWidget(self.table, 2)
-        self.spectrum_button.clicked.connect(self.add_power_spectrum)
+        row.addStretch(1)
+        lay.addLayout(row)
+        self.fourier_figure, self.fourier_canvas = _canvas((4.2, 4.2))
+        lay.addWidget(self.fourier_canvas, 1)
+        self.spots_table = _table(("shell", "d", "n_spots", "order", "strength"))
+        self.spots_table.setToolTip("Spot shells of the power spectrum: lattice-plane spacing d, number of spots, "
+                                    "rotational order (0 = none) and mean strength over background")
+        lay.addWidget(self.spots_table)
+        self.tabs.addTab(page, "Fourier")
+
+        self.notes = QPlainTextEdit()
+        self.notes.setReadOnly(True)
+        self.notes.setToolTip("The run's notes: automatic choices that could mislead, checks that failed")
+        self.tabs.addTab(self.notes, "Notes")
+
+        self.spectrum_button.clicked.connect(self.show_power_spectrum)
         self.table.cellClicked.connect(self.select_motif_row)
+        self.pair_canvas.mpl_connect("button_press_event", self._on_pair_click)
+        self.species_canvas.mpl_connect("button_press_event", self._on_species_click)
         self.session.changed.connect(self.refresh)
+        self.tabs.currentChanged.connect(lambda _: self._draw_current())
         self.refresh()
 
-    # ---------------------------------------------------------------- plots
+    # ---------------------------------------------------------------- drawing
     def refresh(self) -> None:
-        """Redraw the plots and the motif table from the session's current result."""
+        """Redraw from the session's current result: the shown tab now, every other tab when it is opened
+        (building and drawing the figures is the slow part, and it runs on the GUI thread)."""
         result = self.session.result
-        self.figure.clear()
-        ax_g, ax_h = self.figure.subplots(2, 1)
+        self._spectrum = None
+        self._bins = None
+        self._peaks = None
+        for fig in (self.pair_figure, self.species_figure, self.tiling_figure, self.fourier_figure):
+            fig.clear()
         if result is None:
-            for ax in (ax_g, ax_h):
+            for fig, canvas in ((self.pair_figure, self.pair_canvas), (self.species_figure, self.species_canvas)):
+                ax = fig.add_subplot()
                 ax.text(0.5, 0.5, "run an analysis", ha="center", va="center", transform=ax.transAxes)
                 ax.set_axis_off()
-            self.canvas.draw_idle()
+                canvas.draw_idle()
             self._fill_table(None)
+            self._todo = {}
             return
-        calibrated = result.meta.pixel_size_nm is not None
-        unit = "nm" if calibrated else "px"
+        n = len(result.tables["motifs"])
+        self.info.setText(f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
+        self._todo = {0: self._draw_pairs, 1: self._draw_species, 2: lambda r: self._fill_table(r.tables["motifs"]),
+                      3: self._draw_tiling, 4: self._draw_fourier_text, 5: self._fill_notes}
+        self._draw_current()
+
+    def draw_all(self) -> None:
+        """Build every tab now (for scripts and screenshots)."""
+        for index in list(getattr(self, "_todo", {})):
+            self._draw_tab(index)
+
+    def _draw_current(self) -> None:
+        self._draw_tab(self.tabs.currentIndex())
+
+    def _draw_tab(self, index: int) -> None:
+        draw = getattr(self, "_todo", {}).pop(index, None)
+        if draw is not None and self.session.result is not None:
+            draw(self.session.result)
+
+    def _redraw(self, canvas) -> None:
+        canvas.draw_idle()
+
+    def _unit(self, result):
+        ps = result.meta.pixel_size_nm
+        return ("nm", ps) if ps else ("px", 1.0)
+
+    def _draw_pairs(self, result) -> None:
+        unit, f = self._unit(result)
+        ax = self.pair_figure.add_subplot()
         curve = result.curves.get("pair_distribution_columns")
         if curve is not None and len(curve):
-            ax_g.plot(curve[f"r_{unit}"], curve["g"], color=PALETTE[0], lw=1.2)
+            ax.plot(curve["r_px"] * f, curve["g"], color=PALETTE[0], lw=1.2)
         ladder = result.tables.get("ladder")
-        if ladder is not None and len(ladder):
-            rungs = ladder[ladder["set"] == "columns"]
-            for _, r in rungs.iterrows():  # a handful of rungs
-                x = r[f"measured_{unit}"]
-                if np.isfinite(x):
-                    ax_g.axvline(x, color=PALETTE[1], lw=1.0, ls="--")
-                    ax_g.annotate(f"\u03c4^{r['rung']:g}", (x, 1), xycoords=("data", "axes fraction"),
-                                  xytext=(2, -10), textcoords="offset points", fontsize=7, color=PALETTE[1])
-        ax_g.set_xlabel(f"pair distance r ({unit})")
-        ax_g.set_ylabel("g(r)")
-        ax_g.set_title("Column pair distribution and \u03c4 ladder", fontsize=9)
-        cols = result.tables["columns"]
-        if len(cols):
-            inten = cols["intensity"].to_numpy(float)
-            ok = np.isfinite(inten)
-            bins = np.histogram_bin_edges(inten[ok], bins=60) if ok.any() else 10
-            species = cols["species"].to_numpy()
-            from tenfold.analysis.export import SPECIES_COLOURS  # the same colours as the columns layer
+        rungs = ladder[ladder["set"] == "columns"] if ladder is not None and len(ladder) else ladder
+        if rungs is not None and len(rungs):
+            for k, (x, n) in enumerate(zip(rungs["measured_px"].to_numpy(float) * f, rungs["rung"])):
+                if not np.isfinite(x):
+                    continue
+                ax.axvline(x, color=PALETTE[4], lw=0.9, ls="--")
+                # staggered heights so that neighbouring labels never overlap
+                ax.annotate(rf"$\tau^{{{n:g}}}$", (x, 0.97 - 0.09 * (k % 3)), xycoords=("data", "axes fraction"),
+                            xytext=(3, 0), textcoords="offset points", fontsize=9, color=PALETTE[4], va="top")
+        ax.set_xlabel(f"pair distance r ({unit})", fontsize=8)
+        ax.set_ylabel("g(r)", fontsize=8)
+        ax.set_title("Column pair distribution and \u03c4 ladder (click a peak)", fontsize=9)
+        ax.tick_params(labelsize=7)
+        self._pair_ax = ax
+        peaks = result.tables.get("pair_peaks")
+        self._peaks = peaks[peaks["set"] == "columns"] if peaks is not None and len(peaks) else None
+        self._redraw(self.pair_canvas)
+        rows = ladder.copy() if ladder is not None and len(ladder) else pd.DataFrame(columns=_LADDER_COLUMNS)
+        if len(rows):
+            rows["ideal"] = rows["ideal_px"] * f
+            rows["measured"] = rows["measured_px"] * f
+        self.ladder_table.setHorizontalHeaderLabels(
+            ["set", "rung n", f"ideal ({unit})", f"measured ({unit})", "deviation (%)", "\u00b1 (%)"])
+        _fill(self.ladder_table, rows[list(_LADDER_COLUMNS)])
 
+    def _draw_species(self, result) -> None:
+        ax = self.species_figure.add_subplot()
+        cols = result.tables["columns"]
+        inten = cols["intensity"].to_numpy(float) if len(cols) else np.zeros(0)
+        ok = np.isfinite(inten)
+        if ok.any():
+            bins = np.histogram_bin_edges(inten[ok], bins=60)
+            self._bins = bins
+            species = cols["species"].to_numpy()
             for s in np.unique(species[ok]):
                 sel = ok & (species == s)
-                colour = SPECIES_COLOURS[int(s) % len(SPECIES_COLOURS)] if s >= 0 else PALETTE[7]
-                ax_h.hist(inten[sel], bins=bins, color=colour, alpha=0.8,
-                          label="unclassified" if s < 0 else f"species {s}")
-            ax_h.legend(fontsize=7, frameon=False)
-        ax_h.set_xlabel("integrated intensity (counts px\u00b2)")
-        ax_h.set_ylabel("columns")
-        ax_h.set_title("Column intensities by species", fontsize=9)
-        for ax in (ax_g, ax_h):
-            ax.tick_params(labelsize=7)
-        self.canvas.draw_idle()
-        self._fill_table(result.tables["motifs"])
+                colour = SPECIES_PALETTE[int(s) % len(SPECIES_PALETTE)] if s >= 0 else UNCLASSIFIED_COLOUR
+                ax.hist(inten[sel], bins=bins, color=colour, alpha=0.85,
+                        label="unclassified" if s < 0 else f"species {s}")
+            ax.legend(fontsize=7, frameon=False)
+        ax.set_xlabel("integrated intensity (image units px\u00b2)", fontsize=8)
+        ax.set_ylabel("columns", fontsize=8)
+        ax.set_title("Column intensities by species (click a bar)", fontsize=9)
+        ax.tick_params(labelsize=7)
+        self._species_ax = ax
+        self._redraw(self.species_canvas)
+
+    def _draw_tiling(self, result) -> None:
+        info = result.summary.get("tiling") or {}
+        counts = info.get("tile_counts") or {}
+        thick, thin = counts.get("thick_rhombus", 0), counts.get("thin_rhombus", 0)
+        ratio = info.get("thick_thin_ratio")
+        ratio_text = f"{ratio:.3f}" if isinstance(ratio, (int, float)) and math.isfinite(ratio) else "-"
+        others = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in counts.items()
+                           if v and k not in ("thick_rhombus", "thin_rhombus"))
+        self.tiling_label.setText(
+            f"thick rhombi {thick}, thin rhombi {thin}, thick/thin {ratio_text} (ideal Penrose tiling: "
+            f"\u03c4 = {TAU:.3f})" + (f"; {others}" if others else "")
+            + f"; cluster vertices: {result.summary.get('cluster_vertices', 'ring')}s")
+        ax = self.tiling_figure.add_subplot()
+        network, motifs = result.tables.get("network"), result.tables["motifs"]
+        unit, f = self._unit(result)
+        if network is not None and len(network) and len(motifs):
+            from matplotlib.collections import LineCollection
+
+            centres = motifs.set_index("motif_id")[["centre_x_px", "centre_y_px"]]
+            ok = network["motif_a"].isin(centres.index) & network["motif_b"].isin(centres.index)
+            net = network[ok]
+            a = centres.loc[net["motif_a"]].to_numpy() * f
+            b = centres.loc[net["motif_b"]].to_numpy() * f
+            side = net["tile_left"].astype(str).where(net["tile_left"].astype(str) != "", net["tile_right"].astype(str))
+            colours = [TILE_COLOURS.get(t, NETWORK_COLOUR) for t in side]
+            ax.add_collection(LineCollection(np.stack([a, b], axis=1), colors=colours, linewidths=0.8))
+            ax.autoscale()
+            ax.set_aspect("equal")
+            ax.invert_yaxis()
+            from matplotlib.lines import Line2D
+
+            shown = [t for t in TILE_COLOURS if (side == t).any()]
+            ax.legend([Line2D([], [], color=TILE_COLOURS[t]) for t in shown], [t.replace("_", " ") for t in shown],
+                      fontsize=7, frameon=False, loc="upper right")
+        else:
+            ax.text(0.5, 0.5, "no cluster network", ha="center", va="center", transform=ax.transAxes)
+        ax.set_xlabel(f"x ({unit})", fontsize=8)
+        ax.set_ylabel(f"y ({unit})", fontsize=8)
+        ax.set_title("Tiling map (edge colour: tile beside it)", fontsize=9)
+        ax.tick_params(labelsize=7)
+        self._redraw(self.tiling_canvas)
+
+    def _draw_fourier_text(self, result) -> None:
+        info = result.summary.get("fourier") or {}
+        unit, f = self._unit(result)
+        if not info:
+            self.fourier_label.setText("Fourier stage not run ('Fourier spots' off)")
+            _fill(self.spots_table, pd.DataFrame(columns=["shell", "d", "n_spots", "order", "strength"]))
+            return
+        order = info.get("rotational_order") or 0
+        dist = info.get("distortion")
+        dist_text = (f"axis ratio {dist['axis_ratio']:.4f} at {dist['major_axis_deg']:.0f} deg"
+                     + (" (suspect scan distortion)" if dist.get("warning") else " (not significant)")
+                     if dist else "not estimated")
+        self.fourier_label.setText(
+            f"dominant order: {order}-fold" if order else "dominant order: none found"
+        )
+        self.fourier_label.setText(self.fourier_label.text()
+                                   + f"; {info.get('n_spots', 0)} spots; distortion: {dist_text}")
+        shells = pd.DataFrame(info.get("shells") or [])
+        if len(shells):
+            shells = pd.DataFrame({"shell": shells["shell"], "d": shells["d_px"] * f, "n_spots": shells["n_spots"],
+                                   "order": shells["order"], "strength": shells["strength"]})
+        else:
+            shells = pd.DataFrame(columns=["shell", "d", "n_spots", "order", "strength"])
+        self.spots_table.setHorizontalHeaderLabels(["shell", f"d ({unit})", "spots", "order", "strength"])
+        _fill(self.spots_table, shells)
+        ax = self.fourier_figure.add_subplot()
+        ax.text(0.5, 0.5, "press 'Show power spectrum'", ha="center", va="center", transform=ax.transAxes)
+        ax.set_axis_off()
+        self._redraw(self.fourier_canvas)
+
+    def _fill_notes(self, result) -> None:
+        notes = list(result.summary.get("notes", []))
+        check = spacing_check(result)
+        if check:
+            notes.insert(0, "warning: " + check)
+        edited = (result.summary.get("columns") or {}).get("hand_edited")
+        if edited:
+            notes.append("hand edits: " + ", ".join(f"{k} {v}" for k, v in edited.items()))
+        self.notes.setPlainText("\n\n".join(notes) if notes else "no notes: nothing in this run asked for care")
 
     def _fill_table(self, motifs) -> None:
-        self.table.setRowCount(0)
         self._table_rows = np.zeros(0, dtype=np.int64)
         if motifs is None or not len(motifs):
+            self.table.setRowCount(0)
             self.info.setText("")
             return
         order = np.argsort(-motifs["score"].to_numpy(float), kind="stable")[:MAX_TABLE_ROWS]
         self._table_rows = order
-        shown = motifs.iloc[order]
-        self.table.setRowCount(len(shown))
-        for j, name in enumerate(_TABLE_COLUMNS):
-            values = shown[name].to_numpy()
-            for i, v in enumerate(values):  # at most MAX_TABLE_ROWS rows of widgets
-                text = f"{v:.3g}" if isinstance(v, (float, np.floating)) else str(v)
-                self.table.setItem(i, j, QTableWidgetItem(text))
-        n = len(motifs)
-        self.info.setText(f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
+        _fill(self.table, motifs.iloc[order][list(_TABLE_COLUMNS)])
 
-    # ---------------------------------------------------------------- interaction
+    # ---------------------------------------------------------------- selection in the viewer
+    def _zoom_to(self, world: np.ndarray) -> None:
+        """Centre the view on (N, 2) world points and zoom so that they fill most of the canvas."""
+        if not len(world):
+            return
+        lo, hi = world.min(axis=0), world.max(axis=0)
+        self.viewer.scene.camera.center = tuple((lo + hi) / 2)
+        extent = float(max(hi - lo))
+        if extent > 0:
+            self.viewer.scene.camera.zoom = 0.8 * min(self.viewer.canvas.size) / extent
+        else:
+            self.viewer.scene.camera.zoom = max(self.viewer.scene.camera.zoom, 1.0)
+
+    def highlight_columns(self, ids) -> int:
+        """Select the columns with these ids in the 'columns' layer and zoom to them; returns how many."""
+        points = self.viewer.layers["columns"] if "columns" in self.viewer.layers else None
+        if points is None or "id" not in points.features:
+            return 0
+        idx = np.flatnonzero(np.isin(points.features["id"].to_numpy(), np.asarray(ids)))
+        self.viewer.layers.selection.active = points
+        points.selected_data = set(idx.tolist())
+        data = np.asarray(points.data)[idx]
+        self._zoom_to(data * np.asarray(points.scale) + np.asarray(points.translate))
+        return len(idx)
+
+    def columns_at_distance(self, distance_px: float, width_px: float) -> np.ndarray:
+        """Ids of the columns that have a partner at ``distance_px`` +- ``width_px`` (one KD-tree query)."""
+        from scipy.spatial import cKDTree
+
+        cols = self.session.result.tables["columns"]
+        xy = cols[["x_px", "y_px"]].to_numpy(float)
+        ok = np.all(np.isfinite(xy), axis=1)
+        xy, ids = xy[ok], cols["id"].to_numpy()[ok]
+        if len(xy) < 2:
+            return np.zeros(0, np.int64)
+        pairs = cKDTree(xy).query_pairs(distance_px + width_px, output_type="ndarray")
+        d = np.hypot(*(xy[pairs[:, 0]] - xy[pairs[:, 1]]).T)
+        pairs = pairs[d >= distance_px - width_px]
+        return np.unique(ids[pairs.ravel()])
+
+    def select_peak(self, r: float) -> int:
+        """Select the columns forming the pair-distance peak nearest ``r`` (plot units); returns how many."""
+        if self._peaks is None or not len(self._peaks) or self.session.result is None:
+            return 0
+        _, f = self._unit(self.session.result)
+        d = self._peaks["distance_px"].to_numpy(float)
+        k = int(np.nanargmin(np.abs(d - r / f)))
+        width = max(2.0 * float(self._peaks["width_px"].to_numpy(float)[k]), 0.02 * d[k])
+        ids = self.columns_at_distance(d[k], width)
+        label = self._peaks["label"].iloc[k]
+        self.info.setText(f"pair peak {label} at {d[k] * f:.3g}: {len(ids)} columns selected")
+        return self.highlight_columns(ids)
+
+    def select_intensity_bin(self, value: float) -> int:
+        """Select the columns in the histogram bar containing ``value``; returns how many."""
+        if self._bins is None or self.session.result is None:
+            return 0
+        k = int(np.clip(np.searchsorted(self._bins, value) - 1, 0, len(self._bins) - 2))
+        lo, hi = self._bins[k], self._bins[k + 1]
+        cols = self.session.result.tables["columns"]
+        inten = cols["intensity"].to_numpy(float)
+        ids = cols["id"].to_numpy()[(inten >= lo) & ((inten < hi) | (k == len(self._bins) - 2) & (inten <= hi))]
+        self.info.setText(f"intensity {lo:.4g}-{hi:.4g}: {len(ids)} columns selected")
+        return self.highlight_columns(ids)
+
+    def _on_pair_click(self, event) -> None:
+        if event.inaxes is getattr(self, "_pair_ax", None) and event.xdata is not None:
+            self.select_peak(float(event.xdata))
+
+    def _on_species_click(self, event) -> None:
+        if event.inaxes is getattr(self, "_species_ax", None) and event.xdata is not None:
+            self.select_intensity_bin(float(event.xdata))
+
     def select_motif_row(self, row: int, column: int = 0) -> None:
-        """Select the motif of a table row in the 'motifs' layer and centre the view on it."""
+        """Select the motif of a table row in the 'motifs' layer and zoom to it."""
         layer = self.viewer.layers["motifs"] if "motifs" in self.viewer.layers else None
         if layer is None or row >= len(self._table_rows):
             return
         index = int(self._table_rows[row])
         if index >= len(layer.data):
             return
-        layer.selected_data = {index}
-        centre = np.asarray(layer.data[index]).mean(axis=0)
-        self.viewer.scene.camera.center = tuple(layer.data_to_world(centre))
         self.viewer.layers.selection.active = layer
+        layer.selected_data = {index}
+        verts = np.asarray(layer.data[index])[:, -2:]
+        self._zoom_to(verts * np.asarray(layer.scale)[-2:] + np.asarray(layer.translate)[-2:])
+        # a motif alone fills the canvas; show its neighbourhood too
+        self.viewer.scene.camera.zoom = self.viewer.scene.camera.zoom / 4
 
-    def add_power_spectrum(self) -> None:
-        """Add the log power spectrum as the 'power spectrum' image layer, scale in 1/nm (1/px uncalibrated)."""
+    # ---------------------------------------------------------------- power spectrum
+    def show_power_spectrum(self) -> None:
+        """Compute the log power spectrum in a worker and draw it in the Fourier tab (axes in 1/nm; 1/px when
+        uncalibrated). Not a layer: its units would clash with the nm layers."""
         from napari.layers import Image, Shapes
+        from napari.qt.threading import create_worker
         from napari.utils.notifications import show_error
 
         from tenfold.analysis.fourier import power_spectrum
 
+        from ._layers import META_KEY
+
+        if self.worker is not None:
+            return
         image_layer = self.session.image_layer
         if image_layer is None or image_layer not in self.viewer.layers:
-            images = [ly for ly in self.viewer.layers if isinstance(ly, Image) and ly.name != "power spectrum"]
+            images = [ly for ly in self.viewer.layers if isinstance(ly, Image)]
             image_layer = images[-1] if images else None
         if image_layer is None:
             show_error("power spectrum: open a micrograph first")
             return
-        from ._layers import META_KEY
-
-        data = np.asarray(image_layer.data, dtype=np.float32)
+        data = np.asarray(image_layer.data)
         active = self.viewer.layers.selection.active
         where = "image"
-        if isinstance(active, Shapes) and active.name not in ("motifs", "network") and active.selected_data:
+        if isinstance(active, Shapes) and active.name != "motifs" and active.selected_data:
             verts = np.asarray(active.data[min(active.selected_data)])[:, -2:]
             rc = data_to_data(verts, active, image_layer)
             r0, c0 = np.floor(rc.min(axis=0)).astype(int).clip(0)
             r1, c1 = np.ceil(rc.max(axis=0)).astype(int) + 1
             data = data[r0:r1, c0:c1]
             where = f"selected shape ({data.shape[0]} x {data.shape[1]} px)"
-        meta = image_layer.metadata.get(META_KEY) or {}
-        px = meta.get("pixel_size_nm")
-        try:
-            spectrum, k_step = power_spectrum(data, pixel_size_nm=px)
-        except Exception as exc:
-            show_error(str(exc))
+        px = (image_layer.metadata.get(META_KEY) or {}).get("pixel_size_nm")
+
+        def compute():
+            try:
+                return power_spectrum(np.asarray(data, np.float32), pixel_size_nm=px), None
+            except Exception as exc:  # shown as a notification, never a traceback dialog
+                return None, str(exc)
+
+        worker = create_worker(compute, _start_thread=False)
+        worker.returned.connect(lambda out: self._draw_spectrum(out, px, where))
+        worker.finished.connect(self._spectrum_done)
+        self.worker = worker
+        self.spectrum_button.setEnabled(False)
+        self.info.setText(f"computing the power spectrum of the {where}...")
+        worker.start()
+
+    def _spectrum_done(self) -> None:
+        self.worker = None
+        self.spectrum_button.setEnabled(True)
+
+    def _draw_spectrum(self, out, px, where) -> None:
+        from napari.utils.notifications import show_error
+
+        value, error = out
+        if error:
+            show_error(f"power spectrum: {error}")
+            self.info.setText(f"power spectrum: {error}")
             return
-        kwargs = spectrum_layer_kwargs(spectrum, k_step / px if px else k_step, px is not None)
-        kwargs["metadata"]["source"] = where
-        if "power spectrum" in self.viewer.layers:
-            self.viewer.layers.remove("power spectrum")
-        self.viewer.add_image(**kwargs)
-        self.info.setText(f"power spectrum of the {where}")
+        spectrum, k_step = value
+        self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())  # builds the tab's text first
+        unit = "1/nm" if px else "1/px"
+        step = k_step / px if px else k_step
+        n_rows, n_cols = spectrum.shape
+        extent = (-(n_cols // 2 + 0.5) * step, (n_cols - n_cols // 2 - 0.5) * step,
+                  (n_rows - n_rows // 2 - 0.5) * step, -(n_rows // 2 + 0.5) * step)
+        self.fourier_figure.clear()
+        ax = self.fourier_figure.add_subplot()
+        ax.imshow(spectrum, cmap="magma", extent=extent, interpolation="nearest")
+        result = self.session.result
+        spots = result.tables.get("spots") if result is not None else None
+        if spots is not None and len(spots):
+            f = 1 / px if px else 1.0
+            ax.scatter(spots["kx_per_px"] * f, spots["ky_per_px"] * f, s=40, facecolors="none",
+                       edgecolors=KIND_COLOURS["other"], linewidths=0.8, label="located spots")
+            ax.legend(fontsize=7, frameon=False, loc="upper right", labelcolor="white")
+        ax.set_xlabel(f"k_x ({unit})", fontsize=8)
+        ax.set_ylabel(f"k_y ({unit})", fontsize=8)
+        ax.set_title(f"Log power spectrum of the {where}", fontsize=9)
+        ax.tick_params(labelsize=7)
+        self._spectrum = {"data": spectrum, "step": step, "unit": unit, "source": where, "extent": extent}
+        self._redraw(self.fourier_canvas)
+        self.info.setText(f"power spectrum of the {where}, {step:.3g} {unit} per pixel")
+
+    add_power_spectrum = show_power_spectrum  # the older name

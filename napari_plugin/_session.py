@@ -34,6 +34,9 @@ class Session(QObject):
 
 def session_for(viewer) -> Session:
     """The one session of ``viewer``, created on first use (kept alive by the docks that hold it)."""
+    # napari hands each plugin dock its own proxy of the viewer (add_plugin_dock_widget, ``napari -w``): key the
+    # session on the viewer behind the proxy, so all docks of one viewer share it
+    viewer = getattr(viewer, "__wrapped__", viewer)
     session = _SESSIONS.get(id(viewer))
     if session is None or session.viewer is not viewer:
         session = Session(viewer)

@@ -42,6 +42,8 @@ __all__ = ["PipelineWidget", "PREVIEW_SIZE_PX"]
 #: Side of the central square a preview analyses.
 PREVIEW_SIZE_PX = 256
 _WHOLE_IMAGE = "(whole image)"
+#: Outline colour of the regions chosen for analysis (no fill, so the image stays visible).
+REGION_COLOUR = "#e8e8e8"
 _COLOUR_PROPS = ("species", "intensity", "pos_err_nm", "sigma_px", "residual", "species_prob", "region",
                  "fit_status")
 _NM_FIELDS = (  # (Parameters name, label, estimate key)
@@ -70,17 +72,17 @@ class _Bridge(QObject):
 
 
 def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outcome:
-    """Worker body: run ``compute(progress)``, build the result layers, report every failure as text."""
+    """Worker body: run ``compute = (fn, args, kwargs)`` in the helper process (see ``_compute``), build the
+    result layers here, report every failure as text."""
     from tenfold.analysis._errors import Cancelled, TenfoldInputError
 
-    def progress(fraction: float, message: str) -> bool:
-        emit(float(fraction), str(message))
-        return not cancel.is_set()
+    from ._compute import run_in_process
 
+    fn, args, kwargs = compute
     try:
-        result = compute(progress)
-        if frame is None:  # export: the body returns its message
-            return _Outcome("ok", message=str(result), kind=kind)
+        result = run_in_process(fn, *args, emit=emit, cancel=cancel, **kwargs)
+        if frame is None:  # export, estimate: no layers; export returns its message
+            return _Outcome("ok", message=str(result), result=result, kind=kind)
         emit(1.0, "building layers")
         layers = result_layers(result, frame, columns=build_columns, colour_by=colour_by)
         if cancel.is_set():
@@ -92,6 +94,60 @@ def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outco
         return _Outcome("error", str(exc), kind=kind)
     except Exception as exc:  # anything else is shown as a notification with its message, not a dialog
         return _Outcome("error", f"{kind} failed: {type(exc).__name__}: {exc}", kind=kind)
+
+
+#: Parameters' Python names to the labels the dock shows them under (error messages name the field as labelled).
+_LABELS = {"pixel_size_nm": "Pixel size (nm)", **{name: label for name, label, _ in _NM_FIELDS},
+           "n_species": "Species", "ring_order": "Ring order", "radius_tolerance": "Radius tolerance",
+           "dark_columns": "Contrast", "flatten": "flatten uneven background", "pentagons": "pentagons",
+           "half_step": "half-step ladder", "fourier": "Fourier spots"}
+
+
+def labelled(message: str) -> str:
+    """A pipeline message with parameter names replaced by the dock's field labels."""
+    import re
+
+    for name, label in sorted(_LABELS.items(), key=lambda kv: -len(kv[0])):
+        message = re.sub(rf"\bparameters? {name}\b", f"'{label}'", message)
+        message = re.sub(rf"\b{name}\b", f"'{label}'", message)
+    return message
+
+
+#: Notes that describe the run rather than warn about it (shown as information).
+_INFO_NOTES = ("preview:",)
+
+
+def status_counts(result) -> str:
+    """'N columns, N rings, N pentagons, N tiles (N thick, N thin)' for the status line."""
+    tables = result.tables
+    kinds = tables["motifs"]["kind"].astype(str) if len(tables["motifs"]) else None
+    n_rings = int(kinds.str.startswith("ring").sum()) if kinds is not None else 0
+    n_pent = int((kinds == "pentagon").sum()) if kinds is not None else 0
+    tiles = tables.get("tiles")
+    counts = tiles.groupby("tile")["count"].sum() if tiles is not None and len(tiles) else {}
+    n_tiles = int(sum(counts.values)) if len(counts) else 0
+    thick, thin = int(counts.get("thick_rhombus", 0)), int(counts.get("thin_rhombus", 0))
+    return (f"{len(tables['columns'])} columns, {n_rings} rings, {n_pent} pentagons, {n_tiles} tiles "
+            f"({thick} thick, {thin} thin)")
+
+
+_FROZEN = False
+
+
+def _freeze_startup_objects() -> None:
+    """Move every object alive once napari and Tenfold are loaded into the collector's permanent generation.
+
+    napari runs a full ``gc.collect()`` whenever a layer is removed; with the ~350 000 objects of napari, Qt,
+    pandas and scipy that took 0.6-1 s of frozen GUI per removal on our test machine. Those objects live as long
+    as the viewer anyway; objects made later (results, layers) are still collected as usual.
+    """
+    global _FROZEN
+    if not _FROZEN:
+        import gc
+
+        gc.collect()
+        gc.freeze()
+        _FROZEN = True
 
 
 def _nm_text(value) -> str:
@@ -108,6 +164,10 @@ class PipelineWidget(QWidget):
 
     def __init__(self, napari_viewer) -> None:
         super().__init__()
+        _freeze_startup_objects()
+        from ._compute import start
+
+        start()  # the helper process loads the analysis code while the user sets up the first run
         self.viewer = napari_viewer
         self.session = session_for(napari_viewer)
         self.worker = None
@@ -213,6 +273,7 @@ class PipelineWidget(QWidget):
         self.progress_bar.setRange(0, 1000)
         self.status = QLabel("")
         self.status.setWordWrap(True)
+        self.status.setMinimumHeight(3 * self.status.fontMetrics().lineSpacing())
         root.addWidget(self.progress_bar)
         root.addWidget(self.status)
 
@@ -221,6 +282,8 @@ class PipelineWidget(QWidget):
         self.colour_by = QComboBox()
         self.colour_by.addItems(list(_COLOUR_PROPS))
         form.addRow("Colour columns by", self.colour_by)
+        self.colour_note = QLabel("")
+        form.addRow("", self.colour_note)
         row = QHBoxLayout()
         self.rerun_button = QPushButton("Re-run from columns")
         self.rerun_button.setToolTip("recompute motifs, ladder and tiling from the edited 'columns' layer")
@@ -231,6 +294,7 @@ class PipelineWidget(QWidget):
         root.addWidget(box)
         root.addStretch(1)
 
+        self._add_tooltips()
         self.estimate_button.clicked.connect(self.estimate)
         self.preview_button.clicked.connect(self.preview)
         self.run_button.clicked.connect(self.run)
@@ -238,6 +302,51 @@ class PipelineWidget(QWidget):
         self.rerun_button.clicked.connect(self.rerun_from_columns)
         self.export_button.clicked.connect(lambda: self.export())
         self.colour_by.currentTextChanged.connect(self._recolour)
+        self.regions_combo.currentTextChanged.connect(self._style_regions)
+
+    def _add_tooltips(self) -> None:
+        tips = {
+            self.image_combo: "Image layer to analyse; an image opened later is chosen automatically.",
+            self.regions_combo: "Shapes layer whose rectangles, polygons or ellipses are the regions analysed "
+                                "(labels 1, 2, ... in the order drawn); '(whole image)' analyses everything.",
+            self.pixel_size: "Pixel size in nm per pixel. Empty: the calibration stored in the file; without one "
+                             "every nm value is left empty (never guessed).",
+            self.contrast: "Bright columns on a dark background (HAADF) or dark columns on a bright one "
+                           "(HRTEM, ABF).",
+            self.nm_fields["column_spacing_nm"]: "Nearest-neighbour distance between columns, in nm. Empty: "
+                                                 "measured from the image (Estimate shows the value).",
+            self.nm_fields["column_diameter_nm"]: "Full column diameter in nm (about 4.5 Gaussian sigma). Empty: "
+                                                  "measured from the image (Estimate shows the value).",
+            self.nm_fields["ring_radius_nm"]: "Radius of the ring motifs in nm. Empty: the pair-distance peak that "
+                                              "fits the ring order best.",
+            self.nm_fields["d0_nm"]: "Base distance d0 of the golden-ratio ladder d0 x tau^n, in nm. Empty: the "
+                                     "strongest short-range pair-distance peak.",
+            self.species: "Number of intensity classes of the columns: auto chooses by the Bayesian information "
+                          "criterion; 0 skips classification; 1-8 fixes the number.",
+            self.flatten: "Subtract a smooth background first (uneven illumination or thickness). Off by default.",
+            self.ring_order: "Number of columns in a ring motif (10 for decagonal clusters).",
+            self.radius_tolerance: "Relative tolerance on the ring radius (0.12 = +-12 %).",
+            self.pentagons: "Also look for pentagons of columns (inside rings or free-standing).",
+            self.half_step: "Also try half steps tau^(n/2) on the distance ladder.",
+            self.fourier: "Locate the Bragg spots of the power spectrum and check it for scan distortion.",
+            self.estimate_button: "Measure the automatic column spacing and diameter now (runs in the background) "
+                                  "and show them next to the fields.",
+            self.preview_button: f"Analyse only the central {PREVIEW_SIZE_PX} x {PREVIEW_SIZE_PX} px, for a quick "
+                                 "check of the parameters.",
+            self.run_button: "Analyse the image (or only the regions) in the background; result layers replace "
+                             "those of the last run.",
+            self.cancel_button: "Stop the running job at its next progress report; layers stay as they were.",
+            self.progress_bar: "Progress of the running job.",
+            self.status: "What the last job did: counts of columns, rings, pentagons and tiles.",
+            self.colour_by: "Feature that colours the column markers: species in their own colours, numbers on "
+                            "a colour scale from the feature's 2nd to 98th percentile.",
+            self.rerun_button: "Recompute motifs, ladder and tiling from the edited 'columns' layer (added points "
+                               "are fitted, deleted ones left out); no new detection.",
+            self.export_button: "Write tables (CSV, xlsx), summary.json and figures to a folder; asks before "
+                                "overwriting.",
+        }
+        for widget, tip in tips.items():
+            widget.setToolTip(tip)
 
     # ---------------------------------------------------------------- layer choice
     def _refresh_layers(self, event=None) -> None:
@@ -254,9 +363,32 @@ class PipelineWidget(QWidget):
             added = getattr(event, "value", None) if event is not None and event.type == "inserted" else None
             if combo is self.regions_combo and isinstance(added, Shapes) and added.name in names:
                 combo.setCurrentText(added.name)  # a Shapes layer just added is meant to mark regions
+            elif combo is self.image_combo and isinstance(added, Image) and added.name in names:
+                combo.setCurrentText(added.name)  # an image just opened is the one to analyse next
+            elif combo is self.regions_combo and isinstance(added, Image) and added.name in images:
+                combo.setCurrentText(_WHOLE_IMAGE)  # the old regions were drawn for another image
             elif current in names:
                 combo.setCurrentText(current)
             combo.blockSignals(False)
+        self._style_regions(self.regions_combo.currentText())
+
+    def _style_regions(self, name: str) -> None:
+        """Restyle the chosen regions layer: outlines only (no fill hiding the image), and napari's default
+        pixel units relabelled as the image's when its scale is 1 (it was then drawn in the image's world units),
+        so the scale bar keeps its unit."""
+        from napari.layers import Shapes
+
+        layer, image = self._layer(name), self._layer(self.image_combo.currentText())
+        if not isinstance(layer, Shapes):
+            return
+        layer.current_face_color = "transparent"
+        layer.current_edge_color = REGION_COLOUR
+        if len(layer.data):
+            layer.face_color = "transparent"
+            layer.edge_color = REGION_COLOUR
+        if image is not None and np.allclose(layer.scale[-2:], 1.0) and \
+                {str(u) for u in layer.units} == {"pixel"} and {str(u) for u in image.units} != {"pixel"}:
+            layer.units = tuple(image.units[-2:])
 
     def _layer(self, name: str):
         return self.viewer.layers[name] if name in self.viewer.layers else None
@@ -277,7 +409,7 @@ class PipelineWidget(QWidget):
                 values[name] = float(text)
             except ValueError:
                 raise TenfoldInputError(
-                    f"parameter {name}: {text!r} is not a number; give a value in nm or leave it empty for auto"
+                    f"{_LABELS[name]}: {text!r} is not a number; give a value in nm or leave it empty for auto"
                 ) from None
         n = self.species.value()
         values.update(
@@ -292,7 +424,10 @@ class PipelineWidget(QWidget):
             correct_distortion=self.correct_distortion.isChecked(),
             phason=self.phason.isChecked(),
         )
-        return Parameters(**values).validate()
+        try:
+            return Parameters(**values).validate()
+        except TenfoldInputError as exc:
+            raise TenfoldInputError(labelled(str(exc))) from None
 
     def _inputs(self, *, preview: bool = False):
         """(image layer, micrograph, params, regions, frame) for a run; raises TenfoldInputError."""
@@ -323,22 +458,31 @@ class PipelineWidget(QWidget):
 
     # ---------------------------------------------------------------- actions
     def estimate(self) -> None:
-        """Show the automatic column spacing and diameter next to their fields (quick, on the GUI thread)."""
+        """Show the automatic column spacing and diameter next to their fields (in a worker)."""
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis.pipeline import estimate_defaults
+        from ._compute import estimate_job
 
+        if self.worker is not None:
+            return
         try:
             _, micrograph, params, _, _ = self._inputs()
-            est = estimate_defaults(micrograph, dark_columns=params.dark_columns)
         except Exception as exc:  # shown, never raised into Qt
             show_error(str(exc))
             return
+
+        compute = (estimate_job, (micrograph,), {"dark_columns": params.dark_columns})
+        self._launch("estimate", compute, None, None, build_columns=False)
+
+    def _show_estimate(self, est: dict) -> None:
         for key, label in self.estimate_labels.items():
             nm, px = est.get(f"{key}_nm"), est.get(f"{key}_px")
             label.setText(f"auto {_nm_text(nm)} nm" if nm is not None and math.isfinite(nm)
                           else f"auto {_nm_text(px)} px")
         self.estimates = est
+        self.status.setText("estimate: " + ", ".join(
+            f"{label.lower()} {lab.text()[5:]}" for (_, label, key) in _NM_FIELDS
+            for k2, lab in self.estimate_labels.items() if k2 == key))
 
     def run(self) -> None:
         """Analyse the chosen image (inside the regions, if a regions layer is chosen) in a worker."""
@@ -361,8 +505,7 @@ class PipelineWidget(QWidget):
             show_error(str(exc))
             return
 
-        def compute(progress):
-            return run_pipeline(micrograph, params, regions=regions or None, progress=progress)
+        compute = (run_pipeline, (micrograph, params), {"regions": regions or None})
 
         context = (image_layer, frame, regions)
         self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)
@@ -371,7 +514,7 @@ class PipelineWidget(QWidget):
         """Recompute motifs, ladder and tiling from the (edited) 'columns' layer, without re-detecting."""
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis import pipeline
+        from ._compute import rerun_job
 
         session = self.session
         points = self._layer("columns")
@@ -388,8 +531,7 @@ class PipelineWidget(QWidget):
             return
         result, regions = session.result, session.regions or None
 
-        def compute(progress):
-            return pipeline.rerun_from_columns(result, columns, params=params, regions=regions, progress=progress)
+        compute = (rerun_job, (result, columns), {"params": params, "regions": regions})
 
         context = (session.image_layer, session.frame, session.regions)
         self._launch("re-run", compute, session.frame, context, build_columns=False)
@@ -438,7 +580,12 @@ class PipelineWidget(QWidget):
             show_info(outcome.message)
             self.status.setText(outcome.message)
             return
-        # one layer per event-loop turn, so the GUI never stalls for the sum of all insertions
+        if outcome.kind == "estimate":
+            self._show_estimate(outcome.result)
+            return
+        # the old result layers go in one batch (napari cleans its scene graph once, not once per layer), the
+        # new ones one per event-loop turn, so the GUI never stalls for the sum of all insertions
+        self._places = self._remove_old([ly.name for ly in outcome.layers])
         self._pending = list(outcome.layers)
         self._pending_outcome = outcome
         QTimer.singleShot(0, self._insert_next)
@@ -453,21 +600,37 @@ class PipelineWidget(QWidget):
         points = self._layer("columns")
         if points is not None:
             self.viewer.layers.selection.active = points
+        if outcome.kind == "re-run" and points is not None:
+            self._update_columns_layer(points, outcome.result.tables["columns"])
         self.session.set_result(outcome.result, frame, image_layer, regions or [])
         self.viewer.canvas.overlays.scale_bar.visible = True
         summary = outcome.result.summary
-        tables = outcome.result.tables
-        n_rings = int(tables["motifs"]["kind"].astype(str).str.startswith("ring").sum()) if len(tables["motifs"]) else 0
-        self.status.setText(f"{outcome.kind}: {len(tables['columns'])} columns, {n_rings} rings, "
-                            f"{len(tables['network'])} network edges"
+        self.status.setText(f"{outcome.kind}: {status_counts(outcome.result)}"
                             + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
-        # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not hidden
-        from napari.utils.notifications import show_warning
+        # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not hidden;
+        # what only describes the run (a preview's crop, the analysed box) is information
+        from napari.utils.notifications import show_info, show_warning
 
+        from ._plots import spacing_check
+
+        check = spacing_check(outcome.result)
+        if check:
+            show_warning(check)
         for note in summary.get("notes", []):
-            if not note.startswith("uncalibrated"):
-                show_warning(note)
+            if note.startswith("uncalibrated"):
+                continue
+            (show_info if note.startswith(_INFO_NOTES) else show_warning)(note)
         self._go_idle()
+
+    def _update_columns_layer(self, points, table) -> None:
+        """After a re-run the edited columns layer is kept; its features (new ids, fitted added columns) and the
+        fitted positions of added columns are taken from the re-run's table when the rows still match."""
+        if len(table) != len(points.data):
+            return
+        with points.events.data.blocker(self._on_columns_edited):
+            points.data = table[["y_px", "x_px"]].to_numpy(float)
+        points.features = table.reset_index(drop=True)
+        self._recolour(self.colour_by.currentText())
 
     def _on_finished(self) -> None:
         self._worker_done = True
@@ -484,27 +647,67 @@ class PipelineWidget(QWidget):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
+    def _remove_old(self, names) -> dict:
+        """Remove the previous layers of these names in one batch; returns name -> (index among the layers left,
+        visible, opacity), so that the new layers take their places."""
+        layers = self.viewer.layers
+        old = [layers[n] for n in names if n in layers]
+        if not old:
+            return {}
+        removed = sorted(layers.index(ly) for ly in old)
+        places = {}
+        for ly in old:
+            i = layers.index(ly)
+            places[ly.name] = (i - sum(r < i for r in removed), ly.visible, ly.opacity)
+        with layers.batched_update():
+            for ly in old:
+                layers.remove(ly)
+        return places
+
     def _put_layer(self, new) -> None:
-        """Insert a finished layer; one of the same name is replaced in place (same position, visibility)."""
-        old = self._layer(new.name)
-        if old is None:
+        """Insert a finished layer where the old one of its name was (same visibility and opacity) when that
+        place is above the analysed image, else on top (a second image opened since)."""
+        if new.name == "columns":
+            new.events.data.connect(self._on_columns_edited)
+        place = getattr(self, "_places", {}).pop(new.name, None)
+        if place is None:
             self.viewer.add_layer(new)
             return
-        new.visible, new.opacity = old.visible, old.opacity
-        index = self.viewer.layers.index(old)
-        self.viewer.layers.remove(old)
-        self.viewer.layers.insert(index, new)
+        index, new.visible, new.opacity = place
+        image = self._context[0] if getattr(self, "_context", None) else None
+        if image is not None and image in self.viewer.layers and index <= self.viewer.layers.index(image):
+            index = len(self.viewer.layers)
+        for other, (j, *_rest) in self._places.items():  # the later layers sit above this one
+            if j >= index:
+                self._places[other] = (j + 1, *_rest)
+        self.viewer.layers.insert(min(index, len(self.viewer.layers)), new)
+
+    def _on_columns_edited(self, event) -> None:
+        """A point added by hand is a new column: its own id, NaN measurements, species -1, status 'added'
+        (napari would give it the features and colour of the last selected point)."""
+        if getattr(event, "action", None) != "added":  # napari's ActionType is a str enum
+            return
+        layer = event.source
+        n = len(layer.data)
+        rows = np.unique(np.asarray(event.data_indices, np.int64) % max(n, 1))
+        if not len(rows) or len(layer.features) != n:
+            return
+        from ._layers import UNCLASSIFIED_COLOUR, added_row_values
+        from matplotlib.colors import to_rgba
+
+        layer.features = added_row_values(layer.features, rows)
+        face = np.array(layer.face_color, copy=True)
+        face[rows] = to_rgba(UNCLASSIFIED_COLOUR)
+        layer.face_color = face
 
     def _recolour(self, prop: str) -> None:
         points = self._layer("columns")
         if points is None or prop not in points.features:
             return
         kwargs = colour_kwargs(points.features, prop)
-        if "face_colormap" in kwargs:
-            points.face_colormap = kwargs["face_colormap"]
-        if "face_color_cycle" in kwargs:
-            points.face_color_cycle = kwargs["face_color_cycle"]
         points.face_color = kwargs["face_color"]
+        lo_hi = kwargs.get("limits")
+        self.colour_note.setText(f"{prop}: {lo_hi[0]:.3g} (dark) to {lo_hi[1]:.3g} (light)" if lo_hi else "")
 
     # ---------------------------------------------------------------- export
     def _ask_folder(self) -> str | None:
@@ -525,7 +728,7 @@ class PipelineWidget(QWidget):
         """
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis.export import write_results
+        from ._compute import export_job
 
         if self.worker is not None:
             return
@@ -547,8 +750,6 @@ class PipelineWidget(QWidget):
                 return
             overwrite = True
 
-        def compute(progress):
-            write_results(result, folder, overwrite=overwrite, figures=True, progress=progress)
-            return f"results written to {folder}"
+        compute = (export_job, (result, folder), {"overwrite": overwrite})
 
         self._launch("export", compute, None, None, build_columns=False)

@@ -65,3 +65,42 @@ def pytest_runtest_makereport(item, call):
     setattr(item, "rep_" + report.when, report)
     if report.when == "setup" and report.failed:
         item.rep_call = report  # the call phase never runs; napari's teardown still looks for it
+
+
+WAIT_MS = 120_000
+#: a central 256 px square of the 1024 px samples, (row0, col0, row1, col1) in px: small enough for quick runs
+SMALL_BOX = (384.0, 384.0, 640.0, 640.0)
+
+
+def run_and_wait(qtbot, widget, action="run", *args):
+    """Press one of the dock's actions and wait (pytest-qt, no sleeps) until its worker is done."""
+    getattr(widget, action)(*args)
+    assert widget.worker is not None, f"{action} started no worker"
+    qtbot.waitUntil(lambda: widget.worker is None, timeout=WAIT_MS)
+
+
+def add_box(viewer, image, box=SMALL_BOX, name="regions"):
+    """A rectangle in a Shapes layer of napari's default scale 1 (vertices in world nm)."""
+    import numpy as np
+
+    r0, c0, r1, c1 = box
+    corners = np.array([[r0, c0], [r0, c1], [r1, c1], [r1, c0]]) * image.scale[-1]
+    return viewer.add_shapes([corners], shape_type="rectangle", name=name)
+
+
+@pytest.fixture
+def small_run(make_napari_viewer, sample_path, qtbot, notes):
+    """A viewer with the high-dose sample, the analysis and plots docks, and a finished run on SMALL_BOX."""
+    from tenfold.napari_plugin._plots import PlotsWidget
+    from tenfold.napari_plugin._widget import PipelineWidget
+
+    viewer = make_napari_viewer()
+    image, = viewer.open(str(sample_path("decagonal_haadf_high_dose")), plugin="tenfold")
+    widget = PipelineWidget(viewer)
+    plots = PlotsWidget(viewer)
+    viewer.window.add_dock_widget(widget, name="Tenfold analysis")
+    viewer.window.add_dock_widget(plots, name="Tenfold plots")
+    add_box(viewer, image)
+    run_and_wait(qtbot, widget)
+    assert notes["error"] == [], notes["error"]
+    return viewer, widget, plots, image

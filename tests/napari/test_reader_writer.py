@@ -176,16 +176,13 @@ def test_chunked_shapes_equal_one_piece_build():
     assert len(_chunked_shapes(lines, chunk=4).data) == 23
 
 
-def test_species_colours_match_the_exported_figures():
+def test_species_colours_by_value_not_by_first_appearance():
     import pandas as pd
     from matplotlib.colors import to_rgba
 
-    from tenfold.analysis.export import SPECIES_COLOURS
-    from tenfold.napari_plugin._layers import colour_kwargs
+    from tenfold.napari_plugin._layers import SPECIES_PALETTE, UNCLASSIFIED_COLOUR, colour_kwargs
 
     table = pd.DataFrame({"species": [2, 0, 1, -1, 0]})
     face = colour_kwargs(table, "species")["face_color"]
     for row, sp in zip(face, table["species"]):
-        if sp >= 0:
-            np.testing.assert_allclose(row, to_rgba(SPECIES_COLOURS[sp]))
-    assert not np.allclose(face[3], to_rgba(SPECIES_COLOURS[0]))  # unclassified is not species 0
+        np.testing.assert_allclose(row, to_rgba(SPECIES_PALETTE[sp] if sp >= 0 else UNCLASSIFIED_COLOUR))
