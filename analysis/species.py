@@ -111,7 +111,7 @@ def fit_gmm_1d(x, k, *, rng=0, n_init=4):
     return {"means": mean[order], "stds": np.sqrt(var[order]), "weights": weight[order], "log_likelihood": ll}
 
 
-#: neighbouring classes must be at least this many of their (mean) spreads apart to count as two species: an
+#: neighbouring classes must be at least this many of their (smaller) spreads apart to count as two species: an
 #: equal mixture of two Gaussians of equal spread is bimodal only beyond 2 spreads (e.g. Schilling, Watkins &
 #: Watkins, Am. Stat. 56 (2002) 223, from memory); closer classes are one species split by noise
 MERGE_SPREADS = 2.0
@@ -125,11 +125,11 @@ def _entropy(x, fit):
 
 
 def _separated(fit):
-    """True when every pair of neighbouring classes is at least ``MERGE_SPREADS`` of their mean spread apart."""
+    """True when every pair of neighbouring classes is at least ``MERGE_SPREADS`` of their smaller spread apart."""
     m, s = fit["means"], fit["stds"]
     if m.size < 2:
         return True
-    return bool(np.all(np.diff(m) >= MERGE_SPREADS * 0.5 * (s[1:] + s[:-1])))
+    return bool(np.all(np.diff(m) >= MERGE_SPREADS * np.minimum(s[1:], s[:-1])))
 
 
 def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rng=0) -> tuple[pd.DataFrame, dict]:
