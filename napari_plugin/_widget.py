@@ -222,7 +222,7 @@ class PipelineWidget(QWidget):
         self.species.setRange(-1, 8)
         self.species.setValue(-1)
         self.species.setSpecialValueText("auto")
-        self.species.setToolTip("number of intensity classes: auto (by BIC), 0 = skip, or 1-8")
+        self.species.setToolTip("number of intensity classes: auto (by ICL), 0 = skip, or 1-8")
         form.addRow("Species", self.species)
         self.flatten = QCheckBox("flatten uneven background")
         form.addRow("", self.flatten)
@@ -253,6 +253,8 @@ class PipelineWidget(QWidget):
             "ladders, tiling and phasons (overlays are then in the corrected frame)")
         self.phason = QCheckBox("phason analysis")
         self.phason.setChecked(True)
+        self.phason.setToolTip("linear phason strain from both sides (real-space lift of the cluster tiling and the "
+                               "Fourier spot positions) and the phason field layer")
         row = QHBoxLayout()
         for w in (self.correct_distortion, self.phason):
             row.addWidget(w)
