@@ -55,10 +55,11 @@ __all__ = [
 #: name -> figure maker. A maker takes the result and returns a matplotlib Figure, or None when it does not apply.
 FIGURES: dict[str, Callable[[AnalysisResult], object]] = {}
 
-#: Species colours, dimmest class first. Chosen for this project and checked to stay apart (CIEDE2000) under
-#: simulated protan, deutan and tritan vision (tests/test_export.py); markers differ too, so colour is never the
-#: only cue.
-SPECIES_COLOURS = ("#1b5fad", "#f5a623", "#e23c55", "#63c5e8", "#2a1a10", "#ffffff")
+#: Species colours, dimmest class first: the colour-blind-safe set of Okabe & Ito (2008, "Color Universal Design")
+#: without its black and yellow, so every class stays visible on dark and bright HAADF backgrounds; checked to stay
+#: apart (CIEDE2000) under simulated protan, deutan and tritan vision (tests/test_export.py). The napari layers use
+#: the same colours. Markers differ too, so colour is never the only cue.
+SPECIES_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#56B4E9", "#CC79A7")
 SPECIES_MARKERS = ("o", "s", "^", "D", "v", "P")
 _UNCLASSIFIED_COLOUR = "#9e9e9e"
 

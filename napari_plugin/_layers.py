@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from tenfold.analysis._image import ImageMeta, Micrograph
+from tenfold.analysis.export import SPECIES_COLOURS
 
 __all__ = [
     "META_KEY",
@@ -59,7 +60,7 @@ PALETTE = (
 #: background and on bright columns. Relative luminance 0.15-0.42 keeps every colour at a WCAG contrast of at
 #: least 2:1 against both black and white; tests/napari/test_bugs.py checks that and the separation under
 #: simulated protan, deutan and tritan vision.
-SPECIES_PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#56B4E9", "#CC79A7")
+SPECIES_PALETTE = SPECIES_COLOURS  # one palette for the viewer and the exported figures (analysis/export.py)
 #: Marker symbol per species (so colour is never the only cue; the 7th and 8th species reuse colours).
 SPECIES_SYMBOLS = ("disc", "square", "triangle_up", "diamond", "triangle_down", "star", "clobber", "cross")
 #: Unclassified (-1) and hand-added columns: mid grey, visible on black and white alike.
