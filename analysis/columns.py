@@ -449,7 +449,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
                                              flatten=flatten, progress=sub_progress(progress, *span))
         meas = _measured_scale(fit)
         new_noise = noise_model(fit, noise, dark_columns=dark_columns)
-        rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"],
+        rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"], "gain": noise.get("gain", 1.0),
                        "n_columns": int(len(fit)), "measured": meas, "noise_check": new_noise["check"]})
         change = {}
         if "diameter" not in lengths and meas["sigma_px"] and not (
@@ -457,7 +457,9 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             change["sigma"] = meas["sigma_px"]
         if "spacing" not in lengths and meas["spacing_px"] and abs(meas["spacing_px"] / spacing - 1) > SCALE_TOLERANCE:
             change["spacing"] = meas["spacing_px"]
-        if new_noise["model"] != noise["model"] or abs(new_noise.get("gain", 1.0) / noise.get("gain", 1.0) - 1) > 0.2:
+        tried = {(r["noise"], round(r.get("gain", 1.0), 3)) for r in rounds}
+        if (new_noise["model"] != noise["model"] or abs(new_noise.get("gain", 1.0) / noise.get("gain", 1.0) - 1) > 0.2) \
+                and (new_noise["model"], round(new_noise.get("gain", 1.0), 3)) not in tried:  # no flip-flop
             change["noise"] = new_noise["model"]
         if not change or rnd == MAX_SCALE_ROUNDS - 1:
             break
