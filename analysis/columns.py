@@ -768,7 +768,6 @@ def _one_round(data, ok, sigma, spacing, noise, *, dark_columns, flatten, progre
             fit[c] = fit[c] * noise["gain"]
         fit["background"] = fit["background"] * noise["gain"] + noise["offset"]
         fit["patch_mean"] = fit["patch_mean"] * noise["gain"] + noise["offset"]
-        fit["residual"] = fit["residual"]  # relative to the amplitude: unchanged by the scaling
     return fit, counts_tab, {"auto": auto, "fit_counts": fit_counts, "neighbour_passes": passes,
                              "detect_s": t_detect, "refine_s": t_refine}
 
@@ -835,6 +834,12 @@ def _prune(fit, xs, ys, z_cand, field, sigma, spacing, z_cut, counts_tab, auto):
     return fit
 
 
+def _nearest_distances(fit):
+    """Each column's distance to its nearest neighbour, px (one KD-tree query)."""
+    xy = fit[["x_px", "y_px"]].to_numpy()
+    return cKDTree(xy).query(xy, k=2)[0][:, 1]
+
+
 def _measured_scale(fit):
     """Width (median of well-measured fits) and spacing (median nearest-neighbour distance) of the columns found."""
     out = {"sigma_px": None, "spacing_px": None, "n_well_measured": 0}
@@ -844,9 +849,7 @@ def _measured_scale(fit):
     out["n_well_measured"] = int(okw.sum())
     if okw.sum() >= 10:
         out["sigma_px"] = float(np.median(fit["sigma_px"].to_numpy()[okw]))
-    xy = fit[["x_px", "y_px"]].to_numpy()
-    d = cKDTree(xy).query(xy, k=2)[0][:, 1]
-    out["spacing_px"] = float(np.median(d))
+    out["spacing_px"] = float(np.median(_nearest_distances(fit)))
     return out
 
 
@@ -865,8 +868,7 @@ def _check_spacing_used(fit, spacing, auto, notes):
     """After the fact: the spacing used against the first peak of the columns' nearest-neighbour distances."""
     if len(fit) < 20:
         return
-    xy = fit[["x_px", "y_px"]].to_numpy()
-    d = cKDTree(xy).query(xy, k=2)[0][:, 1]
+    d = _nearest_distances(fit)
     hist, edges = np.histogram(d, bins=np.linspace(0, 2.5 * np.median(d), 51))
     i = int(np.argmax(hist))
     peak = 0.5 * (edges[i] + edges[i + 1])
