@@ -29,7 +29,7 @@ Steps (every automatic choice is recorded in the returned info dict):
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 import time
 import warnings
 
@@ -66,35 +66,23 @@ def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
     Bright sparse columns on a dark background give a positive value, dark columns a negative one.
     """
     img = np.asarray(image, dtype=np.float64)
-    # polarity is a property of the whole image: the central 1024 x 1024 px are plenty and keep it cheap
-    h, w = img.shape
-    r0, c0 = max(0, (h - 1024) // 2), max(0, (w - 1024) // 2)
-    img = img[r0 : r0 + 1024, c0 : c0 + 1024]
+    # polarity is a property of the whole image: the 512 x 512 px window with the most valid pixels is plenty
     if valid is not None:
-        valid = np.asarray(valid, dtype=bool)[r0 : r0 + 1024, c0 : c0 + 1024]
+        valid = np.asarray(valid, dtype=bool)
+        rows, cols = _sanitize.best_window(valid, (512, 512))
+        valid = valid[rows, cols]
+    else:
+        h, w = img.shape
+        rows, cols = slice((h - min(h, 512)) // 2, None), slice((w - min(w, 512)) // 2, None)
+    img = img[rows, cols][:512, :512]
+    valid = None if valid is None else valid[:512, :512]
     hp = img - ndimage.gaussian_filter(img, 2.0 * spacing_px)
     v = hp[valid] if valid is not None else hp.ravel()
+    if v.size < 16:
+        return 0.0
     v = v - v.mean()
     sd = v.std()
     return float(np.mean(v**3) / sd**3) if sd > 0 else 0.0
-
-
-def _locate(smooth, valid, diameter, separation):
-    """trackpy.locate on the already Gaussian-filtered image (``preprocess=False``: no second band-pass)."""
-    import trackpy as tp
-
-    lo, hi = float(smooth[valid].min()), float(smooth[valid].max())
-    if not hi > lo:
-        return np.zeros(0), np.zeros(0), np.zeros(0), 0
-    scaled = np.where(valid, (smooth - lo) * (60000.0 / (hi - lo)), 0.0).astype(np.uint16)
-    with warnings.catch_warnings():
-        # trackpy warns about tiny images (3 or 4 px), no survivors and max_iterations=1 (the intended
-        # setting), and uses pandas' deprecated inplace keyword: none of it is actionable for the user
-        warnings.simplefilter("ignore")
-        f = tp.locate(scaled, diameter, separation=separation, percentile=0, characterize=False, engine="numba",
-                      max_iterations=1, minmass=0, preprocess=False)
-    mass = f["mass"].to_numpy() * (hi - lo) / 60000.0 if len(f) else np.zeros(0)
-    return f["x"].to_numpy(), f["y"].to_numpy(), mass, int(len(f))
 
 
 def false_alarm_threshold(area_px: float, sigma_px: float, expected_false: float = FALSE_ALARMS) -> float:
@@ -147,22 +135,29 @@ def _block_mean(a: np.ndarray, f: int) -> np.ndarray:
     return a[:h, :w].reshape(h // f, f, w // f, f).mean(axis=(1, 3))
 
 
-def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None, count_offset=0.0, count_sign=1.0):
+def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None, count_offset=0.0, count_sign=1.0,
+                     origin=(0, 0), levels=None):
     """Matched-filter significance of a column anywhere in the image: z = (K * I - B) / sd(K * I).
 
     ``K`` is the normalised Gaussian of the column width (sum 1, sum of squares 1 / (4 pi sigma^2)); ``B`` is a
-    smooth background: a normalised convolution (scale 1.5 spacings, computed on a coarse grid) of the pixels
-    farther than 4 sigma from every significant local maximum, so column light does not raise it; the standard error is
-    the Poisson one under the no-column hypothesis, sqrt(sum K^2 lambda) with lambda the background in raw counts
-    (``counts``: lambda = count_offset + count_sign * B, which maps an inverted or flattened ``work`` back to the
-    recorded counts), or ``noise_sd`` / sqrt(4 pi sigma^2) for other images (white pixel noise). Taking lambda from
-    the background model, not from the data, keeps the statistic symmetric under pure noise (a variance from the
-    smoothed data itself makes low fluctuations look more significant than high ones).
+    smooth background: a first-order (locally linear) normalised convolution, scale ``BG_SCALE_SPACINGS``, on a coarse grid
+    anchored at the whole image's pixel (0, 0), of the pixels farther than 4 sigma from every significant local
+    maximum, so column light does not raise it; the standard error is the Poisson one under the no-column
+    hypothesis, sqrt(sum K^2 lambda) with lambda the background in raw counts (``counts``: lambda = count_offset +
+    count_sign * B, which maps an inverted or flattened ``work`` back to the recorded counts), or ``noise_sd`` /
+    sqrt(4 pi sigma^2) for other images (white pixel noise). Taking lambda from the background model, not from the
+    data, keeps the statistic symmetric under pure noise.
+
+    Every operation is local (Gaussian filters, maximum filters, the locally linear background), so a window of
+    the image with a halo of a few spacings gives the same field in its core as the whole image: this is what lets
+    a tiled run equal an untiled one. The two image-wide choices (the level above which a maximum is a clear
+    source, and whether the image is so crowded that the background is the level of the gaps) are ``levels``:
+    measured here when None (the untiled run, or the sample the scale is settled on), handed in otherwise.
 
     Parameters
     ----------
     work : (H, W) array
-        Image with bright columns (dark-column images already inverted), float.
+        Image (or window) with bright columns (dark-column images already inverted), float.
     valid : (H, W) bool array
         Usable pixels.
     sigma_px, spacing_px : float
@@ -171,18 +166,31 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
         Poisson statistics from the counts; otherwise white noise of ``noise_sd``.
     count_offset, count_sign : float or array
         Recorded counts = count_offset + count_sign * work (0, 1 for a plain bright-column image).
+    origin : (int, int)
+        Row and column of ``work[0, 0]`` in the whole image (windows of a tiled run).
+    levels : dict, optional
+        ``source_level`` and ``crowded`` from a previous call on the whole image or its sample.
 
     Returns
     -------
     SignificanceField
         ``.z(rows, cols)``: significance in standard deviations at any positions (0 on masked pixels);
-        ``.sd(rows, cols)``: standard error of ``K * work`` there under the no-column hypothesis. The full map is
-        never formed: only candidates and minima need it.
+        ``.sd(rows, cols)``: standard error of ``K * work`` there under the no-column hypothesis; ``.levels``.
 
     References
     ----------
-    Matched filtering of point sources: e.g. Kaiser, Squires & Broadhurst, ApJ 449 (1995) 460 (from memory); the
-    sum of squares of a normalised 2-D Gaussian, 1 / (4 pi sigma^2), is elementary.
+    Matched filtering of point sources: e.g. Kaiser, Squires & Broadhurst, ApJ 449 (1995) 460 (from memory);
+    normalised convolution of first order: Knutsson & Westin, Proc. IEEE CVPR (1993) 515 (from memory). The sum of
+    squares of a normalised 2-D Gaussian, 1 / (4 pi sigma^2), is elementary.
+
+    Examples
+    --------
+    >>> from tenfold.analysis.synthetic import render_image
+    >>> img = render_image([20.0, 40.0], [30.0, 30.0], [3000.0, 3000.0], shape=(64, 64), sigma_px=1.5,
+    ...                    background=20.0, rng=0)
+    >>> field = significance_map(img, np.ones(img.shape, bool), sigma_px=1.5, spacing_px=20.0, counts=True)
+    >>> bool(field.z([30.0], [20.0])[0] > 20), bool(abs(field.z([10.0], [10.0])[0]) < 4)
+    (True, True)
     """
     smooth = ndimage.gaussian_filter(work.astype(np.float32), sigma_px)
     size = max(3, int(round(spacing_px * 0.5)) | 1)
@@ -190,18 +198,31 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     reach = int(math.ceil(4.0 * sigma_px))  # a bright column's tail still adds ~1 % of its peak at 3 sigma
     k2 = 1.0 / (4.0 * math.pi * sigma_px**2)
     white_sd = None if counts else np.float32(math.sqrt(k2) * float(noise_sd))
+    levels = dict(levels) if levels else {}
+    if "source_level" not in levels:
+        sv = smooth[valid][::7]  # robust level and spread: a regular subsample is plenty and 7x cheaper
+        med = float(np.median(sv)) if sv.size else 0.0
+        levels["source_level"] = med + 4.0 * 1.4826 * float(np.median(np.abs(sv - med))) if sv.size else 0.0
     # Pass 1 masks clearly bright maxima (masking every noise maximum would bias the background low and make
     # noise look significant); pass 2 masks the maxima that pass 1 found significant, so dim columns no longer
     # raise the background around themselves.
-    sv = smooth[valid][::7]  # robust level and spread: a regular subsample is plenty and 7x cheaper
-    med = float(np.median(sv))
-    sources = maxima & (smooth > med + 4.0 * 1.4826 * float(np.median(np.abs(sv - med))))
+    sources = maxima & (smooth > levels["source_level"])
     my, mx = np.nonzero(maxima)
     field = None
-    for _ in range(2):
+    crowded = list(levels.get("crowded", []))
+    for rnd in range(2):
         keep = valid & ~ndimage.maximum_filter(sources, size=2 * reach + 1)
-        field = SignificanceField(smooth, _masked_background(work, smooth, keep, valid, spacing_px), valid, k2,
-                                  white_sd, count_offset, count_sign)
+        if len(crowded) <= rnd:
+            # in a crowded image (a crystal, columns closer than ~8 sigma) almost nothing is far from a column;
+            # decided per pass (the second pass masks the dim columns too)
+            crowded.append(bool(keep.sum() < 0.25 * valid.sum()))
+            levels["crowded"] = crowded
+        if crowded[rnd]:
+            # the background is then the level of the gaps between columns: smoothed pixels below their local
+            # mean; pixels far from every source (an empty border, a hole in the crystal) all count
+            keep |= valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
+        bg, f = _local_background(work, keep, BG_SCALE_SPACINGS * spacing_px, origin)
+        field = SignificanceField(smooth, bg, valid, k2, white_sd, count_offset, count_sign, f, tuple(origin), levels)
         sources = np.zeros_like(maxima)
         zm = field.z(my.astype(np.float64), mx.astype(np.float64))
         sources[my[zm >= Z_FLOOR], mx[zm >= Z_FLOOR]] = True
@@ -212,8 +233,8 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
 class SignificanceField:
     """The significance map, evaluated where it is needed (candidates, minima), never stored at full size.
 
-    ``smooth`` is the matched-filtered image; the background lives on a coarse grid and is interpolated
-    bilinearly (the same mapping as ``ndimage.zoom(..., order=1, grid_mode=True)``).
+    ``smooth`` is the matched-filtered image (or window); the background lives on a coarse grid of ``factor`` px
+    blocks anchored at the whole image's pixel (0, 0) and is interpolated bilinearly between block centres.
     """
 
     smooth: np.ndarray
@@ -223,12 +244,17 @@ class SignificanceField:
     white_sd: float | None
     count_offset: float | np.ndarray
     count_sign: float
+    factor: int = 1
+    origin: tuple = (0, 0)
+    levels: dict | None = None
 
     def background(self, rows, cols):
-        h, w = self.smooth.shape
-        fr, fc = h / self.bg_coarse.shape[0], w / self.bg_coarse.shape[1]
-        return ndimage.map_coordinates(self.bg_coarse, [(rows + 0.5) / fr - 0.5, (cols + 0.5) / fc - 0.5], order=1,
-                                       mode="nearest")
+        f = self.factor
+        r0, c0 = self.origin
+        # block k of the window covers whole-image rows [(g0 + k) f, (g0 + k + 1) f), g0 = floor(r0 / f)
+        gr = (np.asarray(rows) + r0 + 0.5) / f - 0.5 - (r0 // f)
+        gc = (np.asarray(cols) + c0 + 0.5) / f - 0.5 - (c0 // f)
+        return ndimage.map_coordinates(self.bg_coarse, [gr, gc], order=1, mode="nearest")
 
     def sd(self, rows, cols, bg=None):
         if self.white_sd is not None:
@@ -240,7 +266,7 @@ class SignificanceField:
         return np.sqrt(self.k2 * np.maximum(off + self.count_sign * bg, 1.0))
 
     def z(self, rows, cols):
-        """Significance at (row, col) positions (bilinear; 0 on masked pixels)."""
+        """Significance at (row, col) positions of the window (bilinear; 0 on masked pixels)."""
         rows = np.asarray(rows, dtype=np.float64)
         cols = np.asarray(cols, dtype=np.float64)
         if rows.size == 0:
@@ -254,16 +280,67 @@ class SignificanceField:
         return np.where(self.valid[ri, ci], z, 0.0)
 
 
-def _masked_background(work, smooth, keep, valid, spacing_px):
-    # (returns the background on its coarse grid; SignificanceField interpolates it where needed)
-    """Smooth background from the ``keep`` pixels (scale 1.5 spacings); see :func:`_smooth_surface`.
+#: scale of the background's Gaussian, in column spacings
+BG_SCALE_SPACINGS = 1.5
+#: ridge of the locally linear background fit, relative to a fully supported window's second moment: keeps the
+#: slope finite where only a sliver of kept pixels is in reach (image corners, masks)
+_BG_RIDGE = 0.3
 
-    In a crowded image (a crystal, columns closer than ~8 sigma) almost nothing is far from a column; the
-    background is then the level of the gaps between columns: the smoothed pixels below their local mean.
+
+def _local_background(work, keep, scale_px, origin):
+    """Locally linear normalised convolution of the ``keep`` pixels on a coarse grid; returns (grid, factor).
+
+    Blocks of ``f = max(1, scale // 3)`` px are anchored at the whole image's pixel (0, 0) (``origin`` is the
+    window's place in it), and the Gaussian of width ``scale / f`` blocks treats everything outside the window as
+    missing (zero weight). A locally linear fit, unlike a plain normalised convolution, follows a tilt up to the
+    image border instead of bending there, and it needs no image-wide surface: a window with a halo of 4.5 scales
+    reproduces the whole image's background in its core.
     """
-    if keep.sum() < 0.25 * valid.sum():
-        keep = valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
-    return _smooth_surface(work, keep, 1.5 * spacing_px, coarse=True)
+    f = max(1, int(scale_px // 3))
+    h, w = work.shape
+    r0, c0 = int(origin[0]), int(origin[1])
+    pr, pc = r0 % f, c0 % f  # rows / columns of the first block that lie before the window
+    nb_r, nb_c = -(-(h + pr) // f), -(-(w + pc) // f)
+    m = np.zeros((nb_r * f, nb_c * f), np.float32)
+    v = np.zeros_like(m)
+    m[pr:pr + h, pc:pc + w] = keep
+    v[pr:pr + h, pc:pc + w] = np.where(keep, work, 0.0)
+    m_c = m.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
+    i_c = v.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
+    del m, v
+    if not (m_c > 0).any():
+        return np.full((1, 1), float(np.median(work))), f
+    s = scale_px / f
+    yy, xx = np.mgrid[0:nb_r, 0:nb_c].astype(np.float64)
+
+    def g(a):
+        return ndimage.gaussian_filter(a, s, mode="constant", cval=0.0, truncate=3.0)
+
+    s0, sx, sy = g(m_c), g(m_c * xx), g(m_c * yy)
+    sxx, syy, sxy = g(m_c * xx * xx), g(m_c * yy * yy), g(m_c * xx * yy)
+    b0, bx, by = g(i_c), g(i_c * xx), g(i_c * yy)
+    # moments about each block centre (x0, y0)
+    mxx = sxx - 2 * xx * sx + xx * xx * s0
+    myy = syy - 2 * yy * sy + yy * yy * s0
+    mxy = sxy - xx * sy - yy * sx + xx * yy * s0
+    mx, my = sx - xx * s0, sy - yy * s0
+    cx, cy = bx - xx * b0, by - yy * b0
+    ridge = _BG_RIDGE * s0 * s * s
+    a11, a22 = mxx + ridge, myy + ridge
+    # solve [[s0, mx, my], [mx, a11, mxy], [my, mxy, a22]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule)
+    det = s0 * (a11 * a22 - mxy * mxy) - mx * (mx * a22 - mxy * my) + my * (mx * mxy - a11 * my)
+    num = b0 * (a11 * a22 - mxy * mxy) - mx * (cx * a22 - mxy * cy) + my * (cx * mxy - a11 * cy)
+    tiny = s0 < 1e-6 * max(float(s0.max()), 1e-300)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        bg = np.where(np.abs(det) > 1e-12 * np.maximum(s0 * a11 * a22, 1e-300), num / det, b0 / s0)
+    bg = np.where(tiny | ~np.isfinite(bg), np.nan, bg)
+    if np.isnan(bg).any():  # blocks with nothing in reach: the nearest supported value
+        fill = np.isnan(bg)
+        if fill.all():
+            return np.full((1, 1), float(np.median(work))), f
+        idx = ndimage.distance_transform_edt(fill, return_distances=False, return_indices=True)
+        bg = bg[tuple(idx)]
+    return bg, f
 
 
 def _smooth_surface(work, keep, scale_px, *, coarse=False):
@@ -360,13 +437,13 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float) -> np.
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
                  column_diameter_nm=None, column_spacing_nm=None, column_diameter_px=None, column_spacing_px=None,
-                 min_mass=None, flatten=False, n_species=None,
-                 rng=0, progress=None) -> tuple[pd.DataFrame, dict]:
-    """Find and refine the atomic columns of an image.
+                 min_mass=None, flatten=False, n_species=None, rng=0, tile_size=None, overlap_px=None,
+                 execution=None, progress=None) -> tuple[pd.DataFrame, dict]:
+    """Find and refine the atomic columns of an image, whole or in tiles, with one result.
 
     Parameters
     ----------
-    image : (H, W) array
+    image : (H, W) array or memory map
         The micrograph. Not modified. NaN/inf pixels are treated as masked.
     valid : (H, W) bool array, optional
         False for masked pixels: no column is reported inside or touching the mask.
@@ -387,11 +464,20 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         Minimum integrated intensity of a column (``intensity``: image units x px^2, i.e. counts x px^2 for raw
         counts), applied after refinement; default: none (the significance cut decides).
     flatten : bool
-        Subtract a large-scale Gaussian blur (3 x spacing) before detection (uneven illumination).
+        Default False. Subtract a smooth surface (3 x spacing) before detection (uneven illumination); one
+        surface for the whole image, so not with ``tile_size``.
     n_species : int, optional
         Species classes: None = BIC choice, 0 = skip (species -1), k = k classes.
     rng : int or numpy Generator
         Seeds the species EM starts.
+    tile_size : int, optional
+        Core tile size, px (>= 64): the detection and the fits run tile by tile (each with a halo of
+        ``overlap_px``), possibly in parallel (``execution``); the result equals the untiled one. Default None:
+        one window, the whole image.
+    overlap_px : int, optional
+        Halo of each tile, px; default ``TILE_HALO_SPACINGS`` spacings + 8 sigma, at least 32 px.
+    execution : parallel.Execution, optional
+        Workers / scheduler for the tiles (default serial).
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
 
@@ -399,30 +485,56 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     -------
     columns : DataFrame
         Conformed to ``_schema.COLUMNS`` (``id`` from 0, positions, widths and errors in px and nm, ``amplitude``,
-        ``background``, ``intensity``, ``residual``, ``fit_status`` = 'ok' for every returned row, ``species``,
-        ``species_prob``, ``region``) plus extras ``x_err_px``, ``y_err_px``, ``amplitude_err``, ``snr``, ``mass``.
-        Empty (with these columns) when nothing survives.
+        ``background``, ``intensity``, ``residual``, ``fit_status`` ('ok' or 'fixed_width' for a faint column
+        whose width was held at the common width), ``species``, ``species_prob``, ``region``) plus extras
+        ``x_err_px``, ``y_err_px``, ``amplitude_err``, ``snr``. Empty (with these columns) when nothing survives.
     info : dict
         JSON-safe: ``automatic`` (scale, diameter, separation, significance cut and how each was chosen),
         ``polarity``, ``counts`` (candidates and rows left after each filter), ``refinement`` (fit statistics,
-        compile time), ``species`` (from ``classify_species``), ``calibrated``, ``notes``.
+        compile time), ``tiling`` (windows), ``timings_s`` (seconds per step), ``species``, ``calibrated``,
+        ``notes``.
 
     Raises
     ------
     TenfoldInputError
         Bad image or parameters; ``*_nm`` override without ``pixel_size_nm``; no column scale found.
 
+    Notes
+    -----
+    Steps (module docstring): check inputs and mask flat areas; settle the image-wide choices (scale, noise model,
+    detection levels, the common width) on a central sample of at most ``SETTLE_PX`` square, repeating the
+    detection and fits there while the measured width, spacing or noise model disagree with the ones used; detect
+    candidates in every window; one significance cut from all of them; fit and prune every window; keep each
+    column in the window whose core holds its candidate pixel; regions, ``min_mass``, species and the checks on
+    the merged table. An image no larger than the sample and run untiled is its own sample: its last settling
+    round is the result.
+
     References
     ----------
-    Crocker & Grier, J. Colloid Interface Sci. 179 (1996) 298 (the detection trackpy implements).
-    
+    Crocker & Grier, J. Colloid Interface Sci. 179 (1996) 298, doi:10.1006/jcis.1996.0217 (the detection trackpy
+    implements).
+
     Examples
     --------
-    >>> cols, info = find_columns(img, pixel_size_nm=0.04)  # doctest: +SKIP
+    >>> from tenfold.analysis.synthetic import render_image
+    >>> g = np.arange(8.0, 120.0, 12.0)
+    >>> x, y = (a.ravel() for a in np.meshgrid(g, g))
+    >>> img = render_image(x, y, np.full(x.size, 4000.0), shape=(128, 128), sigma_px=1.6, background=20.0, rng=0)
+    >>> cols, info = find_columns(img, n_species=0)
+    >>> len(cols) == x.size, round(float(np.median(cols["sigma_px"])), 1)
+    (True, 1.6)
     """
     t_start = time.perf_counter()
+    timings: dict = {}
     img, ok, lengths = _check_inputs(image, valid, pixel_size_nm, column_diameter_nm, column_spacing_nm,
                                      column_diameter_px, column_spacing_px)
+    tiled = tile_size is not None
+    if tiled:
+        if not (isinstance(tile_size, (int, np.integer)) and tile_size >= 64):
+            raise TenfoldInputError(f"tile size must be a whole number >= 64 px, got {tile_size!r}")
+        if flatten:
+            raise TenfoldInputError("flatten=True fits one background surface to the whole image, which tiles "
+                                    "cannot repeat; run untiled (tile size 0) or without flatten")
     notes: list[str] = []
     # -- sanitising (analysis/_sanitize.py): flat areas masked, with notes --
     ok, flat_notes = _sanitize.mask_flat(img, ok)
@@ -430,23 +542,189 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     for note in flat_notes:
         warnings.warn(note, TenfoldWarning, stacklevel=2)
     # -- end sanitising --
-    data = np.where(ok, img, np.median(img[ok][::7]) if not ok.all() else 0.0).astype(np.float64)
-    report(progress, 0.0, "column scale")
+    timings["inputs"] = time.perf_counter() - t_start
+    t0 = time.perf_counter()
+    t_compile = warm_up()
+    timings["kernels"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sample = _sample_window(ok)
+    own_sample = sample == (0, img.shape[0], 0, img.shape[1]) and not tiled
     auto: dict = {}
-    sigma, spacing, est = _resolve_scale(data, ok, lengths, dark_columns, auto)
-    reach_note = _sanitize.masked_reach_note(ok, sigma)  # (analysis/_sanitize.py)
+    settings, last, rounds, polarity = _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes,
+                                               progress=sub_progress(progress, 0.0, 0.85 if own_sample else 0.3))
+    timings["settle"] = time.perf_counter() - t0
+    reach_note = _sanitize.masked_reach_note(ok, settings.sigma)  # (analysis/_sanitize.py)
     if reach_note:
         notes.append(reach_note)
         warnings.warn(reach_note, TenfoldWarning, stacklevel=2)
-    work = (data.max() - data) if dark_columns else data
-    polarity = _check_polarity(work, ok, spacing, dark_columns, notes)
-    noise = _initial_noise_model(data, ok, dark_columns)
-    t_compile = warm_up()
+    t0 = time.perf_counter()
+    if own_sample:
+        fit, counts_tab, detail = last
+        tiling = {"windows": 1, "n_tiles": 0, "tile_size_px": None, "overlap_px": 0, "seam_duplicates_removed": 0,
+                  "how": "whole image, which is also the sample the scale was settled on"}
+    else:
+        fit, counts_tab, detail, tiling = _run_windows(img, ok, settings, tile_size, overlap_px, execution,
+                                                        sub_progress(progress, 0.3, 0.85))
+    timings["windows"] = time.perf_counter() - t0
+    auto["rounds"] = rounds
+    auto["noise_model"] = settings.noise
+    auto.update(detail["auto"])
+    table, info_tail = _finish(fit, counts_tab, settings, auto, notes, regions=regions, min_mass=min_mass,
+                               pixel_size_nm=pixel_size_nm, n_species=n_species, rng=rng, progress=progress,
+                               timings=timings)
+    ok_fit = table["fit_status"].isin(["ok", "fixed_width"])
+    info = {
+        "automatic": auto,
+        "polarity": polarity,
+        "counts": counts_tab,
+        "refinement": {
+            "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt",
+            "weighting": "Poisson 1/max(model,1)" if settings.fit_counts else "unweighted",
+            "image_is_counts": settings.noise["model"] != "white",
+            "noise_model": settings.noise["model"],
+            "neighbour_passes": detail["neighbour_passes"],
+            "common_width_px": settings.common_width,
+            "position_error": "inverse Fisher information of the local joint model (column + touching "
+                              "neighbours, all their parameters), see refine.joint_position_errors",
+            "median_sigma_px": float(table.loc[ok_fit, "sigma_px"].median()) if ok_fit.any() else None,
+            "median_pos_err_px": float(table.loc[ok_fit, "pos_err_px"].median()) if ok_fit.any() else None,
+            "median_residual": float(table.loc[ok_fit, "residual"].median()) if ok_fit.any() else None,
+            "compile_or_cache_load_s": t_compile,
+            "detect_s": detail["detect_s"],
+            "refine_s": detail["refine_s"],
+        },
+        "tiling": tiling,
+        **info_tail,
+        "calibrated": pixel_size_nm is not None,
+        "n_columns": int(len(table)),
+        "seconds": time.perf_counter() - t_start,
+        "notes": notes,
+    }
+    report(progress, 1.0, f"{len(table)} columns")
+    return table, _json_safe(info)
+
+
+#: The detection and refinement are repeated (at most this many rounds in all) when the width or spacing measured
+#: on the refined columns, or the noise model checked on their residuals, disagrees with what the round used.
+MAX_SCALE_ROUNDS = 3
+#: relative disagreement between the scale used and the scale measured that triggers another round
+SCALE_TOLERANCE = 0.10
+#: a width measured up to this much above the one used does not repeat the round: the fits measure their own
+#: widths, the detection kernel loses little, and the separation only gets safer (a width measured below the one
+#: used does repeat it: the separation may then have merged close columns)
+WIDTH_TOLERANCE_UP = 0.25
+#: the spacing used and the first pair-distance peak of the columns found may differ by this much before a note
+SPACING_CHECK = 0.10
+#: trackpy's minimum separation never exceeds this many column widths: the spacing estimate can be a shoulder
+#: (dim columns beside bright ones are not maxima of the smoothed image), the width cannot
+SEPARATION_SIGMA = 2.5
+#: noise-model check (see noise_model): slope significance, smallest relative rise, and the gain range that
+#: confirms raw counts (the residual variance of crowded fits reads 10-20 % under the level; common practice)
+NOISE_SLOPE_T, NOISE_RISE, GAIN_CONFIRM = 3.0, 0.15, (0.7, 1.4)
+#: Jacobi passes of the neighbour-subtracted refinement (it stops earlier when no column moves by CONVERGE_PX)
+NEIGHBOUR_PASSES = 10
+#: the neighbour passes have converged when no column moves by more than this, px: tight enough that a window of
+#: the image (a tile) reaches the same fixed point as the whole image to well under 1e-3 px
+CONVERGE_PX = 2e-4
+#: side of the central sample the image-wide choices are settled on, px (the scale is a local property)
+SETTLE_PX = 1024
+#: default halo of a tile, in column spacings (plus 8 sigma): the background's two passes (each a Gaussian of 1.5
+#: spacings truncated at 3 scales, the second masked by the first's sources), the smoothing and source masks
+#: (4 sigma each), fit patches and the neighbour passes all reach less far
+TILE_HALO_SPACINGS = 9.5
+#: the detection field (the LoG) is handed to trackpy as 16-bit integers over this range around the sample's
+#: own range (one quantisation for every window, so windows find the same maxima)
+_LOG_MARGIN = 0.5
+
+
+@dataclass
+class _Settings:
+    """Image-wide choices: every window is detected and fitted with them (picklable, for workers)."""
+
+    sigma: float
+    spacing: float
+    noise: dict
+    dark_columns: bool
+    flatten: bool
+    invert_at: float
+    fill: float
+    noise_sd: float | None = None
+    levels: dict | None = None
+    common_width: float | None = None
+    share_widths: bool | None = None
+    width_median: float | None = None
+    area_px: float = 0.0
+
+    @property
+    def diameter(self) -> int:
+        d = int(math.ceil(4.5 * self.sigma))
+        return max(d + 1 - d % 2, 3)
+
+    @property
+    def separation(self) -> float:
+        return max(min(0.5 * self.spacing, SEPARATION_SIGMA * self.sigma), 1.5)
+
+    @property
+    def patch_radius(self) -> int:
+        return int(min(max(round(0.6 * self.spacing), math.ceil(2.5 * self.sigma)), math.ceil(3.0 * self.sigma)))
+
+    @property
+    def counts_like(self) -> bool:
+        return self.noise["model"] != "white"
+
+    @property
+    def fit_counts(self) -> bool:
+        return self.counts_like and not self.dark_columns
+
+    @property
+    def border_margin(self) -> float:
+        # trackpy.locate's own exclusion zone at the image border (radius, half the separation)
+        return max(self.diameter // 2, self.separation // 2 - 1)
+
+    def learned(self, detail: dict) -> "_Settings":
+        """A copy that holds the choices a window measured for itself (used by every other window)."""
+        return replace(self, noise_sd=detail["noise_sd"], levels=detail["levels"],
+                       common_width=detail["common_width"], share_widths=detail["share_widths"],
+                       width_median=detail["width_median"])
+
+
+def _sample_window(ok) -> tuple[int, int, int, int]:
+    """(r0, r1, c0, c1) of the sample the image-wide choices are settled on: the ``SETTLE_PX`` square window
+    with the most valid pixels (the central one when all are valid; see ``_sanitize.best_window``)."""
+    rows, cols = _sanitize.best_window(ok, (SETTLE_PX, SETTLE_PX))
+    return rows.start, rows.stop, cols.start, cols.stop
+
+
+def _window_data(img_w, ok_w, fill):
+    """A window's pixels as float64 (masked ones filled with the image-wide fill value) and its mask."""
+    okw = np.asarray(ok_w, dtype=bool)
+    return np.where(okw, np.asarray(img_w, dtype=np.float64), fill), okw
+
+
+def _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes, *, progress):
+    """Scale, noise model, detection levels and common width, settled in rounds on the central sample.
+
+    Returns the settings, the last round's result on the sample (the answer when the sample is the image), the
+    rounds' record and the polarity check.
+    """
+    r0, r1, c0, c1 = sample
+    okw = np.asarray(ok[r0:r1, c0:c1], dtype=bool)
+    raw = np.asarray(img[r0:r1, c0:c1])
+    fill = float(np.median(raw[okw][::7])) if okw.any() else 0.0
+    data = np.where(okw, raw, fill).astype(np.float64)
+    report(progress, 0.0, "column scale")
+    sigma, spacing, _ = _resolve_scale(data, okw, lengths, dark_columns, auto)
+    invert_at = _valid_max(img, ok) if dark_columns else 0.0
+    polarity = _check_polarity((invert_at - data) if dark_columns else data, okw, spacing, dark_columns, notes)
+    noise = _initial_noise_model(data, okw, dark_columns)
+    core = (0, r1 - r0, 0, c1 - c0)
     rounds = []
     for rnd in range(MAX_SCALE_ROUNDS):
-        span = (0.05 + 0.85 * rnd / MAX_SCALE_ROUNDS, 0.05 + 0.85 * (rnd + 1) / MAX_SCALE_ROUNDS)
-        fit, counts_tab, detail = _one_round(data, ok, sigma, spacing, noise, dark_columns=dark_columns,
-                                             flatten=flatten, progress=sub_progress(progress, *span))
+        span = (0.05 + 0.9 * rnd / MAX_SCALE_ROUNDS, 0.05 + 0.9 * (rnd + 1) / MAX_SCALE_ROUNDS)
+        settings = _Settings(sigma=sigma, spacing=spacing, noise=noise, dark_columns=dark_columns, flatten=flatten,
+                             invert_at=invert_at, fill=fill, area_px=float(okw.sum()))
+        fit, counts_tab, detail = _analyse_window(data, okw, settings, origin=(r0, c0), core=core,
+                                                  image_shape=img.shape, progress=sub_progress(progress, *span))
         meas = _measured_scale(fit)
         new_noise = noise_model(fit, noise, dark_columns=dark_columns)
         rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"], "gain": noise.get("gain", 1.0),
@@ -474,17 +752,399 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             if any(key in r.get("changed", {}) for r in rounds):
                 auto[key]["how"] += (f"; re-measured from the refined columns ({'median width of well-measured fits' if key == 'sigma' else 'median nearest-neighbour distance'}) "
                                      f"and detection repeated")
-    auto["rounds"] = rounds
-    auto["noise_model"] = noise
-    auto.update(detail["auto"])
+    if sample != (0, img.shape[0], 0, img.shape[1]):
+        auto["settled_on"] = {"window_px": list(sample), "how": f"central sample of at most {SETTLE_PX} px square"}
+    settings = settings.learned(detail)
+    settings.area_px = float(np.count_nonzero(ok))
+    return settings, (fit, counts_tab, detail), rounds, polarity
+
+
+def _valid_max(img, ok) -> float:
+    """Largest valid value of the image, read in row bands (memory maps stay unread as a whole)."""
+    best = -np.inf
+    step = max(1, (64 << 20) // max(8 * img.shape[1], 1))
+    for r in range(0, img.shape[0], step):
+        band = np.asarray(img[r:r + step], dtype=np.float64)
+        okb = np.asarray(ok[r:r + step], dtype=bool)
+        if okb.any():
+            best = max(best, float(band[okb].max()))
+    return best if np.isfinite(best) else 0.0
+
+
+def _work_image(data, settings):
+    """The window in the units and polarity the detection and fits use: (work, count offset, count sign)."""
+    if settings.noise["model"] == "scaled counts":
+        g, o = settings.noise["gain"], settings.noise["offset"]
+        data = (data - o) / g
+        top = (settings.invert_at - o) / g
+    else:
+        top = settings.invert_at
+    if settings.dark_columns:
+        return top - data, top, -1.0
+    return data, 0.0, 1.0
+
+
+def _analyse_window(data, ok, settings, *, origin, core, image_shape, progress=None, z_cut=None):
+    """Detection, significance cut, refinement and pruning of one window (the whole image, a sample or a tile).
+
+    ``z_cut`` None: the cut is chosen from this window's candidates (the window is the image or its sample).
+    """
+    det = _detect_window(data, ok, settings, origin=origin, core=core, image_shape=image_shape, progress=progress)
+    if z_cut is None:
+        z_cut, cut_info = _significance_cut(det["z_core"], det["z_mirror_core"], settings.area_px or
+                                            float(ok.sum()), settings.sigma)
+        det["auto"]["significance"].update(cut_info)
+    return _fit_window(data, ok, settings, det, z_cut, progress=progress)
+
+
+def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=None):
+    """Candidates of one window: trackpy's maxima of the scale-normalised LoG, with their significance.
+
+    A dim column on the flank of a bright neighbour is a maximum of the LoG (the blob detector; Lindeberg 1998)
+    while in the plain smoothed image it is only a shoulder. The LoG is the discrete Laplacian of the already
+    smoothed image: the same operator, a third of the work. The mirrored minima of the same detector in the
+    window's core estimate the noise detections (``mirror_threshold``).
+    """
+    from trackpy.find import grey_dilation
+
+    report(progress, 0.05, "detecting columns (trackpy)")
+    t0 = time.perf_counter()
+    s = settings
+    work, offset, sign = _work_image(data, s)
+    detect = work
+    auto: dict = {}
+    if s.flatten:
+        blur = _smooth_surface(work, ok, 3.0 * s.spacing)
+        detect = work - blur
+        offset = offset + sign * blur  # recorded counts = offset + sign * detect
+        auto["flatten"] = {"model": "quadratic surface + Gaussian blur of the rest", "gaussian_sigma_px": 3.0 * s.spacing,
+                           "used_for": "detection only"}
+    noise_sd = s.noise_sd
+    if not s.counts_like and noise_sd is None:
+        noise_sd = pixel_noise_sd(work, ok)
+        if not (noise_sd and noise_sd > 0):
+            noise_sd = float(np.std(work[ok])) or 1.0
+    field = significance_map(detect, ok, sigma_px=s.sigma, spacing_px=s.spacing, counts=s.counts_like,
+                             noise_sd=noise_sd, count_offset=offset, count_sign=sign, origin=origin, levels=s.levels)
+    levels = field.levels
+    blob = -ndimage.laplace(field.smooth) * np.float32(s.sigma**2)
+    if "log_range" not in levels:
+        v = blob[ok]
+        lo, hi = (float(v.min()), float(v.max())) if v.size else (0.0, 1.0)
+        span = max(hi - lo, 1e-30)
+        levels["log_range"] = [lo - _LOG_MARGIN * span, hi + _LOG_MARGIN * span]
+    lo, hi = levels["log_range"]
+    q = np.where(ok, np.clip((blob - lo) * (65535.0 / (hi - lo)), 0, 65535), 0).astype(np.uint16)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # "no maxima" / "all in the margins": an empty window says so by itself
+        pos = grey_dilation(q, s.separation, percentile=0, margin=0, precise=False)
+    del q
+    pos = np.asarray(pos, dtype=np.int64).reshape(-1, 2)
+    n_raw_all = pos.shape[0]
+    ys, xs = _subpixel_and_distinct(blob, pos, s, origin, image_shape)
+    # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
+    # noise minima come at about the density of noise maxima
+    side = 2 * max(int(round(s.separation * math.sqrt(math.pi) / 2.0)), 1) + 1
+    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
+    del blob
+    mr, mc = np.nonzero(_core_mask(mins, core))
+    z = field.z(ys, xs)
+    sd = field.sd(ys, xs)
+    in_core = _in_core(ys, xs, core)
+    auto["trackpy"] = {"diameter_px": s.diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
+                       "separation_px": s.separation,
+                       "separation_how": f"min(0.5 x spacing, {SEPARATION_SIGMA} sigma), at least 1.5 px",
+                       "percentile": 0, "function": "trackpy.find.grey_dilation on the 16-bit LoG",
+                       "subpixel": "parabola through the LoG maximum and its 4 neighbours (a start for the fits)"}
+    auto["significance"] = {
+        "noise": "Poisson variance of the smoothed counts" if s.counts_like else
+                 f"per-pixel sd {noise_sd:.4g} (MAD of neighbour differences)",
+        "how": "matched filter (Gaussian of the column width over a masked smooth background) divided by its "
+               "standard error; cut = lowest level where mirrored noise minima allow 0.1 % false detections, "
+               "between 3.5 sigma and the random-field threshold for the image area",
+    }
+    return {"xs": xs, "ys": ys, "z": z, "sd": sd, "in_core": in_core, "z_core": z[in_core],
+            "z_mirror_core": -field.z(mr.astype(np.float64), mc.astype(np.float64)),
+            "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
+            "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
+            "inner": _inner_box(origin, image_shape, s.border_margin, data.shape)}
+
+
+def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
+    """Maxima away from the image border (trackpy's margin), the dimmer of pairs closer than the separation
+    dropped (as trackpy does), with a parabolic sub-pixel start position."""
+    h, w = blob.shape
+    gy, gx = pos[:, 0] + origin[0], pos[:, 1] + origin[1]
+    m = s.border_margin
+    keep = (gy >= m) & (gx >= m) & (gy <= image_shape[0] - m - 1) & (gx <= image_shape[1] - m - 1)
+    pos = pos[keep]
+    val = blob[pos[:, 0], pos[:, 1]] if pos.size else np.zeros(0, np.float32)
+    if pos.shape[0] > 1:
+        pairs = cKDTree(pos).query_pairs(s.separation, output_type="ndarray")
+        if pairs.size:
+            lose = np.where(val[pairs[:, 0]] < val[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
+            keep = np.ones(pos.shape[0], bool)
+            keep[np.unique(lose)] = False
+            pos, val = pos[keep], val[keep]
+    r, c = pos[:, 0], pos[:, 1]
+    off = []
+    for dr, dc, n in ((1, 0, h), (0, 1, w)):
+        lo_r, lo_c = np.clip(r - dr, 0, h - 1), np.clip(c - dc, 0, w - 1)
+        hi_r, hi_c = np.clip(r + dr, 0, h - 1), np.clip(c + dc, 0, w - 1)
+        a, b = blob[lo_r, lo_c].astype(np.float64), blob[hi_r, hi_c].astype(np.float64)
+        den = a - 2.0 * val + b
+        with np.errstate(divide="ignore", invalid="ignore"):
+            d = np.where(den < 0, 0.5 * (a - b) / den, 0.0)
+        off.append(np.clip(np.nan_to_num(d), -0.5, 0.5))
+    return r + off[0], c + off[1]
+
+
+def _inner_box(origin, image_shape, margin, shape):
+    """(r0, r1, c0, c1), window coordinates, of the image without trackpy's border margin."""
+    return (margin - origin[0], image_shape[0] - 1 - margin - origin[0],
+            margin - origin[1], image_shape[1] - 1 - margin - origin[1])
+
+
+def _in_core(ys, xs, core):
+    """True for positions whose nearest pixel lies in the core window (r0, r1, c0, c1), window coordinates."""
+    r0, r1, c0, c1 = core
+    ri, ci = np.rint(ys), np.rint(xs)
+    return (ri >= r0) & (ri < r1) & (ci >= c0) & (ci < c1)
+
+
+def _core_mask(mask, core):
+    r0, r1, c0, c1 = core
+    out = np.zeros_like(mask)
+    out[r0:r1, c0:c1] = mask[r0:r1, c0:c1]
+    return out
+
+
+def _significance_cut(z_cand, z_mirror, area_px, sigma):
+    """One cut for the whole image, from all candidates and mirrored minima (see ``mirror_threshold``)."""
+    z_rft = false_alarm_threshold(float(area_px), sigma)
+    return mirror_threshold(np.asarray(z_cand), np.asarray(z_mirror), z_max=z_rft)
+
+
+def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
+    """Refine the window's significant candidates, prune, joint position errors; counts over the core only."""
+    s = settings
+    work, _, _ = _work_image(data, s)
+    sig = det["z"] >= z_cut
+    xs, ys, z, sd, core = det["xs"][sig], det["ys"][sig], det["z"][sig], det["sd"][sig], det["in_core"][sig]
+    counts_tab = {"trackpy_maxima": det["n_raw_core"], "after_significance": int(core.sum())}
+    rad = s.patch_radius
+    auto = dict(det["auto"])
+    auto["significance"] = dict(auto["significance"], z_cut=float(z_cut))
+    auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
+    report(progress, 0.3, f"refining {xs.size} columns")
+    t0 = time.perf_counter()
+    if s.common_width is None:
+        s = _learn_common_width(work, ok, xs, ys, s)
+    fit = refine_columns(work, np.c_[xs, ys], sigma_px=s.sigma, valid=ok, counts=s.fit_counts, patch_radius_px=rad,
+                         neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, common_width_px=s.common_width,
+                         share_widths=s.share_widths, progress=sub_progress(progress, 0.3, 0.95))
+    passes = int(fit.attrs.get("neighbour_passes_done", 0))
+    common, shared = s.common_width, s.share_widths
+    t_refine = time.perf_counter() - t0
+    fit["z_detect"] = z
+    fit["_core"] = core
+    fit, width_median = _prune(fit, xs, ys, z, sd, s, z_cut, counts_tab, auto, det["inner"])
+    # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
+    # Fisher matrices near-singular)
+    if len(fit):
+        err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=s.fit_counts)
+        fit["x_err_px"], fit["y_err_px"] = err[:, 0], err[:, 1]
+        fit["pos_err_px"] = 0.5 * (fit["x_err_px"] + fit["y_err_px"])
+    if s.noise["model"] == "scaled counts":
+        # back to image units: amplitudes, backgrounds and intensities in the units the user recorded
+        g, o = s.noise["gain"], s.noise["offset"]
+        for c in ("amplitude", "amplitude_err", "intensity"):
+            fit[c] = fit[c] * g
+        fit["background"] = fit["background"] * g + o
+        fit["patch_mean"] = fit["patch_mean"] * g + o
+    if s.dark_columns:
+        # back to image units: the fitted background was measured on the inverted image
+        top = s.invert_at
+        fit["background"] = top - fit["background"]
+    detail = {"auto": auto, "neighbour_passes": passes, "detect_s": det["detect_s"], "refine_s": t_refine,
+              "levels": det["levels"], "noise_sd": det["noise_sd"], "common_width": common, "share_widths": shared,
+              "width_median": width_median, "z_cut": float(z_cut)}
+    return fit, counts_tab, detail
+
+
+#: side of the central part of the sample on which the common width of the fits is learned, px
+COMMON_WIDTH_PX = 384
+
+
+def _learn_common_width(work, ok, xs, ys, settings):
+    """The fits' common width, the crowding rule and the median width, learned on the central part of the sample.
+
+    ``refine_columns`` measures the common width (the median width of the bright free fits) while it iterates;
+    learned once here and then held fixed, every window (and the sample itself) is fitted with the same width,
+    so a tiled run reaches the same fixed point as an untiled one.
+    """
+    h, w = work.shape
+    side = min(max(h, w), COMMON_WIDTH_PX + int(2 * TILE_HALO_SPACINGS * settings.spacing))
+    r0, c0 = max(0, (h - side) // 2), max(0, (w - side) // 2)
+    r1, c1 = min(h, r0 + side), min(w, c0 + side)
+    inside = (ys >= r0) & (ys < r1) & (xs >= c0) & (xs < c1)
+    # only columns at least the tile halo away from a cut edge of the part vote (an edge column misses neighbours)
+    m = TILE_HALO_SPACINGS * settings.spacing
+    xi, yi = xs[inside], ys[inside]
+    votes = (((yi >= r0 + m) | (r0 == 0)) & ((yi < r1 - m) | (r1 == h)) & ((xi >= c0 + m) | (c0 == 0))
+             & ((xi < c1 - m) | (c1 == w)))
+    sub = refine_columns(work[r0:r1, c0:c1], np.c_[xi - c0, yi - r0], sigma_px=settings.sigma,
+                         valid=ok[r0:r1, c0:c1], counts=settings.fit_counts, patch_radius_px=settings.patch_radius,
+                         neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, width_votes=votes)
+    good = sub["fit_status"].isin(["ok", "fixed_width"]).to_numpy() & votes
+    return replace(settings, common_width=float(sub.attrs["common_width_px"]),
+                   share_widths=bool(sub.attrs["share_widths"]),
+                   width_median=float(np.nanmedian(sub["sigma_px"].to_numpy()[good])) if good.sum() >= 5 else None)
+
+
+def _prune(fit, xs, ys, z_cand, sd_cand, settings, z_cut, counts_tab, auto, inner):
+    """Drop failed fits, fits that slid to another column, insignificant ones given their neighbours, width
+    outliers and duplicates; counts (of the window's core) after each step go to ``counts_tab``.
+
+    Returns the pruned table and the median width the outlier test used.
+    """
+    sigma, spacing = settings.sigma, settings.spacing
+    core = fit["_core"].to_numpy()
+    status = fit.loc[core, "fit_status"].value_counts().to_dict()
+    counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
+    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy().copy()
+    # A fit that slid more than half a spacing off its candidate has found some other column (or a background
+    # bump): the candidate's significance no longer describes it.
+    slid = np.hypot(fit["x_px"].to_numpy() - xs, fit["y_px"].to_numpy() - ys) > max(1.5, 0.5 * spacing)
+    # a fit that ends in the border zone where no candidate may start (trackpy's margin) is cut by the border
+    r0, r1, c0, c1 = inner
+    fx, fy = fit["x_px"].to_numpy(), fit["y_px"].to_numpy()
+    slid |= ~((fy >= r0) & (fy <= r1) & (fx >= c0) & (fx <= c1))
+    good &= ~slid
+    counts_tab["slid_off_candidate"] = int((slid & core).sum())
+    # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
+    # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
+    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
+    fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
+    counts_tab["after_neighbour_significance"] = int(fit["_core"].sum())
+    # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or
+    # wider than the common width is a noise spike or a background bump (common practice: 0.5-2 x the median
+    # width). Faint columns are exempt: their fitted widths scatter widely by noise alone.
+    width_median = settings.width_median
+    if width_median is None and len(fit) >= 5:
+        width_median = float(np.nanmedian(fit["sigma_px"].to_numpy()))
+    if width_median is not None and len(fit):
+        ratio = fit["sigma_px"].to_numpy() / width_median
+        odd = (fit["snr"].to_numpy() > 10.0) & ((ratio < WIDTH_RANGE[0]) | (ratio > WIDTH_RANGE[1]))
+        fit = fit[~odd].copy()
+        auto["width_range"] = {"relative_to_median": list(WIDTH_RANGE), "median_sigma_px": width_median,
+                               "applies_above_z": 10.0, "how": "common practice"}
+    counts_tab["after_width"] = int(fit["_core"].sum())
+    if len(fit) > 1:  # duplicates: candidates that converged on the same column keep the more significant one
+        xy = fit[["x_px", "y_px"]].to_numpy()
+        pairs = cKDTree(xy).query_pairs(max(1.0, sigma, 0.4 * spacing), output_type="ndarray")
+        if pairs.size:
+            snr = fit["snr"].to_numpy()
+            lose = np.where(snr[pairs[:, 0]] < snr[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
+            fit = fit.drop(fit.index[np.unique(lose)])
+    counts_tab["after_duplicates"] = int(fit["_core"].sum())
+    return fit, width_median
+
+
+def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
+    """Detection in every window, one significance cut, fits in every window, each column kept by one core.
+
+    The untiled run of an image larger than the sample is one window: the whole image.
+    """
+    from .parallel import map_tasks, tile_grid, Execution
+
+    h, w = img.shape
+    if tile_size is None:
+        grid = [((0, h, 0, w), (0, h, 0, w))]
+        overlap = 0
+    else:
+        overlap = overlap_px if overlap_px is not None else max(
+            32, int(math.ceil(TILE_HALO_SPACINGS * settings.spacing + 8.0 * settings.sigma)))
+        grid = tile_grid((h, w), int(tile_size), int(overlap))
+    execution = execution or Execution(workers=1)
+    wins = [_halo_window(core, halo, settings) for core, halo in grid]
+    # each task gets only its window (a view, or a slice read from a memory map), never the whole image
+    tasks = [(_detect_task, (img[w0:w1, v0:v1], ok[w0:w1, v0:v1], (w0, v0), core_w, img.shape, settings))
+             for (w0, w1, v0, v1), core_w in wins]
+    dets: list = [None] * len(tasks)
+    report(progress, 0.0, f"detecting columns in {len(grid)} window(s)")
+    for done, (k, res) in enumerate(map_tasks(tasks, execution), start=1):
+        dets[k] = res
+        report(progress, 0.3 * done / len(tasks), f"detection: window {done} of {len(tasks)}")
+    z_cut, cut_info = _significance_cut(np.concatenate([d["z_core"] for d in dets]),
+                                        np.concatenate([d["z_mirror_core"] for d in dets]), settings.area_px,
+                                        settings.sigma)
+    tasks = [(_fit_task, (img[w0:w1, v0:v1], ok[w0:w1, v0:v1], (w0, v0), settings, det, z_cut))
+             for ((w0, w1, v0, v1), _), det in zip(wins, dets)]
+    parts: list = [None] * len(tasks)
+    for done, (k, res) in enumerate(map_tasks(tasks, execution), start=1):
+        parts[k] = res
+        report(progress, 0.3 + 0.7 * done / len(tasks), f"fits: window {done} of {len(tasks)}")
+    fits = [p[0] for p in parts]
+    fit = pd.concat([f for f in fits if len(f)], ignore_index=True) if any(len(f) for f in fits) else fits[0]
+    counts_tab: dict = {}
+    for _, c, _ in parts:
+        for key, v in c.items():
+            if isinstance(v, dict):
+                sub = counts_tab.setdefault(key, {})
+                for k2, v2 in v.items():
+                    sub[k2] = sub.get(k2, 0) + v2
+            else:
+                counts_tab[key] = counts_tab.get(key, 0) + v
+    detail = dict(parts[0][2])
+    detail["auto"] = dict(detail["auto"])
+    detail["auto"]["significance"] = dict(detail["auto"]["significance"], **cut_info)
+    detail["neighbour_passes"] = max(p[2]["neighbour_passes"] for p in parts)
+    detail["detect_s"] = sum(d["detect_s"] for d in dets)
+    detail["refine_s"] = sum(p[2]["refine_s"] for p in parts)
+    tiling = {"windows": len(grid), "n_tiles": len(grid) if tile_size is not None else 0,
+              "tile_size_px": None if tile_size is None else int(tile_size), "overlap_px": int(overlap),
+              "seam_duplicates_removed": 0,
+              "how": "image-wide choices settled once on the central sample; every window detects and fits with "
+                     "them; one significance cut from all windows' candidates; each column kept by the window "
+                     "whose core holds its candidate pixel"}
+    return fit, counts_tab, detail, tiling
+
+
+def _halo_window(core, halo, settings):
+    """The halo window with its origin moved down to a multiple of the background block (same blocks as the
+    whole image) and the core in window coordinates."""
+    f = max(1, int(BG_SCALE_SPACINGS * settings.spacing // 3))
+    r0, r1, c0, c1 = halo
+    r0, c0 = (r0 // f) * f, (c0 // f) * f
+    cr0, cr1, cc0, cc1 = core
+    return (r0, r1, c0, c1), (cr0 - r0, cr1 - r0, cc0 - c0, cc1 - c0)
+
+
+def _detect_task(img_w, ok_w, origin, core_w, image_shape, settings):
+    data, okw = _window_data(img_w, ok_w, settings.fill)
+    return _detect_window(data, okw, settings, origin=origin, core=core_w, image_shape=image_shape)
+
+
+def _fit_task(img_w, ok_w, origin, settings, det, z_cut):
+    data, okw = _window_data(img_w, ok_w, settings.fill)
+    fit, counts_tab, detail = _fit_window(data, okw, settings, det, z_cut)
+    fit = fit[fit["_core"].to_numpy()].copy()
+    fit["x_px"] += origin[1]
+    fit["y_px"] += origin[0]
+    return fit, counts_tab, detail
+
+
+def _finish(fit, counts_tab, settings, auto, notes, *, regions, min_mass, pixel_size_nm, n_species, rng, progress,
+            timings):
+    """The shared last step: min_mass, regions, spacing check, ids, nm columns, species, the conformed table."""
+    t0 = time.perf_counter()
+    fit = fit.drop(columns=["_core"], errors="ignore")
     if min_mass is not None:
         fit = fit[fit["intensity"].to_numpy() >= float(min_mass)]
         counts_tab["after_min_mass"] = int(len(fit))
     fit = _keep_in_regions(fit, regions, counts_tab)
-    if dark_columns:
-        # back to image units: the fitted background was measured on the inverted image
-        fit["background"] = data.max() - fit["background"]
-    _check_spacing_used(fit, spacing, auto, notes)
+    _check_spacing_used(fit, settings.spacing, auto, notes)
     fit = fit.sort_values(["y_px", "x_px"], kind="stable").reset_index(drop=True)
     fit["id"] = np.arange(len(fit), dtype=np.int64)
     ps = np.nan if pixel_size_nm is None else float(pixel_size_nm)
@@ -495,61 +1155,16 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     report(progress, 0.9, "species")
     fit["species"] = -1
     fit["species_prob"] = np.nan
+    timings["finish"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
     fit, sp_info = classify_species(fit, n_species=n_species, rng=rng)
-    notes.extend(sp_info.get("notes", []))
+    timings["species"] = time.perf_counter() - t0
+    notes.extend(n for n in sp_info.get("notes", []) if n not in notes)
     if len(fit) == 0:
         notes.append("no columns survived the filters")
     extras = ["x_err_px", "y_err_px", "amplitude_err", "snr"]
     table = _schema.conform(fit[[f.name for f in _schema.COLUMNS] + extras], _schema.COLUMNS)
-    ok_fit = table["fit_status"] == "ok"
-    info = {
-        "automatic": auto,
-        "polarity": polarity,
-        "counts": counts_tab,
-        "refinement": {
-            "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt",
-            "weighting": "Poisson 1/max(model,1)" if detail["fit_counts"] else "unweighted",
-            "image_is_counts": noise["model"] != "white",
-            "noise_model": noise["model"],
-            "neighbour_passes": detail["neighbour_passes"],
-            "position_error": "inverse Fisher information of the local joint model (column + touching "
-                              "neighbours, all their parameters), see refine.joint_position_errors",
-            "median_sigma_px": float(table.loc[ok_fit, "sigma_px"].median()) if ok_fit.any() else None,
-            "median_pos_err_px": float(table.loc[ok_fit, "pos_err_px"].median()) if ok_fit.any() else None,
-            "median_residual": float(table.loc[ok_fit, "residual"].median()) if ok_fit.any() else None,
-            "compile_or_cache_load_s": t_compile,
-            "detect_s": detail["detect_s"],
-            "refine_s": detail["refine_s"],
-        },
-        "species": sp_info,
-        "calibrated": pixel_size_nm is not None,
-        "n_columns": int(len(table)),
-        "seconds": time.perf_counter() - t_start,
-        "notes": notes,
-    }
-    report(progress, 1.0, f"{len(table)} columns")
-    return table, _json_safe(info)
-
-
-#: The detection and refinement are repeated (at most this many rounds in all) when the width or spacing measured
-#: on the refined columns, or the noise model checked on their residuals, disagrees with what the round used.
-MAX_SCALE_ROUNDS = 3
-#: relative disagreement between the scale used and the scale measured that triggers another round
-SCALE_TOLERANCE = 0.10
-#: a width measured up to this much above the one used does not repeat the round: the fits measure their own
-#: widths, the detection kernel loses little, and the separation only gets safer (a width measured below the one
-#: used does repeat it: the separation may then have merged close columns)
-WIDTH_TOLERANCE_UP = 0.25
-#: the spacing used and the first pair-distance peak of the columns found may differ by this much before a note
-SPACING_CHECK = 0.10
-#: trackpy's minimum separation never exceeds this many column widths: the spacing estimate can be a shoulder
-#: (dim columns beside bright ones are not maxima of the smoothed image), the width cannot
-SEPARATION_SIGMA = 2.5
-#: noise-model check (see noise_model): slope significance, smallest relative rise, and the gain range that
-#: confirms raw counts (the residual variance of crowded fits reads 10-20 % under the level; common practice)
-NOISE_SLOPE_T, NOISE_RISE, GAIN_CONFIRM = 3.0, 0.15, (0.7, 1.4)
-#: Jacobi passes of the neighbour-subtracted refinement (it stops earlier when no column moves by 0.005 px)
-NEIGHBOUR_PASSES = 8
+    return table, {"species": sp_info, "timings_s": dict(timings)}
 
 
 def _check_inputs(image, valid, pixel_size_nm, diameter_nm, spacing_nm, diameter_px, spacing_px):
@@ -701,137 +1316,6 @@ def noise_model(fit: pd.DataFrame, current: dict, *, dark_columns: bool = False)
         out.update(model="white", gain=1.0, offset=0.0,
                    how="residual variance does not grow with the level: white noise, unweighted fits")
     return out
-
-
-def _one_round(data, ok, sigma, spacing, noise, *, dark_columns, flatten, progress):
-    """Detection, significance cut, refinement and pruning at one scale and noise model."""
-    auto: dict = {}
-    if noise["model"] == "scaled counts":
-        data = (data - noise["offset"]) / noise["gain"]
-    counts_like = noise["model"] != "white"
-    work = (data.max() - data) if dark_columns else data
-    detect = work
-    blur = 0.0
-    if flatten:
-        blur = _smooth_surface(work, ok, 3.0 * spacing)
-        detect = work - blur
-        auto["flatten"] = {"model": "quadratic surface + Gaussian blur of the rest", "gaussian_sigma_px": 3.0 * spacing,
-                           "used_for": "detection only"}
-    diameter = int(math.ceil(4.5 * sigma))
-    diameter += 1 - diameter % 2
-    diameter = max(diameter, 3)
-    separation = max(min(0.5 * spacing, SEPARATION_SIGMA * sigma), 1.5)
-    auto["trackpy"] = {"diameter_px": diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
-                       "separation_px": separation,
-                       "separation_how": f"min(0.5 x spacing, {SEPARATION_SIGMA} sigma), at least 1.5 px",
-                       "percentile": 0, "max_iterations": 1, "engine": "numba"}
-    report(progress, 0.05, "detecting columns (trackpy)")
-    t0 = time.perf_counter()
-    fit_counts = counts_like and not dark_columns
-    noise_sd = None if counts_like else pixel_noise_sd(work, ok)
-    if not counts_like and not (noise_sd and noise_sd > 0):
-        noise_sd = float(np.std(work[ok])) or 1.0
-    # recorded counts = offset + sign * detect (inversion and flattening undone), for the Poisson variance
-    offset = (data.max() if dark_columns else 0.0) + blur * (-1.0 if dark_columns else 1.0)
-    field = significance_map(detect, ok, sigma_px=sigma, spacing_px=spacing, counts=counts_like,
-                             noise_sd=noise_sd, count_offset=offset, count_sign=-1.0 if dark_columns else 1.0)
-    xs, ys, z_cand, counts_tab, cut_info = _detect_candidates(field, ok, sigma, diameter, separation)
-    t_detect = time.perf_counter() - t0
-    auto["significance"] = {
-        **cut_info,
-        "noise": "Poisson variance of the smoothed counts" if counts_like else
-                 f"per-pixel sd {noise_sd:.4g} (MAD of neighbour differences)",
-        "how": "matched filter (Gaussian of the column width over a masked smooth background) divided by its "
-               "standard error; cut = lowest level where mirrored noise minima allow 0.1 % false detections, "
-               "between 3.5 sigma and the random-field threshold for the image area",
-    }
-    rad = int(min(max(round(0.6 * spacing), math.ceil(2.5 * sigma)), math.ceil(3.0 * sigma)))
-    auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
-    report(progress, 0.3, f"refining {xs.size} columns")
-    t0 = time.perf_counter()
-    fit = refine_columns(work, np.c_[xs, ys], sigma_px=sigma, valid=ok, counts=fit_counts, patch_radius_px=rad,
-                         neighbour_passes=NEIGHBOUR_PASSES,
-                         progress=sub_progress(progress, 0.3, 0.95))
-    passes = int(fit.attrs.get("neighbour_passes_done", 0))
-    t_refine = time.perf_counter() - t0
-    fit["z_detect"] = z_cand
-    fit = _prune(fit, xs, ys, z_cand, field, sigma, spacing, cut_info["z_cut"], counts_tab, auto)
-    # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
-    # Fisher matrices near-singular)
-    if len(fit):
-        err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=fit_counts)
-        fit["x_err_px"], fit["y_err_px"] = err[:, 0], err[:, 1]
-        fit["pos_err_px"] = 0.5 * (fit["x_err_px"] + fit["y_err_px"])
-    if noise["model"] == "scaled counts":
-        # back to image units: amplitudes, backgrounds and intensities in the units the user recorded
-        for c in ("amplitude", "amplitude_err", "intensity"):
-            fit[c] = fit[c] * noise["gain"]
-        fit["background"] = fit["background"] * noise["gain"] + noise["offset"]
-        fit["patch_mean"] = fit["patch_mean"] * noise["gain"] + noise["offset"]
-    return fit, counts_tab, {"auto": auto, "fit_counts": fit_counts, "neighbour_passes": passes,
-                             "detect_s": t_detect, "refine_s": t_refine}
-
-
-def _detect_candidates(field, ok, sigma, diameter, separation):
-    """Candidates: trackpy on the scale-normalised Laplacian of Gaussian, cut by the mirrored-noise significance.
-
-    A dim column on the flank of a bright neighbour is a maximum of the LoG (the blob detector; Lindeberg 1998)
-    while in the plain smoothed image it is only a shoulder. The LoG is the discrete Laplacian of the already
-    smoothed image: the same operator, a third of the work.
-    """
-    blob = -ndimage.laplace(field.smooth) * np.float32(sigma**2)
-    xs, ys, _, n_raw = _locate(blob, ok, diameter, separation)
-    # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
-    # noise minima come at about the density of noise maxima
-    side = 2 * max(int(round(separation * math.sqrt(math.pi) / 2.0)), 1) + 1
-    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
-    del blob
-    counts_tab = {"trackpy_maxima": n_raw}
-    z_cand = field.z(ys, xs)
-    z_rft = false_alarm_threshold(float(ok.sum()), sigma)
-    mr, mc = np.nonzero(mins)
-    z_cut, cut_info = mirror_threshold(z_cand, -field.z(mr.astype(np.float64), mc.astype(np.float64)), z_max=z_rft)
-    sig = z_cand >= z_cut
-    counts_tab["after_significance"] = int(sig.sum())
-    return xs[sig], ys[sig], z_cand[sig], counts_tab, cut_info
-
-
-def _prune(fit, xs, ys, z_cand, field, sigma, spacing, z_cut, counts_tab, auto):
-    """Drop failed fits, fits that slid to another column, insignificant ones given their neighbours, width
-    outliers and duplicates; counts after each step go to ``counts_tab``."""
-    status = fit["fit_status"].value_counts().to_dict()
-    counts_tab["fit_status"] = {str(k): int(v) for k, v in status.items()}
-    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy().copy()
-    # A fit that slid more than half a spacing off its candidate has found some other column (or a background
-    # bump): the candidate's significance no longer describes it.
-    slid = np.hypot(fit["x_px"].to_numpy() - xs, fit["y_px"].to_numpy() - ys) > max(1.5, 0.5 * spacing)
-    good &= ~slid
-    counts_tab["slid_off_candidate"] = int(slid.sum())
-    # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
-    # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
-    sd_cand = field.sd(ys, xs)
-    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
-    fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
-    counts_tab["after_neighbour_significance"] = int(len(fit))
-    # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or
-    # wider than the common width is a noise spike or a background bump (common practice: 0.5-2 x the median
-    # width). Faint columns are exempt: their fitted widths scatter widely by noise alone.
-    if len(fit) >= 5:
-        ratio = fit["sigma_px"].to_numpy() / np.nanmedian(fit["sigma_px"].to_numpy())
-        odd = (fit["snr"].to_numpy() > 10.0) & ((ratio < WIDTH_RANGE[0]) | (ratio > WIDTH_RANGE[1]))
-        fit = fit[~odd].copy()
-        auto["width_range"] = {"relative_to_median": list(WIDTH_RANGE), "applies_above_z": 10.0,
-                               "how": "common practice"}
-    counts_tab["after_width"] = int(len(fit))
-    if len(fit) > 1:  # duplicates: candidates that converged on the same column keep the more significant one
-        xy = fit[["x_px", "y_px"]].to_numpy()
-        pairs = cKDTree(xy).query_pairs(max(1.0, sigma, 0.4 * spacing), output_type="ndarray")
-        if pairs.size:
-            snr = fit["snr"].to_numpy()
-            lose = np.where(snr[pairs[:, 0]] < snr[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
-            fit = fit.drop(fit.index[np.unique(lose)])
-    counts_tab["after_duplicates"] = int(len(fit))
-    return fit
 
 
 def _nearest_distances(fit):

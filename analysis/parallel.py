@@ -1,24 +1,11 @@
 """Large images and many images: tiled column finding, memory-mapped reading and a dask cluster.
 
-Tiled column finding (:func:`find_columns_tiled`), as numbered steps:
-
-1. The column scale (spacing and width) is estimated ONCE, on a central crop of at most ``SCALE_CROP_PX``
-   square (or taken from the parameters), and handed to every tile: tiles that chose their own scale would
-   disagree at the seams.
-2. The image is cut into a grid of core tiles of ``tile_size`` px; each tile is analysed with a halo of
-   ``overlap`` px on every side (default: 4 column spacings + 6 sigma, at least 32 px), so every column of the
-   core has the same neighbourhood as in the whole image: detection filters, fit patch and neighbour
-   subtraction all reach less than that far.
-3. Each tile keeps the columns whose rounded position lies in its core widened by ``SEAM_BAND_PX``; columns in
-   the band are found by both neighbouring tiles and de-duplicated (pairs closer than the finder's own duplicate
-   distance, ``max(1, sigma, 0.4 spacing)``; the copy inside its own tile's core is kept). So a column on a seam
-   is neither lost nor doubled.
-4. On the merged table: ``min_mass``, the species classes (one mixture fit over every column, as untiled), the
-   region labels, ids in (y, x) order.
-
-What stays local to a tile: the significance cut and the noise level are chosen per tile by the finder (from the
-tile's own area and noise), so columns right at the detection limit can differ from an untiled run; columns
-well above it match it to fit precision (test: within 1e-3 px).
+Tiled column finding (:func:`find_columns_tiled`) is ``columns.find_columns`` with a tile size: one finder. The
+image-wide choices (scale, noise model, detection levels, the fits' common width) are settled once on the central
+sample, every tile (with a halo of ``columns.TILE_HALO_SPACINGS`` spacings) detects and fits with them, one
+significance cut is taken from all tiles' candidates, and each column is kept by the tile whose core holds its
+candidate pixel. Every step reaches less far than the halo, so a tiled run equals the untiled one (test: same
+columns within 1e-3 px, same notes).
 
 Parallel work (:func:`map_tasks`) runs serially, on an embedded ``distributed.LocalCluster`` (``workers``
 processes of one thread each, started on demand and closed after), or on an existing scheduler
@@ -30,9 +17,7 @@ mapped, not read, so a tile reads only its window and a 16k x 16k scan never has
 
 from __future__ import annotations
 
-import math
 import os
-import time
 import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -41,22 +26,17 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ._errors import TenfoldInputError, TenfoldWarning
+from ._errors import TenfoldInputError
 from ._image import ImageMeta, Micrograph
-from ._progress import report
 
 __all__ = ["Execution", "find_columns_tiled", "map_tasks", "read_micrograph_mapped", "mapped_if_tiled",
            "image_shape", "tile_grid",
-           "AUTO_TILE_ABOVE_PX", "AUTO_TILE_SIZE", "SCALE_CROP_PX", "SEAM_BAND_PX"]
+           "AUTO_TILE_ABOVE_PX", "AUTO_TILE_SIZE"]
 
 #: images with more pixels than this square are tiled automatically (an untiled 4096^2 run peaks near 2 GB)
 AUTO_TILE_ABOVE_PX = 4096
 #: core tile size chosen automatically, px
 AUTO_TILE_SIZE = 2048
-#: side of the central crop the scale is estimated on for a tiled run, px
-SCALE_CROP_PX = 2048
-#: each tile keeps columns this far outside its core too; the seam duplicates are then removed
-SEAM_BAND_PX = 2.0
 
 
 @dataclass
@@ -179,126 +159,14 @@ def tile_grid(shape, tile_size: int, overlap: int) -> list[tuple[tuple[int, int,
     return out
 
 
-def _tile_task(window, data, valid, kwargs) -> tuple[pd.DataFrame, dict]:
-    """Find columns in one tile (halo included); positions shifted back to whole-image pixels."""
-    from .columns import find_columns
+def find_columns_tiled(image, *, tile_size: int, execution: Execution | None = None, overlap: int | None = None,
+                       **kwargs) -> tuple[pd.DataFrame, dict]:
+    """:func:`~tenfold.analysis.columns.find_columns` in overlapping tiles: the same finder, the same result.
 
-    r0, _, c0, _ = window
-    img = np.asarray(data)
-    ok = None if valid is None else np.asarray(valid, dtype=bool)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", TenfoldWarning)
-        try:
-            cols, info = find_columns(img, valid=ok, **kwargs)
-        except TenfoldInputError as exc:
-            if "fewer than 16 valid pixels" in str(exc):  # a fully masked tile has no columns
-                return pd.DataFrame(), {"n_columns": 0, "notes": []}
-            raise
-    info = dict(info)
-    info["warnings"] = [str(w.message) for w in caught]
-    cols = cols.copy()
-    cols["x_px"] += c0
-    cols["y_px"] += r0
-    return cols, info
-
-
-def _resolve_scale(image, valid, *, pixel_size_nm, dark_columns, column_spacing_nm, column_spacing_px,
-                   column_diameter_nm, column_diameter_px) -> tuple[float, float, dict]:
-    """(spacing_px, diameter_px, how): given lengths win; the others from a central crop of the image."""
-    ps = pixel_size_nm
-    spacing = column_spacing_px if column_spacing_px is not None else (
-        column_spacing_nm / ps if column_spacing_nm is not None and ps else None)
-    diameter = column_diameter_px if column_diameter_px is not None else (
-        column_diameter_nm / ps if column_diameter_nm is not None and ps else None)
-    for name, nm in (("column_spacing", column_spacing_nm), ("column_diameter", column_diameter_nm)):
-        if nm is not None and not ps:
-            raise TenfoldInputError(f"{name}_nm is in nm but the image has no pixel size; give the pixel size, or "
-                                    f"{name}_px instead")
-    how = {"spacing": "given" if spacing is not None else None, "diameter": "given" if diameter is not None else None}
-    if spacing is None or diameter is None:
-        from .scale import estimate_scale
-
-        rows, cols = np.shape(image)
-        h, w = min(rows, SCALE_CROP_PX), min(cols, SCALE_CROP_PX)
-        r0, c0 = (rows - h) // 2, (cols - w) // 2
-        crop = np.asarray(image[r0:r0 + h, c0:c0 + w])
-        vcrop = None if valid is None else np.asarray(valid[r0:r0 + h, c0:c0 + w], dtype=bool)
-        est = estimate_scale(crop, valid=vcrop, dark_columns=dark_columns)
-        where = f"estimated once on the central {h} x {w} px crop and used for every tile"
-        if spacing is None:
-            spacing, how["spacing"] = float(est.spacing_px), f"{est.spacing_method}; {where}"
-        if diameter is None:
-            diameter, how["diameter"] = 4.5 * float(est.sigma_px), f"4.5 x ({est.sigma_method}); {where}"
-    return float(spacing), float(diameter), how
-
-
-def _merge_tiles(parts, grid, dedup_px: float) -> tuple[pd.DataFrame, int]:
-    """Keep each tile's columns within its core (+ the seam band); remove the seam duplicates."""
-    from scipy.spatial import cKDTree
-
-    kept = []
-    for k, ((cols, _), (core, _)) in enumerate(zip(parts, grid)):
-        if cols is None or len(cols) == 0:
-            continue
-        r0, r1, c0, c1 = core
-        x, y = cols["x_px"].to_numpy(), cols["y_px"].to_numpy()
-        b = SEAM_BAND_PX
-        keep = (x >= c0 - 0.5 - b) & (x < c1 - 0.5 + b) & (y >= r0 - 0.5 - b) & (y < r1 - 0.5 + b)
-        sub = cols[keep].copy()
-        xs, ys = x[keep], y[keep]
-        sub["_own"] = (xs >= c0 - 0.5) & (xs < c1 - 0.5) & (ys >= r0 - 0.5) & (ys < r1 - 0.5)
-        sub["_tile"] = k
-        kept.append(sub)
-    if not kept:
-        return pd.DataFrame(), 0
-    merged = pd.concat(kept, ignore_index=True)
-    n_dup = 0
-    if len(merged) > 1:
-        xy = merged[["x_px", "y_px"]].to_numpy()
-        pairs = cKDTree(xy).query_pairs(dedup_px, output_type="ndarray")
-        if pairs.size:
-            tile = merged["_tile"].to_numpy()
-            pairs = pairs[tile[pairs[:, 0]] != tile[pairs[:, 1]]]  # within a tile the finder has decided already
-            own = merged["_own"].to_numpy()
-            snr = merged["snr"].to_numpy() if "snr" in merged else np.zeros(len(merged))
-            a, b_ = pairs[:, 0], pairs[:, 1]
-            # the copy inside its own tile's core wins; if both or neither are, the more significant one
-            a_wins = np.where(own[a] != own[b_], own[a], snr[a] >= snr[b_])
-            lose = np.unique(np.where(a_wins, b_, a))
-            n_dup = int(lose.size)
-            merged = merged.drop(merged.index[lose])
-    # a column in the band outside its own core that nobody else found (the other tile dropped it) is kept:
-    # losing it would be worse than a position the neighbouring tile did not confirm
-    return merged.drop(columns=["_own", "_tile"]).reset_index(drop=True), n_dup
-
-
-def find_columns_tiled(image, *, tile_size: int, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
-                       column_diameter_nm=None, column_spacing_nm=None, column_diameter_px=None,
-                       column_spacing_px=None, min_mass=None, flatten=False, n_species=None, rng=0,
-                       execution: Execution | None = None, overlap: int | None = None,
-                       progress=None) -> tuple[pd.DataFrame, dict]:
-    """:func:`~tenfold.analysis.columns.find_columns` in overlapping tiles, merged into one columns table.
-
-    Parameters
-    ----------
-    image : (H, W) array or memory map
-        The micrograph; only one tile (with its halo) is read into memory at a time per worker.
-    tile_size : int
-        Core tile size, px (>= 64).
-    execution : Execution, optional
-        Workers / scheduler for the tiles (default serial).
-    overlap : int, optional
-        Halo, px; default 4 x spacing + 6 x sigma, at least 32.
-    valid, pixel_size_nm, regions, dark_columns, column_*, min_mass, flatten, n_species, rng, progress
-        As for ``find_columns``.
-
-    Returns
-    -------
-    columns : DataFrame
-        Conformed to ``_schema.COLUMNS`` with the finder's extras, ids in (y, x) order.
-    info : dict
-        ``automatic`` (scale and how, trackpy settings of the first tile), ``tiling`` (tile size, overlap,
-        tiles, seam duplicates removed), ``counts`` (summed over tiles), ``species``, ``notes``, ``seconds``.
+    A thin front: ``find_columns(image, tile_size=tile_size, overlap_px=overlap, execution=execution, **kwargs)``.
+    The image-wide choices are settled once, every tile detects and fits with them, one significance cut is
+    taken from all tiles' candidates and each column is kept by the tile whose core holds its candidate pixel;
+    see ``columns.find_columns``.
 
     Examples
     --------
@@ -310,116 +178,9 @@ def find_columns_tiled(image, *, tile_size: int, valid=None, pixel_size_nm=None,
     >>> len(cols) == x.size, info["tiling"]["n_tiles"]
     (True, 4)
     """
-    from . import _schema
-    from .species import classify_species
+    from .columns import find_columns
 
-    t0 = time.perf_counter()
-    if np.ndim(image) != 2:
-        raise TenfoldInputError(f"find_columns_tiled: image must be 2-D, got shape {np.shape(image)}")
-    if not (isinstance(tile_size, (int, np.integer)) and tile_size >= 64):
-        raise TenfoldInputError(f"tile size must be a whole number >= 64 px, got {tile_size!r}")
-    if flatten:
-        raise TenfoldInputError("flatten=True fits one background surface to the whole image, which tiles cannot "
-                                "repeat; run untiled (tile size 0) or without flatten")
-    spacing, diameter, how = _resolve_scale(
-        image, valid, pixel_size_nm=pixel_size_nm, dark_columns=dark_columns, column_spacing_nm=column_spacing_nm,
-        column_spacing_px=column_spacing_px, column_diameter_nm=column_diameter_nm,
-        column_diameter_px=column_diameter_px)
-    sigma = diameter / 4.5
-    if overlap is None:
-        overlap = max(32, int(math.ceil(4.0 * spacing + 6.0 * sigma)))
-    grid = tile_grid(np.shape(image), int(tile_size), int(overlap))
-    kwargs = dict(pixel_size_nm=pixel_size_nm, dark_columns=dark_columns, column_spacing_px=spacing,
-                  column_diameter_px=diameter, n_species=0, rng=rng)
-    tasks = []
-    for _, halo in grid:
-        r0, r1, c0, c1 = halo
-        v = None if valid is None else np.asarray(valid[r0:r1, c0:c1], dtype=bool)
-        if v is not None and v.all():
-            v = None
-        tasks.append((_tile_task, (halo, np.asarray(image[r0:r1, c0:c1]), v, kwargs)))
-    report(progress, 0.0, f"finding columns in {len(grid)} tiles of {tile_size} px (+{overlap} px halo)")
-    parts: list = [None] * len(tasks)
-    for done, (k, res) in enumerate(_lazy_tasks(tasks, execution), start=1):
-        parts[k] = res
-        report(progress, 0.9 * done / len(tasks), f"tile {done} of {len(tasks)}")
-    dedup = max(1.0, sigma, 0.4 * spacing)
-    fit, n_dup = _merge_tiles(parts, grid, dedup)
-    infos = [p[1] for p in parts]
-    notes: list[str] = []
-    for inf in infos:
-        for n in list(inf.get("notes", [])) + list(inf.get("warnings", [])):
-            if n not in notes and "uncalibrated" not in n and "no columns survived" not in n:
-                notes.append(n)
-    counts: dict = {}
-    for inf in infos:
-        for key, v in (inf.get("counts") or {}).items():
-            if isinstance(v, (int, float)):
-                counts[key] = counts.get(key, 0) + v
-    counts["seam_duplicates_removed"] = n_dup
-    if len(fit) == 0:
-        fit = pd.DataFrame({f.name: pd.Series(dtype=f.dtype if f.dtype != "object" else object)
-                            for f in _schema.COLUMNS})
-        for extra in ("x_err_px", "y_err_px", "amplitude_err", "snr"):
-            fit[extra] = pd.Series(dtype=float)
-    if min_mass is not None:
-        fit = fit[fit["intensity"].to_numpy() >= float(min_mass)]
-        counts["after_min_mass"] = int(len(fit))
-    region = np.zeros(len(fit), dtype=np.int64)
-    if regions:
-        from .region import label_points
-
-        region = label_points(fit["x_px"].to_numpy(), fit["y_px"].to_numpy(), regions)
-        fit = fit[region > 0].copy()
-        region = region[region > 0]
-    fit = fit.copy()
-    fit["region"] = region
-    fit = fit.sort_values(["y_px", "x_px"], kind="stable").reset_index(drop=True)
-    fit["id"] = np.arange(len(fit), dtype=np.int64)
-    ps = np.nan if pixel_size_nm is None else float(pixel_size_nm)
-    for q in ("x", "y", "sigma", "pos_err"):
-        fit[f"{q}_nm"] = fit[f"{q}_px"] * ps
-    report(progress, 0.95, "species")
-    fit["species"] = -1
-    fit["species_prob"] = np.nan
-    fit, sp_info = classify_species(fit, n_species=n_species, rng=rng)
-    notes.extend(n for n in sp_info.get("notes", []) if n not in notes)
-    if pixel_size_nm is None:
-        notes.append("image uncalibrated: *_nm columns are NaN")
-    extras = [c for c in ("x_err_px", "y_err_px", "amplitude_err", "snr") if c in fit]
-    table = _schema.conform(fit[[f.name for f in _schema.COLUMNS] + extras], _schema.COLUMNS)
-    first = next((i for i in infos if i.get("automatic")), {})
-    auto = dict(first.get("automatic") or {})
-    auto["spacing"] = {"value_px": spacing, "how": how["spacing"]}
-    auto["sigma"] = {"value_px": sigma, "how": f"{how['diameter']} / 4.5"}
-    auto.pop("significance", None)  # chosen per tile; listed under tiling
-    info = {
-        "automatic": auto,
-        "tiling": {
-            "tile_size_px": int(tile_size), "overlap_px": int(overlap), "n_tiles": len(grid),
-            "seam_band_px": SEAM_BAND_PX, "duplicate_distance_px": dedup, "seam_duplicates_removed": n_dup,
-            "significance_cut_per_tile": [(_tile_cut(i)) for i in infos],
-            "how": "scale estimated once, tiles analysed with a halo, columns kept in their tile's core, seam "
-                   "duplicates removed; species classified on the merged table",
-        },
-        "counts": counts,
-        "species": sp_info,
-        "calibrated": pixel_size_nm is not None,
-        "n_columns": int(len(table)),
-        "seconds": time.perf_counter() - t0,
-        "notes": notes,
-    }
-    report(progress, 1.0, f"{len(table)} columns")
-    return table, info
-
-
-def _tile_cut(info: dict):
-    sig = (info.get("automatic") or {}).get("significance") or {}
-    return sig.get("z_cut")
-
-
-def _lazy_tasks(tasks, execution):
-    return map_tasks(tasks, execution or Execution(workers=1))
+    return find_columns(image, tile_size=tile_size, overlap_px=overlap, execution=execution, **kwargs)
 
 
 # --------------------------------------------------------------------------------------------------------------

@@ -684,7 +684,8 @@ def _active_columns(out, prev, ptr, idx, tol_px):
 
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
                    neighbour_passes=1, converge_px=0.005, max_shift_px=None, fixed_width_fallback=True,
-                   joint_errors=False, progress=None) -> pd.DataFrame:
+                   joint_errors=False, common_width_px=None, share_widths=None, width_votes=None,
+                   progress=None) -> pd.DataFrame:
     """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
 
     Parameters
@@ -720,6 +721,16 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     max_shift_px : float, optional
         A fit that moves farther than this from its start (per axis) is 'diverged'. Default: the patch radius
         (about half the column spacing).
+    common_width_px : float, optional
+        The width shared by faint and crowded columns in the neighbour passes. Default None: measured here, the
+        median width of the bright free fits, updated every pass (its final value is ``attrs['common_width_px']``).
+        Give it to fit a window of an image exactly as the whole image was fitted.
+    share_widths : bool, optional
+        Whether crowded bright columns share the common width (True unless fewer than 5 bright columns are free of
+        touching neighbours). Default None: decided here (``attrs['share_widths']``).
+    width_votes : (N,) bool array, optional
+        The columns whose fits decide the common width and ``share_widths`` (default: all); a window cut out of a
+        larger image lets only the columns away from its edges vote (an edge column misses neighbours).
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
 
@@ -780,11 +791,14 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     passes_done = 0
     prev_par = None
     s_cols = np.full(n, s0)
-    s_common = _common_width(out, s0)
+    given_width = common_width_px is not None
+    votes = np.ones(n, dtype=bool) if width_votes is None else np.asarray(width_votes, dtype=bool)
+    s_common = float(common_width_px) if given_width else _common_width(out[votes], s0)
     crowded = np.zeros(n, dtype=bool)
+    shared = share_widths
     # a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away; 1 px of margin for the fits' moves
     if int(neighbour_passes) > 0:
-        ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * _common_width(out, s0) + 1.0)
+        ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
         par = _neighbour_params(out)
@@ -799,10 +813,13 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         # crowded columns share the width of the free ones, unless too few are free
         if p == 0:
             crowded = _touching(out, fitted, TOUCH_SIGMA * s0)
-            if not (bright & ~crowded).sum() >= 5:
+            if shared is None:
+                shared = bool((bright & ~crowded & votes).sum() >= 5)
+            if not shared:
                 crowded[:] = False
         bright &= ~crowded
-        s_common = _common_width(out, s0)
+        if not given_width:
+            s_common = _common_width(out[votes], s0)
         newly = (bright == fixw) | (fixw & (np.abs(s_cols - s_common) > 1e-3 * s0))
         fixw = ~bright
         s_cols[fixw] = s_common
@@ -828,9 +845,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     # 'fixed_width' so the user can tell (low-signal columns).
     redo = np.flatnonzero(out[:, 8] == _DIVERGED)
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
-    if fixed_width_fallback and redo.size and good.sum() >= 5:
+    if fixed_width_fallback and redo.size and (given_width or good.sum() >= 5):
         if int(neighbour_passes) == 0:
-            ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s_common + 1.0)
+            ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
         par = _neighbour_params(out)
         sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
         again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
@@ -846,6 +863,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         table.loc[fitted, "y_err_px"] = err[fitted, 1]
         table["pos_err_px"] = 0.5 * (table["x_err_px"] + table["y_err_px"])
     table.attrs["neighbour_passes_done"] = passes_done
+    table.attrs["common_width_px"] = float(s_common)
+    table.attrs["share_widths"] = bool(shared) if shared is not None else True
     report(progress, 1.0, "refinement done")
     return table
 

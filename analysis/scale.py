@@ -23,7 +23,7 @@ from ._errors import TenfoldInputError
 __all__ = ["ScaleEstimate", "estimate_scale", "radial_autocorrelation"]
 
 #: Largest square crop analysed (px); larger images are cropped about the centre (the scale is a local property).
-MAX_CROP_PX = 1024
+MAX_CROP_PX = 512
 #: Radial bin width of the autocorrelation profile, px.
 BIN_PX = 0.5
 #: Provisional maxima must stand this many noise standard deviations of the smoothed image above the lowest
@@ -128,23 +128,25 @@ def radial_autocorrelation(image, valid, *, highpass_px: float, r_max_px: float)
     f = np.where(valid, image - fill, 0.0)
     h, wd = f.shape
     ph, pw = 2 * h, 2 * wd
-    ff = np.fft.rfft2(f, s=(ph, pw))
+    from scipy import fft as sfft
+
+    ff = sfft.rfft2(f, s=(ph, pw), workers=-1)
     if highpass_px > 0:
         # Gaussian high-pass in Fourier space (masked pixels were set to the mean, i.e. 0 here)
         ky = np.fft.fftfreq(ph)[:, None]
         kx = np.fft.rfftfreq(pw)[None, :]
         ff *= 1.0 - np.exp(-2.0 * (math.pi * highpass_px) ** 2 * (kx * kx + ky * ky))
-        f = np.fft.irfft2(ff, s=(ph, pw))[:h, :wd]
+        f = sfft.irfft2(ff, s=(ph, pw), workers=-1)[:h, :wd]
         f = np.where(valid, f - f[valid].mean(), 0.0)
-        ff = np.fft.rfft2(f, s=(ph, pw))
-    acf = np.fft.irfft2(ff * np.conj(ff), s=(ph, pw))
+        ff = sfft.rfft2(f, s=(ph, pw), workers=-1)
+    acf = sfft.irfft2(ff * np.conj(ff), s=(ph, pw), workers=-1)
     if valid.all():
         ty = np.concatenate([h - np.arange(h), [0], np.arange(1, h)[::-1]])[:ph].astype(np.float64)
         tx = np.concatenate([wd - np.arange(wd), [0], np.arange(1, wd)[::-1]])[:pw].astype(np.float64)
         pairs = ty[:, None] * tx[None, :]
     else:
-        fm = np.fft.rfft2(w, s=(ph, pw))
-        pairs = np.fft.irfft2(fm * np.conj(fm), s=(ph, pw))
+        fm = sfft.rfft2(w, s=(ph, pw), workers=-1)
+        pairs = sfft.irfft2(fm * np.conj(fm), s=(ph, pw), workers=-1)
     ry = np.fft.fftfreq(ph) * ph
     rx = np.fft.fftfreq(pw) * pw
     r = np.hypot(ry[:, None], rx[None, :])

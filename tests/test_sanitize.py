@@ -23,7 +23,7 @@ from tenfold.analysis.columns import find_columns
 from tenfold.analysis.io import micrograph_from_array, read_micrograph
 from tenfold.analysis.pipeline import Parameters, rerun_from_columns, run_pipeline
 from tenfold.analysis.region import Region
-from tenfold.analysis.scale import estimate_scale
+from tenfold.analysis.scale import MAX_CROP_PX, estimate_scale
 
 SAMPLES = Path(__file__).resolve().parents[1] / "sample_images"
 SAMPLE = SAMPLES / "decagonal_haadf_vacancies.tif"
@@ -297,7 +297,7 @@ def test_scale_window_of_large_mostly_flat_image(sample):
     ok = np.ones(img.shape, bool)
     ok[img.shape[0] // 8:] = False
     est = estimate_scale(img, valid=ok)
-    assert est.details["sanitized"]["window"][0] == 0 and est.details["sanitized"]["window"][2:] == [1024, 1024]
+    assert est.details["sanitized"]["window"][0] == 0 and est.details["sanitized"]["window"][2:] == [MAX_CROP_PX, MAX_CROP_PX]
     assert est.spacing_px == pytest.approx(estimate_scale(sample.data).spacing_px, rel=0.05)
 
 
