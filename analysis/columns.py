@@ -974,6 +974,8 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
 
 #: side of the central part of the sample on which the common width of the fits is learned, px
 COMMON_WIDTH_PX = 384
+#: neighbour passes of that learning fit: the median width has settled to 1e-3 of itself by then
+COMMON_WIDTH_PASSES = 4
 
 
 def _learn_common_width(work, ok, xs, ys, settings):
@@ -995,7 +997,7 @@ def _learn_common_width(work, ok, xs, ys, settings):
              & ((xi < c1 - m) | (c1 == w)))
     sub = refine_columns(work[r0:r1, c0:c1], np.c_[xi - c0, yi - r0], sigma_px=settings.sigma,
                          valid=ok[r0:r1, c0:c1], counts=settings.fit_counts, patch_radius_px=settings.patch_radius,
-                         neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, width_votes=votes)
+                         neighbour_passes=COMMON_WIDTH_PASSES, converge_px=1e-3, width_votes=votes)
     good = sub["fit_status"].isin(["ok", "fixed_width"]).to_numpy() & votes
     return replace(settings, common_width=float(sub.attrs["common_width_px"]),
                    share_widths=bool(sub.attrs["share_widths"]),
