@@ -1162,11 +1162,58 @@ def _finish(fit, counts_tab, settings, auto, notes, *, regions, min_mass, pixel_
     fit, sp_info = classify_species(fit, n_species=n_species, rng=rng)
     timings["species"] = time.perf_counter() - t0
     notes.extend(n for n in sp_info.get("notes", []) if n not in notes)
+    fit, auto["misfit"] = _widen_for_misfit(fit, settings, notes)
+    if pixel_size_nm is not None:
+        fit["pos_err_nm"] = fit["pos_err_px"] * float(pixel_size_nm)
     if len(fit) == 0:
         notes.append("no columns survived the filters")
     extras = ["x_err_px", "y_err_px", "amplitude_err", "snr"]
     table = _schema.conform(fit[[f.name for f in _schema.COLUMNS] + extras], _schema.COLUMNS)
     return table, {"species": sp_info, "timings_s": dict(timings)}
+
+
+#: the model misfits a species when the median Pearson chi-square per degree of freedom of its fits exceeds 1 by
+#: more than this many standard errors of that median and by more than MISFIT_MIN (Poisson-weighted fits only)
+MISFIT_SE, MISFIT_MIN = 3.0, 0.02
+
+
+def _widen_for_misfit(fit, settings, notes):
+    """Position and amplitude errors widened per species by sqrt(chi2/dof) where the model misfits its columns.
+
+    The inverse Fisher information is the error of a model that describes the data. For Poisson-weighted fits the
+    Pearson chi-square per degree of freedom of each column's patch (``pearson_chi2 / (n_pixels - 5)``) is 1 when
+    it does (its median over n columns has a standard error of about 1.2533 sqrt(2 / dof) / sqrt(n)); where the
+    species' median stands significantly above 1 the errors of that species are multiplied by its square root,
+    the usual scaling of a covariance by the reduced chi-square (e.g. Bevington & Robinson, Data Reduction and
+    Error Analysis, 3rd ed. (2003), sec. 6.5 and 11.5, from memory). Where the model is good nothing changes.
+    Unweighted (white-noise) fits already scale their covariance by the residual variance.
+    """
+    record: dict = {"how": "errors x sqrt(median Pearson chi2/dof) per species where that median exceeds 1 by more "
+                           f"than {MISFIT_SE:g} standard errors and {MISFIT_MIN:g}", "species": {}}
+    if not settings.fit_counts or len(fit) == 0 or "pearson_chi2" not in fit:
+        record["skipped"] = "unweighted fits: the covariance is already scaled by the residual variance" \
+            if len(fit) else "no columns"
+        return fit, record
+    dof = np.maximum(fit["n_pixels"].to_numpy(dtype=np.float64) - 5.0, 1.0)
+    red = fit["pearson_chi2"].to_numpy() / dof
+    species = fit["species"].to_numpy()
+    fit = fit.copy()
+    for sp in np.unique(species):
+        sel = (species == sp) & np.isfinite(red)
+        if sel.sum() < 10:
+            continue
+        med = float(np.median(red[sel]))
+        se = 1.2533 * math.sqrt(2.0 / float(np.median(dof[sel]))) / math.sqrt(sel.sum())
+        factor = math.sqrt(med) if med > 1.0 + max(MISFIT_SE * se, MISFIT_MIN) else 1.0
+        record["species"][str(int(sp))] = {"chi2_per_dof_median": med, "standard_error": se, "n": int(sel.sum()),
+                                           "error_factor": factor}
+        if factor > 1.0:
+            rows = species == sp
+            for c in ("x_err_px", "y_err_px", "pos_err_px", "amplitude_err"):
+                fit.loc[rows, c] = fit.loc[rows, c] * factor
+            notes.append(f"species {int(sp)}: the column model misfits its columns (median Pearson chi2/dof "
+                         f"{med:.3f} over {int(sel.sum())} columns); their position errors are widened by x{factor:.3f}")
+    return fit, record
 
 
 def _check_inputs(image, valid, pixel_size_nm, diameter_nm, spacing_nm, diameter_px, spacing_px):

@@ -160,3 +160,22 @@ def test_bundled_dark_sample_recall_precision():
     d, i = cKDTree(t).query(np.c_[cols["x_px"], cols["y_px"]])
     ok = d < 0.5 * 0.278 / PX  # half the minimum ring spacing 2 r sin 18 deg (r = 0.45 nm)
     assert ok.mean() >= 0.98 and np.unique(i[ok]).size / len(t) >= 0.98
+
+
+@pytest.mark.parametrize("probe, widened", [("gaussian", False), ("core_tail", True)], ids=["gaussian", "core-tail"])
+def test_errors_widened_only_where_the_model_misfits(probe, widened):
+    # A Gaussian column model describes Gaussian columns: Pearson chi2/dof ~ 1, errors untouched. A probe with 30 %
+    # of its current in a wide tail is not a Gaussian: chi2/dof of the fits stands significantly above 1 and the
+    # errors are scaled by its square root (reduced chi-square scaling; Bevington & Robinson 2003, from memory).
+    from tenfold.analysis import synthetic as S
+
+    cond = S.StressCondition(structure="decagonal", size_px=384, probe=probe)
+    img, truth, params = S.stress_sample(cond, rng=5)
+    cols, info = find_columns(img, pixel_size_nm=params["pixel_size_nm"], n_species=0)
+    rec = info["automatic"]["misfit"]["species"]["-1"]
+    assert (rec["error_factor"] > 1.0) == widened
+    if widened:
+        assert rec["error_factor"] == pytest.approx(rec["chi2_per_dof_median"] ** 0.5)
+        assert any("misfits its columns" in n for n in info["notes"])
+    else:
+        assert abs(rec["chi2_per_dof_median"] - 1.0) < 0.05
