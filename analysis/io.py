@@ -640,6 +640,37 @@ def _check_range(frame_range, n: int, label: str) -> tuple[int, int]:
     return a, b
 
 
+def check_image_file(path) -> Path:
+    """Refuse, with one line, a path that is no image file Tenfold reads; nothing is opened.
+
+    Called before any reader or header probe touches the file: opening a FIFO (or a link to one) blocks until
+    another program writes to it, and a device may never end.
+
+    Raises
+    ------
+    TenfoldInputError
+        Missing, a folder, not a regular file (pipe, device, socket, also behind a link), unknown suffix.
+    """
+    p = Path(path)
+    try:
+        st = p.stat()
+    except FileNotFoundError:
+        raise TenfoldInputError(f"{p}: no such file; check the path") from None
+    except OSError as exc:
+        raise TenfoldInputError(f"{p}: cannot be reached ({exc.strerror or exc}); check the path and the "
+                                "permissions of its folders") from None
+    if stat.S_ISDIR(st.st_mode):
+        raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
+    if not stat.S_ISREG(st.st_mode):
+        raise TenfoldInputError(f"{p}: is not a regular file (a pipe, device or socket); give an image file saved "
+                                "on disk")
+    if p.suffix.lower() not in _SUFFIXES:
+        raise TenfoldInputError(
+            f"{p}: unknown file type {p.suffix or '(no suffix)'!r}; supported: {', '.join(supported_suffixes())}"
+        )
+    return p
+
+
 def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -> Micrograph:
     """Read a micrograph file into a 2-D float32 :class:`Micrograph` with its calibration and provenance.
 
@@ -688,20 +719,9 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -
     >>> mg = read_micrograph("scan.tif")                      # doctest: +SKIP
     >>> mg = read_micrograph("movie.mrc", frame_range=(0, 10))  # doctest: +SKIP
     """
-    p = Path(path)
+    p = check_image_file(path)
     override = _check_pixel_size(pixel_size_nm)
-    if not p.exists():
-        raise TenfoldInputError(f"{p}: no such file; check the path")
-    if p.is_dir():
-        raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
-    if not stat.S_ISREG(p.stat().st_mode):
-        raise TenfoldInputError(f"{p}: is not a regular file (a pipe, device or socket); give an image file saved "
-                                "on disk")
     suffix = p.suffix.lower()
-    if suffix not in _SUFFIXES:
-        raise TenfoldInputError(
-            f"{p}: unknown file type {p.suffix or '(no suffix)'!r}; supported: {', '.join(supported_suffixes())}"
-        )
     try:
         sha = _sha256(p)
     except OSError as exc:
