@@ -216,7 +216,7 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
     try:
         import warnings
 
-        from ._errors import TenfoldWarning
+        from ._guards import check_lengths
         from .export import write_results
         from .io import check_image_file, read_micrograph
         from .pipeline import Parameters, run_pipeline
@@ -234,6 +234,7 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
             if mg is None:
                 mg = read_micrograph(path, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
                                      frame_range=frame_range)
+            check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
             result = run_pipeline(mg, Parameters.from_dict(params), execution=ex)
             write_results(result, folder, overwrite=overwrite, figures=figures)
         return {"status": "ok", "seconds": time.perf_counter() - t0}
