@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import math
 import os
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
@@ -30,6 +31,7 @@ from scipy import ndimage
 from ._errors import TenfoldInputError
 
 __all__ = ["mask_flat", "clip_for_scale", "masked_reach_note", "check_memory", "available_memory", "to_float32",
+           "float32_plan", "Float32Plan",
            "BYTES_PER_PIXEL", "BYTES_PER_COLUMN"]
 
 #: side of the smallest exactly constant square treated as a flat (non-image) area
@@ -291,8 +293,121 @@ def _power_of_ten(peak: float) -> int:
     return int(math.floor(math.log10(peak))) - 6
 
 
+@dataclass
+class Float32Plan:
+    """How to bring data into float32 without losing its signal: decided once, applied to the whole image or to
+    every tile of a memory-mapped one (so all tiles get the same offset and scale).
+
+    Attributes
+    ----------
+    wild_above : float or None
+        Magnitudes beyond this are wild pixels: masked and set to ``fill`` (None: no such pixels).
+    fill : float
+        Value given to wild pixels (the median of the others), before offset and scale.
+    exponent : int
+        The data are divided by ``10**exponent`` (0: not scaled; negative: multiplied).
+    offset : float
+        Subtracted after scaling (0: none).
+    notes : list of str
+        What the plan does and why ('' steps say nothing).
+    """
+
+    wild_above: float | None = None
+    fill: float = 0.0
+    exponent: int = 0
+    offset: float = 0.0
+    notes: list = field(default_factory=list)
+
+    def apply(self, image, valid=None) -> tuple[np.ndarray, np.ndarray]:
+        """``image`` as float32 after the plan, and ``valid`` (finite pixels when None) without wild pixels."""
+        img = np.asarray(image)
+        with np.errstate(invalid="ignore", over="ignore"):
+            ok = np.isfinite(img)
+        if valid is not None:
+            ok &= np.asarray(valid, dtype=bool)
+        if not (self.wild_above is not None or self.exponent or self.offset):
+            with np.errstate(over="ignore", invalid="ignore"):
+                return img.astype(np.float32), ok
+        data = img.astype(np.float64)
+        if self.wild_above is not None:
+            with np.errstate(invalid="ignore"):
+                wild = np.abs(data) > self.wild_above
+            data[wild] = self.fill
+            ok &= ~wild
+        if self.exponent:
+            data /= 10.0 ** self.exponent
+        if self.offset:
+            data -= self.offset
+        with np.errstate(over="ignore", invalid="ignore"):
+            return data.astype(np.float32), ok
+
+
+def float32_plan(values, dtype=None, *, label: str = "image") -> Float32Plan:
+    """Decide how ``values`` (the valid pixels, or a strided sample of a large image) reach float32 intact.
+
+    Parameters
+    ----------
+    values : array
+        Finite pixel values (any shape; NaN/inf are ignored).
+    dtype : numpy dtype, optional
+        dtype of the image (default ``values.dtype``): only data wider than float32's 24-bit mantissa (32/64-bit
+        integers, float64) can carry an offset that the cast would round the signal away in.
+    label : str
+        Name of the image in notes.
+
+    Notes
+    -----
+    In order: (1) pixels beyond ``FLOAT32_SAFE`` while the 0.1-99.9 percentile range lies within it are wild (a
+    stray 1e38) and masked; (2) a bulk beyond ``FLOAT32_SAFE`` is divided, one below ``FLOAT32_TINY``
+    multiplied, by a power of ten (positions unaffected); (3) when float32's rounding step at the median exceeds
+    the interquartile range / 2**``MIN_SIGNAL_BITS`` (a constant offset), the robust minimum (0.1 percentile), or
+    the median when that is not enough, is subtracted.
+    """
+    v = np.asarray(values)
+    dtype = np.dtype(dtype if dtype is not None else v.dtype)
+    plan = Float32Plan()
+    if v.size == 0 or np.iscomplexobj(v) or dtype.kind not in "iuf":
+        return plan
+    v = v.astype(np.float64).ravel()
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return plan
+    p = _bulk(v)
+    bulk_peak = float(max(abs(p[0]), abs(p[-1])))
+    peak = float(np.max(np.abs(v)))
+    if peak > FLOAT32_SAFE and 0 < bulk_peak <= FLOAT32_SAFE:
+        n = int(np.count_nonzero(np.abs(v) > FLOAT32_SAFE))
+        plan.wild_above, plan.fill = FLOAT32_SAFE, float(p[2])
+        plan.notes.append(f"{label}: {n} pixel{'s' if n != 1 else ''} with values beyond {FLOAT32_SAFE:.0e} (up to "
+                          f"{peak:.3g}) while the rest stays below {bulk_peak:.3g}: broken pixels, masked like NaN "
+                          "pixels")
+        peak = float(np.max(np.abs(v[np.abs(v) <= FLOAT32_SAFE]), initial=0.0))
+    if peak > FLOAT32_SAFE or 0 < peak < FLOAT32_TINY:
+        e = plan.exponent = _power_of_ten(peak)
+        p = p / 10.0 ** e
+        what = "exceed the float32 range" if e > 0 else "are too small for the float32 precision"
+        plan.notes.append(f"{label}: values up to {peak:.3g} {what} of the analysis; "
+                          f"{'divided by' if e > 0 else 'multiplied by'} 1e{abs(e)} (intensities are in units of "
+                          f"1e{e}, positions are unaffected)")
+    iqr = float(p[3] - p[1]) or float(p[4] - p[0])
+    wide = dtype.kind in "iu" and dtype.itemsize >= 4 or dtype.kind == "f" and dtype.itemsize > 4
+    if wide and iqr > 0 and _coarse(p[2], iqr):
+        offset = math.floor(p[0])
+        if _coarse(p[2] - offset, iqr):
+            offset = float(np.round(p[2]))
+        plan.offset = float(offset)
+        plan.notes.append(f"{label}: the values carry a constant offset (median {p[2]:.10g}, interquartile range "
+                          f"{iqr:.3g}) that the float32 precision of the analysis would round the signal away in; "
+                          f"{offset:.10g} subtracted first (intensities are relative to it, positions are "
+                          "unaffected)")
+    return plan
+
+
 def to_float32(image, valid=None, *, label: str = "image") -> tuple[np.ndarray, np.ndarray, list[str]]:
     """The image as float32 without losing its signal to the cast; with the validity mask and notes.
+
+    The entry point for in-memory arrays (``find_columns`` takes any array); see :func:`float32_plan` for what
+    is done when.
 
     Parameters
     ----------
@@ -306,62 +421,20 @@ def to_float32(image, valid=None, *, label: str = "image") -> tuple[np.ndarray, 
     Returns
     -------
     data : (H, W) float32 array
-        The values, offset and/or scaled as the notes say (a copy; the same values when nothing was needed).
+        The values, offset and/or scaled as the notes say (a copy).
     valid : (H, W) bool array
         ``valid`` and finite, without wild pixels beyond float32's safe range.
     notes : list of str
-        What was done and why (empty when the data fitted as it was).
-
-    Notes
-    -----
-    In order: (1) pixels beyond ``FLOAT32_SAFE`` while the 0.1-99.9 percentile range lies within it are wild
-    (a stray 1e38) and masked; (2) a bulk beyond ``FLOAT32_SAFE`` is divided, one below ``FLOAT32_TINY`` multiplied,
-    by a power of ten (positions unaffected); (3) when float32's rounding step at the median exceeds the
-    interquartile range / 2**``MIN_SIGNAL_BITS`` (a constant offset), the robust minimum (0.1 percentile), or the
-    median when that is not enough, is subtracted. A float32 or narrower integer input never needs (3).
+        What was done and why (empty when the data fitted as they were).
     """
     img = np.asarray(image)
     with np.errstate(invalid="ignore", over="ignore"):
-        finite = np.isfinite(img)
-    ok = finite if valid is None else (np.asarray(valid, dtype=bool) & finite)
-    notes: list[str] = []
-    vals = img[ok]
-    if vals.size == 0 or np.iscomplexobj(img):
-        return img.astype(np.float32), ok, notes
-    data = img.astype(np.float64)
-    vals = vals.astype(np.float64)
-    p = _bulk(vals)
-    bulk_peak = float(max(abs(p[0]), abs(p[-1])))
-    peak = float(np.max(np.abs(vals)))
-    if peak > FLOAT32_SAFE and 0 < bulk_peak <= FLOAT32_SAFE:
-        wild = ok & (np.abs(data) > FLOAT32_SAFE)
-        n = int(np.count_nonzero(wild))
-        ok = ok & ~wild
-        data[wild] = p[2]
-        notes.append(f"{label}: {n} pixel{'s' if n != 1 else ''} with values beyond {FLOAT32_SAFE:.0e} (up to "
-                     f"{peak:.3g}) while the rest stays below {bulk_peak:.3g}: broken pixels, masked like NaN pixels")
-        vals = data[ok]
-        peak = float(np.max(np.abs(vals))) if vals.size else 0.0
-    if peak > FLOAT32_SAFE or 0 < peak < FLOAT32_TINY:
-        e = _power_of_ten(peak)
-        data /= 10.0 ** e
-        p = p / 10.0 ** e
-        what = "exceed the float32 range" if e > 0 else "are too small for the float32 precision"
-        notes.append(f"{label}: values up to {peak:.3g} {what} of the analysis; "
-                     f"{'divided by' if e > 0 else 'multiplied by'} 1e{abs(e)} (intensities are in units of 1e{e}, "
-                     "positions are unaffected)")
-    iqr = float(p[3] - p[1]) or float(p[4] - p[0])
-    wide = img.dtype.kind in "iu" and img.dtype.itemsize >= 4 or img.dtype.kind == "f" and img.dtype.itemsize > 4
-    if wide and iqr > 0 and _coarse(p[2], iqr):
-        offset = math.floor(p[0])
-        if _coarse(p[2] - offset, iqr):
-            offset = float(np.round(p[2]))
-        data -= offset
-        notes.append(f"{label}: the values carry a constant offset (median {p[2]:.10g}, interquartile range "
-                     f"{iqr:.3g}) that the float32 precision of the analysis would round the signal away in; "
-                     f"{offset:.10g} subtracted first (intensities are relative to it, positions are unaffected)")
-    with np.errstate(over="ignore", invalid="ignore"):
-        return data.astype(np.float32), ok, notes
+        ok = np.isfinite(img)
+    if valid is not None:
+        ok &= np.asarray(valid, dtype=bool)
+    plan = float32_plan(img[ok], img.dtype, label=label)
+    data, ok = plan.apply(img, ok)
+    return data, ok, plan.notes
 
 
 def _coarse(level: float, iqr: float) -> bool:

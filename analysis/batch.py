@@ -214,26 +214,19 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
     """Analyse one image into ``folder`` (runs in the batch process or on a dask worker); never raises."""
     t0 = time.perf_counter()
     try:
-        import warnings
-
         from ._guards import check_lengths
         from .export import write_results
-        from .io import check_image_file, read_micrograph
         from .pipeline import Parameters, run_pipeline
-
-        check_image_file(path)  # before any header probe opens it (a FIFO would block)
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", TenfoldWarning)  # recorded in the summary notes; not printed per image
-            from .parallel import Execution, mapped_if_tiled
+            from ._input import read_for_run
+            from .parallel import Execution
 
             ex = Execution(**execution)
             # a large image that will be tiled is memory-mapped, not read whole
-            mg = mapped_if_tiled(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
-                                 frame_range=frame_range)
-            if mg is None:
-                mg = read_micrograph(path, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
-                                     frame_range=frame_range)
+            mg = read_for_run(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
+                              frame_range=frame_range)
             check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
             result = run_pipeline(mg, Parameters.from_dict(params), execution=ex)
             write_results(result, folder, overwrite=overwrite, figures=figures)

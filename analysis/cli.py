@@ -174,14 +174,10 @@ def _execution(args):
 
 def _read_for(args, execution):
     """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
-    from .io import read_micrograph
-    from .parallel import mapped_if_tiled
+    from ._input import read_for_run
 
-    mg = mapped_if_tiled(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
-                         frame_range=args.frames)
-    if mg is not None:
-        return mg
-    return read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+    return read_for_run(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
+                        frame_range=args.frames)
 
 
 def build_parser() -> argparse.ArgumentParser:
