@@ -153,6 +153,15 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
         The folder, with ``~`` expanded.
     """
     out = Path(out).expanduser()
+    try:
+        return _check_output_folder(out, overwrite=overwrite, inputs=inputs, planned=planned, flag=flag)
+    except OSError as exc:  # e.g. a parent folder without search permission: stat() itself fails
+        raise TenfoldInputError(f"{flag} {out}: cannot be checked ({exc.strerror or exc}"
+                                f"{f': {exc.filename}' if exc.filename else ''}); fix the permissions of the folder "
+                                "and its parents, or choose another results folder") from None
+
+
+def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: str) -> Path:
     where = f"{flag} {out}"
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"{where}: exists and is a file, not a folder; choose another results folder")

@@ -591,6 +591,13 @@ def main(argv: list[str] | None = None) -> int:
         return 128 + signum
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
         return 0
+    except OSError as exc:  # a file system refusal anywhere (permissions, a folder where a file goes): name it
+        if debug:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"tenfold: error: {where}{exc.strerror or exc} ({type(exc).__name__}); check the path and its "
+              "permissions, or run again with --debug for the traceback", file=sys.stderr)
+        return 1
     except Exception as exc:  # the one-line rule: no traceback for users unless they ask
         if debug:
             raise

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 from tenfold.analysis import _outdir, _stop, batch, export
@@ -357,10 +357,8 @@ def test_workers_capped_at_cores_and_tasks(workers, tasks):
 @given(st.sampled_from([np.int32, np.uint32, np.int64, np.uint64, np.float64]),
        st.sampled_from([2e9, 4.2e9, 1e12, 5e15, -2e9]))
 def test_large_constant_offset_keeps_the_signal(counts, dtype, offset):
-    if np.dtype(dtype).kind == "u" and offset < 0 or np.iinfo(np.int32).max < offset + 60 and dtype == np.int32:
-        return
-    if dtype == np.uint32 and offset > np.iinfo(np.uint32).max - 60:
-        return
+    if np.dtype(dtype).kind in "iu":  # the offset image must fit the dtype
+        assume(np.iinfo(dtype).min <= offset and offset + 60 <= np.iinfo(dtype).max)
     arr = (counts.astype(np.float64) + offset).astype(dtype)
     with pytest.warns(TenfoldWarning, match="constant offset"):
         mg = micrograph_from_array(arr)
@@ -373,8 +371,7 @@ def test_large_constant_offset_keeps_the_signal(counts, dtype, offset):
 @given(st.sampled_from([np.float64, np.float32]), st.integers(-310, -17))
 def test_tiny_values_are_not_constant(counts, dtype, exponent):
     arr = (counts.astype(np.float64) * 10.0 ** exponent).astype(dtype)
-    if np.count_nonzero(arr) < 16 or np.unique(arr).size < 8:
-        return  # nothing left in the dtype itself (below its smallest subnormal)
+    assume(np.unique(arr).size >= 8)  # else nothing is left in the dtype itself (below its smallest subnormal)
     with pytest.warns(TenfoldWarning, match="too small for the float32 precision"):
         mg = micrograph_from_array(arr)
     assert np.unique(mg.data).size == np.unique(arr).size  # every distinct level survives
@@ -418,8 +415,7 @@ def test_plan_on_a_sample_matches_the_whole_image(counts):
 @given(st.floats(0.05, 3.0), st.integers(0, 2**16))
 def test_low_count_images_get_no_zero_note(level, seed):
     img = np.random.default_rng(seed).poisson(level, (96, 96)).astype(np.float32)
-    if np.ptp(img) == 0:
-        return
+    assume(np.ptp(img) > 0)
     try:
         _, notes = mask_flat(img, np.ones(img.shape, bool))
     except TenfoldInputError:
@@ -489,3 +485,24 @@ def test_tifffile_log_lines_stay_off_the_terminal(tmp_path, capsys, counts):
     main(["analyze", str(tmp_path / "b.tif"), "--out", str(tmp_path / "o"), "--quiet", "--column-spacing", "1e6px"])
     err = capsys.readouterr().err.strip().splitlines()
     assert err and all(line.startswith(("tenfold:", "note:", "warning:")) for line in err), err
+
+
+def test_results_folder_that_cannot_be_checked_is_a_named_error(tmp_path, monkeypatch):
+    def denied(self, **kwargs):
+        raise PermissionError(13, "Permission denied", str(self))
+
+    monkeypatch.setattr(Path, "stat", denied)
+    with pytest.raises(TenfoldInputError, match=r"--out .*res: cannot be checked \(Permission denied"):
+        _outdir.check_output_folder(tmp_path / "res", overwrite=False, flag="--out")
+
+
+def test_file_system_errors_are_one_named_line(tmp_path, capsys, monkeypatch):
+    from tenfold.analysis import cli
+
+    def fails(args):
+        raise IsADirectoryError(21, "Is a directory", str(tmp_path / "comparison.csv"))
+
+    monkeypatch.setattr(cli, "_info", fails)
+    assert main(["info", "x.tif"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "comparison.csv: Is a directory" in err[0]
