@@ -205,7 +205,9 @@ def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: s
     names = planned if planned is not None else _TOP_LEVEL
     clash = sorted(r for r in names if (_blocked(out, r) is not None or (out / r).exists() or (out / r).is_symlink())
                    and not _ours(out, r, manifest))
-    clash += sorted(d + "/" for d in _TOP_DIRS if (out / d).is_symlink() or (out / d).exists() and not (out / d).is_dir())
+    if planned is None:  # the pre-flight check: the sub-folders every run writes into must be real folders
+        clash += sorted(d + "/" for d in _TOP_DIRS
+                        if (out / d).is_symlink() or (out / d).exists() and not (out / d).is_dir())
     if clash:
         shown = ", ".join(clash[:5]) + (f" and {len(clash) - 5} more" if len(clash) > 5 else "")
         raise TenfoldInputError(
