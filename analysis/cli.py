@@ -66,7 +66,7 @@ _FLAGS = {
         ("ring_radius", "--ring-radius"), ("ladder_r_max", "--ladder-range"), ("d0", "--ladder-base"),
         ("tiling_edge", "--tiling-edge")) for unit in ("nm", "px")},
 }
-_FLAG_RE = re.compile(r"(?<![\w-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
+_FLAG_RE = re.compile(r"(?<![\w.-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
                       + r")(?![\w])")
 
 
@@ -78,7 +78,15 @@ def _flag_names(message: str) -> str:
     """
     if message.startswith("--params "):
         return message
-    return _FLAG_RE.sub(lambda m: _FLAGS[m.group(1)], message)
+    return _FLAG_RE.sub(_flag_or_path, message)
+
+
+def _flag_or_path(m: re.Match) -> str:
+    """The option for a parameter name; a name inside a path ('/data/out_dir/frame.tif') stays as it is."""
+    text, a, b = m.string, m.start(1), m.end(1)
+    after = text[b:b + 2]
+    in_path = after[:1] == "." and after[1:].isalnum() or (a > 0 and text[a - 1] == "/" and after[:1] in ("/", ":"))
+    return m.group(0) if in_path else _FLAGS[m.group(1)]
 
 
 def _length(text: str) -> tuple[float, str]:
