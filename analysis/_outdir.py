@@ -130,7 +130,8 @@ def _hint(flag: str) -> str:
     return "--overwrite" if flag.startswith("--") else "overwrite=True"
 
 
-def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: str = "out_dir") -> Path:
+def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: str = "out_dir",
+                        replacer: str | None = None) -> Path:
     """Refuse, with one line naming ``flag`` and the path, a results folder that a run must not write into.
 
     Parameters
@@ -146,6 +147,8 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
         the user's and refuses the run. None checks the top-level names every run writes.
     flag : str
         Name of the option in messages ('--out' for the command line).
+    replacer : str, optional
+        What would replace the files, in messages (default: ``--overwrite`` / ``overwrite=True``).
 
     Returns
     -------
@@ -154,14 +157,15 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
     """
     out = Path(out).expanduser()
     try:
-        return _check_output_folder(out, overwrite=overwrite, inputs=inputs, planned=planned, flag=flag)
+        return _check_output_folder(out, overwrite=overwrite, inputs=inputs, planned=planned, flag=flag,
+                                    replacer=replacer)
     except OSError as exc:  # e.g. a parent folder without search permission: stat() itself fails
         raise TenfoldInputError(f"{flag} {out}: cannot be checked ({exc.strerror or exc}"
                                 f"{f': {exc.filename}' if exc.filename else ''}); fix the permissions of the folder "
                                 "and its parents, or choose another results folder") from None
 
 
-def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: str) -> Path:
+def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: str, replacer: str | None) -> Path:
     where = f"{flag} {out}"
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"{where}: exists and is a file, not a folder; choose another results folder")
@@ -212,7 +216,7 @@ def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: s
         shown = ", ".join(clash[:5]) + (f" and {len(clash) - 5} more" if len(clash) > 5 else "")
         raise TenfoldInputError(
             f"{where}: {shown} {'is' if len(clash) == 1 else 'are'} not Tenfold's own unchanged result"
-            f"{'' if len(clash) == 1 else 's'} (not in {MANIFEST} or changed since), so {_hint(flag)} will not "
+            f"{'' if len(clash) == 1 else 's'} (not in {MANIFEST} or changed since), so {replacer or _hint(flag)} will not "
             "replace it; move it away or choose another folder"
         )
     return out

@@ -294,7 +294,7 @@ def run_batch(
         raise TenfoldInputError(f"--out {out}: exists and is not a folder; choose another path")
     paths = expand_inputs(inputs)
     # the batch level's own files get the single run's protection: a user's comparison.csv is never replaced
-    _outdir.check_output_folder(out, overwrite=True, planned=BATCH_FILES, flag="--out")
+    _outdir.check_output_folder(out, overwrite=True, planned=BATCH_FILES, flag="--out", replacer="the batch")
     items = [BatchItem(p, f) for p, f in zip(paths, _folders(paths))]
     _classify(items, out, parameters_to_toml(params), rerun)
     out.mkdir(parents=True, exist_ok=True)

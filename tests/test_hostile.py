@@ -242,7 +242,7 @@ def test_batch_keeps_users_comparison_files(fake_batch, name):
     src, out = fake_batch
     (out / "figures").mkdir(parents=True)
     (out / name).write_bytes(b"the user's own table")
-    with pytest.raises(TenfoldInputError, match=f"--out .*{name}"):
+    with pytest.raises(TenfoldInputError, match=f"--out .*{name} is not Tenfold's own .* so the batch will not"):
         batch.run_batch([src], out, execution=SERIAL)
     assert (out / name).read_bytes() == b"the user's own table"
     assert not (out / "a").exists()  # refused before any image was analysed
