@@ -2,6 +2,8 @@
 
 * a region wholly outside the image, or without area, is an error (it would give an empty result);
 * an edited columns table with NaN or far-off positions is an error (it would be written out as it is);
+* a length parameter larger than the image is an error (a column spacing of 1e6 px hangs the scale stage, 1e300 px
+  overflows an array size);
 * an empty result explains itself: no columns or no ring motifs get a note saying which lengths were used and
   how they compare with the image;
 * an error raised deep inside a stage gets the file name in front, so the one line names the file.
@@ -16,7 +18,7 @@ import numpy as np
 
 from ._errors import TenfoldInputError
 
-__all__ = ["check_regions", "check_positions", "empty_result_notes", "with_file", "name_the_file",
+__all__ = ["check_regions", "check_positions", "check_lengths", "empty_result_notes", "with_file", "name_the_file",
            "small_image_hint"]
 
 #: below this side (px) an automatic scale failure is more likely a too small area than featureless noise
@@ -60,6 +62,44 @@ def check_positions(x, y, shape, *, what: str = "re-run from columns") -> None:
             f"{what}: {int(bad.sum())} of {bad.size} columns have x_px/y_px that are NaN or outside the image "
             f"({cols} x {rows} px), first row {i} (x_px={x[i]!r}, y_px={y[i]!r}); remove or correct them"
         )
+
+
+#: length parameters (base names; each exists as ``_nm`` and ``_px``) bounded by the image's longer side ...
+_SIDE_LENGTHS = ("column_diameter", "column_spacing", "ring_radius", "tiling_edge")
+#: ... and by its diagonal (pair distances)
+_DIAGONAL_LENGTHS = ("ladder_r_max", "d0")
+
+
+def check_lengths(params, shape, pixel_size_nm=None) -> None:
+    """Raise when a length parameter is larger than the image it is applied to.
+
+    Parameters
+    ----------
+    params : Parameters or mapping
+        The run's parameters (``column_spacing_px``, ``ring_radius_nm``, ...); None values are automatic.
+    shape : (int, int)
+        (rows, cols) of the analysed image.
+    pixel_size_nm : float, optional
+        Converts the ``_nm`` lengths (without it they are checked elsewhere: they need a calibration).
+    """
+    rows, cols = (int(n) for n in shape[:2])
+    get = params.get if isinstance(params, dict) else (lambda k: getattr(params, k, None))
+    for bases, limit, what in ((_SIDE_LENGTHS, max(rows, cols), "longer side"),
+                               (_DIAGONAL_LENGTHS, float(np.hypot(rows, cols)), "diagonal")):
+        for base in bases:
+            for unit in ("px", "nm"):
+                value = get(f"{base}_{unit}")
+                if value is None:
+                    continue
+                if unit == "nm" and not pixel_size_nm:
+                    continue
+                px = float(value) / (float(pixel_size_nm) if unit == "nm" else 1.0)
+                if not px <= limit:
+                    raise TenfoldInputError(
+                        f"{base}_{unit}={float(value):g} {unit}{f' ({px:.4g} px)' if unit == 'nm' else ''} is larger than the image's {what} "
+                        f"({limit:.0f} px, image {cols} x {rows} px); check the value and its unit (nm or px), or "
+                        "leave it out for the automatic value"
+                    )
 
 
 def empty_result_notes(summary: dict, tables: dict, shape) -> list[str]:

@@ -5,6 +5,14 @@ the folder, sha256). With ``overwrite`` a later run replaces exactly those files
 recorded checksum: a file the user put there or changed counts as the user's and is never touched (the run is
 refused, naming it). A folder that holds the input image (or is a parent of it) is refused outright.
 
+A manifest may only name files inside its own folder, by plain relative paths (no ``..``, no absolute path, no
+link on the way): one that names anything else refuses the run, so a crafted manifest cannot make ``overwrite``
+delete a file elsewhere. Links are never followed out of the folder: a result path through a symlinked sub-folder,
+or a symlinked result file, counts as the user's.
+
+Writing is all or nothing: every file is staged in the work folder, every destination is checked before the first
+move, and the files replaced are kept in the work folder until the last move succeeded (put back otherwise).
+
 Work folders are named ``.<folder name>.writing-<pid>-<8 hex>`` (beside a new folder, or inside an existing one);
 those left by a killed run (the pid no longer runs) are removed when the next run starts. Names that do not match
 this pattern exactly are never touched.
@@ -22,6 +30,7 @@ import uuid
 from contextlib import contextmanager
 from pathlib import Path
 
+from . import _stop
 from ._errors import TenfoldInputError
 from .io import _sha256
 
@@ -35,20 +44,75 @@ _WORK = re.compile(r"\.(?P<name>.+)\.(?P<kind>writing|old)-(?:(?P<pid>\d+)-)?[0-
 _SIGNALS = tuple(getattr(signal, s) for s in ("SIGINT", "SIGTERM", "SIGHUP") if hasattr(signal, s))
 
 
+
+
+def _plain_rel(rel: str) -> bool:
+    """``rel`` is a relative path of ordinary names inside a folder ('figures/a.png'; never '..', '/x', 'a//b')."""
+    if not isinstance(rel, str) or not rel or rel.startswith("/") or "\\" in rel or "\0" in rel:
+        return False
+    return all(part not in ("", ".", "..") for part in rel.split("/"))
+
+
+def _blocked(folder: Path, rel: str) -> str | None:
+    """Why ``folder/rel`` cannot be a file Tenfold writes or removes, or None.
+
+    A parent on the way that is a link or a file, or a destination that is a link or a folder, would make a
+    write or a removal land outside the folder or fail half-way.
+    """
+    if not _plain_rel(rel):
+        return "is not a plain path inside the folder"
+    parts = rel.split("/")
+    p = folder
+    for part in parts[:-1]:
+        p = p / part
+        if p.is_symlink():
+            return f"goes through the link {p.relative_to(folder).as_posix()}"
+        if p.exists() and not p.is_dir():
+            return f"goes through {p.relative_to(folder).as_posix()}, which is a file, not a folder"
+        if not p.exists():
+            return None
+    dest = folder / rel
+    if dest.is_symlink():
+        return "is a link"
+    if dest.exists() and not dest.is_file():
+        return "is a folder or a special file, not a regular file"
+    return None
+
+
 def read_manifest(folder: Path) -> dict[str, str]:
-    """relative path -> sha256 of the files a previous run wrote into ``folder`` ({} when none or unreadable)."""
+    """relative path -> sha256 of the files a previous run wrote into ``folder`` ({} when none or unreadable).
+
+    Raises
+    ------
+    TenfoldInputError
+        The manifest names a path outside ``folder`` (``..``, an absolute path) or through a link: a manifest
+        that Tenfold did not write, which must not steer what a run replaces or removes.
+    """
+    mpath = folder / MANIFEST
+    if mpath.is_symlink():
+        raise TenfoldInputError(f"{mpath}: is a link, not the manifest Tenfold writes; remove it (and replace the "
+                                "results by hand) or choose another results folder")
     try:
-        data = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+        data = json.loads(mpath.read_text(encoding="utf-8"))
         files = data["files"]
-        return {str(k): str(v) for k, v in files.items()} if isinstance(files, dict) else {}
+        if not isinstance(files, dict):
+            return {}
     except (OSError, ValueError, KeyError, TypeError):
         return {}
+    bad = [str(k) for k in files if not _plain_rel(k)]
+    if bad:
+        raise TenfoldInputError(
+            f"{mpath}: names {bad[0]!r}{f' and {len(bad) - 1} more' if len(bad) > 1 else ''}, which is not a file "
+            "inside the results folder; Tenfold never writes such a manifest, so no file is replaced or removed: "
+            "delete the manifest (the folder's files then count as yours) or choose another results folder"
+        )
+    return {str(k): str(v) for k, v in files.items()}
 
 
 def _ours(folder: Path, rel: str, manifest: dict[str, str]) -> bool:
-    """True when ``folder/rel`` is a regular file a previous run wrote and nobody changed since."""
+    """True when ``folder/rel`` is a regular file a previous run wrote and nobody changed since (no links)."""
     p = folder / rel
-    if rel not in manifest or p.is_symlink() or not p.is_file():
+    if rel not in manifest or _blocked(folder, rel) is not None or not p.is_file():
         return False
     try:
         return _sha256(p) == manifest[rel]
@@ -66,7 +130,8 @@ def _hint(flag: str) -> str:
     return "--overwrite" if flag.startswith("--") else "overwrite=True"
 
 
-def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: str = "out_dir") -> Path:
+def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: str = "out_dir",
+                        replacer: str | None = None) -> Path:
     """Refuse, with one line naming ``flag`` and the path, a results folder that a run must not write into.
 
     Parameters
@@ -82,6 +147,8 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
         the user's and refuses the run. None checks the top-level names every run writes.
     flag : str
         Name of the option in messages ('--out' for the command line).
+    replacer : str, optional
+        What would replace the files, in messages (default: ``--overwrite`` / ``overwrite=True``).
 
     Returns
     -------
@@ -89,6 +156,16 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
         The folder, with ``~`` expanded.
     """
     out = Path(out).expanduser()
+    try:
+        return _check_output_folder(out, overwrite=overwrite, inputs=inputs, planned=planned, flag=flag,
+                                    replacer=replacer)
+    except OSError as exc:  # e.g. a parent folder without search permission: stat() itself fails
+        raise TenfoldInputError(f"{flag} {out}: cannot be checked ({exc.strerror or exc}"
+                                f"{f': {exc.filename}' if exc.filename else ''}); fix the permissions of the folder "
+                                "and its parents, or choose another results folder") from None
+
+
+def _check_output_folder(out: Path, *, overwrite: bool, inputs, planned, flag: str, replacer: str | None) -> Path:
     where = f"{flag} {out}"
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"{where}: exists and is a file, not a folder; choose another results folder")
@@ -118,7 +195,11 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
                                 f"{MIN_FREE_BYTES // 2**20} MB; free some space or choose another disk")
     if not out.is_dir():
         return out
-    entries = [p for p in out.iterdir() if not _stale(p, out.name)]
+    try:
+        entries = [p for p in out.iterdir() if not _stale(p, out.name)]
+    except OSError as exc:
+        raise TenfoldInputError(f"{where}: cannot be listed ({exc.strerror or exc}); fix its permissions "
+                                "(chmod u+rwx) or choose another results folder") from None
     if not entries:
         return out
     if not overwrite:
@@ -126,12 +207,16 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
                                 f"{_hint(flag)} to replace Tenfold's earlier results there (other files are kept)")
     manifest = read_manifest(out)
     names = planned if planned is not None else _TOP_LEVEL
-    clash = sorted(r for r in names if (out / r).exists() and not _ours(out, r, manifest))
+    clash = sorted(r for r in names if (_blocked(out, r) is not None or (out / r).exists() or (out / r).is_symlink())
+                   and not _ours(out, r, manifest))
+    if planned is None:  # the pre-flight check: the sub-folders every run writes into must be real folders
+        clash += sorted(d + "/" for d in _TOP_DIRS
+                        if (out / d).is_symlink() or (out / d).exists() and not (out / d).is_dir())
     if clash:
         shown = ", ".join(clash[:5]) + (f" and {len(clash) - 5} more" if len(clash) > 5 else "")
         raise TenfoldInputError(
             f"{where}: {shown} {'is' if len(clash) == 1 else 'are'} not Tenfold's own unchanged result"
-            f"{'' if len(clash) == 1 else 's'} (not in {MANIFEST} or changed since), so {_hint(flag)} will not "
+            f"{'' if len(clash) == 1 else 's'} (not in {MANIFEST} or changed since), so {replacer or _hint(flag)} will not "
             "replace it; move it away or choose another folder"
         )
     return out
@@ -139,6 +224,8 @@ def check_output_folder(out, *, overwrite: bool, inputs=(), planned=None, flag: 
 
 #: names every run writes at the top level (the pre-flight check of the command line uses them)
 _TOP_LEVEL = ("summary.json", "provenance.json", "results.xlsx", "columns.csv")
+#: sub-folders runs write into: a link or a file of that name is in the way
+_TOP_DIRS = ("figures", "curves")
 
 
 def _stale(p: Path, name: str) -> bool:
@@ -155,7 +242,7 @@ def _stale(p: Path, name: str) -> bool:
         os.kill(int(pid), 0)
     except ProcessLookupError:
         return True
-    except OSError:
+    except (OSError, OverflowError):  # beyond any process id: a look-alike name, not a work folder of ours
         return False
     return False
 
@@ -195,20 +282,25 @@ def _manifest(tmp: Path, rels: list[str]) -> dict:
             "files": {r: _sha256(tmp / r) for r in sorted(rels)}}
 
 
-def _write_manifest(folder: Path, manifest: dict) -> None:
-    part = folder / f"{MANIFEST}.part"
+def _stage_manifest(tmp: Path, manifest: dict, name: str) -> Path:
+    """Write the manifest inside the work folder (ours alone: a link named like it elsewhere is never followed)."""
+    part = tmp / name
     part.write_text(json.dumps(manifest, indent=1) + "\n", encoding="utf-8")
-    os.replace(part, folder / MANIFEST)
+    return part
 
 
 @contextmanager
 def _signals_held():
-    """Hold SIGINT/SIGTERM/SIGHUP while files are moved into place (delivered right after)."""
+    """Hold SIGINT/SIGTERM/SIGHUP while files are moved into place (delivered right after).
+
+    A signal whose exception was swallowed earlier (see :mod:`._stop`) stops the move before it starts.
+    """
     try:
         old = signal.pthread_sigmask(signal.SIG_BLOCK, _SIGNALS)
     except (AttributeError, ValueError, OSError):
         old = None
     try:
+        _stop.raise_if_pending()
         yield
     finally:
         if old is not None:
@@ -217,7 +309,7 @@ def _signals_held():
 
 def fresh_commit(tmp: Path, out: Path, rels: list[str]) -> None:
     """``out`` did not exist: give ``tmp`` its manifest and rename it into place in one step."""
-    _write_manifest(tmp, _manifest(tmp, rels))
+    _stage_manifest(tmp, _manifest(tmp, rels), MANIFEST)
     with _signals_held():
         try:
             tmp.rename(out)
@@ -228,25 +320,74 @@ def fresh_commit(tmp: Path, out: Path, rels: list[str]) -> None:
             raise
 
 
+class _Moves:
+    """File moves that can be undone in reverse order (all or nothing)."""
+
+    def __init__(self) -> None:
+        self.done: list[tuple[Path, Path]] = []
+        self.made: list[Path] = []
+
+    def mkdirs(self, folder: Path, top: Path) -> None:
+        missing = []
+        while folder != top and not folder.exists():
+            missing.append(folder)
+            folder = folder.parent
+        for d in reversed(missing):
+            d.mkdir()
+            self.made.append(d)
+
+    def move(self, src: Path, dst: Path, top: Path) -> None:
+        self.mkdirs(dst.parent, top)
+        os.replace(src, dst)
+        self.done.append((src, dst))
+
+    def undo(self) -> None:
+        for src, dst in reversed(self.done):
+            try:
+                os.replace(dst, src)
+            except OSError:
+                pass
+        for d in reversed(self.made):
+            try:
+                d.rmdir()
+            except OSError:
+                pass
+
+
 def commit(tmp: Path, out: Path, rels: list[str], *, flag: str = "out_dir") -> None:
     """``out`` exists: move the files of ``tmp`` into it, replacing only Tenfold's own earlier results.
 
-    Earlier results that this run does not write again (e.g. a figure that no longer applies) are removed when
-    their checksum still matches the old manifest; every other file in ``out`` is left as it is.
+    Every destination is checked first (a user's file, a link or a file where a folder goes refuses the run
+    before anything moves). Earlier results that this run does not write again (e.g. a figure that no longer
+    applies) are removed when their checksum still matches the old manifest; every other file in ``out`` is left
+    as it is. The replaced files wait in ``tmp`` until the last move succeeded, and are put back if one fails.
     """
     old = read_manifest(out)
     check_output_folder(out, overwrite=True, planned=rels, flag=flag)  # nobody put a file in the way meanwhile
-    new = _manifest(tmp, rels)
+    blocked = [(r, why) for r in rels if (why := _blocked(out, r)) is not None and not _ours(out, r, old)]
+    if blocked:
+        rel, why = blocked[0]
+        raise TenfoldInputError(f"{flag} {out}: {rel} {why}; nothing was changed there, move it away or choose "
+                                "another results folder")
+    gone = [r for r in sorted(set(old) - set(rels)) if _ours(out, r, old)]
+    part = _stage_manifest(tmp, _manifest(tmp, rels), f"{MANIFEST}.part")
+    keep = tmp / ".replaced"
+    moves = _Moves()
     with _signals_held():
-        for rel in rels:
-            dest = out / rel
-            dest.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(tmp / rel, dest)
-        for rel in sorted(set(old) - set(rels)):
-            if _ours(out, rel, old):
-                (out / rel).unlink()
-                parent = (out / rel).parent
-                if parent != out and not any(parent.iterdir()):
-                    parent.rmdir()
-        _write_manifest(out, new)
+        try:
+            for rel in rels:
+                if (out / rel).exists():
+                    moves.move(out / rel, keep / rel, tmp)
+                moves.move(tmp / rel, out / rel, out)
+            for rel in gone:
+                moves.move(out / rel, keep / rel, tmp)
+            os.replace(part, out / MANIFEST)
+        except BaseException:
+            moves.undo()
+            raise
+        for rel in gone:
+            parent = (out / rel).parent
+            while parent != out and parent.is_dir() and not parent.is_symlink() and not any(parent.iterdir()):
+                parent.rmdir()
+                parent = parent.parent
         shutil.rmtree(tmp, ignore_errors=True)

@@ -9,6 +9,11 @@
 * **Masked reach**: no column is reported within ``2 sigma + 0.5`` px of a masked pixel, so sparse masked pixels
   remove far more columns than their own share; the note gives that share too.
 * **Memory**: an image whose analysis would not fit into the memory available is refused before it is read.
+* **Precision** (:func:`to_float32`): the analysis works in float32 (24-bit mantissa). Data whose signal would not
+  survive that cast is brought into range first, with a note: a large constant offset (counts + 2e9 in int32,
+  uint32, int64 or float64) is subtracted, values beyond float32's safe range are divided by a power of ten, values
+  so small that float32 holds them without precision (1e-44, 1e-300) are multiplied by one, and a few wild pixels
+  (a stray 1e38) far beyond the rest are masked like NaN instead of scaling the whole image down.
 
 Every function is vectorised (filters over the whole image, no per-pixel loop) and allocates a few image-sized
 byte or float32 arrays at most.
@@ -18,13 +23,15 @@ from __future__ import annotations
 
 import math
 import os
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
 
 from ._errors import TenfoldInputError
 
-__all__ = ["mask_flat", "clip_for_scale", "masked_reach_note", "check_memory", "available_memory",
+__all__ = ["mask_flat", "clip_for_scale", "masked_reach_note", "check_memory", "available_memory", "to_float32",
+           "float32_plan", "Float32Plan",
            "BYTES_PER_PIXEL", "BYTES_PER_COLUMN"]
 
 #: side of the smallest exactly constant square treated as a flat (non-image) area
@@ -95,9 +102,44 @@ def mask_flat(image, ok: np.ndarray, *, label: str = "image") -> tuple[np.ndarra
                                 "structure to analyse, check that the file was read completely")
     zeros = np.count_nonzero((img == 0) & ok)
     if zeros > ZERO_SHARE_NOTE * img.size:
-        notes.append(f"{label}: {100 * zeros / img.size:.3g} % of the pixels are exactly 0: a damaged, truncated or "
-                     "padded file, or a detector without offset; check the file if that is unexpected")
+        expected = poisson_zeros(img, ok)
+        n_ok = int(np.count_nonzero(ok))
+        if zeros > expected + ZERO_EXCESS_SIGMAS * math.sqrt(expected) + ZERO_EXCESS_SHARE * n_ok:
+            counts = f" (counting statistics at the measured level predict {100 * expected / img.size:.3g} %)"
+            notes.append(f"{label}: {100 * zeros / img.size:.3g} % of the pixels are exactly 0"
+                         f"{counts if expected else ''}: a damaged, truncated or padded file, or a detector without "
+                         "offset; check the file if that is unexpected")
     return ok, notes
+
+
+#: the zero-share note needs this many standard deviations above the Poisson expectation ...
+ZERO_EXCESS_SIGMAS = 5.0
+#: ... and this share of the valid pixels on top (the local-mean model is approximate)
+ZERO_EXCESS_SHARE = 0.01
+#: side of the window (px) over which the local count level is measured
+ZERO_LEVEL_WINDOW_PX = 5
+
+
+def poisson_zeros(image, ok: np.ndarray) -> float:
+    """Exact zeros that Poisson counting statistics predict at the measured local level (0 for non-count data).
+
+    An honest low-dose image of whole-number counts has many zeros: a pixel with mean count lambda reads 0 with
+    probability exp(-lambda) (Poisson distribution). The local mean over ``ZERO_LEVEL_WINDOW_PX`` squared valid
+    pixels stands in for lambda; by Jensen's inequality (exp(-x) is convex) the noise of that estimate raises the
+    prediction, so the note errs towards silence. Data that are not non-negative whole numbers are not counts,
+    and no zero is expected there.
+    """
+    img = np.asarray(image)
+    vals = img[ok]
+    if vals.size == 0 or vals.min() < 0 or (img.dtype.kind == "f" and not np.all(vals == np.floor(vals))):
+        return 0.0
+    w = ok.astype(np.float32)
+    size = ZERO_LEVEL_WINDOW_PX
+    level = ndimage.uniform_filter(np.where(ok, img, 0).astype(np.float32), size=size)
+    norm = ndimage.uniform_filter(w, size=size)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        level /= norm
+    return float(np.exp(-level[ok], dtype=np.float64).sum())
 
 
 def clip_for_scale(image: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, dict]:
@@ -229,3 +271,172 @@ def check_memory(shape, *, label: str, raw_bytes: int = 0, available: int | None
         f"({BYTES_PER_PIXEL} bytes per pixel), only {_size(avail)} is available; crop it (e.g. to "
         f"{side} x {side} px) or bin it 2 x 2 first"
     )
+
+
+#: largest magnitude kept as it is in float32 (its limit is 3.4e38; filters square values, so keep far below)
+FLOAT32_SAFE = 1e30
+#: smallest magnitude kept as it is (float32's normal range starts at 1.2e-38, and filters square values)
+FLOAT32_TINY = 1e-15
+#: bits of the interquartile range that must survive the float32 cast; fewer, and the offset is subtracted first
+MIN_SIGNAL_BITS = 12
+#: percentiles describing the bulk of the values (a few wild pixels lie beyond them)
+_BULK = (0.1, 25.0, 50.0, 75.0, 99.9)
+
+
+def _bulk(values: np.ndarray) -> np.ndarray:
+    step = max(1, values.size // 1_000_000)
+    return np.percentile(values[::step], _BULK)
+
+
+def _power_of_ten(peak: float) -> int:
+    """Exponent e so that peak / 10**e is about 1e6."""
+    return int(math.floor(math.log10(peak))) - 6
+
+
+@dataclass
+class Float32Plan:
+    """How to bring data into float32 without losing its signal: decided once, applied to the whole image or to
+    every tile of a memory-mapped one (so all tiles get the same offset and scale).
+
+    Attributes
+    ----------
+    wild_above : float or None
+        Magnitudes beyond this are wild pixels: masked and set to ``fill`` (None: no such pixels).
+    fill : float
+        Value given to wild pixels (the median of the others), before offset and scale.
+    exponent : int
+        The data are divided by ``10**exponent`` (0: not scaled; negative: multiplied).
+    offset : float
+        Subtracted after scaling (0: none).
+    notes : list of str
+        What the plan does and why ('' steps say nothing).
+    """
+
+    wild_above: float | None = None
+    fill: float = 0.0
+    exponent: int = 0
+    offset: float = 0.0
+    notes: list = field(default_factory=list)
+
+    def apply(self, image, valid=None) -> tuple[np.ndarray, np.ndarray]:
+        """``image`` as float32 after the plan, and ``valid`` (finite pixels when None) without wild pixels."""
+        img = np.asarray(image)
+        with np.errstate(invalid="ignore", over="ignore"):
+            ok = np.isfinite(img)
+        if valid is not None:
+            ok &= np.asarray(valid, dtype=bool)
+        if not (self.wild_above is not None or self.exponent or self.offset):
+            with np.errstate(over="ignore", invalid="ignore"):
+                return img.astype(np.float32), ok
+        data = img.astype(np.float64)
+        if self.wild_above is not None:
+            with np.errstate(invalid="ignore"):
+                wild = np.abs(data) > self.wild_above
+            data[wild] = self.fill
+            ok &= ~wild
+        if self.exponent:
+            data /= 10.0 ** self.exponent
+        if self.offset:
+            data -= self.offset
+        with np.errstate(over="ignore", invalid="ignore"):
+            return data.astype(np.float32), ok
+
+
+def float32_plan(values, dtype=None, *, label: str = "image") -> Float32Plan:
+    """Decide how ``values`` (the valid pixels, or a strided sample of a large image) reach float32 intact.
+
+    Parameters
+    ----------
+    values : array
+        Finite pixel values (any shape; NaN/inf are ignored).
+    dtype : numpy dtype, optional
+        dtype of the image (default ``values.dtype``): only data wider than float32's 24-bit mantissa (32/64-bit
+        integers, float64) can carry an offset that the cast would round the signal away in.
+    label : str
+        Name of the image in notes.
+
+    Notes
+    -----
+    In order: (1) pixels beyond ``FLOAT32_SAFE`` while the 0.1-99.9 percentile range lies within it are wild (a
+    stray 1e38) and masked; (2) a bulk beyond ``FLOAT32_SAFE`` is divided, one below ``FLOAT32_TINY``
+    multiplied, by a power of ten (positions unaffected); (3) when float32's rounding step at the median exceeds
+    the interquartile range / 2**``MIN_SIGNAL_BITS`` (a constant offset), the robust minimum (0.1 percentile), or
+    the median when that is not enough, is subtracted.
+    """
+    v = np.asarray(values)
+    dtype = np.dtype(dtype if dtype is not None else v.dtype)
+    plan = Float32Plan()
+    if v.size == 0 or np.iscomplexobj(v) or dtype.kind not in "iuf":
+        return plan
+    v = v.astype(np.float64).ravel()
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return plan
+    p = _bulk(v)
+    bulk_peak = float(max(abs(p[0]), abs(p[-1])))
+    peak = float(np.max(np.abs(v)))
+    if peak > FLOAT32_SAFE and 0 < bulk_peak <= FLOAT32_SAFE:
+        n = int(np.count_nonzero(np.abs(v) > FLOAT32_SAFE))
+        plan.wild_above, plan.fill = FLOAT32_SAFE, float(p[2])
+        plan.notes.append(f"{label}: {n} pixel{'s' if n != 1 else ''} with values beyond {FLOAT32_SAFE:.0e} (up to "
+                          f"{peak:.3g}) while the rest stays below {bulk_peak:.3g}: broken pixels, masked like NaN "
+                          "pixels")
+        peak = float(np.max(np.abs(v[np.abs(v) <= FLOAT32_SAFE]), initial=0.0))
+    if peak > FLOAT32_SAFE or 0 < peak < FLOAT32_TINY:
+        e = plan.exponent = _power_of_ten(peak)
+        p = p / 10.0 ** e
+        what = "exceed the float32 range" if e > 0 else "are too small for the float32 precision"
+        plan.notes.append(f"{label}: values up to {peak:.3g} {what} of the analysis; "
+                          f"{'divided by' if e > 0 else 'multiplied by'} 1e{abs(e)} (intensities are in units of "
+                          f"1e{e}, positions are unaffected)")
+    iqr = float(p[3] - p[1]) or float(p[4] - p[0])
+    wide = dtype.kind in "iu" and dtype.itemsize >= 4 or dtype.kind == "f" and dtype.itemsize > 4
+    if wide and iqr > 0 and _coarse(p[2], iqr):
+        offset = math.floor(p[0])
+        if _coarse(p[2] - offset, iqr):
+            offset = float(np.round(p[2]))
+        plan.offset = float(offset)
+        plan.notes.append(f"{label}: the values carry a constant offset (median {p[2]:.10g}, interquartile range "
+                          f"{iqr:.3g}) that the float32 precision of the analysis would round the signal away in; "
+                          f"{offset:.10g} subtracted first (intensities are relative to it, positions are "
+                          "unaffected)")
+    return plan
+
+
+def to_float32(image, valid=None, *, label: str = "image") -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """The image as float32 without losing its signal to the cast; with the validity mask and notes.
+
+    The entry point for in-memory arrays (``find_columns`` takes any array); see :func:`float32_plan` for what
+    is done when.
+
+    Parameters
+    ----------
+    image : (H, W) array
+        Any real dtype (not modified).
+    valid : (H, W) bool array, optional
+        Valid pixels so far (default: the finite ones).
+    label : str
+        Name of the image in notes.
+
+    Returns
+    -------
+    data : (H, W) float32 array
+        The values, offset and/or scaled as the notes say (a copy).
+    valid : (H, W) bool array
+        ``valid`` and finite, without wild pixels beyond float32's safe range.
+    notes : list of str
+        What was done and why (empty when the data fitted as they were).
+    """
+    img = np.asarray(image)
+    with np.errstate(invalid="ignore", over="ignore"):
+        ok = np.isfinite(img)
+    if valid is not None:
+        ok &= np.asarray(valid, dtype=bool)
+    plan = float32_plan(img[ok], img.dtype, label=label)
+    data, ok = plan.apply(img, ok)
+    return data, ok, plan.notes
+
+
+def _coarse(level: float, iqr: float) -> bool:
+    """float32's rounding step at ``level`` is coarser than ``iqr`` / 2**MIN_SIGNAL_BITS."""
+    return float(np.spacing(np.float32(abs(level)))) > iqr * 2.0 ** -MIN_SIGNAL_BITS

@@ -23,16 +23,20 @@ import glob
 import json
 import math
 import re
+import shutil
 import time
 import traceback
+import warnings
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from ._errors import Cancelled, TenfoldInputError
+from . import _outdir
+from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
+from ._resources import cap_workers
 
 __all__ = ["run_batch", "expand_inputs", "comparison_table", "COMPARISON_FIELDS", "BatchItem"]
 
@@ -68,6 +72,11 @@ COMPARISON_FIELDS = {
 }
 
 _PARAMS_FILE = "parameters.toml"
+#: files the batch level writes (under the batch folder's own manifest, like a single run's results)
+BATCH_FILES = ("comparison.csv", "comparison.xlsx", "batch_errors.json", "figures/comparison.png",
+               "figures/comparison.svg")
+#: names no image sub-folder may take
+_RESERVED = ("comparison.csv", "comparison.xlsx", "batch_errors.json", "figures", ".tenfold-manifest.json")
 
 
 @dataclass
@@ -99,7 +108,11 @@ def expand_inputs(inputs) -> list[Path]:
     for item in inputs:
         p = Path(item)
         if p.is_dir():
-            found = sorted(q for q in p.iterdir() if q.is_file() and q.suffix.lower() in suffixes)
+            try:
+                found = sorted(q for q in p.iterdir() if q.is_file() and q.suffix.lower() in suffixes)
+            except OSError as exc:
+                raise TenfoldInputError(f"{p}: folder cannot be listed ({exc.strerror or exc}); fix its "
+                                        "permissions (chmod u+rx) or give the image files") from None
             if not found:
                 raise TenfoldInputError(f"{p}: folder holds no image Tenfold reads ({', '.join(sorted(suffixes))})")
         elif p.is_file():
@@ -110,6 +123,9 @@ def expand_inputs(inputs) -> list[Path]:
             if not found:
                 raise TenfoldInputError(f"{item}: pattern matches no image file; check the pattern (quote it in the "
                                         "shell)")
+        elif p.exists():  # a FIFO, device or socket (also behind a link): never opened
+            raise TenfoldInputError(f"{item}: is not a regular file (a pipe, device or socket); give image files "
+                                    "saved on disk, folders or glob patterns")
         else:
             raise TenfoldInputError(f"{item}: no such file or folder; give image files, folders or glob patterns")
         out.extend(found)
@@ -126,7 +142,7 @@ def expand_inputs(inputs) -> list[Path]:
 
 def _folders(paths: list[Path]) -> list[str]:
     """A unique sub-folder name per image: the file stem, then ``stem-2``, ``stem-3`` for repeated stems."""
-    used: dict[str, int] = {}
+    used: dict[str, int] = {name.lower(): 1 for name in _RESERVED}  # an image named 'figures' gets 'figures-2'
     names = []
     for p in paths:
         stem = re.sub(r"[^A-Za-z0-9_.\-]+", "_", p.stem).strip("._") or "image"
@@ -136,26 +152,60 @@ def _folders(paths: list[Path]) -> list[str]:
     return names
 
 
+def _input_sha(sub: Path) -> str | None:
+    """The input checksum a finished sub-folder's summary records (None when unreadable)."""
+    try:
+        s = json.loads((sub / "summary.json").read_text(encoding="utf-8"))
+        sha = (s.get("input") or {}).get("sha256")
+        return str(sha) if sha else None
+    except (OSError, ValueError, AttributeError):
+        return None
+
+
 def _classify(items: list[BatchItem], out: Path, params_text: str, rerun: bool) -> None:
-    """Mark finished folders 'done'; refuse folders made with other parameters unless ``rerun``."""
-    clash = []
+    """Mark finished folders 'done'; refuse folders made with other parameters or from another input unless
+    ``rerun``.
+
+    A folder counts as finished only when its parameters file matches and its summary records the checksum of
+    the image now at that path: an image replaced since, or two images with the same stem listed in another
+    order, are not taken for finished.
+    """
+    from .io import _sha256
+
+    clash, changed = [], []
     for it in items:
         sub = out / it.folder
-        if not sub.exists():
+        if rerun or not (sub.exists() or sub.is_symlink()):
             continue
-        done = (sub / "summary.json").is_file() and (sub / _PARAMS_FILE).is_file()
-        same = done and (sub / _PARAMS_FILE).read_text(encoding="utf-8") == params_text
-        if rerun:
-            continue
-        if same:
-            it.state = "done"
-        else:
+        done = (sub.is_dir() and not sub.is_symlink() and (sub / "summary.json").is_file()
+                and (sub / _PARAMS_FILE).is_file())
+        try:
+            same = done and (sub / _PARAMS_FILE).read_text(encoding="utf-8") == params_text
+        except (OSError, UnicodeDecodeError):
+            same = False
+        if not same:
             clash.append(it.folder)
+            continue
+        try:
+            now = _sha256(it.path)
+        except OSError:
+            now = None
+        if now is None or _input_sha(sub) != now:
+            changed.append(it.folder)
+        else:
+            it.state = "done"
     if clash:
         raise TenfoldInputError(
-            f"{out}: sub-folder(s) {clash[:5]}{' ...' if len(clash) > 5 else ''} hold results made with other "
+            f"--out {out}: sub-folder(s) {clash[:5]}{' ...' if len(clash) > 5 else ''} hold results made with other "
             "parameters (or not by a finished run); choose another --out folder, or add --rerun to analyse every "
             "image again and replace them"
+        )
+    if changed:
+        raise TenfoldInputError(
+            f"--out {out}: sub-folder(s) {changed[:5]}{' ...' if len(changed) > 5 else ''} hold results of another "
+            "image than the one now at that name (the file was replaced, or images with the same name are listed "
+            "in another order: the input checksum differs); choose another --out folder, or add --rerun to "
+            "analyse every image again"
         )
 
 
@@ -164,24 +214,20 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
     """Analyse one image into ``folder`` (runs in the batch process or on a dask worker); never raises."""
     t0 = time.perf_counter()
     try:
-        import warnings
-
-        from ._errors import TenfoldWarning
+        from ._guards import check_lengths
         from .export import write_results
-        from .io import read_micrograph
         from .pipeline import Parameters, run_pipeline
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", TenfoldWarning)  # recorded in the summary notes; not printed per image
-            from .parallel import Execution, mapped_if_tiled
+            from ._input import read_for_run
+            from .parallel import Execution
 
             ex = Execution(**execution)
             # a large image that will be tiled is memory-mapped, not read whole
-            mg = mapped_if_tiled(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
-                                 frame_range=frame_range)
-            if mg is None:
-                mg = read_micrograph(path, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
-                                     frame_range=frame_range)
+            mg = read_for_run(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
+                              frame_range=frame_range)
+            check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
             result = run_pipeline(mg, Parameters.from_dict(params), execution=ex)
             write_results(result, folder, overwrite=overwrite, figures=figures)
         return {"status": "ok", "seconds": time.perf_counter() - t0}
@@ -243,10 +289,12 @@ def run_batch(
     from .pipeline import Parameters
 
     params = (params or Parameters()).validate()
-    out = Path(out_dir)
+    out = Path(out_dir).expanduser()
     if out.exists() and not out.is_dir():
         raise TenfoldInputError(f"--out {out}: exists and is not a folder; choose another path")
     paths = expand_inputs(inputs)
+    # the batch level's own files get the single run's protection: a user's comparison.csv is never replaced
+    _outdir.check_output_folder(out, overwrite=True, planned=BATCH_FILES, flag="--out", replacer="the batch")
     items = [BatchItem(p, f) for p, f in zip(paths, _folders(paths))]
     _classify(items, out, parameters_to_toml(params), rerun)
     out.mkdir(parents=True, exist_ok=True)
@@ -257,6 +305,10 @@ def run_batch(
     from .parallel import Execution, map_tasks
 
     execution = execution or Execution()
+    workers, note = cap_workers(execution.workers, tasks=max(1, len(todo)), what="images to analyse")
+    if note:
+        warnings.warn(note, TenfoldWarning, stacklevel=2)
+        execution = replace(execution, workers=workers)
     # several images: one per worker, tiles inside an image serial; one image: its tiles use the workers
     images_parallel = len(todo) > 1 and execution.parallel
     inner = {"tile_size": execution.tile_size, "overlap": execution.overlap}
@@ -280,7 +332,7 @@ def run_batch(
             stop = True
             break
     table = comparison_table(items, out)
-    _write_comparison(table, out, errors)
+    _commit_comparison(table, out, errors)
     if stop:
         raise Cancelled(f"batch stopped after {done} of {total} images; run it again to resume")
     return table
@@ -367,20 +419,44 @@ def comparison_table(items: list[BatchItem], out_dir) -> pd.DataFrame:
     return df
 
 
-def _write_comparison(table: pd.DataFrame, out: Path, errors: dict) -> None:
+def _commit_comparison(table: pd.DataFrame, out: Path, errors: dict) -> None:
+    """Write the batch-level files in a work folder, then move them in under the batch folder's manifest."""
+    _outdir.clean_stale(out)
+    tmp = _outdir.work_folder(out)
+    try:
+        rels = _write_comparison(table, tmp, errors)
+        _outdir.commit(tmp, out, rels, flag="--out")
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise TenfoldInputError(
+            f"--out {out}: the comparison could not be written ({exc.strerror or exc}"
+            f"{f': {exc.filename}' if exc.filename else ''}); the per-image folders are complete, run the batch "
+            "again once the cause is fixed (finished images are skipped)"
+        ) from exc
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def _write_comparison(table: pd.DataFrame, out: Path, errors: dict) -> list[str]:
+    """Write the comparison files into ``out``; returns their paths relative to it."""
     from .export import _write_csv, _write_workbook
 
     _write_csv(table, out / "comparison.csv")
     units = [COMPARISON_FIELDS.get(c, ("", ""))[0] for c in table.columns]
     _write_workbook({"comparison": (table, units)}, out / "comparison.xlsx")
+    rels = ["comparison.csv", "comparison.xlsx"]
     if errors:
         (out / "batch_errors.json").write_text(json.dumps(errors, indent=2) + "\n", encoding="utf-8")
+        rels.append("batch_errors.json")
     fig = comparison_figure(table)
     if fig is not None:
         from .export import _save_figure
 
         (out / "figures").mkdir(exist_ok=True)
         _save_figure(fig, out / "figures" / "comparison")
+        rels += [p.relative_to(out).as_posix() for p in sorted((out / "figures").iterdir())]
+    return rels
 
 
 def comparison_figure(table: pd.DataFrame):

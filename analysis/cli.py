@@ -20,9 +20,10 @@ import re
 import sys
 import time
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 
-from . import __version__
+from . import __version__, _stop
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 
 __all__ = ["main", "build_parser"]
@@ -59,13 +60,13 @@ def _pixel_size(text: str) -> float:
 _FLAGS = {
     "pixel_size_nm": "--pixel-size", "frame_range": "--frames", "frame": "--frame", "n_species": "--species",
     "ring_order": "--ring-order", "radius_tolerance": "--radius-tolerance", "min_mass": "--min-intensity",
-    "dark_columns": "--dark-columns", "rng": "--seed", "overwrite=True": "--overwrite",
+    "dark_columns": "--dark-columns", "rng": "--seed", "overwrite=True": "--overwrite", "out_dir": "--out",
     **{f"{base}_{unit}": flag for base, flag in (
         ("column_diameter", "--column-diameter"), ("column_spacing", "--column-spacing"),
         ("ring_radius", "--ring-radius"), ("ladder_r_max", "--ladder-range"), ("d0", "--ladder-base"),
         ("tiling_edge", "--tiling-edge")) for unit in ("nm", "px")},
 }
-_FLAG_RE = re.compile(r"(?<![\w-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
+_FLAG_RE = re.compile(r"(?<![\w.-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
                       + r")(?![\w])")
 
 
@@ -77,7 +78,15 @@ def _flag_names(message: str) -> str:
     """
     if message.startswith("--params "):
         return message
-    return _FLAG_RE.sub(lambda m: _FLAGS[m.group(1)], message)
+    return _FLAG_RE.sub(_flag_or_path, message)
+
+
+def _flag_or_path(m: re.Match) -> str:
+    """The option for a parameter name; a name inside a path ('/data/out_dir/frame.tif') stays as it is."""
+    text, a, b = m.string, m.start(1), m.end(1)
+    after = text[b:b + 2]
+    in_path = after[:1] == "." and after[1:].isalnum() or (a > 0 and text[a - 1] == "/" and after[:1] in ("/", ":"))
+    return m.group(0) if in_path else _FLAGS[m.group(1)]
 
 
 def _length(text: str) -> tuple[float, str]:
@@ -173,14 +182,10 @@ def _execution(args):
 
 def _read_for(args, execution):
     """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
-    from .io import read_micrograph
-    from .parallel import mapped_if_tiled
+    from ._input import read_for_run
 
-    mg = mapped_if_tiled(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
-                         frame_range=args.frames)
-    if mg is not None:
-        return mg
-    return read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+    return read_for_run(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
+                        frame_range=args.frames)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -309,6 +314,7 @@ class _Progress:
         self.last = ""
 
     def __call__(self, fraction: float, message: str) -> None:
+        _stop.raise_if_pending()
         if self.quiet or message == self.last:
             return
         self.last = message
@@ -343,16 +349,9 @@ def _params(args) -> "object":
     )
 
 
-class _Signalled(KeyboardInterrupt):
-    """SIGTERM/SIGHUP, raised like SIGINT so every clean-up path runs."""
-
-    def __init__(self, signum: int) -> None:
-        super().__init__(signum)
-        self.signum = signum
-
-
 def _on_signal(signum, frame):
-    raise _Signalled(signum)
+    _stop.record(signum)  # kept even when the exception below lands in a callback that swallows it
+    raise _stop.Signalled(signum)
 
 
 def _install_signal_handlers() -> dict:
@@ -426,15 +425,21 @@ def _analyze(args) -> int:
     from .export import write_results
     from .pipeline import run_pipeline
 
+    from ._guards import check_lengths
     from ._outdir import check_output_folder
+    from .io import check_image_file
 
-    # before any work: fail in a second, not after a minute
+    # before any work: fail in a second, not after a minute; nothing opens the input before it is known to be a
+    # regular file (a FIFO would block the first open for ever)
+    check_image_file(args.image)
     check_output_folder(args.out, overwrite=args.overwrite, inputs=[args.image], flag="--out")
     params = _params_with_file(args)
     execution = _execution(args)
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
     mg = _read_for(args, execution)
+    check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
+    execution = _capped(execution, mg.data.shape)
     regions = None
     if args.region:
         from .region import parse_region
@@ -459,6 +464,20 @@ def _analyze(args) -> int:
     for note in s.get("notes", []):
         print(f"note: {_flag_names(note)}", file=sys.stderr)
     return 0
+
+
+def _capped(execution, shape):
+    """``execution`` with ``--workers`` lowered to the cores and the tiles this image has (with a note)."""
+    from dataclasses import replace
+
+    from ._resources import cap_workers, n_tiles
+
+    tiles = n_tiles(shape, execution.tiles_for(shape))
+    workers, note = cap_workers(execution.workers, tasks=tiles, what=f"tile{'s' if tiles != 1 else ''}")
+    if not note:
+        return execution
+    print(f"note: {note}", file=sys.stderr)
+    return replace(execution, workers=workers)
 
 
 def _na_why(summary: dict) -> str:
@@ -513,8 +532,10 @@ def _batch(args) -> int:
 
 
 def _info(args) -> int:
-    from .io import read_micrograph
+    from .io import check_image_file, read_micrograph
     from .pipeline import estimate_defaults
+
+    check_image_file(args.image)
 
     mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
     out = mg.meta.to_dict()
@@ -555,9 +576,15 @@ def main(argv: list[str] | None = None) -> int:
         logging.basicConfig(level=logging.WARNING, format="%(name)s: %(message)s")
         logging.getLogger("tenfold").setLevel(logging.DEBUG)
     warnings.simplefilter("always", TenfoldWarning)
+    _stop.reset()
     old_handlers = _install_signal_handlers()
+    old_hook = sys.unraisablehook
+    sys.unraisablehook = _unraisable_hook(old_hook, debug)
     try:
-        return handler(args)
+        with _quiet_libraries(debug):
+            code = handler(args)
+        _stop.raise_if_pending()
+        return code
     except TenfoldInputError as exc:
         if debug:
             raise
@@ -567,14 +594,24 @@ def main(argv: list[str] | None = None) -> int:
         print(f"tenfold: {exc}", file=sys.stderr)
         return 130
     except KeyboardInterrupt as exc:
-        signum = getattr(exc, "signum", 2)
+        signum = getattr(exc, "signum", None) or _stop.pending() or 2
         print(f"tenfold: interrupted (signal {signum}); nothing half-written is left", file=sys.stderr)
         return 128 + signum
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
         return 0
+    except OSError as exc:  # a file system refusal anywhere (permissions, a folder where a file goes): name it
+        if debug:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"tenfold: error: {where}{exc.strerror or exc} ({type(exc).__name__}); check the path and its "
+              "permissions, or run again with --debug for the traceback", file=sys.stderr)
+        return 1
     except Exception as exc:  # the one-line rule: no traceback for users unless they ask
         if debug:
             raise
+        if _stop.pending() is not None:  # a failure the signal caused (e.g. a cluster torn down half-way)
+            print(f"tenfold: interrupted (signal {_stop.pending()}); nothing half-written is left", file=sys.stderr)
+            return 128 + _stop.pending()
         print(f"tenfold: error: {type(exc).__name__}: {exc} (run again with --debug for the traceback)", file=sys.stderr)
         return 1
     finally:
@@ -582,6 +619,33 @@ def main(argv: list[str] | None = None) -> int:
 
         for sig, h in old_handlers.items():
             signal.signal(sig, h)
+        if _stop.pending() is None:  # after a signal the process ends: keep atexit clean-up of half-made work quiet
+            sys.unraisablehook = old_hook
+
+
+def _unraisable_hook(default, debug: bool):
+    """Errors Python can only print ("Exception ignored in ..."): after a termination signal they are its echo
+    (a callback it interrupted, a cluster's atexit clean-up after start-up was cut short) and stay silent; the
+    signal itself ends the run at the next check."""
+
+    def hook(unraisable) -> None:
+        if not debug and (isinstance(unraisable.exc_value, KeyboardInterrupt) or _stop.pending() is not None):
+            return
+        default(unraisable)
+
+    return hook
+
+
+@contextmanager
+def _quiet_libraries(debug: bool):
+    """What the format libraries log while a command runs goes to the ``--debug`` log, never to the terminal."""
+    if debug:
+        yield
+        return
+    from .io import _captured_log
+
+    with _captured_log("tifffile"):
+        yield
 
 
 if __name__ == "__main__":  # pragma: no cover

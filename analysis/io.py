@@ -18,7 +18,7 @@ import numpy as np
 
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
-from ._sanitize import check_memory
+from ._sanitize import check_memory, to_float32
 
 _log = logging.getLogger("tenfold")
 
@@ -362,7 +362,14 @@ def _read_tiff(path: Path, cal: _Calib) -> np.ndarray:
                 check_memory(_planar_shape(series.shape), label=str(path),
                              raw_bytes=int(np.prod(series.shape)) * np.dtype(series.dtype).itemsize)
                 data = series.asarray()
-                _tiff_calibration(tf, cal, path.name)
+                try:
+                    _tiff_calibration(tf, cal, path.name)
+                except Exception as exc:  # a broken calibration tag must not make good pixels unreadable
+                    cal.px_x = cal.px_y = None
+                    cal.source = "none"
+                    cal.warnings.append(f"{path.name}: the file's calibration cannot be read ({type(exc).__name__}: "
+                                        f"{str(exc)[:80]}); ignored, the image is uncalibrated unless pixel_size_nm "
+                                        "is given")
                 expected = int(np.prod(series.shape))
         except TenfoldInputError:
             raise
@@ -386,6 +393,7 @@ def _read_mrc(path: Path, cal: _Calib) -> np.ndarray:
             with mrcfile.open(path, mode="r", header_only=True) as mrc:
                 hd = mrc.header
                 dims = (int(hd.nz), int(hd.ny), int(hd.nx))
+                _check_mrc_size(path, hd, dims)
             check_memory(_planar_shape(dims), label=str(path), raw_bytes=4 * int(np.prod(dims, dtype=np.float64)))
             with mrcfile.open(path, mode="r") as mrc:
                 data = np.array(mrc.data)
@@ -403,6 +411,24 @@ def _read_mrc(path: Path, cal: _Calib) -> np.ndarray:
     elif vx != 0 or vy != 0:
         cal.notes.append(f"{path.name}: MRC voxel size ({vx}, {vy}) A is not positive; treated as uncalibrated")
     return data
+
+
+def _check_mrc_size(path: Path, header, dims) -> None:
+    """Refuse a header whose image size does not fit in the file (a corrupt frame count, not a huge image)."""
+    import mrcfile.utils
+
+    try:
+        itemsize = mrcfile.utils.data_dtype_from_header(header).itemsize
+    except ValueError:
+        return  # an unknown mode: mrcfile's own reading names it
+    need = 1024 + max(int(header.nsymbt), 0) + itemsize * int(np.prod(dims, dtype=np.float64))
+    have = path.stat().st_size
+    if min(dims) > 0 and need > have:
+        raise TenfoldInputError(
+            f"{path}: corrupt MRC header: it gives {dims[0]} x {dims[1]} x {dims[2]} values "
+            f"({need / 2**20:.4g} MB), the file holds {have / 2**20:.4g} MB; the file is truncated or its header "
+            "is damaged"
+        )
 
 
 def _read_imageio(path: Path, cal: _Calib) -> np.ndarray:
@@ -484,6 +510,11 @@ def _is_rgb(arr: np.ndarray) -> bool:
     return arr.ndim == 3 and arr.shape[-1] in (3, 4) and arr.shape[0] > 4 and arr.shape[1] > 4
 
 
+def _is_grey_alpha(arr: np.ndarray) -> bool:
+    """Grey + alpha (PNG 'LA'): two samples per pixel on the last axis; stacks have their frames first."""
+    return arr.ndim == 3 and arr.shape[-1] == 2 and arr.shape[0] > 4 and arr.shape[1] > 4
+
+
 def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: str, sha256: str) -> Micrograph:
     """Validate ``raw`` and turn it into a float32 :class:`Micrograph`; emits the collected warnings."""
     arr = np.asarray(raw)
@@ -526,6 +557,14 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
             "(BT.709 weights); intensities are no longer raw detector counts, use the original grey-level data "
             "for quantitative work"
         )
+    elif _is_grey_alpha(arr):
+        if frame is not None or frame_range is not None:
+            raise TenfoldInputError(f"{label}: is a grey image with an alpha channel ({arr.shape[0]} x "
+                                    f"{arr.shape[1]} px), not a stack; drop frame/frame_range")
+        data = arr[..., 0].astype(np.float64)
+        transparent = int(np.count_nonzero(arr[..., 1] == 0))
+        notes.append(f"{label}: grey image with an alpha (transparency) channel; the alpha channel is ignored"
+                     + (f" ({transparent} fully transparent pixels are analysed as they are)" if transparent else ""))
     elif arr.ndim == 3:
         n = arr.shape[0]
         if frame is None and frame_range is None:
@@ -559,12 +598,11 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
             f"{label}: image is {rows} x {cols} px, too small to hold several column spacings "
             f"(need at least {_MIN_SIDE} px on a side)"
         )
-    data, scale_note = _fit_float32(data, label)
-    if scale_note:
-        warn.append(scale_note)
-    data32 = data.astype(np.float32)
-    with np.errstate(over="ignore", invalid="ignore"):
-        valid = np.isfinite(data32)
+    with np.errstate(invalid="ignore"):
+        n_nonfinite = int(data.size - np.count_nonzero(np.isfinite(data)))
+    data32, valid, precision_notes = to_float32(data, label=label)  # (analysis/_sanitize.py)
+    del data
+    warn.extend(precision_notes)
     n_bad = int(valid.size - np.count_nonzero(valid))
     if n_bad == valid.size:
         raise TenfoldInputError(f"{label}: every pixel is NaN or infinite; the image holds no data")
@@ -576,8 +614,9 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
     masked_fraction = n_bad / valid.size
     if n_bad:
         data32[~valid] = np.median(good)
+    if n_nonfinite:
         warn.append(
-            f"{label}: {100 * masked_fraction:.3g}% of pixels are NaN/inf; they are masked (no columns there) "
+            f"{label}: {100 * n_nonfinite / valid.size:.3g}% of pixels are NaN/inf; they are masked (no columns there) "
             "and filled with the median for filtering"
         )
     if px is None:
@@ -597,23 +636,6 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         notes=list(dict.fromkeys(warn + notes)),
     )
     return Micrograph(data=data32, meta=meta, valid=valid)
-
-
-#: largest magnitude kept as it is in float32 (its limit is 3.4e38; filters square values, so keep far below)
-_FLOAT32_SAFE = 1e30
-
-
-def _fit_float32(data: np.ndarray, label: str) -> tuple[np.ndarray, str]:
-    """Scale values beyond float32's range by a power of ten (with a note) instead of letting them overflow."""
-    with np.errstate(invalid="ignore"):
-        finite = np.isfinite(data)
-        peak = float(np.max(np.abs(data), where=finite, initial=0.0))
-    if peak <= _FLOAT32_SAFE:
-        return data, ""
-    exponent = int(math.floor(math.log10(peak))) - 6
-    factor = 10.0 ** exponent
-    return data / factor, (f"{label}: values up to {peak:.3g} exceed the float32 range of the analysis; divided by "
-                           f"1e{exponent} (intensities are in units of 1e{exponent}, positions are unaffected)")
 
 
 def _check_index(frame, n: int, label: str) -> int:
@@ -638,6 +660,37 @@ def _check_range(frame_range, n: int, label: str) -> tuple[int, int]:
             f"{label}: frame_range=({a}, {b}) invalid; need 0 <= a < b <= {n} (frames a..b-1 are averaged)"
         )
     return a, b
+
+
+def check_image_file(path) -> Path:
+    """Refuse, with one line, a path that is no image file Tenfold reads; nothing is opened.
+
+    Called before any reader or header probe touches the file: opening a FIFO (or a link to one) blocks until
+    another program writes to it, and a device may never end.
+
+    Raises
+    ------
+    TenfoldInputError
+        Missing, a folder, not a regular file (pipe, device, socket, also behind a link), unknown suffix.
+    """
+    p = Path(path)
+    try:
+        st = p.stat()
+    except FileNotFoundError:
+        raise TenfoldInputError(f"{p}: no such file; check the path") from None
+    except OSError as exc:
+        raise TenfoldInputError(f"{p}: cannot be reached ({exc.strerror or exc}); check the path and the "
+                                "permissions of its folders") from None
+    if stat.S_ISDIR(st.st_mode):
+        raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
+    if not stat.S_ISREG(st.st_mode):
+        raise TenfoldInputError(f"{p}: is not a regular file (a pipe, device or socket); give an image file saved "
+                                "on disk")
+    if p.suffix.lower() not in _SUFFIXES:
+        raise TenfoldInputError(
+            f"{p}: unknown file type {p.suffix or '(no suffix)'!r}; supported: {', '.join(supported_suffixes())}"
+        )
+    return p
 
 
 def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -> Micrograph:
@@ -688,20 +741,9 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -
     >>> mg = read_micrograph("scan.tif")                      # doctest: +SKIP
     >>> mg = read_micrograph("movie.mrc", frame_range=(0, 10))  # doctest: +SKIP
     """
-    p = Path(path)
+    p = check_image_file(path)
     override = _check_pixel_size(pixel_size_nm)
-    if not p.exists():
-        raise TenfoldInputError(f"{p}: no such file; check the path")
-    if p.is_dir():
-        raise TenfoldInputError(f"{p}: is a directory, not an image file; give one image file")
-    if not stat.S_ISREG(p.stat().st_mode):
-        raise TenfoldInputError(f"{p}: is not a regular file (a pipe, device or socket); give an image file saved "
-                                "on disk")
     suffix = p.suffix.lower()
-    if suffix not in _SUFFIXES:
-        raise TenfoldInputError(
-            f"{p}: unknown file type {p.suffix or '(no suffix)'!r}; supported: {', '.join(supported_suffixes())}"
-        )
     try:
         sha = _sha256(p)
     except OSError as exc:
