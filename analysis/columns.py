@@ -536,7 +536,12 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             raise TenfoldInputError("flatten=True fits one background surface to the whole image, which tiles "
                                     "cannot repeat; run untiled (tile size 0) or without flatten")
     notes: list[str] = []
-    # -- sanitising (analysis/_sanitize.py): flat areas masked, with notes --
+    # -- sanitising (analysis/_sanitize.py): float32 without losing the signal, flat areas masked, with notes --
+    if not isinstance(img, np.memmap):
+        img, ok, cast_notes = _sanitize.to_float32(img, ok, label="image")
+        notes.extend(cast_notes)
+        for note in cast_notes:
+            warnings.warn(note, TenfoldWarning, stacklevel=2)
     ok, flat_notes = _sanitize.mask_flat(img, ok)
     notes.extend(flat_notes)
     for note in flat_notes:
