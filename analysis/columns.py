@@ -1,29 +1,27 @@
-"""Atomic-column finding: automatic scale, trackpy detection, significance cut, Gaussian refinement, species.
+"""Atomic-column finding: one finder for a whole image or its tiles, with the same result.
 
-Steps (every automatic choice is recorded in the returned info dict):
+Steps of ``find_columns`` (every automatic choice is recorded in the returned info dict):
 
-1. Scale: ``estimate_scale`` (width from the autocorrelation, spacing from the nearest significant maxima)
-   unless spacing / diameter are given in nm.
-2. Polarity: dark-column images are inverted; a skewness check of the high-passed image warns when the
-   ``dark_columns`` option looks wrong (bright, sparse columns give a positive skew).
-3. Optional flattening (uneven illumination): a quadratic surface plus a wide Gaussian of the rest is subtracted
-   from the image used for *detection*; the refinement fits a local background per column on the original.
-4. Significance map: matched filter (Gaussian of the column width) over a smooth background estimated from the
-   pixels away from significant maxima, divided by its Poisson (raw counts) or white-noise standard error under
-   the no-column hypothesis (``significance_map``).
-5. Detection: ``trackpy.locate`` on the scale-normalised Laplacian of Gaussian (diameter = smallest odd integer
-   >= 4.5 sigma, separation = 0.5 x spacing, no band-pass of its own, one centroid step: trackpy's centroids are
-   pixel-locked, the refinement removes that). The significance cut is chosen from the data: the mirrored minima
-   of the same detector estimate the noise detections (``mirror_threshold``), bounded by 3.5 sigma and the
-   random-field threshold for the image area (``false_alarm_threshold``).
-6. Refinement of every significant candidate at once (``refine.refine_columns``), Poisson-weighted for counts,
-   one neighbour-subtracted pass, a fixed-width fit for faint columns whose free fit fails ('fixed_width').
-7. Significance given the neighbours: the other fitted columns' smoothed light is subtracted from each
-   candidate's statistic; fits that slid more than half a spacing, and well-measured fits with a width outside
-   0.5-2 x the median, are dropped; duplicates (closer than 0.4 spacing) keep the more significant one.
-8. Mask and regions: columns with a masked pixel within 2 sigma + 0.5 px of their centre are dropped; with
-   regions only columns inside a region are kept (labels from ``region.label_points``).
-9. Species by ``species.classify_species``.
+1. Inputs: the array reaches float32 without losing its signal (``_sanitize.to_float32``); NaN/inf and flat areas
+   are masked.
+2. Settle the image-wide choices on the sample (``_settle``): the ``SETTLE_PX`` window with the most valid pixels.
+   Scale (``estimate_scale``, or the overrides), polarity check, noise model (raw counts, scaled counts or white,
+   checked on the fit residuals), the detection levels of ``significance_map`` and the 16-bit range of the LoG,
+   and the fits' common width (``_learn_common_width``). Detection and fits of the sample repeat while the
+   measured width, spacing or noise model disagree with the ones used (at most ``MAX_SCALE_ROUNDS``).
+3. Windows (``_run_windows``): the whole image, or tiles with a halo of ``TILE_HALO_SPACINGS`` spacings + 8 sigma.
+   Each window detects candidates (``_detect_window``): matched-filter significance over a locally linear
+   background (``significance_map``), trackpy's maxima finder on the scale-normalised LoG, mirrored minima for the
+   noise estimate. One significance cut for all windows (``mirror_threshold``, bounded by 3.5 sigma and the
+   random-field threshold of the image area). Each window fits its significant candidates
+   (``refine.refine_columns``: pixel-integrated Gaussians, Poisson-weighted for counts, Jacobi neighbour passes
+   with the settled common width) and prunes them (``_prune``: failed, slid, border, insignificant given the
+   neighbours' light, width outliers, duplicates); joint-model position errors
+   (``refine.joint_position_errors``). Each column is kept by the window whose core holds its candidate pixel.
+4. Finish (``_finish``): ``min_mass``, regions (``region.label_points``), the spacing check, ids, nm columns,
+   species (``species.classify_species``), errors widened where the model misfits (``_widen_for_misfit``).
+
+An untiled image no larger than the sample is its own sample: its last settling round is the result.
 """
 
 from __future__ import annotations
@@ -56,6 +54,9 @@ FALSE_ALARMS = 0.05
 FALSE_SHARE = 0.001
 #: Lowest significance ever accepted (common practice: below ~3.5 sigma a single detection is not evidence).
 Z_FLOOR = 3.5
+#: A column's diameter (the detection window, the user's "column diameter") is this many Gaussian sigmas: the disk
+#: of that diameter holds 1 - exp(-2.25^2 / 2) = 92 % of a 2-D Gaussian's light (common practice)
+DIAMETER_PER_SIGMA = 4.5
 #: Accepted column widths relative to the median fitted width.
 WIDTH_RANGE = (0.5, 2.0)
 
@@ -455,7 +456,7 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     dark_columns : bool
         Columns darker than the background (HRTEM-like); the image is inverted before detection and fitting.
     column_diameter_nm : float, optional
-        Overrides the automatic width: sigma = diameter / 4.5. Needs ``pixel_size_nm``.
+        Overrides the automatic width: sigma = diameter / ``DIAMETER_PER_SIGMA``. Needs ``pixel_size_nm``.
     column_spacing_nm : float, optional
         Overrides the automatic nearest-column spacing. Needs ``pixel_size_nm``.
     column_diameter_px, column_spacing_px : float, optional
@@ -662,7 +663,7 @@ class _Settings:
 
     @property
     def diameter(self) -> int:
-        d = int(math.ceil(4.5 * self.sigma))
+        d = int(math.ceil(DIAMETER_PER_SIGMA * self.sigma))
         return max(d + 1 - d % 2, 3)
 
     @property
@@ -1262,7 +1263,7 @@ def _resolve_scale(data, ok, lengths, dark_columns, auto):
     spacing, how = lengths["spacing"] if "spacing" in lengths else (est.spacing_px, est.spacing_method)
     auto["spacing"] = {"value_px": spacing, "how": how, "start_px": spacing}
     if "diameter" in lengths:
-        sigma, how = lengths["diameter"][0] / 4.5, lengths["diameter"][1] + " / 4.5"
+        sigma, how = lengths["diameter"][0] / DIAMETER_PER_SIGMA, lengths["diameter"][1] + f" / {DIAMETER_PER_SIGMA}"
     else:
         sigma, how = est.sigma_px, est.sigma_method
     auto["sigma"] = {"value_px": sigma, "how": how, "start_px": sigma}
