@@ -22,6 +22,7 @@ D. R. Nelson and B. I. Halperin, Phys. Rev. B 19 (1979) 2457 (bond-orientational
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 import pandas as pd
@@ -324,6 +325,54 @@ def _ellipse(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> tuple[float,
     return ratio, angle
 
 
+def _ellipticity(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> dict:
+    """Ellipticity of ``k^T M k = 1`` with its standard error from the scatter of the spots about the ellipse.
+
+    The deviatoric part of ``M`` relative to its mean eigenvalue, ``e = ((M11 - M22) / 2, M12) / (tr M / 2)``,
+    has length ``|e| ~ ratio - 1`` for small distortions. Its covariance comes from a heteroscedasticity-robust
+    (HC1 sandwich) covariance of the weighted least-squares coefficients: the residuals are whatever keeps the spots
+    off one ellipse (centroiding noise, an approximant's shells that are not circles, shells assigned across
+    families), so the error is measured, not assumed. ``chi2 = e^T C^-1 e`` has two degrees of freedom when the
+    shells are circles; the ellipticity is significant when its tail probability is below 0.001
+    (``chi2 > 13.8``).
+
+    References
+    ----------
+    H. White, Econometrica 48 (1980) 817-838 (heteroscedasticity-consistent covariance);
+    J. G. MacKinnon, H. White, J. Econometrics 29 (1985) 305-325 (HC1 small-sample factor n / (n - p)).
+    """
+    sw = np.sqrt(weight)
+    a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1)
+    aw = a * sw[:, None]
+    sol, *_ = np.linalg.lstsq(aw, sw, rcond=None)
+    n, p = len(kx), 3
+    out = {"ellipticity": float("nan"), "ellipticity_se": float("nan"), "ellipticity_chi2": float("nan"),
+           "significant": False, "n_fit_spots": int(n)}
+    tr = 0.5 * (sol[0] + sol[2])
+    if n <= p or tr <= 0:
+        return out
+    resid = (1.0 - a @ sol) * weight  # weighted residual scores r_i w_i
+    bread = np.linalg.pinv(aw.T @ aw)
+    meat = (a * resid[:, None]).T @ (a * resid[:, None])
+    cov = bread @ meat @ bread * n / (n - p)
+    e = np.array([0.5 * (sol[0] - sol[2]), sol[1]]) / tr
+    # Jacobian of e with respect to (M11, M12, M22)
+    jac = np.array([[0.5 / tr - e[0] * 0.5 / tr, 0.0, -0.5 / tr - e[0] * 0.5 / tr],
+                    [-e[1] * 0.5 / tr, 1.0 / tr, -e[1] * 0.5 / tr]])
+    ce = jac @ cov @ jac.T
+    try:
+        chi2 = float(e @ np.linalg.solve(ce, e))
+    except np.linalg.LinAlgError:
+        chi2 = float("nan")
+    out.update(ellipticity=float(np.hypot(*e)), ellipticity_se=float(np.sqrt(max(np.trace(ce), 0.0) / 2.0)),
+               ellipticity_chi2=chi2, significant=bool(np.isfinite(chi2) and chi2 > _ELLIPSE_CHI2))
+    return out
+
+
+#: chi-square (2 degrees of freedom) above which a shell ellipse counts as measured: tail probability 0.001.
+_ELLIPSE_CHI2 = -2.0 * math.log(1e-3)
+
+
 def analyze_fourier(
     image: np.ndarray,
     *,
@@ -475,7 +524,7 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     # A distortion turns shells into ellipses and smears them in |k|, so shells are re-split in the metric the
     # current ellipse fit corrects (q^2 = k^T M k with det M = 1), and the fit repeated until it settles.
     metric = np.eye(2)
-    fit = None
+    fit = fit_spots = None
     for _ in range(4):
         q = np.sqrt(np.einsum("ni,ij,nj->n", np.stack([kx_all, ky_all], 1), metric, np.stack([kx_all, ky_all], 1)))
         shell_ids = _split_shells(q, min_gap)
@@ -493,6 +542,7 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
         if new_fit is None:
             break
         fit = new_fit
+        fit_spots = (kx, ky, w[sel])
         m = _ellipse_matrix(kx, ky, w[sel])
         metric_new = m / np.sqrt(np.linalg.det(m))
         if np.allclose(metric_new, metric, atol=1e-5):
@@ -503,17 +553,21 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     info["rotational_order"] = order
     if fit is not None:
         ratio, angle = fit
-        warn = ratio - 1.0 > distortion_warn
+        ell = _ellipticity(*fit_spots)
+        # a note needs both: a size worth worrying about and a measurement that is not the shells' own scatter
+        warn = ratio - 1.0 > distortion_warn and ell["significant"]
         info["distortion"] = {
             "axis_ratio": ratio,
             "major_axis_deg": angle,
             "shells_used": [sh["shell"] for sh in used],
             "metric": metric.tolist(),
             "warning": bool(warn),
+            **ell,
         }
         if warn:
             info["notes"].append(
-                f"the Fourier spot shells are elliptical (axis ratio {ratio:.4f}): distances along different "
+                f"the Fourier spot shells are elliptical (axis ratio {ratio:.4f}, ellipticity "
+                f"{ell['ellipticity']:.4f} +- {ell['ellipticity_se']:.4f}): distances along different "
                 f"directions differ by {100 * (ratio - 1):.2f} %; suspect scan distortion, drift or an anisotropic "
                 "pixel size, and treat tau-ratio deviations of that size with care"
             )
