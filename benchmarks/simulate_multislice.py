@@ -25,7 +25,8 @@ lambda / (4 alpha). They are written to ``benchmarks/data/multislice_decagonal.n
 parameters. ``tenfold.analysis.synthetic.multislice_sample`` tiles it to any image size and pixel size and adds
 Poisson noise.
 
-Run (about 3 min per configuration on 2 cores)::
+Needs abTEM and ASE (``pip install abtem ase``; not Tenfold dependencies: the cached .npz is all the stress matrix
+and the tests read). Run (about 3 min per configuration on 2 cores)::
 
     python benchmarks/simulate_multislice.py                    # both runs, writes the .npz
     python benchmarks/simulate_multislice.py --configs 3 --repeats 5

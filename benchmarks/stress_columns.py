@@ -125,8 +125,17 @@ def run_cell(name: str, cond: S.StressCondition | None = None, *, trackpy: bool 
                            params["sigma_px"], dark=cond.dark, trackpy=trackpy)
 
 
-def _find_and_score(row, img, truth, pixel_size_nm, closest_px, sigma_px, *, dark, trackpy) -> dict:
-    """``find_columns`` with its defaults, scored against the truth; ``trackpy.locate`` timed on the same image."""
+def _inside(table: pd.DataFrame, shape, margin_px: float) -> np.ndarray:
+    x, y = table["x_px"].to_numpy(float), table["y_px"].to_numpy(float)
+    return ((x >= margin_px) & (x <= shape[1] - 1 - margin_px) & (y >= margin_px) & (y <= shape[0] - 1 - margin_px))
+
+
+def _find_and_score(row, img, truth, pixel_size_nm, closest_px, sigma_px, *, dark, trackpy,
+                    margin_px: float = 0.0) -> dict:
+    """``find_columns`` with its defaults, scored against the truth; ``trackpy.locate`` timed on the same image.
+
+    With ``margin_px``, true and found columns closer than that to the border are left out of the score.
+    """
     error = ""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -141,6 +150,11 @@ def _find_and_score(row, img, truth, pixel_size_nm, closest_px, sigma_px, *, dar
     row["n_warnings"] = len(caught)
     row["n_notes"] = len(info.get("notes", [])) if isinstance(info, dict) else 0
     row["error"] = error
+    if margin_px > 0:
+        truth = truth[_inside(truth, img.shape, margin_px)].reset_index(drop=True)
+        if len(found):
+            found = found[_inside(found, img.shape, margin_px)].reset_index(drop=True)
+        row["n_true"] = len(truth)
     score = S.score_columns(found, truth, match_radius_px=0.5 * closest_px)
     for k, v in score.items():
         if isinstance(v, dict):
@@ -188,8 +202,12 @@ def run_multislice_cell(name: str, *, trackpy: bool = True) -> dict:
            "build_s": time.perf_counter() - t0}
     offset = np.hypot(truth["peak_dx_px"], truth["peak_dy_px"]) * MS_PIXEL_NM * 1e3
     row["peak_offset_pm_max"] = float(offset.max())
+    row["peak_offset_bound_max"] = float(np.max(offset / (truth["crlb_px"] * MS_PIXEL_NM * 1e3)))
+    # the field is a window into an infinite crystal: columns within 3 sigma + 1 px of the border (as the Gaussian
+    # cells leave empty) are left out of the score on both sides
+    margin = 3.0 * sigma_px + 1.0
     return _find_and_score(row, img, truth, params["pixel_size_nm"], params["closest_spacing_px"], sigma_px,
-                           dark=False, trackpy=trackpy)
+                           dark=False, trackpy=trackpy, margin_px=margin)
 
 
 def _options(cond: S.StressCondition) -> str:
