@@ -397,16 +397,31 @@ def _ellipticity(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> dict:
     H. White, Econometrica 48 (1980) 817-838 (heteroscedasticity-consistent covariance);
     J. G. MacKinnon, H. White, J. Econometrics 29 (1985) 305-325 (HC1 small-sample factor n / (n - p)).
     """
+    out = {"ellipticity": float("nan"), "ellipticity_se": float("nan"), "ellipticity_chi2": float("nan"),
+           "significant": False, "n_fit_spots": int(len(kx))}
+    vec = _ellipticity_vector(kx, ky, weight)
+    if vec is None:
+        return out
+    e, ce = vec
+    try:
+        chi2 = float(e @ np.linalg.solve(ce, e))
+    except np.linalg.LinAlgError:
+        chi2 = float("nan")
+    out.update(ellipticity=float(np.hypot(*e)), ellipticity_se=float(np.sqrt(max(np.trace(ce), 0.0) / 2.0)),
+               ellipticity_chi2=chi2, significant=bool(np.isfinite(chi2) and chi2 > _ELLIPSE_CHI2))
+    return out
+
+
+def _ellipticity_vector(kx, ky, weight):
+    """``e`` and its HC1 covariance (see :func:`_ellipticity`), or None with too few spots."""
     sw = np.sqrt(weight)
     a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1)
     aw = a * sw[:, None]
     sol, *_ = np.linalg.lstsq(aw, sw, rcond=None)
     n, p = len(kx), 3
-    out = {"ellipticity": float("nan"), "ellipticity_se": float("nan"), "ellipticity_chi2": float("nan"),
-           "significant": False, "n_fit_spots": int(n)}
     tr = 0.5 * (sol[0] + sol[2])
     if n <= p or tr <= 0:
-        return out
+        return None
     resid = (1.0 - a @ sol) * weight  # weighted residual scores r_i w_i
     bread = np.linalg.pinv(aw.T @ aw)
     meat = (a * resid[:, None]).T @ (a * resid[:, None])
@@ -415,14 +430,56 @@ def _ellipticity(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> dict:
     # Jacobian of e with respect to (M11, M12, M22)
     jac = np.array([[0.5 / tr - e[0] * 0.5 / tr, 0.0, -0.5 / tr - e[0] * 0.5 / tr],
                     [-e[1] * 0.5 / tr, 1.0 / tr, -e[1] * 0.5 / tr]])
-    ce = jac @ cov @ jac.T
-    try:
-        chi2 = float(e @ np.linalg.solve(ce, e))
-    except np.linalg.LinAlgError:
-        chi2 = float("nan")
-    out.update(ellipticity=float(np.hypot(*e)), ellipticity_se=float(np.sqrt(max(np.trace(ce), 0.0) / 2.0)),
-               ellipticity_chi2=chi2, significant=bool(np.isfinite(chi2) and chi2 > _ELLIPSE_CHI2))
+    return e, jac @ cov @ jac.T
+
+
+def _shell_consistency(kx, ky, weight, shell) -> dict:
+    """Whether every shell is the same ellipse, as an affine scan distortion makes them.
+
+    Per shell (at least 6 spots in 3 directions) the ellipticity vector and its covariance; heterogeneity
+    ``chi2 = sum_s (e_s - e_mean)^T C_s^-1 (e_s - e_mean)`` (inverse-covariance weighted mean) with 2 (S - 1)
+    degrees of freedom. A periodic approximant's shells deviate from circles shell by shell (its reciprocal lattice
+    is not ten-fold), a distortion deforms them all alike (k' = D^-T k).
+
+    References
+    ----------
+    W. G. Cochran, Biometrics 10 (1954) 101 (the homogeneity chi-square of several estimates).
+    """
+    from scipy.stats import chi2 as _chi2
+
+    es, inv = [], []
+    for sid in np.unique(shell):
+        sel = shell == sid
+        dirs = np.unique(np.round(np.degrees(np.arctan2(ky[sel], kx[sel])) % 180.0))
+        if sel.sum() < 6 or len(dirs) < 3:
+            continue
+        vec = _ellipticity_vector(kx[sel], ky[sel], weight[sel])
+        if vec is None:
+            continue
+        try:
+            inv.append(np.linalg.inv(vec[1]))
+        except np.linalg.LinAlgError:
+            continue
+        es.append(vec[0])
+    out = {"n_shells_tested": len(es), "heterogeneity_chi2": None, "heterogeneity_p": None, "consistent": True}
+    if len(es) < 2:
+        return out
+    es, inv = np.array(es), np.array(inv)
+    mean = np.linalg.solve(inv.sum(axis=0), np.einsum("sij,sj->i", inv, es))
+    d = es - mean
+    chi2 = float(np.einsum("si,sij,sj->", d, inv, d))
+    p = float(_chi2.sf(chi2, 2 * (len(es) - 1)))
+    # refined spots are precise enough to resolve 1e-5 differences between shells; what a distortion cannot make
+    # is shells whose ellipses differ by a sizeable part of the ellipticity itself
+    scatter = float(np.sqrt(np.mean(np.sum(d**2, axis=1))) / max(np.hypot(*mean), 1e-12))
+    out.update(heterogeneity_chi2=chi2, heterogeneity_p=p, relative_scatter=scatter,
+               consistent=bool(p > 1e-3 or scatter <= _SHELL_SCATTER))
     return out
+
+
+#: largest rms difference between the shells' ellipticity vectors, relative to their mean, that still counts as one
+#: ellipse (an affine distortion gives the same ellipse to every shell; Tenfold's choice, not a published value)
+_SHELL_SCATTER = 0.25
 
 
 #: chi-square (2 degrees of freedom) above which a shell ellipse counts as measured: tail probability 0.001.
@@ -508,6 +565,7 @@ def analyze_fourier(
             info["distortion_source"] = "indexing"
             info["basis_nm_inv"] = idx["basis_nm_inv"]
             info["orientation_deg"] = idx["orientation_deg"]
+            _shell_note_against_indexing(info, distortion_warn)
     elif order in (2, 4, 6) and len(spots) >= 2:
         info["lattice"] = _best_lattice(every, n_image, pixel_size_nm)
         info["notes"].append(
@@ -515,6 +573,30 @@ def analyze_fourier(
             "indexing does not apply"
         )
     return conform(every, SPOTS), info
+
+
+def _shell_note_against_indexing(info: dict, distortion_warn: float) -> None:
+    """Withdraw the shell-ellipse note when the decagonal indexing finds no distortion of that size.
+
+    The shell ellipse takes every departure from circles for a distortion. The indexing separates the two
+    causes: a distortion moves spots in proportion to ``g_par`` (the B term), a linear phason strain, which is what
+    makes a periodic approximant, in proportion to ``g_perp`` (the C term; Lubensky et al. 1986). When B holds no
+    distortion above ``distortion_warn`` and 3 standard errors, the shells' ellipticity is the phason term's.
+    """
+    dist = info.get("distortion")
+    if not dist or not dist.get("warning"):
+        return
+    corr = np.asarray(info["indexing"]["distortion_matrix"], dtype=float)
+    sv = np.linalg.svd(corr, compute_uv=False)
+    significant, _ = _distortion_significant(info)
+    if sv[0] / sv[1] - 1.0 > distortion_warn and significant:
+        return
+    dist["warning"] = False
+    info["notes"] = [n for n in info["notes"] if "shells are elliptical" not in n]
+    info["notes"].append(
+        f"the Fourier spot shells are elliptical (axis ratio {dist['axis_ratio']:.4f}), but the decagonal indexing "
+        f"finds the scan distortion at {sv[0] / sv[1]:.4f} and puts the rest into the phason term (a periodic "
+        "approximant or a phason strain), not a scan distortion")
 
 
 def _upper_from_metric(metric: np.ndarray) -> np.ndarray:
@@ -580,7 +662,7 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     # A distortion turns shells into ellipses and smears them in |k|, so shells are re-split in the metric the
     # current ellipse fit corrects (q^2 = k^T M k with det M = 1), and the fit repeated until it settles.
     metric = np.eye(2)
-    fit = fit_spots = None
+    fit = fit_spots = fit_shells = None
     for _ in range(4):
         q = np.sqrt(np.einsum("ni,ij,nj->n", np.stack([kx_all, ky_all], 1), metric, np.stack([kx_all, ky_all], 1)))
         shell_ids = _split_shells(q, min_gap)
@@ -599,6 +681,7 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
             break
         fit = new_fit
         fit_spots = (kx, ky, w[sel])
+        fit_shells = shell_ids[sel]
         m = _ellipse_matrix(kx, ky, w[sel])
         metric_new = m / np.sqrt(np.linalg.det(m))
         if np.allclose(metric_new, metric, atol=1e-5):
@@ -610,8 +693,10 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     if fit is not None:
         ratio, angle = fit
         ell = _ellipticity(*fit_spots)
-        # a note needs both: a size worth worrying about and a measurement that is not the shells' own scatter
-        warn = ratio - 1.0 > distortion_warn and ell["significant"]
+        same = _shell_consistency(*fit_spots, fit_shells)
+        # a note needs all three: a size worth worrying about, a measurement that is not the shells' own scatter,
+        # and one ellipse for every shell (a distortion's signature; an approximant's shells differ)
+        warn = ratio - 1.0 > distortion_warn and ell["significant"] and same["consistent"]
         info["distortion"] = {
             "axis_ratio": ratio,
             "major_axis_deg": angle,
@@ -619,13 +704,21 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
             "metric": metric.tolist(),
             "warning": bool(warn),
             **ell,
+            "shells": same,
         }
+        if ratio - 1.0 > distortion_warn and ell["significant"] and not same["consistent"]:
+            info["notes"].append(
+                f"the Fourier spot shells deviate from circles (axis ratio {ratio:.4f}) but differently from shell "
+                f"to shell (heterogeneity chi-square {same['heterogeneity_chi2']:.0f} for "
+                f"{2 * (same['n_shells_tested'] - 1)} degrees of freedom): a structural anisotropy such as a "
+                "periodic approximant, not the one ellipse a scan distortion would make")
         if warn:
             info["notes"].append(
                 f"the Fourier spot shells are elliptical (axis ratio {ratio:.4f}, ellipticity "
                 f"{ell['ellipticity']:.4f} +- {ell['ellipticity_se']:.4f}): distances along different "
                 f"directions differ by {100 * (ratio - 1):.2f} %; suspect scan distortion, drift or an anisotropic "
-                "pixel size, and treat tau-ratio deviations of that size with care"
+                "pixel size (or, in a periodic approximant, its own anisotropic cell: one image cannot tell them "
+                "apart), and treat tau-ratio deviations of that size with care"
             )
     else:
         info["notes"].append("too few symmetric Fourier spot shells: scan distortion not estimated")
