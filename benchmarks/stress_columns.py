@@ -6,6 +6,12 @@ Every cell is a synthetic image from ``synthetic.stress_sample`` (structures and
 the imaging mode, no other hint) and ``trackpy.locate`` on the same image for the time ratio, and scores the table
 with ``synthetic.score_columns`` against the truth and the exact pixel Fisher bound (``synthetic.crlb_columns_px``).
 
+The six multislice cells (``ms_{phonon,static}_{low,moderate,high}``) tile the cached abTEM simulation of
+``benchmarks/data/multislice_decagonal.npz`` (``benchmarks/simulate_multislice.py``; ``synthetic.multislice_sample``)
+and are scored the same way, against the atom positions (static) or the noise-free peaks (frozen phonons), with a
+neighbours-known Fisher bound, leaving out columns within 3 widths + 1 px of the border; see docs/columns.md,
+"Multislice cells". ``--quick`` and ``--full`` include them; ``--multislice`` runs only them.
+
 Targets (issue 10), marked PASS / FAIL / - (not applicable) per cell:
 
 * ``rp``: recall and precision >= 0.995 where the dimmest species' peak SNR >= 5 and spacing >= 3.3 sigma,
@@ -23,6 +29,7 @@ Run (2-core machine; ``nice -n 10`` when others share it)::
     python benchmarks/stress_columns.py --cell dec_broad_2048   # one named cell (repeat --cell for more)
     python benchmarks/stress_columns.py --full --n-random 100   # quick cells + a seeded random draw
     python benchmarks/stress_columns.py --list                  # the named cells and their conditions
+    python benchmarks/stress_columns.py --multislice            # the six multislice cells, ~1 min
 
 Writes ``stress_<set>.csv``, ``stress_<set>.md`` and ``stress_<set>.png`` in ``--out`` (default
 benchmarks/results/).
