@@ -196,9 +196,9 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
     the classification entropy; the k with the smallest ICL wins among the mixtures whose neighbouring classes form
     two peaks of the intensity density (a dip between them; for equal weights and spreads, at least
     ``MERGE_SPREADS`` spreads apart) and whose classes each hold ``MIN_WEIGHT`` of the columns. A species whose
-    intensities are skewed (crowded columns reading brighter, a tail of damaged columns) is fitted better by two
-    overlapping Gaussians, which ICL can prefer at high dose; without a dip they are one species. With fewer than ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is
-    reduced; with fewer than ``2 * MIN_COLUMNS_PER_CLASS`` usable columns every column gets species 0 and a note.
+    intensities are skewed (crowded columns reading brighter, a tail of damaged columns) can be fitted better by
+    two overlapping Gaussians; without a dip between them they are one species. With fewer than
+    ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is reduced; with fewer than ``2 * MIN_COLUMNS_PER_CLASS`` usable columns every column gets species 0 and a note.
 
     References
     ----------

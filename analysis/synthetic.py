@@ -2239,10 +2239,12 @@ def multislice_sample(cell: MultisliceCell, *, size_px: int, pixel_size_nm: floa
     # Laplacian / 2 = -A / s^2 at its centre
     dim_sp = min(peaks, key=peaks.get)
     sel = species == dim_sp
-    sig = np.sqrt((per_px * offs["peak"].to_numpy()[sel] - floor) / (per_px * offs["curvature_per_nm2"].to_numpy()[sel]))
+    peak_counts = per_px * offs["peak"].to_numpy()[sel]
+    sig = np.sqrt((peak_counts - floor) / (per_px * offs["curvature_per_nm2"].to_numpy()[sel]))
     params = {
         "sigma_nm": float(np.median(sig)),
-        "run": run, "truth_at": truth_at, "dose_e_per_A2": dose, "electrons_per_px": per_px, "pixel_size_nm": ps, "size_px": n,
+        "run": run, "truth_at": truth_at, "dose_e_per_A2": dose, "electrons_per_px": per_px, "pixel_size_nm": ps,
+        "size_px": n,
         "origin_nm": list(origin_nm), "peaks_by_species": peaks, "lowest_level": floor,
         "snr_dim": float((dim - floor) / math.sqrt(dim)), "closest_spacing_px": float(nn.min()),
         "n_columns": int(len(xp)), "n_species": int(len(peaks)), "simulation": cell.params,

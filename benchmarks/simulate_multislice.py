@@ -21,7 +21,8 @@ The image of a periodic specimen is a Fourier series over the reciprocal lattice
 image is band-limited to 2 alpha / lambda (twice the probe aperture), so the coefficients of the sampled cell
 (``numpy.fft.fft2`` / N^2) up to that cut-off are the whole image when the scan step is below
 lambda / (4 alpha). They are written to ``benchmarks/data/multislice_decagonal.npz`` (see
-``tenfold.analysis.synthetic.load_multislice_cell`` for the keys) with the truth (projected atom positions; cluster centre as an offset from the column) and the
+``tenfold.analysis.synthetic.load_multislice_cell`` for the keys) with the truth (projected atom positions; cluster
+centre as an offset from the column; mean frozen-phonon displacement per column) and the
 parameters. ``tenfold.analysis.synthetic.multislice_sample`` tiles it to any image size and pixel size and adds
 Poisson noise.
 

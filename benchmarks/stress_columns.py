@@ -204,7 +204,8 @@ def run_multislice_cell(name: str, *, trackpy: bool = True) -> dict:
     sigma_px = params["sigma_nm"] / MS_PIXEL_NM
     row = {"cell": name, "structure": "multislice_decagonal", "size_px": MS_SIZE_PX, "n_true": len(truth),
            "sigma_px": sigma_px, "spacing_over_sigma": params["closest_spacing_px"] / sigma_px,
-           "snr_dim": params["snr_dim"], "dim_ratio": float("nan"), "peak_counts": max(params["peaks_by_species"].values()),
+           "snr_dim": params["snr_dim"], "dim_ratio": float("nan"),
+           "peak_counts": max(params["peaks_by_species"].values()),
            "options": f"{MULTISLICE_CELLS[name][0]} {params['dose_e_per_A2']:.0e} e/A2",
            "build_s": time.perf_counter() - t0}
     offset = np.hypot(truth["peak_dx_px"], truth["peak_dy_px"]) * MS_PIXEL_NM * 1e3
