@@ -22,12 +22,14 @@ D. R. Nelson and B. I. Halperin, Phys. Rev. B 19 (1979) 2457 (bond-orientational
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 import pandas as pd
 from scipy import ndimage
 
 from ._errors import TenfoldInputError
+from .phason import strain_summary
 from ._schema import SPOTS, conform, empty_table
 
 __all__ = ["power_spectrum", "find_spots", "analyze_fourier", "index_decagonal", "correct_columns", "fourier_stage",
@@ -71,7 +73,8 @@ def _periodic_component(u: np.ndarray) -> np.ndarray:
     return u - np.fft.ifft2(sh).real.astype(u.dtype)
 
 
-def _power(image: np.ndarray, valid: np.ndarray | None, window: str = "hann") -> np.ndarray:
+def _windowed(image: np.ndarray, valid: np.ndarray | None, window: str = "hann") -> np.ndarray:
+    """The central square, mean removed, masked pixels zero, Hann-windowed or its periodic component (float32)."""
     if window not in WINDOWS:
         raise TenfoldInputError(f"power spectrum: unknown window {window!r}; use one of {list(WINDOWS)}")
     crop, ok = _square_crop(image, valid)
@@ -85,6 +88,13 @@ def _power(image: np.ndarray, valid: np.ndarray | None, window: str = "hann") ->
         work *= w[None, :]
     else:
         work = _periodic_component(work)
+    return work
+
+
+def _power(image: np.ndarray, valid: np.ndarray | None, window: str = "hann", *, work=None) -> np.ndarray:
+    if work is None:
+        work = _windowed(image, valid, window)
+    n = work.shape[0]
     # real input: the half-plane transform and Friedel symmetry P(-k) = P(k) give the whole plane at half the cost
     from scipy import fft as _fft
 
@@ -171,7 +181,8 @@ def find_spots(
     DataFrame
         ``_schema.SPOTS`` columns: spot_id, kx_per_px, ky_per_px, k_per_nm, d_nm, d_px, angle_deg, strength, shell.
     """
-    p = _power(image, valid, window)
+    work = _windowed(image, valid, window)
+    p = _power(image, valid, window, work=work)
     n = p.shape[0]
     c = n // 2
     ax = (np.arange(n) - c).astype(np.float32)
@@ -208,6 +219,7 @@ def find_spots(
     dy = offset(amp[py - 1, px], amp[py, px], amp[py + 1, px])
     kx = (px + dx - c) / n
     ky = (py + dy - c) / n
+    kx, ky = _refine_peaks(work, kx, ky)
     k = np.hypot(kx, ky)
     strength = np.exp(excess[py, px])
 
@@ -228,6 +240,51 @@ def find_spots(
         }
     )
     return conform(_unindexed(df), SPOTS)
+
+
+#: zoom steps of the spot refinement, in frequency bins: a 3 x 3 stencil at each spacing (one step suffices: the
+#: two-bin start is within a few hundredths of a bin, where the log power is a parabola to well under 1e-3 bin)
+_ZOOM_BINS = (0.2,)
+#: the refinement costs 6 n^2 per spot; above this side (px) the spots keep the two-bin estimate (the bins are then
+#: narrow enough that a few hundredths of a bin are below the phason shifts measured; docs/fourier.md)
+_REFINE_MAX_SIDE = 2048
+
+
+def _refine_peaks(work: np.ndarray, kx: np.ndarray, ky: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Spot positions refined on the continuous spectrum of the windowed image (no bin grid).
+
+    The two-bin estimate is exact only for one plane wave alone in its bins; a quasicrystal's spots have
+    neighbours (weak ones beside strong ones, Z-module spots closer than a few bins), whose leakage moves it by a
+    few hundredths of a bin, which is the size of a phason shift ``W^T g_perp`` of a weak spot. Here ``|F(k)|^2``
+    of the windowed image is evaluated off the grid on a 3 x 3 stencil around each spot (the DFT at arbitrary k,
+    separable: one matrix product for all spots), the peak taken from a parabola through the log power, and
+    the stencil shrunk (``_ZOOM_BINS``).
+    """
+    n = work.shape[0]
+    if len(kx) == 0 or n > _REFINE_MAX_SIDE:
+        return kx, ky
+    pos = np.arange(n, dtype=np.float64)
+    kx, ky = kx.astype(np.float64).copy(), ky.astype(np.float64).copy()
+    w32 = np.asarray(work, dtype=np.float32)
+    for step_bins in _ZOOM_BINS:
+        t = np.array([-1.0, 0.0, 1.0]) * step_bins / n
+        ex = np.exp(-2j * np.pi * (kx[:, None, None] + t[None, :, None]) * pos).astype(np.complex64)  # (S, 3, n)
+        ey = np.exp(-2j * np.pi * (ky[:, None, None] + t[None, :, None]) * pos).astype(np.complex64)
+        e2 = ex.reshape(-1, n).T
+        g = (w32 @ np.ascontiguousarray(e2.real)) + 1j * (w32 @ np.ascontiguousarray(e2.imag))  # (n, 3 S)
+        g = g.reshape(n, len(kx), 3).transpose(1, 0, 2)  # (S, n, 3)
+        f = np.einsum("san,snb->sab", ey, g)  # (S, 3 ky, 3 kx)
+        lp = np.log(np.maximum(np.abs(f) ** 2, 1e-300))
+
+        def vertex(lo, mid, hi):
+            den = lo - 2 * mid + hi
+            with np.errstate(divide="ignore", invalid="ignore"):
+                d = np.where(den < 0, 0.5 * (lo - hi) / den, 0.0)
+            return np.clip(d, -1.0, 1.0)
+
+        kx = kx + vertex(lp[:, 1, 0], lp[:, 1, 1], lp[:, 1, 2]) * step_bins / n
+        ky = ky + vertex(lp[:, 0, 1], lp[:, 1, 1], lp[:, 2, 1]) * step_bins / n
+    return kx, ky
 
 
 def _hann_offset(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.ndarray:
@@ -324,6 +381,111 @@ def _ellipse(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> tuple[float,
     return ratio, angle
 
 
+def _ellipticity(kx: np.ndarray, ky: np.ndarray, weight: np.ndarray) -> dict:
+    """Ellipticity of ``k^T M k = 1`` with its standard error from the scatter of the spots about the ellipse.
+
+    The deviatoric part of ``M`` relative to its mean eigenvalue, ``e = ((M11 - M22) / 2, M12) / (tr M / 2)``,
+    has length ``|e| ~ ratio - 1`` for small distortions. Its covariance comes from a heteroscedasticity-robust
+    (HC1 sandwich) covariance of the weighted least-squares coefficients: the residuals are whatever keeps the spots
+    off one ellipse (centroiding noise, an approximant's shells that are not circles, shells assigned across
+    families), so the error is measured, not assumed. ``chi2 = e^T C^-1 e`` has two degrees of freedom when the
+    shells are circles; the ellipticity is significant when its tail probability is below 0.001
+    (``chi2 > 13.8``).
+
+    References
+    ----------
+    H. White, Econometrica 48 (1980) 817-838 (heteroscedasticity-consistent covariance);
+    J. G. MacKinnon, H. White, J. Econometrics 29 (1985) 305-325 (HC1 small-sample factor n / (n - p)).
+    """
+    out = {"ellipticity": float("nan"), "ellipticity_se": float("nan"), "ellipticity_chi2": float("nan"),
+           "significant": False, "n_fit_spots": int(len(kx))}
+    vec = _ellipticity_vector(kx, ky, weight)
+    if vec is None:
+        return out
+    e, ce = vec
+    try:
+        chi2 = float(e @ np.linalg.solve(ce, e))
+    except np.linalg.LinAlgError:
+        chi2 = float("nan")
+    out.update(ellipticity=float(np.hypot(*e)), ellipticity_se=float(np.sqrt(max(np.trace(ce), 0.0) / 2.0)),
+               ellipticity_chi2=chi2, significant=bool(np.isfinite(chi2) and chi2 > _ELLIPSE_CHI2))
+    return out
+
+
+def _ellipticity_vector(kx, ky, weight):
+    """``e`` and its HC1 covariance (see :func:`_ellipticity`), or None with too few spots."""
+    sw = np.sqrt(weight)
+    a = np.stack([kx**2, 2 * kx * ky, ky**2], axis=1)
+    aw = a * sw[:, None]
+    sol, *_ = np.linalg.lstsq(aw, sw, rcond=None)
+    n, p = len(kx), 3
+    tr = 0.5 * (sol[0] + sol[2])
+    if n <= p or tr <= 0:
+        return None
+    resid = (1.0 - a @ sol) * weight  # weighted residual scores r_i w_i
+    bread = np.linalg.pinv(aw.T @ aw)
+    meat = (a * resid[:, None]).T @ (a * resid[:, None])
+    cov = bread @ meat @ bread * n / (n - p)
+    e = np.array([0.5 * (sol[0] - sol[2]), sol[1]]) / tr
+    # Jacobian of e with respect to (M11, M12, M22)
+    jac = np.array([[0.5 / tr - e[0] * 0.5 / tr, 0.0, -0.5 / tr - e[0] * 0.5 / tr],
+                    [-e[1] * 0.5 / tr, 1.0 / tr, -e[1] * 0.5 / tr]])
+    return e, jac @ cov @ jac.T
+
+
+def _shell_consistency(kx, ky, weight, shell) -> dict:
+    """Whether every shell is the same ellipse, as an affine scan distortion makes them.
+
+    Per shell (at least 6 spots in 3 directions) the ellipticity vector and its covariance; heterogeneity
+    ``chi2 = sum_s (e_s - e_mean)^T C_s^-1 (e_s - e_mean)`` (inverse-covariance weighted mean) with 2 (S - 1)
+    degrees of freedom. A periodic approximant's shells deviate from circles shell by shell (its reciprocal lattice
+    is not ten-fold), a distortion deforms them all alike (k' = D^-T k).
+
+    References
+    ----------
+    W. G. Cochran, Biometrics 10 (1954) 101 (the homogeneity chi-square of several estimates).
+    """
+    from scipy.stats import chi2 as _chi2
+
+    es, inv = [], []
+    for sid in np.unique(shell):
+        sel = shell == sid
+        dirs = np.unique(np.round(np.degrees(np.arctan2(ky[sel], kx[sel])) % 180.0))
+        if sel.sum() < 6 or len(dirs) < 3:
+            continue
+        vec = _ellipticity_vector(kx[sel], ky[sel], weight[sel])
+        if vec is None:
+            continue
+        try:
+            inv.append(np.linalg.inv(vec[1]))
+        except np.linalg.LinAlgError:
+            continue
+        es.append(vec[0])
+    out = {"n_shells_tested": len(es), "heterogeneity_chi2": None, "heterogeneity_p": None, "consistent": True}
+    if len(es) < 2:
+        return out
+    es, inv = np.array(es), np.array(inv)
+    mean = np.linalg.solve(inv.sum(axis=0), np.einsum("sij,sj->i", inv, es))
+    d = es - mean
+    chi2 = float(np.einsum("si,sij,sj->", d, inv, d))
+    p = float(_chi2.sf(chi2, 2 * (len(es) - 1)))
+    # refined spots are precise enough to resolve 1e-5 differences between shells; what a distortion cannot make
+    # is shells whose ellipses differ by a sizeable part of the ellipticity itself
+    scatter = float(np.sqrt(np.mean(np.sum(d**2, axis=1))) / max(np.hypot(*mean), 1e-12))
+    out.update(heterogeneity_chi2=chi2, heterogeneity_p=p, relative_scatter=scatter,
+               consistent=bool(p > 1e-3 or scatter <= _SHELL_SCATTER))
+    return out
+
+
+#: largest rms difference between the shells' ellipticity vectors, relative to their mean, that still counts as one
+#: ellipse (an affine distortion gives the same ellipse to every shell; Tenfold's choice, not a published value)
+_SHELL_SCATTER = 0.25
+
+
+#: chi-square (2 degrees of freedom) above which a shell ellipse counts as measured: tail probability 0.001.
+_ELLIPSE_CHI2 = -2.0 * math.log(1e-3)
+
+
 def analyze_fourier(
     image: np.ndarray,
     *,
@@ -403,6 +565,7 @@ def analyze_fourier(
             info["distortion_source"] = "indexing"
             info["basis_nm_inv"] = idx["basis_nm_inv"]
             info["orientation_deg"] = idx["orientation_deg"]
+            _shell_note_against_indexing(info, distortion_warn)
     elif order in (2, 4, 6) and len(spots) >= 2:
         info["lattice"] = _best_lattice(every, n_image, pixel_size_nm)
         info["notes"].append(
@@ -410,6 +573,30 @@ def analyze_fourier(
             "indexing does not apply"
         )
     return conform(every, SPOTS), info
+
+
+def _shell_note_against_indexing(info: dict, distortion_warn: float) -> None:
+    """Withdraw the shell-ellipse note when the decagonal indexing finds no distortion of that size.
+
+    The shell ellipse takes every departure from circles for a distortion. The indexing separates the two
+    causes: a distortion moves spots in proportion to ``g_par`` (the B term), a linear phason strain, which is what
+    makes a periodic approximant, in proportion to ``g_perp`` (the C term; Lubensky et al. 1986). When B holds no
+    distortion above ``distortion_warn`` and 3 standard errors, the shells' ellipticity is the phason term's.
+    """
+    dist = info.get("distortion")
+    if not dist or not dist.get("warning"):
+        return
+    corr = np.asarray(info["indexing"]["distortion_matrix"], dtype=float)
+    sv = np.linalg.svd(corr, compute_uv=False)
+    significant, _ = _distortion_significant(info)
+    if sv[0] / sv[1] - 1.0 > distortion_warn and significant:
+        return
+    dist["warning"] = False
+    info["notes"] = [n for n in info["notes"] if "shells are elliptical" not in n]
+    info["notes"].append(
+        f"the Fourier spot shells are elliptical (axis ratio {dist['axis_ratio']:.4f}), but the decagonal indexing "
+        f"finds the scan distortion at {sv[0] / sv[1]:.4f} and puts the rest into the phason term (a periodic "
+        "approximant or a phason strain), not a scan distortion")
 
 
 def _upper_from_metric(metric: np.ndarray) -> np.ndarray:
@@ -475,7 +662,7 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     # A distortion turns shells into ellipses and smears them in |k|, so shells are re-split in the metric the
     # current ellipse fit corrects (q^2 = k^T M k with det M = 1), and the fit repeated until it settles.
     metric = np.eye(2)
-    fit = None
+    fit = fit_spots = fit_shells = None
     for _ in range(4):
         q = np.sqrt(np.einsum("ni,ij,nj->n", np.stack([kx_all, ky_all], 1), metric, np.stack([kx_all, ky_all], 1)))
         shell_ids = _split_shells(q, min_gap)
@@ -493,6 +680,8 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
         if new_fit is None:
             break
         fit = new_fit
+        fit_spots = (kx, ky, w[sel])
+        fit_shells = shell_ids[sel]
         m = _ellipse_matrix(kx, ky, w[sel])
         metric_new = m / np.sqrt(np.linalg.det(m))
         if np.allclose(metric_new, metric, atol=1e-5):
@@ -503,19 +692,33 @@ def _order_and_shells(spots: pd.DataFrame, image, pixel_size_nm, distortion_warn
     info["rotational_order"] = order
     if fit is not None:
         ratio, angle = fit
-        warn = ratio - 1.0 > distortion_warn
+        ell = _ellipticity(*fit_spots)
+        same = _shell_consistency(*fit_spots, fit_shells)
+        # a note needs all three: a size worth worrying about, a measurement that is not the shells' own scatter,
+        # and one ellipse for every shell (a distortion's signature; an approximant's shells differ)
+        warn = ratio - 1.0 > distortion_warn and ell["significant"] and same["consistent"]
         info["distortion"] = {
             "axis_ratio": ratio,
             "major_axis_deg": angle,
             "shells_used": [sh["shell"] for sh in used],
             "metric": metric.tolist(),
             "warning": bool(warn),
+            **ell,
+            "shells": same,
         }
+        if ratio - 1.0 > distortion_warn and ell["significant"] and not same["consistent"]:
+            info["notes"].append(
+                f"the Fourier spot shells deviate from circles (axis ratio {ratio:.4f}) but differently from shell "
+                f"to shell (heterogeneity chi-square {same['heterogeneity_chi2']:.0f} for "
+                f"{2 * (same['n_shells_tested'] - 1)} degrees of freedom): a structural anisotropy such as a "
+                "periodic approximant, not the one ellipse a scan distortion would make")
         if warn:
             info["notes"].append(
-                f"the Fourier spot shells are elliptical (axis ratio {ratio:.4f}): distances along different "
+                f"the Fourier spot shells are elliptical (axis ratio {ratio:.4f}, ellipticity "
+                f"{ell['ellipticity']:.4f} +- {ell['ellipticity_se']:.4f}): distances along different "
                 f"directions differ by {100 * (ratio - 1):.2f} %; suspect scan distortion, drift or an anisotropic "
-                "pixel size, and treat tau-ratio deviations of that size with care"
+                "pixel size (or, in a periodic approximant, its own anisotropic cell: one image cannot tell them "
+                "apart), and treat tau-ratio deviations of that size with care"
             )
     else:
         info["notes"].append("too few symmetric Fourier spot shells: scan distortion not estimated")
@@ -723,7 +926,9 @@ def index_decagonal(
         JSON-safe: ``ok``, ``n_indexed``, ``n_spots``, ``basis_per_px``, ``basis_nm_inv``, ``orientation_deg``
         (+ ``_se``), ``tau_scale`` ('real_space' or 'intensity'), ``distortion_matrix`` (2x2, unit determinant) and
         ``distortion_matrix_se``, ``scale_x_over_y``, ``shear``, ``phason`` (``strain_matrix``,
-        ``strain_matrix_se``, ``singular_values``, ``singular_values_se``, ``n_used``), ``rms_index_error``, ``notes``.
+        ``strain_matrix_se``, ``singular_values`` (noise bias removed), ``singular_values_plain``,
+        ``singular_values_se``, ``zero_chi2``, ``zero_p``, ``significant``, ``n_used``; see
+        :func:`.phason.strain_summary`), ``rms_index_error``, ``notes``.
 
     Notes
     -----
@@ -868,7 +1073,6 @@ def index_decagonal(
     out["g_perp_nm_inv"] = gperp_abs / ps if ps else np.nan
     corr = dec["correction"]
     strain = dec["strain"]
-    sv = np.linalg.svd(strain, compute_uv=False)
     u = dec["u"]
     info.update({
         "ok": True,
@@ -886,7 +1090,7 @@ def index_decagonal(
         "phason": {
             "strain_matrix": strain.tolist(),
             "strain_matrix_se": unc["strain_se"].tolist(),
-            "singular_values": sv.tolist(),
+            **strain_summary(strain, unc["strain_se"]),
             "singular_values_se": unc["sv_se"].tolist(),
             "n_used": int(use.sum()),
             "fitted": bool(phason_fit),

@@ -124,12 +124,46 @@ def _entropy(x, fit):
     return float(-(post * np.log(np.maximum(post, 1e-300))).sum())
 
 
+#: points on which the density of two neighbouring classes is searched for a dip between their means
+_DIP_GRID = 257
+
+
+def _bimodal_pairs(fit) -> np.ndarray:
+    """For each pair of neighbouring classes: does their two-component density dip between the two means?
+
+    ``f(x) = w1 N(x; m1, s1) + w2 N(x; m2, s2)`` has two peaks exactly when some point between the means lies below
+    the highest value of ``f`` on each side of it; ``f`` is evaluated on a grid between the means (any dip of a
+    two-Gaussian mixture lies there). For equal weights and spreads this is the familiar ``|m1 - m2| > 2 s``; a
+    narrow class on the shoulder of a broad or much more populous one is not a separate peak.
+
+    References
+    ----------
+    C. A. Robertson, J. G. Fryer, Skandinavisk Aktuarietidskrift 52 (1969) 137 (modes of a normal mixture);
+    S. Ray, B. G. Lindsay, Ann. Statist. 33 (2005) 2042 (the ridgeline: modes lie between the component means).
+    """
+    m, s, w = fit["means"], fit["stds"], fit["weights"]
+    if m.size < 2:
+        return np.zeros(0, dtype=bool)
+    t = np.linspace(0.0, 1.0, _DIP_GRID)[None, :]
+    x = m[:-1, None] + t * (m[1:] - m[:-1])[:, None]  # (pairs, grid)
+
+    def comp(i):
+        return w[i, None] / s[i, None] * np.exp(-0.5 * ((x - m[i, None]) / s[i, None]) ** 2)
+
+    f = comp(slice(0, -1)) + comp(slice(1, None))
+    left = np.maximum.accumulate(f, axis=1)
+    right = np.maximum.accumulate(f[:, ::-1], axis=1)[:, ::-1]
+    dip = np.minimum(left, right) - f  # > 0 where the density sits below a higher point on both sides
+    return dip[:, 1:-1].max(axis=1) > 1e-9 * f.max(axis=1)
+
+
 def _separated(fit):
-    """True when every pair of neighbouring classes is at least ``MERGE_SPREADS`` of their smaller spread apart."""
+    """True when every pair of neighbouring classes forms two peaks (:func:`_bimodal_pairs`) and is at least
+    ``MERGE_SPREADS`` of their smaller spread apart."""
     m, s = fit["means"], fit["stds"]
     if m.size < 2:
         return True
-    return bool(np.all(np.diff(m) >= MERGE_SPREADS * np.minimum(s[1:], s[:-1])))
+    return bool(np.all(np.diff(m) >= MERGE_SPREADS * np.minimum(s[1:], s[:-1])) and np.all(_bimodal_pairs(fit)))
 
 
 def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rng=0) -> tuple[pd.DataFrame, dict]:
@@ -159,9 +193,12 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
     Notes
     -----
     BIC = -2 ln L + p ln n with p = 3k - 1 free parameters (k means, k variances, k - 1 weights); ICL = BIC + 2 x
-    the classification entropy; the k with the smallest ICL wins among the mixtures whose neighbouring classes are
-    at least ``MERGE_SPREADS`` spreads apart and whose classes each hold ``MIN_WEIGHT`` of the columns. With fewer than ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is
-    reduced; with fewer than ``2 * MIN_COLUMNS_PER_CLASS`` usable columns every column gets species 0 and a note.
+    the classification entropy; the k with the smallest ICL wins among the mixtures whose neighbouring classes form
+    two peaks of the intensity density (a dip between them; for equal weights and spreads, at least
+    ``MERGE_SPREADS`` spreads apart) and whose classes each hold ``MIN_WEIGHT`` of the columns. A species whose
+    intensities are skewed (crowded columns reading brighter, a tail of damaged columns) can be fitted better by
+    two overlapping Gaussians; without a dip between them they are one species. With fewer than
+    ``MIN_COLUMNS_PER_CLASS`` columns per tried class the largest k is reduced; with fewer than ``2 * MIN_COLUMNS_PER_CLASS`` usable columns every column gets species 0 and a note.
 
     References
     ----------
@@ -228,8 +265,9 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
     rejected = sorted(k for k in bic if k not in eligible)
     if rejected and n_species is None:
         info["notes"].append(f"species: mixtures with {rejected} classes have a class under {100 * MIN_WEIGHT:g} % "
-                             f"of the columns (outliers, not a species) or two classes closer than {MERGE_SPREADS:g} "
-                             "spreads (one species split by noise) and were not chosen; set n_species to force")
+                             f"of the columns (outliers, not a species) or two classes that do not form two peaks "
+                             "of the intensity histogram (one species split by noise or a skewed distribution) and "
+                             "were not chosen; set n_species to force")
     fit = fits[k_best]
     var = fit["stds"] ** 2
     ld = _log_dens(x, fit["means"], var, fit["weights"])
@@ -246,8 +284,8 @@ def classify_species(columns: pd.DataFrame, *, n_species=None, max_species=5, rn
         weights=[float(v) for v in fit["weights"]],
         bic={str(k): float(v) for k, v in bic.items()},
         icl={str(k): float(v) for k, v in icl.items()},
-        criterion="ICL (BIC + 2 x classification entropy), classes at least "
-                  f"{MERGE_SPREADS:g} spreads apart, each holding at least {100 * MIN_WEIGHT:g} % of the columns",
+        criterion="ICL (BIC + 2 x classification entropy), neighbouring classes forming two peaks of the "
+                  f"intensity density, each holding at least {100 * MIN_WEIGHT:g} % of the columns",
         log_likelihood=float(fit["log_likelihood"]),
     )
     return out, info

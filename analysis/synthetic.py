@@ -76,6 +76,14 @@ __all__ = [
     "score_columns",
     "STRESS_CELLS",
     "stress_draw",
+    "MULTISLICE_DOSES",
+    "MultisliceCell",
+    "load_multislice_cell",
+    "multislice_values",
+    "multislice_image",
+    "multislice_peak_offsets",
+    "multislice_columns",
+    "multislice_sample",
 ]
 
 #: Bumped whenever the model or the renderer changes what a given seed produces.
@@ -2000,6 +2008,281 @@ def score_columns(found: pd.DataFrame, truth: pd.DataFrame, *, match_radius_px: 
         sep = float(min(gaps)) if gaps else float("nan")
     out["species_separation"] = sep
     return out
+
+
+# ----------------------------------------------------------------------------------------------------------------
+# Multislice-simulated cells: a cached one-cell Fourier series tiled to any field (benchmarks/simulate_multislice.py)
+# ----------------------------------------------------------------------------------------------------------------
+
+#: Doses of the multislice stress cells, electrons per square Angstrom at the specimen (the trade's unit).
+MULTISLICE_DOSES = {"low": 1e5, "moderate": 1e6, "high": 1e7}
+
+
+@dataclass(frozen=True)
+class MultisliceCell:
+    """A periodic HAADF image held as the Fourier series of one rectangular cell, with its columns.
+
+    Attributes
+    ----------
+    coef : dict of str -> complex ndarray (2H+1, 2K+1)
+        ``coef[run][H + h, K + k]`` multiplies ``exp(2 pi i (k x / a + h y / b))`` (x, y in nm); runs 'static' and
+        'phonon'. Values are fractions of the incident probe intensity reaching the detector.
+    cell_nm : (float, float)
+        a (along x), b (along y).
+    columns : DataFrame
+        ``x_nm, y_nm`` (projected atom positions in the cell), ``species``, ``role``, ``centre_dx_nm,
+        centre_dy_nm`` (cluster centre minus column position; NaN outside clusters), ``phonon_dx_nm,
+        phonon_dy_nm`` (mean displacement of the column's atoms over the frozen-phonon configurations: the
+        finite ensemble leaves each column a few pm off its site, and the phonon image follows it).
+    params : dict
+        The simulation's parameters (energy, angles, thickness, library versions, ...).
+    """
+
+    coef: dict
+    cell_nm: tuple
+    columns: pd.DataFrame
+    params: dict
+
+
+def load_multislice_cell(path) -> MultisliceCell:
+    """Read a cached multislice cell (``.npz`` written by ``benchmarks/simulate_multislice.py``)."""
+    path = Path(path)
+    if not path.is_file():
+        raise TenfoldInputError(f"{path}: no such multislice cell; run benchmarks/simulate_multislice.py to make it")
+    with np.load(path, allow_pickle=False) as z:
+        coef = {k[5:]: z[k].astype(np.complex128) for k in z.files if k.startswith("coef_")}
+        cols = pd.DataFrame({k: z[k] for k in ("x_nm", "y_nm", "species", "role", "centre_dx_nm", "centre_dy_nm")})
+        for k in ("phonon_dx_nm", "phonon_dy_nm"):
+            cols[k] = z[k] if k in z.files else 0.0
+        cell = tuple(float(v) for v in z["cell_nm"])
+        params = json.loads(str(z["params"]))
+    return MultisliceCell(coef=coef, cell_nm=cell, columns=cols, params=params)
+
+
+def _series_axes(cell: MultisliceCell, run: str):
+    if run not in cell.coef:
+        raise TenfoldInputError(f"run={run!r} is not in the multislice cell; choose one of {sorted(cell.coef)}")
+    c = cell.coef[run]
+    h = np.arange(c.shape[0]) - c.shape[0] // 2
+    k = np.arange(c.shape[1]) - c.shape[1] // 2
+    return c, h, k
+
+
+def multislice_values(cell: MultisliceCell, x_nm, y_nm, *, run: str = "phonon", derivative: str = "") -> np.ndarray:
+    """The series (or its derivative 'x', 'y', 'xx', 'xy', 'yy', per nm) at scattered points (nm)."""
+    c, h, k = _series_axes(cell, run)
+    a, b = cell.cell_nm
+    x = np.asarray(x_nm, dtype=float).ravel()
+    y = np.asarray(y_nm, dtype=float).ravel()
+    fx = np.exp(2j * np.pi * np.outer(x, k) / a)  # (N, K)
+    fy = np.exp(2j * np.pi * np.outer(y, h) / b)  # (N, H)
+    fx = fx * ((2j * np.pi * k / a) ** derivative.count("x"))[None, :]
+    fy = fy * ((2j * np.pi * h / b) ** derivative.count("y"))[None, :]
+    return np.real(np.einsum("nh,hk,nk->n", fy, c, fx))
+
+
+def multislice_image(cell: MultisliceCell, *, shape, pixel_size_nm: float, run: str = "phonon",
+                     origin_nm=(0.0, 0.0), derivative: str = "") -> np.ndarray:
+    """Noise-free image (fraction of the probe on the detector) sampled at the pixel centres of a field.
+
+    Pixel (row i, col j) is the probe position x = origin_x + j * pixel_size_nm, y = origin_y + i * pixel_size_nm
+    (a STEM image samples points, it does not integrate over a pixel). Separable: (H x 2h+1) @ coef @ (2k+1 x W).
+    """
+    rows, ncols = _check_shape(shape)
+    ps = _positive("pixel_size_nm", pixel_size_nm)
+    c, h, k = _series_axes(cell, run)
+    a, b = cell.cell_nm
+    x = origin_nm[0] + ps * np.arange(ncols)
+    y = origin_nm[1] + ps * np.arange(rows)
+    ex = np.exp(2j * np.pi * np.outer(k, x) / a)
+    ey = np.exp(2j * np.pi * np.outer(y, h) / b)
+    ex = ex * ((2j * np.pi * k / a) ** derivative.count("x"))[:, None]
+    ey = ey * ((2j * np.pi * h / b) ** derivative.count("y"))[None, :]
+    return np.real(ey @ c @ ex)
+
+
+def multislice_columns(cell: MultisliceCell, *, run: str = "phonon") -> tuple[np.ndarray, np.ndarray]:
+    """True column positions (nm) of a run: the projected atom positions (phonon run: their ensemble mean)."""
+    c = cell.columns
+    x, y = c["x_nm"].to_numpy(float), c["y_nm"].to_numpy(float)
+    if run == "phonon":
+        x, y = x + c["phonon_dx_nm"].to_numpy(float), y + c["phonon_dy_nm"].to_numpy(float)
+    return x, y
+
+
+def multislice_peak_offsets(cell: MultisliceCell, *, run: str = "phonon", iterations: int = 20) -> pd.DataFrame:
+    """Maximum of the noise-free image nearest each column minus the column's true position (nm), by Newton steps.
+
+    Returns ``dx_nm, dy_nm`` (NaN where the nearest stationary point is no maximum), ``peak`` (the image there)
+    and ``curvature_per_nm2`` (minus half its Laplacian).
+    """
+    x0, y0 = multislice_columns(cell, run=run)
+    x, y = x0.copy(), y0.copy()
+    for _ in range(iterations):
+        gx = multislice_values(cell, x, y, run=run, derivative="x")
+        gy = multislice_values(cell, x, y, run=run, derivative="y")
+        hxx = multislice_values(cell, x, y, run=run, derivative="xx")
+        hxy = multislice_values(cell, x, y, run=run, derivative="xy")
+        hyy = multislice_values(cell, x, y, run=run, derivative="yy")
+        det = hxx * hyy - hxy**2
+        dx = -(hyy * gx - hxy * gy) / det
+        dy = -(hxx * gy - hxy * gx) / det
+        step = np.hypot(dx, dy)
+        scale = np.minimum(1.0, 0.01 / np.maximum(step, 1e-30))  # at most 0.1 A per step
+        x, y = x + dx * scale, y + dy * scale
+    ok = (hxx < 0) & (det > 0)
+    dx, dy = x - x0, y - y0
+    return pd.DataFrame({"dx_nm": np.where(ok, dx, np.nan), "dy_nm": np.where(ok, dy, np.nan),
+                         "peak": multislice_values(cell, x, y, run=run), "curvature_per_nm2": -0.5 * (hxx + hyy)})
+
+
+def multislice_sample(cell: MultisliceCell, *, size_px: int, pixel_size_nm: float, dose_e_per_A2: float,
+                      run: str = "phonon", origin_nm=(0.0, 0.0), rng=None, noise: bool = True,
+                      partition_sigma_nm: float = 0.05, truth_at: str | None = None
+                      ) -> tuple[np.ndarray, pd.DataFrame, dict]:
+    """Tile a multislice cell over a square field, scale to a dose, add Poisson noise; truth with bounds.
+
+    Parameters
+    ----------
+    cell : MultisliceCell
+        From :func:`load_multislice_cell`.
+    size_px, pixel_size_nm : int, float
+        Field.
+    dose_e_per_A2 : float
+        Electrons per square Angstrom: each probe position receives ``dose * (10 pixel_size_nm)^2`` electrons and
+        the detector counts that times the simulated fraction.
+    run : {'phonon', 'static'}
+        Frozen-phonon average or the static lattice.
+    origin_nm : (float, float)
+        Specimen position of pixel (0, 0).
+    rng : Generator or int seed
+        Poisson noise.
+    noise : bool
+        False returns the expected counts.
+    partition_sigma_nm : float
+        Width of the soft split of the image among columns used for the bound (see Notes).
+    truth_at : {'atoms', 'peaks'}, optional
+        What ``x_px, y_px`` hold: the projected atom positions, or the maxima of the noise-free image. Default
+        'atoms' for the static run, 'peaks' for the phonon run: a few frozen-phonon configurations leave every
+        column's atoms a few pm off their site on average and the depth-dependent channelling weights them unevenly,
+        so the phonon image's columns have no better-defined position than its own peaks (a real specimen averages
+        millions of configurations). Both are kept: ``atom_x_px, atom_y_px`` and ``peak_dx_px, peak_dy_px``.
+
+    Returns
+    -------
+    image : float32 (size_px, size_px)
+    truth : DataFrame
+        ``x_px, y_px, x_nm, y_nm`` (see ``truth_at``), ``species, role, centre_x_px, centre_y_px, crowded,
+        atom_x_px, atom_y_px, peak_dx_px, peak_dy_px`` (noise-free peak minus the atom position),
+        ``crlb_x_px, crlb_y_px, crlb_px``; columns inside the field.
+    params : dict
+        Dose, electrons per probe position, pixel size, the simulation's parameters, ``snr_dim`` (dimmest species'
+        median peak above the lowest level over the square root of its peak), ``closest_spacing_px``.
+
+    Notes
+    -----
+    The truth of a column in a multislice image is the projected position of its atoms. The bound is the
+    Cramer-Rao bound of the column's x, y with its neighbours' parameters known: the expected image is split among
+    the columns by Gaussian weights of ``partition_sigma_nm`` about each column (normalised over the columns), and a
+    column's parameters are its share's translation, its share's scale and a local constant background; Fisher
+    information ``sum_p (d mu_p / d theta_a)(d mu_p / d theta_b) / mu_p`` over a patch of 0.3 nm about it. Ignoring
+    the correlation with neighbours makes it a little optimistic for crowded columns.
+    """
+    from scipy.spatial import cKDTree
+
+    n = int(size_px)
+    ps = _positive("pixel_size_nm", pixel_size_nm)
+    dose = _positive("dose_e_per_A2", dose_e_per_A2)
+    per_px = dose * (10.0 * ps) ** 2
+    mu = per_px * multislice_image(cell, shape=(n, n), pixel_size_nm=ps, run=run, origin_nm=origin_nm)
+    mu = np.maximum(mu, _MU_FLOOR)
+    a, b = cell.cell_nm
+    c = cell.columns
+    # every copy of the cell's columns inside the field (pixel centres span origin .. origin + (n - 1) ps)
+    lo_x, lo_y = origin_nm[0] - 0.5 * ps, origin_nm[1] - 0.5 * ps
+    i0, i1 = math.floor(lo_x / a) - 1, math.ceil((lo_x + n * ps) / a) + 1
+    j0, j1 = math.floor(lo_y / b) - 1, math.ceil((lo_y + n * ps) / b) + 1
+    ti, tj = np.meshgrid(np.arange(i0, i1), np.arange(j0, j1), indexing="ij")
+    cx0, cy0 = multislice_columns(cell, run=run)
+    xs = (cx0[None, :] + a * ti.reshape(-1, 1)).ravel()
+    ys = (cy0[None, :] + b * tj.reshape(-1, 1)).ravel()
+    rep = np.tile(np.arange(len(c)), ti.size)
+    xp, yp = (xs - origin_nm[0]) / ps, (ys - origin_nm[1]) / ps
+    inside = (xp >= -0.5) & (xp < n - 0.5) & (yp >= -0.5) & (yp < n - 0.5)
+    xp, yp, rep = xp[inside], yp[inside], rep[inside]
+    cc = c.iloc[rep].reset_index(drop=True)
+    offs = multislice_peak_offsets(cell, run=run).iloc[rep].reset_index(drop=True)
+    nn = cKDTree(np.c_[xp, yp]).query(np.c_[xp, yp], k=2)[0][:, 1] if len(xp) > 1 else np.full(len(xp), np.inf)
+    truth_at = ("peaks" if run == "phonon" else "atoms") if truth_at is None else truth_at
+    if truth_at not in ("atoms", "peaks"):
+        raise TenfoldInputError(f"truth_at={truth_at!r} must be 'atoms' or 'peaks'")
+    pdx, pdy = offs["dx_nm"].to_numpy() / ps, offs["dy_nm"].to_numpy() / ps
+    ax, ay = xp, yp
+    if truth_at == "peaks":
+        xp, yp = xp + np.nan_to_num(pdx), yp + np.nan_to_num(pdy)
+    truth = pd.DataFrame({
+        "id": np.arange(len(xp), dtype=np.int64), "x_px": xp, "y_px": yp, "x_nm": xp * ps, "y_nm": yp * ps,
+        "species": cc["species"].to_numpy(), "role": cc["role"].to_numpy(),
+        "centre_x_px": ax + cc["centre_dx_nm"].to_numpy() / ps, "centre_y_px": ay + cc["centre_dy_nm"].to_numpy() / ps,
+        "crowded": nn * ps < 0.3, "atom_x_px": ax, "atom_y_px": ay, "peak_dx_px": pdx, "peak_dy_px": pdy,
+    })
+    gx = per_px * multislice_image(cell, shape=(n, n), pixel_size_nm=ps, run=run, origin_nm=origin_nm,
+                                   derivative="x") * ps
+    gy = per_px * multislice_image(cell, shape=(n, n), pixel_size_nm=ps, run=run, origin_nm=origin_nm,
+                                   derivative="y") * ps
+    truth = pd.concat([truth, _partition_bound(mu, gx, gy, xp, yp, partition_sigma_nm / ps, 0.3 / ps)], axis=1)
+    species = truth["species"].to_numpy()
+    floor = float(mu.min())
+    peaks = {int(s): float(np.median(per_px * offs["peak"].to_numpy()[species == s])) for s in np.unique(species)}
+    dim = min(peaks.values())
+    # Gaussian-equivalent width of the dimmest species' peaks from their curvature: A exp(-r^2 / 2 s^2) has
+    # Laplacian / 2 = -A / s^2 at its centre
+    dim_sp = min(peaks, key=peaks.get)
+    sel = species == dim_sp
+    peak_counts = per_px * offs["peak"].to_numpy()[sel]
+    sig = np.sqrt((peak_counts - floor) / (per_px * offs["curvature_per_nm2"].to_numpy()[sel]))
+    params = {
+        "sigma_nm": float(np.median(sig)),
+        "run": run, "truth_at": truth_at, "dose_e_per_A2": dose, "electrons_per_px": per_px, "pixel_size_nm": ps,
+        "size_px": n,
+        "origin_nm": list(origin_nm), "peaks_by_species": peaks, "lowest_level": floor,
+        "snr_dim": float((dim - floor) / math.sqrt(dim)), "closest_spacing_px": float(nn.min()),
+        "n_columns": int(len(xp)), "n_species": int(len(peaks)), "simulation": cell.params,
+    }
+    if not noise:
+        return mu, truth, params
+    img = _rng(rng).poisson(mu).astype(np.float32)
+    return img, truth, params
+
+
+def _partition_bound(mu, gx, gy, x, y, s_px: float, radius_px: float) -> pd.DataFrame:
+    """Neighbours-known Fisher bound of each column's x, y on a soft split of the image (see multislice_sample)."""
+    from scipy.spatial import cKDTree
+
+    n = len(x)
+    h = int(math.ceil(radius_px))
+    off = np.arange(-h, h + 1)
+    u = np.round(x).astype(np.int64)[:, None, None] + off[None, None, :]
+    v = np.round(y).astype(np.int64)[:, None, None] + off[None, :, None]
+    u, v = np.broadcast_arrays(u, v)
+    inside = (u >= 0) & (u < mu.shape[1]) & (v >= 0) & (v < mu.shape[0])
+    uc, vc = np.clip(u, 0, mu.shape[1] - 1), np.clip(v, 0, mu.shape[0] - 1)
+    k = min(12, n)
+    _, nb = cKDTree(np.c_[x, y]).query(np.c_[x, y], k=k)
+    nb = np.asarray(nb).reshape(n, k)
+    own = np.exp(-((u - x[:, None, None]) ** 2 + (v - y[:, None, None]) ** 2) / (2 * s_px**2))
+    tot = np.zeros_like(own)
+    for j in range(k):  # k <= 12 neighbour slots, each vectorised over all columns
+        xj, yj = x[nb[:, j]][:, None, None], y[nb[:, j]][:, None, None]
+        tot += np.exp(-((u - xj) ** 2 + (v - yj) ** 2) / (2 * s_px**2))
+    w = np.where(inside, own / np.maximum(tot, 1e-300), 0.0)
+    m = mu[vc, uc]
+    base = np.quantile(mu, 0.01)
+    d = np.stack([-w * gx[vc, uc], -w * gy[vc, uc], w * (m - base), inside.astype(float)], axis=-1)
+    fisher = np.einsum("npqa,npqb,npq->nab", d, d, np.where(inside, 1.0 / m, 0.0))
+    cov = np.linalg.pinv(fisher)
+    vx, vy = cov[:, 0, 0], cov[:, 1, 1]
+    return pd.DataFrame({"crlb_x_px": np.sqrt(vx), "crlb_y_px": np.sqrt(vy), "crlb_px": np.sqrt(0.5 * (vx + vy))})
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -6,6 +6,12 @@ Every cell is a synthetic image from ``synthetic.stress_sample`` (structures and
 the imaging mode, no other hint) and ``trackpy.locate`` on the same image for the time ratio, and scores the table
 with ``synthetic.score_columns`` against the truth and the exact pixel Fisher bound (``synthetic.crlb_columns_px``).
 
+The six multislice cells (``ms_{phonon,static}_{low,moderate,high}``) tile the cached abTEM simulation of
+``benchmarks/data/multislice_decagonal.npz`` (``benchmarks/simulate_multislice.py``; ``synthetic.multislice_sample``)
+and are scored the same way, against the atom positions (static) or the noise-free peaks (frozen phonons), with a
+neighbours-known Fisher bound, leaving out columns within 3 widths + 1 px of the border; see docs/columns.md,
+"Multislice cells". ``--quick`` and ``--full`` include them; ``--multislice`` runs only them.
+
 Targets (issue 10), marked PASS / FAIL / - (not applicable) per cell:
 
 * ``rp``: recall and precision >= 0.995 where the dimmest species' peak SNR >= 5 and spacing >= 3.3 sigma,
@@ -23,6 +29,7 @@ Run (2-core machine; ``nice -n 10`` when others share it)::
     python benchmarks/stress_columns.py --cell dec_broad_2048   # one named cell (repeat --cell for more)
     python benchmarks/stress_columns.py --full --n-random 100   # quick cells + a seeded random draw
     python benchmarks/stress_columns.py --list                  # the named cells and their conditions
+    python benchmarks/stress_columns.py --multislice            # the six multislice cells, ~1 min
 
 Writes ``stress_<set>.csv``, ``stress_<set>.md`` and ``stress_<set>.png`` in ``--out`` (default
 benchmarks/results/).
@@ -31,6 +38,7 @@ benchmarks/results/).
 from __future__ import annotations
 
 import argparse
+import functools
 import math
 import sys
 import time
@@ -120,12 +128,27 @@ def run_cell(name: str, cond: S.StressCondition | None = None, *, trackpy: bool 
            "sigma_px": params["sigma_px"], "spacing_over_sigma": params["spacing_over_sigma"],
            "snr_dim": params["snr_dim"], "dim_ratio": cond.dim_ratio, "peak_counts": cond.peak_counts,
            "options": _options(cond), "build_s": t_build}
+    return _find_and_score(row, img, truth, params["pixel_size_nm"], params["closest_spacing_px"],
+                           params["sigma_px"], dark=cond.dark, trackpy=trackpy)
+
+
+def _inside(table: pd.DataFrame, shape, margin_px: float) -> np.ndarray:
+    x, y = table["x_px"].to_numpy(float), table["y_px"].to_numpy(float)
+    return ((x >= margin_px) & (x <= shape[1] - 1 - margin_px) & (y >= margin_px) & (y <= shape[0] - 1 - margin_px))
+
+
+def _find_and_score(row, img, truth, pixel_size_nm, closest_px, sigma_px, *, dark, trackpy,
+                    margin_px: float = 0.0) -> dict:
+    """``find_columns`` with its defaults, scored against the truth; ``trackpy.locate`` timed on the same image.
+
+    With ``margin_px``, true and found columns closer than that to the border are left out of the score.
+    """
     error = ""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         t = time.perf_counter()
         try:
-            found, info = find_columns(img, pixel_size_nm=params["pixel_size_nm"], dark_columns=cond.dark)
+            found, info = find_columns(img, pixel_size_nm=pixel_size_nm, dark_columns=dark)
         except Exception as exc:  # one bad cell never kills the matrix
             found, info = pd.DataFrame({"x_px": [], "y_px": []}), {}
             error = f"{type(exc).__name__}: {exc}"
@@ -134,19 +157,65 @@ def run_cell(name: str, cond: S.StressCondition | None = None, *, trackpy: bool 
     row["n_warnings"] = len(caught)
     row["n_notes"] = len(info.get("notes", [])) if isinstance(info, dict) else 0
     row["error"] = error
-    score = S.score_columns(found, truth, match_radius_px=0.5 * params["closest_spacing_px"])
+    if margin_px > 0:
+        truth = truth[_inside(truth, img.shape, margin_px)].reset_index(drop=True)
+        if len(found):
+            found = found[_inside(found, img.shape, margin_px)].reset_index(drop=True)
+        row["n_true"] = len(truth)
+    score = S.score_columns(found, truth, match_radius_px=0.5 * closest_px)
     for k, v in score.items():
         if isinstance(v, dict):
             row[k] = " ".join(f"{s}:{x:.2f}" for s, x in v.items())
         else:
             row[k] = v
     if trackpy:
-        row["trackpy_s"] = _trackpy_time(img, params["sigma_px"], params["closest_spacing_px"])
+        row["trackpy_s"] = _trackpy_time(img, sigma_px, closest_px)
         row["time_ratio"] = t_find / row["trackpy_s"]
     else:
         row["trackpy_s"] = row["time_ratio"] = float("nan")
     row.update(_verdicts(row))
     return row
+
+
+MULTISLICE_FILE = Path(__file__).resolve().parent / "data" / "multislice_decagonal.npz"
+#: Multislice cells (benchmarks/simulate_multislice.py): frozen-phonon and static runs at the three doses of
+#: ``synthetic.MULTISLICE_DOSES``, tiled on a 768 px field of 0.015 nm px (origin off the cell corner).
+MS_SIZE_PX, MS_PIXEL_NM, MS_ORIGIN_NM = 768, 0.015, (0.0137, 0.0291)
+MULTISLICE_CELLS = {f"ms_{run}_{dose}": (run, dose) for run in ("phonon", "static") for dose in S.MULTISLICE_DOSES}
+
+
+@functools.lru_cache(maxsize=1)
+def _ms_cell():
+    return S.load_multislice_cell(MULTISLICE_FILE)
+
+
+def build_multislice_cell(name: str):
+    """Image, truth (with ``crlb_px``) and parameters of a multislice cell."""
+    run, dose = MULTISLICE_CELLS[name]
+    return S.multislice_sample(_ms_cell(), size_px=MS_SIZE_PX, pixel_size_nm=MS_PIXEL_NM,
+                               dose_e_per_A2=S.MULTISLICE_DOSES[dose], run=run, origin_nm=MS_ORIGIN_NM,
+                               rng=cell_seed(name))
+
+
+def run_multislice_cell(name: str, *, trackpy: bool = True) -> dict:
+    """Build, find, score one multislice cell; a flat row for the table (same fields as :func:`run_cell`)."""
+    t0 = time.perf_counter()
+    img, truth, params = build_multislice_cell(name)
+    sigma_px = params["sigma_nm"] / MS_PIXEL_NM
+    row = {"cell": name, "structure": "multislice_decagonal", "size_px": MS_SIZE_PX, "n_true": len(truth),
+           "sigma_px": sigma_px, "spacing_over_sigma": params["closest_spacing_px"] / sigma_px,
+           "snr_dim": params["snr_dim"], "dim_ratio": float("nan"),
+           "peak_counts": max(params["peaks_by_species"].values()),
+           "options": f"{MULTISLICE_CELLS[name][0]} {params['dose_e_per_A2']:.0e} e/A2",
+           "build_s": time.perf_counter() - t0}
+    offset = np.hypot(truth["peak_dx_px"], truth["peak_dy_px"]) * MS_PIXEL_NM * 1e3
+    row["peak_offset_pm_max"] = float(offset.max())
+    row["peak_offset_bound_max"] = float(np.max(offset / (truth["crlb_px"] * MS_PIXEL_NM * 1e3)))
+    # the field is a window into an infinite crystal: columns within 3 sigma + 1 px of the border (as the Gaussian
+    # cells leave empty) are left out of the score on both sides
+    margin = 3.0 * sigma_px + 1.0
+    return _find_and_score(row, img, truth, params["pixel_size_nm"], params["closest_spacing_px"], sigma_px,
+                           dark=False, trackpy=trackpy, margin_px=margin)
 
 
 def _options(cond: S.StressCondition) -> str:
@@ -240,6 +309,7 @@ def main(argv=None) -> int:
     g.add_argument("--full", action="store_true", help="the named cells plus a seeded random draw")
     g.add_argument("--cell", action="append", metavar="NAME", help="run one named cell (repeatable)")
     g.add_argument("--list", action="store_true", help="list the named cells")
+    g.add_argument("--multislice", action="store_true", help="only the multislice cells")
     p.add_argument("--n-random", type=int, default=100, help="random cells for --full (default 100)")
     p.add_argument("--seed", type=int, default=0, help="seed of the random draw (default 0)")
     p.add_argument("--out", type=Path, default=RESULTS, help="output folder (default benchmarks/results/)")
@@ -248,22 +318,31 @@ def main(argv=None) -> int:
     if args.list:
         for name, cond in S.STRESS_CELLS.items():
             print(name, {k: v for k, v in asdict(cond).items() if v != getattr(S.StressCondition(), k)})
+        for name, (run, dose) in MULTISLICE_CELLS.items():
+            print(name, {"multislice": run, "dose_e_per_A2": S.MULTISLICE_DOSES[dose], "size_px": MS_SIZE_PX,
+                         "pixel_size_nm": MS_PIXEL_NM})
         return 0
+    ms = dict(MULTISLICE_CELLS)
     if args.cell:
-        bad = [c for c in args.cell if c not in S.STRESS_CELLS]
+        bad = [c for c in args.cell if c not in S.STRESS_CELLS and c not in ms]
         if bad:
             p.error(f"--cell {bad[0]!r} is not a named cell; see --list")
-        cells, label = {c: S.STRESS_CELLS[c] for c in args.cell}, "cells"
+        cells, label = {c: S.STRESS_CELLS.get(c) for c in args.cell}, "cells"
+    elif args.multislice:
+        cells, label = dict.fromkeys(ms), "multislice"
     elif args.full:
-        cells, label = {**S.STRESS_CELLS, **S.stress_draw(args.n_random, rng=args.seed)}, "full"
+        cells, label = {**S.STRESS_CELLS, **dict.fromkeys(ms), **S.stress_draw(args.n_random, rng=args.seed)}, "full"
     else:
-        cells, label = dict(S.STRESS_CELLS), "quick"
+        cells, label = {**S.STRESS_CELLS, **dict.fromkeys(ms)}, "quick"
     # warm-up: one small cell through every compiled path (numba caches, trackpy's engine), not timed
     run_cell("warm-up", S.StressCondition(size_px=256), trackpy=not args.no_trackpy)
     rows = []
     t0 = time.perf_counter()
     for name, cond in cells.items():
-        r = run_cell(name, cond, trackpy=not args.no_trackpy)
+        if name in ms:
+            r = run_multislice_cell(name, trackpy=not args.no_trackpy)
+        else:
+            r = run_cell(name, cond, trackpy=not args.no_trackpy)
         rows.append(r)
         print(f"{name:18s} N={r['n_true']:6d} d/s={r['spacing_over_sigma']:.2f} SNR={r['snr_dim']:6.1f} "
               f"recall={r['recall']:.4f} prec={r['precision']:.4f} rms/b={_fmt(r['rms_bound_median'], 2)}/"

@@ -308,3 +308,67 @@ def test_periodic_smooth_spectrum_has_no_edge_cross_and_finds_the_frequency():
     assert spots["d_px"].iloc[0] == pytest.approx(8.0, rel=1e-3)
     with pytest.raises(TenfoldInputError, match="window"):
         power_spectrum(img, window="blackman")
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Notes must be true: the ellipse against its own error, and one ellipse for every shell
+# ---------------------------------------------------------------------------------------------------------------
+
+
+def _shells(ellipses, n_dir=10, seed=0, noise=0.0):
+    """Spots on several shells, shell s drawn through the 2x2 map A_s (k' = A_s k; Friedel pairs included)."""
+    rng = np.random.default_rng(seed)
+    kx, ky, shell = [], [], []
+    for s, (radius, a) in enumerate(ellipses):
+        t = np.radians(7.0 + 36.0 * np.arange(n_dir))
+        k = radius * np.stack([np.cos(t), np.sin(t)]) + noise * rng.normal(size=(2, n_dir))
+        k = np.asarray(a) @ k
+        kx.append(k[0] / radius)
+        ky.append(k[1] / radius)
+        shell.append(np.full(n_dir, s))
+    kx, ky, shell = (np.concatenate(v) for v in (kx, ky, shell))
+    return kx, ky, np.ones_like(kx), shell
+
+
+def test_one_distortion_is_one_ellipse_on_every_shell():
+    """An affine scan distortion D maps every circle of spots to the same ellipse (k' = D^-T k, linear algebra);
+    shells deformed independently (a periodic approximant's) are not one ellipse."""
+    from tenfold.analysis.fourier import _ellipticity, _shell_consistency
+
+    d_inv_t = np.linalg.inv(np.array([[1.0, 0.02], [0.0, 1.0]])).T
+    same = _shells([(0.05, d_inv_t), (0.081, d_inv_t), (0.13, d_inv_t)], noise=2e-5)
+    assert _shell_consistency(*same)["consistent"]
+    ell = _ellipticity(*same[:3])
+    # ellipticity of k' = D^-T k: ratio of the singular values of D minus one
+    sv = np.linalg.svd(np.array([[1.0, 0.02], [0.0, 1.0]]), compute_uv=False)
+    assert ell["ellipticity"] == pytest.approx(sv[0] / sv[1] - 1.0, rel=0.05) and ell["significant"]
+    differ = _shells([(0.05, np.diag([1.02, 0.98])), (0.081, np.diag([0.98, 1.02])), (0.13, np.eye(2))],
+                     noise=2e-5)
+    assert not _shell_consistency(*differ)["consistent"]
+    # circles with centroiding noise only: not significant
+    honest = _shells([(0.05, np.eye(2)), (0.081, np.eye(2))], noise=2e-4, seed=3)
+    assert not _ellipticity(*honest[:3])["significant"]
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_honest_images_get_no_distortion_note(seed):
+    spots, info = analyze_fourier(_wave_image([0, 36, 72, 108, 144], 10.3, seed=seed))
+    assert not info["distortion"]["warning"] and info["distortion"]["ellipticity_chi2"] < 13.8
+    assert not any("elliptical" in n for n in info["notes"])
+
+
+def test_multislice_approximant_gets_no_distortion_note():
+    """The cached multislice cell (a periodic approximant of our design, no scan distortion): its shells deviate
+    from circles shell by shell, which is said, and no scan distortion is suspected."""
+    from pathlib import Path
+
+    from tenfold.analysis import synthetic as S
+
+    cell = S.load_multislice_cell(Path(__file__).resolve().parents[1] / "benchmarks/data/multislice_decagonal.npz")
+    img, _, _ = S.multislice_sample(cell, size_px=768, pixel_size_nm=0.015, dose_e_per_A2=1e6,
+                                    origin_nm=(0.0137, 0.0291), rng=2)
+    _, info = analyze_fourier(img, pixel_size_nm=0.015)
+    assert info["rotational_order"] == 10
+    assert not info["distortion"]["warning"] and not info["distortion"]["shells"]["consistent"]
+    assert not any("shells are elliptical" in n for n in info["notes"])
+    assert any("differently from shell to shell" in n for n in info["notes"])
