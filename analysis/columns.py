@@ -39,7 +39,7 @@ from scipy.spatial import cKDTree
 from . import _sanitize, _schema
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._progress import report, sub_progress
-from .refine import joint_position_errors, refine_columns, warm_up
+from .refine import FREE_WIDTH_SNR as FREE_WIDTH_Z, joint_position_errors, refine_columns, warm_up
 from .region import label_points
 from .scale import estimate_scale
 from .species import classify_species
@@ -408,11 +408,13 @@ def mirror_threshold(z_candidates, z_mirror, *, z_max, share=FALSE_SHARE, floor=
                "floor": floor, "z_max_random_field": z_max, "false_share_target": share}
 
 
-def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float) -> np.ndarray:
+def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profile=None) -> np.ndarray:
     """Light of the other fitted columns in the Gaussian-smoothed image at each column's position (vectorised).
 
     A column of amplitude A and width s smoothed by the kernel of width k peaks at A s^2 / (s^2 + k^2) with
-    width sqrt(s^2 + k^2); the sum runs over pairs from one KD-tree query.
+    width sqrt(s^2 + k^2); the sum runs over pairs from one KD-tree query. ``profile`` (distances px, light per
+    unit of the smoothed peak), measured on the image's own bright columns (``_tail_profile``), replaces the
+    Gaussian fall-off wherever it holds more light: real columns have tails a Gaussian does not.
     """
     n = len(fit)
     light = np.zeros(n)
@@ -425,15 +427,85 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float) -> np.
     s2 = fit["sigma_px"].to_numpy()[idx] ** 2 + sigma_k**2
     peak = a * (s2 - sigma_k**2) / s2
     reach = 4.0 * float(np.sqrt(np.nanmax(s2)))
+    if profile is not None:
+        r_p, p_p = np.asarray(profile[0]), np.asarray(profile[1])
+        reach = max(reach, float(r_p[-1]))
     pairs = cKDTree(np.c_[x, y]).query_pairs(reach, output_type="ndarray")
     if pairs.size == 0:
         return light
     i, j = pairs[:, 0], pairs[:, 1]
     d2 = (x[i] - x[j]) ** 2 + (y[i] - y[j]) ** 2
-    np.add.at(light, idx[i], peak[j] * np.exp(-0.5 * d2 / s2[j]))
-    np.add.at(light, idx[j], peak[i] * np.exp(-0.5 * d2 / s2[i]))
+    fall_j, fall_i = np.exp(-0.5 * d2 / s2[j]), np.exp(-0.5 * d2 / s2[i])
+    if profile is not None:
+        emp = np.interp(np.sqrt(d2), r_p, p_p, right=0.0)
+        fall_j, fall_i = fall_j + emp, fall_i + emp
+    np.add.at(light, idx[i], peak[j] * fall_j)
+    np.add.at(light, idx[j], peak[i] * fall_i)
     return light
 
+
+#: the smoothed light around bright columns is measured out to this many spacings, on this many directions; the
+#: median over directions leaves out the neighbours, the median over columns the noise
+TAIL_REACH_SPACINGS, TAIL_ANGLES, TAIL_MIN_COLUMNS = 2.0, 16, 20
+
+
+def _tail_profile(work, fit, good, settings):
+    """Light a column adds to the smoothed image beyond its fitted Gaussian, per unit of its smoothed peak.
+
+    Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The model of every fitted
+    column (its Gaussian and the local background) is subtracted from the image; the smoothed residual around the
+    bright columns, median over ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the
+    columns, is the tail a Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
+    The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
+    """
+    amp = fit["amplitude"].to_numpy()
+    bright = good & np.isfinite(amp) & (amp > FREE_WIDTH_Z * fit["amplitude_err"].to_numpy())
+    idx = np.flatnonzero(bright)
+    if idx.size < TAIL_MIN_COLUMNS:
+        return None
+    k = settings.sigma
+    resid = work.astype(np.float32) - _model_image(work.shape, fit, good, settings)
+    smooth = ndimage.gaussian_filter(resid, k)
+    idx = idx[np.argsort(amp[idx])[::-1][:400]]
+    r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
+    th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
+    x = fit["x_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.cos(th)[None, None, :]
+    y = fit["y_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.sin(th)[None, None, :]
+    vals = ndimage.map_coordinates(smooth, [y.ravel(), x.ravel()], order=1, mode="nearest").reshape(x.shape)
+    s2 = fit["sigma_px"].to_numpy()[idx] ** 2
+    peak = amp[idx] * s2 / (s2 + k * k)
+    extra = np.median(np.median(vals, axis=2) / peak[:, None], axis=0)
+    # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
+    extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
+    return [r.tolist(), extra.tolist()]
+
+
+def _model_image(shape, fit, good, settings):
+    """The fitted columns (sampled Gaussians over 4 widths) plus each patch's local background, float32."""
+    h, w = shape
+    model = np.zeros(shape, np.float32)
+    weight = np.zeros(shape, np.float32)
+    xs, ys = fit["x_px"].to_numpy()[good], fit["y_px"].to_numpy()[good]
+    a, sg, b = (fit[c].to_numpy()[good] for c in ("amplitude", "sigma_px", "background"))
+    rad = int(math.ceil(4.0 * np.nanmax(sg))) if sg.size else 1
+    off = np.arange(-rad, rad + 1)
+    cx, cy = np.rint(xs).astype(np.int64), np.rint(ys).astype(np.int64)
+    px = cx[:, None, None] + off[None, None, :]
+    py = cy[:, None, None] + off[None, :, None]
+    px, py = np.broadcast_arrays(px, py)
+    inside = (px >= 0) & (px < w) & (py >= 0) & (py < h)
+    g = a[:, None, None] * np.exp(-0.5 * ((px - xs[:, None, None]) ** 2 + (py - ys[:, None, None]) ** 2)
+                                  / sg[:, None, None] ** 2)
+    np.add.at(model, (py[inside], px[inside]), g[inside].astype(np.float32))
+    near = inside & ((px - xs[:, None, None]) ** 2 + (py - ys[:, None, None]) ** 2 <= (2.5 * sg[:, None, None]) ** 2)
+    bb = np.broadcast_to(b[:, None, None], px.shape)
+    np.add.at(weight, (py[near], px[near]), 1.0)
+    bg = np.zeros(shape, np.float32)
+    np.add.at(bg, (py[near], px[near]), bb[near].astype(np.float32))
+    # the local backgrounds, spread over the image by a normalised convolution of the patches' values
+    num = ndimage.gaussian_filter(bg, settings.spacing)
+    den = ndimage.gaussian_filter(weight, settings.spacing)
+    return model + np.where(den > 1e-6, num / np.maximum(den, 1e-6), float(np.nanmedian(b)) if b.size else 0.0)
 
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
@@ -659,6 +731,7 @@ class _Settings:
     common_width: float | None = None
     share_widths: bool | None = None
     width_median: float | None = None
+    tail_profile: list | None = None
     area_px: float = 0.0
 
     @property
@@ -691,7 +764,7 @@ class _Settings:
         """A copy that holds the choices a window measured for itself (used by every other window)."""
         return replace(self, noise_sd=detail["noise_sd"], levels=detail["levels"],
                        common_width=detail["common_width"], share_widths=detail["share_widths"],
-                       width_median=detail["width_median"])
+                       width_median=detail["width_median"], tail_profile=detail["tail_profile"])
 
 
 def _sample_window(ok) -> tuple[int, int, int, int]:
@@ -954,6 +1027,9 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     t_refine = time.perf_counter() - t0
     fit["z_detect"] = z
     fit["_core"] = core
+    if s.tail_profile is None:
+        good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
+        s = replace(s, tail_profile=_tail_profile(work, fit, good, s))
     fit, width_median = _prune(fit, xs, ys, z, sd, s, z_cut, counts_tab, auto, det["inner"])
     # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
     # Fisher matrices near-singular)
@@ -974,14 +1050,12 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
         fit["background"] = top - fit["background"]
     detail = {"auto": auto, "neighbour_passes": passes, "detect_s": det["detect_s"], "refine_s": t_refine,
               "levels": det["levels"], "noise_sd": det["noise_sd"], "common_width": common, "share_widths": shared,
-              "width_median": width_median, "z_cut": float(z_cut)}
+              "width_median": width_median, "z_cut": float(z_cut), "tail_profile": s.tail_profile}
     return fit, counts_tab, detail
 
 
 #: side of the central part of the sample on which the common width of the fits is learned, px
 COMMON_WIDTH_PX = 384
-#: neighbour passes of that learning fit: the median width has settled to 1e-3 of itself by then
-COMMON_WIDTH_PASSES = 4
 
 
 def _learn_common_width(work, ok, xs, ys, settings):
@@ -1003,7 +1077,7 @@ def _learn_common_width(work, ok, xs, ys, settings):
              & ((xi < c1 - m) | (c1 == w)))
     sub = refine_columns(work[r0:r1, c0:c1], np.c_[xi - c0, yi - r0], sigma_px=settings.sigma,
                          valid=ok[r0:r1, c0:c1], counts=settings.fit_counts, patch_radius_px=settings.patch_radius,
-                         neighbour_passes=COMMON_WIDTH_PASSES, converge_px=1e-3, width_votes=votes)
+                         neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, width_votes=votes)
     good = sub["fit_status"].isin(["ok", "fixed_width"]).to_numpy() & votes
     return replace(settings, common_width=float(sub.attrs["common_width_px"]),
                    share_widths=bool(sub.attrs["share_widths"]),
@@ -1032,7 +1106,7 @@ def _prune(fit, xs, ys, z_cand, sd_cand, settings, z_cut, counts_tab, auto, inne
     counts_tab["slid_off_candidate"] = int((slid & core).sum())
     # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
     # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
-    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma) / sd_cand
+    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma, settings.tail_profile) / sd_cand
     fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
     counts_tab["after_neighbour_significance"] = int(fit["_core"].sum())
     # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or
