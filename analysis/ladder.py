@@ -1128,7 +1128,7 @@ def ladder_figure(result):
     unit = "nm" if ps else "px"
     lad = result.tables.get("ladder", empty_table(LADDER))
     pk = result.tables.get("pair_peaks", empty_table(PEAKS))
-    fig = Figure(figsize=(7.5, 3.2 * len(sets)), dpi=120)
+    fig = Figure(figsize=(7.5, 3.2 * len(sets)), dpi=120, layout="constrained")
     for k, name in enumerate(sets):
         ax = fig.add_subplot(len(sets), 1, k + 1)
         c = result.curves[f"pair_distribution_{name}"]
@@ -1154,7 +1154,6 @@ def ladder_figure(result):
         ax.set_ylabel("g(r)")
         ax.set_title(f"pair distribution, {name}" + ("" if ps else " (uncalibrated)"), fontsize=9)
     ax.set_xlabel(f"r ({unit})")
-    fig.tight_layout()
     return fig
 
 
