@@ -195,9 +195,9 @@ def _gauss_bg(r, a, mu, s, c0, c1):
 
 
 #: stopping rule of the batched Gaussian fit: MINPACK's default relative tolerance (scipy.optimize.leastsq ftol,
-#: xtol), and an iteration cap near curve_fit's maxfev=2000 function calls (about 6 calls per Jacobian step)
+#: xtol) and an iteration cap; a fit not converged by then is handed to curve_fit, so the cap costs time only
 _FIT_TOL = 1.49012e-08
-_FIT_MAX_ITER = 300
+_FIT_MAX_ITER = 100
 
 
 def _gauss_bg_residual(p: np.ndarray, r: np.ndarray, g: np.ndarray, w: np.ndarray, jacobian: bool):
@@ -213,7 +213,7 @@ def _gauss_bg_residual(p: np.ndarray, r: np.ndarray, g: np.ndarray, w: np.ndarra
     return res, jac
 
 
-def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray, *, min_width=None) -> tuple[np.ndarray, np.ndarray]:
     """Least-squares fits of :func:`_gauss_bg`, one per window, all at once (Levenberg-Marquardt).
 
     The same estimator as ``scipy.optimize.curve_fit`` (MINPACK's Levenberg-Marquardt with Marquardt's scaling
@@ -230,6 +230,9 @@ def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray) -> tuple[np.ndarray,
         Abscissae and data of each window (lengths may differ).
     p0 : (m, 5) array
         Start values (a, mu, s, c0, c1) per window.
+    min_width : (m,) array, optional
+        A fit whose width |s| is below this after 20 steps is given up (``ok`` False): the caller only keeps
+        fits at least this wide and refits the others with curve_fit.
 
     Returns
     -------
@@ -257,7 +260,7 @@ def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray) -> tuple[np.ndarray,
     lam = np.full(m, 1e-3)
     active = np.isfinite(cost)
     eye = np.eye(5)
-    for _ in range(_FIT_MAX_ITER):
+    for it in range(_FIT_MAX_ITER):
         act = np.flatnonzero(active)
         if len(act) == 0:
             break
@@ -285,6 +288,8 @@ def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray) -> tuple[np.ndarray,
         fin = act[conv | stuck]
         ok[fin] = True
         active[fin] = False
+        if min_width is not None and it >= 20:
+            active &= ~(np.abs(p[:, 2]) < min_width)
     return p, ok & np.isfinite(p).all(axis=1)
 
 
@@ -345,6 +350,10 @@ def _peak_candidates(r: np.ndarray, g: np.ndarray, cnt: np.ndarray, min_prominen
             "left": left, "right": right}
 
 
+#: the per-peak entries of a candidates dict (the others describe the whole curve)
+_PER_PEAK = ("idx", "prom", "s0", "lo", "hi", "left", "right")
+
+
 def _fit_windows(c: dict) -> tuple[list, list, list, list]:
     """(peak numbers, window abscissae, window data, start values) of the peaks with a window of >= 6 bins."""
     r, g, gs, idx = c["r"], c["g"], c["gs"], c["idx"]
@@ -385,11 +394,18 @@ def _peaks_table(c: dict, fitted: np.ndarray) -> pd.DataFrame:
     return out.sort_values("distance_px").reset_index(drop=True)
 
 
-def _locate_peaks_many(curves: list, *, min_prominence: float | None = None, max_peaks: int = 40) -> list:
+def _locate_peaks_many(curves: list, *, min_prominence: float | None = None, max_peaks: int = 40,
+                       keep=None) -> list:
     """:func:`locate_peaks` for several curves given as (r, g, count) arrays, with every Gaussian fit of every
-    curve in one batch."""
+    curve in one batch. ``keep(n, candidates)``, if given, returns a mask of the candidate peaks of curve n to fit
+    and report (windows and start values are those of all candidates, so the kept ones come out unchanged)."""
     cands = [_peak_candidates(np.asarray(r, float), np.asarray(g, float), np.asarray(n, float), min_prominence,
                               max_peaks) for r, g, n in curves]
+    if keep is not None:
+        for n, c in enumerate(cands):
+            if c is not None:
+                m = np.asarray(keep(n, c), dtype=bool)
+                cands[n] = {k: (v[m] if k in _PER_PEAK else v) for k, v in c.items()} if m.any() else None
     owner, which, xs, ys, p0 = [], [], [], [], []
     for ci, c in enumerate(cands):
         if c is not None:
@@ -399,7 +415,8 @@ def _locate_peaks_many(curves: list, *, min_prominence: float | None = None, max
             xs += x
             ys += y
             p0 += p
-    params, ok = _fit_gauss_bg_batch(xs, ys, np.asarray(p0, float).reshape(-1, 5))
+    bins = np.array([cands[ci]["bw"] for ci in owner])
+    params, ok = _fit_gauss_bg_batch(xs, ys, np.asarray(p0, float).reshape(-1, 5), min_width=bins)
     fitted = [np.full((len(c["idx"]), 5), np.nan) if c is not None else None for c in cands]
     for n, (ci, k) in enumerate(zip(owner, which)):
         if not (ok[n] and abs(params[n, 2]) >= cands[ci]["bw"]):
@@ -761,8 +778,19 @@ def fit_ladder(
                     sel = (rr >= tg - half) & (rr <= tg + half)
                     keys.append((b, t, half))
                     windows.append((rr[sel], gg[sel], nn[sel]))
+            def could_be_nearest(n, c):
+                # A peak's reported position stays within `reach` of its local maximum: the fit is kept within
+                # 2 start widths (or the parabola within 2 bins), the raw-distance refinement moves a narrow peak
+                # (< 3 bins) by at most 2 widths, the Rice shift by noise^2 / r. Peaks that cannot end up nearest
+                # the target are not fitted: the nearest one, the only one used, comes out the same.
+                r_k = c["r"][c["idx"]]
+                reach = (np.maximum(2.0 * c["s0"], 2.0 * c["bw"]) + 6.0 * max(c["bw"], bin_px)
+                         + w_noise ** 2 / np.maximum(r_k, 1e-12) + 1e-9)
+                far = np.abs(r_k - targets[keys[n][1]])
+                return far - reach <= (far + reach).min()
+
             out = np.full((n_blk, len(targets)), np.nan)
-            for (b, t, half), pk_b in zip(keys, _locate_peaks_many(windows)):
+            for (b, t, half), pk_b in zip(keys, _locate_peaks_many(windows, keep=could_be_nearest)):
                 if len(pk_b) == 0:
                     continue
                 tg = targets[t]
