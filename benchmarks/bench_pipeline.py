@@ -10,7 +10,10 @@ timed in this process after its own warm-up, with the diameter the analysis chos
 Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a ratio to trackpy.locate.
 The machine's load average is printed beside the figures: on a shared machine compare runs made together.
 
-Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures]``
+Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--python OTHER ...]``;
+``--python`` adds interpreters with another Tenfold installed (e.g. an older tree in its own venv): their runs are
+interleaved with this one's, so a shared machine's load hits both alike. A stage an older tree does not time shows
+as missing; its export seconds come from its ``--debug`` output when it prints them.
 """
 
 from __future__ import annotations
@@ -40,9 +43,9 @@ def _image(folder: Path, size: int) -> tuple[Path, np.ndarray]:
     return path, img
 
 
-def _analyze(image: Path, out: Path, figures: bool) -> tuple[float, dict, float]:
+def _analyze(python: str, image: Path, out: Path, figures: bool) -> tuple[float, dict, float]:
     """One ``tenfold analyze`` in a fresh interpreter: (wall s, timings_s, export s)."""
-    cmd = [sys.executable, "-m", "tenfold.analysis.cli", "analyze", str(image), "--out", str(out), "--quiet",
+    cmd = [python, "-m", "tenfold.analysis.cli", "analyze", str(image), "--out", str(out), "--quiet",
            "--debug", "--overwrite"]
     if not figures:
         cmd.append("--no-figures")
@@ -51,7 +54,7 @@ def _analyze(image: Path, out: Path, figures: bool) -> tuple[float, dict, float]
     wall = time.perf_counter() - t
     if run.returncode != 0:
         raise SystemExit(f"tenfold analyze failed ({run.returncode}):\n{run.stderr[-2000:]}")
-    timings = json.loads((out / "summary.json").read_text())["timings_s"]
+    timings = json.loads((out / "summary.json").read_text()).get("timings_s", {})
     m = re.search(r"^export\s+([0-9.]+) s", run.stderr, flags=re.M)
     return wall, timings, float(m.group(1)) if m else float("nan")
 
@@ -78,27 +81,37 @@ def main(argv=None) -> None:
     ap.add_argument("--repeat", type=int, default=3, help="runs of tenfold analyze (the fastest is reported)")
     ap.add_argument("--size", type=int, default=1024, help="image side in px")
     ap.add_argument("--no-figures", action="store_true", help="pass --no-figures to tenfold analyze")
+    ap.add_argument("--python", nargs="+", default=[], metavar="PYTHON",
+                    help="other interpreters (other Tenfold trees) to time the same way, interleaved")
     args = ap.parse_args(argv)
+    pythons = [sys.executable, *args.python]
     print(f"load average before: {' '.join(f'{v:.2f}' for v in os.getloadavg())} on {os.cpu_count()} CPUs")
+    runs: dict[str, list] = {p: [] for p in pythons}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         image, img = _image(tmp, args.size)
-        runs = [_analyze(image, tmp / "out", not args.no_figures) for _ in range(max(args.repeat, 1))]
-        walls = [r[0] for r in runs]
-        wall, timings, export_s = min(runs, key=lambda r: r[0])
+        for _ in range(max(args.repeat, 1)):
+            for p in pythons:
+                runs[p].append(_analyze(p, image, tmp / "out", not args.no_figures))
         diameter = json.loads((tmp / "out" / "summary.json").read_text())["automatic"].get("column_diameter_px")
     t_tp, n_tp = _trackpy_seconds(img, diameter or 7.0, args.repeat)
-    stages = {k: v for k, v in timings.items() if k != "total"}
-    stages["export"] = export_s
-    accounted = sum(stages.values())
-    stages["start-up (interpreter, imports)"] = wall - accounted
-    print(f"tenfold analyze, whole: {wall:.2f} s (fastest of {len(walls)}: "
-          f"{', '.join(f'{w:.2f}' for w in walls)})")
-    width = max(len(k) for k in stages)
-    for k, v in stages.items():
-        print(f"  {k:<{width}}  {v:7.3f} s  {100 * v / wall:5.1f} %")
-    print(f"trackpy.locate (diameter {int(np.ceil(diameter or 7.0)) | 1} px): {t_tp:.3f} s, {n_tp} features")
-    print(f"ratio whole analyze / trackpy.locate: {wall / t_tp:.1f}")
+    tables = {}
+    for i, p in enumerate(pythons):
+        wall, timings, export_s = min(runs[p], key=lambda r: r[0])
+        stages = {k: v for k, v in timings.items() if k != "total"}
+        stages["export"] = export_s
+        stages["start-up (interpreter, imports)"] = wall - sum(v for v in stages.values() if np.isfinite(v))
+        stages["whole"] = wall
+        tables[p] = stages
+        print(f"#{i} {p}: tenfold analyze, whole {wall:.2f} s (fastest of {len(runs[p])}: "
+              f"{', '.join(f'{r[0]:.2f}' for r in runs[p])}); ratio to trackpy.locate {wall / t_tp:.1f}")
+    names = list(dict.fromkeys(k for t in tables.values() for k in t))
+    width = max(len(k) for k in names)
+    print(f"  {'stage (s)':<{width}}  " + "  ".join(f"{'#' + str(i):>8}" for i in range(len(pythons))))
+    for k in names:
+        print(f"  {k:<{width}}  " + "  ".join(f"{tables[p].get(k, float('nan')):8.3f}" for p in pythons))
+    print(f"trackpy.locate (diameter {int(np.ceil(diameter or 7.0)) | 1} px, same image): {t_tp:.3f} s, "
+          f"{n_tp} features")
     print(f"load average after: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
 
 
