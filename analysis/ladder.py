@@ -294,17 +294,22 @@ def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray, *, min_width=None) -
 
 
 def _curve_fit_one(x: np.ndarray, y: np.ndarray, p0) -> np.ndarray:
-    """One :func:`_gauss_bg` fit by scipy's ``curve_fit`` (MINPACK); NaN when it fails."""
-    import warnings
+    """One :func:`_gauss_bg` fit, exactly as ``curve_fit(_gauss_bg, x, y, p0, maxfev=2000)`` (the same MINPACK
+    call, ``leastsq`` with its defaults, on the same residuals) without curve_fit's per-call wrappers and
+    covariance; NaN where curve_fit would raise."""
+    from scipy.optimize import leastsq
 
-    from scipy.optimize import OptimizeWarning, curve_fit
-
-    try:
-        with warnings.catch_warnings():  # an ill-conditioned covariance is judged by the caller's checks
-            warnings.simplefilter("ignore", OptimizeWarning)
-            return curve_fit(_gauss_bg, x, y, p0=p0, maxfev=2000)[0]
-    except (RuntimeError, ValueError):
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    if not (np.isfinite(x).all() and np.isfinite(y).all()):
         return np.full(5, np.nan)
+
+    def residual(p):
+        return _gauss_bg(x, *p) - y
+
+    with np.errstate(all="ignore"):
+        p, _, _, _, ier = leastsq(residual, np.atleast_1d(np.asarray(p0, dtype=float)), full_output=1, maxfev=2000)
+    return p if ier in (1, 2, 3, 4) else np.full(5, np.nan)
 
 
 def _empty_peaks() -> pd.DataFrame:
