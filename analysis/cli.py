@@ -437,7 +437,9 @@ def _analyze(args) -> int:
     execution = _execution(args)
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
+    t_read = time.perf_counter()
     mg = _read_for(args, execution)
+    t_read = time.perf_counter() - t_read
     check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
     execution = _capped(execution, mg.data.shape)
     regions = None
@@ -451,8 +453,15 @@ def _analyze(args) -> int:
             reg.label = k
             regions.append(reg)
     result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution)
+    from ._timing import format_table, with_stage
+
+    result.summary["timings_s"] = with_stage(result.summary.get("timings_s"), "read", t_read, first=True)
     prog(1.0, f"writing {args.out}")
+    t_export = time.perf_counter()
     write_results(result, args.out, overwrite=args.overwrite, figures=not args.no_figures)
+    if args.debug:  # export is timed here only: summary.json is one of the files it writes
+        timings = with_stage(result.summary["timings_s"], "export", time.perf_counter() - t_export)
+        print("timings (wall seconds)\n" + format_table(timings), file=sys.stderr)
     s = result.summary
     cal = f"{s['pixel_size_nm']} nm/px ({s['calibration_source']})" if s["calibrated"] else "UNCALIBRATED (px only)"
     m = result.tables["motifs"]

@@ -408,14 +408,23 @@ def _rasterise_dense_layers(fig) -> int:
     return n
 
 
+#: PNG resolution of the written figures (dots per inch)
+FIGURE_DPI = 150
+
+
 def _save_figure(fig, stem: Path) -> list[Path]:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     FigureCanvasAgg(fig)
     _rasterise_dense_layers(fig)
     png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
-    # fastest zlib level: the figure PNGs are written on every run; a third larger files, several times faster
-    fig.savefig(png, dpi=200, pil_kwargs={"compress_level": 1})
+    # fastest zlib level: the figure PNGs are written on every run; a third larger files, several times faster.
+    # FIGURE_DPI: a 7 inch overlay of a 1k image keeps one pixel per image pixel
+    fig.savefig(png, dpi=FIGURE_DPI, pil_kwargs={"compress_level": 1})
+    # the layout engine placed the axes while drawing the PNG (in figure fractions, the same at any dpi); freezing
+    # it spares the SVG a second pass of text measuring, a third of the figure time
+    if fig.get_layout_engine() is not None:
+        fig.set_layout_engine("none")
     fig.savefig(svg)
     return [png, svg]
 
@@ -574,7 +583,7 @@ def write_results(
         whose checksum still matches); other files are never touched, and a file in the way that the manifest
         does not vouch for refuses the run. Old results are replaced only after the new ones are complete.
     figures : bool
-        Draw the registered figures (``FIGURES``) into ``figures/`` as PNG (200 dpi) and SVG.
+        Draw the registered figures (``FIGURES``) into ``figures/`` as PNG (``FIGURE_DPI``, 150 dpi) and SVG.
     progress : callable, optional
         ``progress(fraction, message)``, called once per file; returning False cancels (raises
         :class:`Cancelled`, nothing is left behind).
@@ -659,9 +668,7 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
 
     job("results.xlsx", workbook)
     if figures:
-        _load_figure_modules()
-        for name, maker in list(FIGURES.items()):
-            job(f"figures/{name}", lambda name=name, maker=maker: _figure_job(result, name, maker, tmp))
+        jobs.extend(_figure_jobs(result, tmp, progress))
 
     written: list[Path] = []
     for i, (label, func) in enumerate(jobs):
@@ -687,6 +694,121 @@ def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:
     path = tmp / PARAMETERS_FILE
     path.write_text(parameters_to_toml(result.parameters), encoding="utf-8")
     return [path]
+
+
+#: draw about half of the figures in a forked helper process while this one draws the rest (Linux, and only when
+#: the caller runs a single Python thread, as the command line does: forking a process with running threads, such
+#: as a GUI, is not safe). The helper writes into the same work folder, so the results stay all-or-nothing; if it
+#: fails in any way its figures are drawn here instead.
+BACKGROUND_FIGURES = True
+
+#: seconds to wait for the helper before drawing its figures here instead
+_BACKGROUND_TIMEOUT_S = 600.0
+
+
+def _figure_jobs(result: AnalysisResult, tmp: Path, progress) -> list[tuple[str, Callable[[], list[Path]]]]:
+    """The (label, job) list that draws every registered figure into ``tmp/figures``."""
+    _load_figure_modules()
+    makers = list(FIGURES.items())
+
+    def draw(name, maker):
+        return lambda: _figure_job(result, name, maker, tmp)
+
+    if not (BACKGROUND_FIGURES and len(makers) >= 2 and _fork_is_safe()):
+        return [(f"figures/{name}", draw(name, maker)) for name, maker in makers]
+    import matplotlib.figure  # noqa: F401  imported before the fork, so the helper does not import it again
+
+    helper = _FigureHelper(result, makers[0::2], tmp, progress)
+    return [("figures (helper process)", helper.start),
+            *[(f"figures/{name}", draw(name, maker)) for name, maker in makers[1::2]],
+            ("figures (helper process)", helper.collect)]
+
+
+def _fork_is_safe() -> bool:
+    import sys
+    import threading
+
+    return sys.platform.startswith("linux") and threading.active_count() == 1
+
+
+class _FigureHelper:
+    """A forked process drawing some figures into the work folder; :meth:`collect` waits for it (reporting
+    progress, so a cancel kills it) and returns the files it wrote, or draws its figures here if it failed."""
+
+    def __init__(self, result, makers, tmp: Path, progress) -> None:
+        self.result, self.makers, self.tmp, self.progress = result, makers, tmp, progress
+        self.state: dict = {}
+
+    def start(self) -> list[Path]:
+        import os
+        import weakref
+
+        (self.tmp / "figures").mkdir(exist_ok=True)
+        read_fd, write_fd = os.pipe()
+        pid = os.fork()
+        if pid == 0:  # the helper: draw, report the files and warnings through the pipe, leave without cleanup
+            code = 1
+            try:
+                os.close(read_fd)
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always", TenfoldWarning)
+                    paths = [str(p) for p in self._draw()]
+                msg = json.dumps({"paths": paths, "warnings": [str(w.message) for w in caught
+                                                               if issubclass(w.category, TenfoldWarning)]})
+                with os.fdopen(write_fd, "w", encoding="utf-8") as f:
+                    f.write(msg)
+                code = 0
+            finally:
+                os._exit(code)
+        os.close(write_fd)
+        self.state = {"pid": pid, "fd": read_fd}
+        weakref.finalize(self, _FigureHelper._end, self.state, True)  # never left running if the run stops early
+        return []
+
+    def _draw(self) -> list[Path]:
+        return [p for name, maker in self.makers for p in _figure_job(self.result, name, maker, self.tmp)]
+
+    @staticmethod
+    def _end(state: dict, kill: bool) -> int | None:
+        """Reap the helper once (killing it first when ``kill``) and close the pipe; its exit status or None."""
+        import os
+        import signal
+
+        pid, fd = state.pop("pid", None), state.pop("fd", None)
+        if fd is not None:
+            os.close(fd)
+        if pid is None:
+            return None
+        if kill:
+            os.kill(pid, signal.SIGKILL)
+        return os.waitpid(pid, 0)[1]
+
+    def collect(self) -> list[Path]:
+        import os
+        import select
+        import time
+
+        chunks, t0, done = [], time.monotonic(), False
+        try:
+            while not done and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
+                report(self.progress, 0.99, "waiting for the figures drawn by the helper process")
+                if select.select([self.state["fd"]], [], [], 0.1)[0]:
+                    data = os.read(self.state["fd"], 1 << 16)
+                    chunks.append(data)
+                    done = not data
+        except BaseException:  # cancelled or interrupted: stop the helper, then pass the reason on
+            self._end(self.state, True)
+            raise
+        status = self._end(self.state, not done)
+        try:
+            got = json.loads(b"".join(chunks).decode("utf-8")) if done and status == 0 else None
+        except ValueError:
+            got = None
+        if got is None:  # the helper failed or hung: draw its figures here
+            return self._draw()
+        for msg in got["warnings"]:
+            warnings.warn(msg, TenfoldWarning, stacklevel=2)
+        return [Path(p) for p in got["paths"]]
 
 
 def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:

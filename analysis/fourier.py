@@ -1286,6 +1286,18 @@ def bragg_angle_mrad(d_nm, voltage_kv) -> float | np.ndarray:
 # ----------------------------------------------------------------------------------------------------------------
 
 
+def _shown_part(img: np.ndarray, k_step: float, lim: float) -> tuple[np.ndarray, np.ndarray]:
+    """The part of a centred spectrum (pixel j at k = (j - n/2) k_step, as :func:`power_spectrum` lays it out)
+    that a [-lim, lim] view shows, one pixel of margin, with its imshow extent: drawing only that part looks the
+    same and costs a fraction of resampling the whole spectrum into the figure (and of embedding it in the SVG)."""
+    n_r, n_c = img.shape
+    half = int(np.ceil(lim / k_step)) + 1
+    r0, r1 = max(n_r // 2 - half, 0), min(n_r // 2 + half + 1, n_r)
+    c0, c1 = max(n_c // 2 - half, 0), min(n_c // 2 + half + 1, n_c)
+    ext = np.array([c0 - n_c / 2 - 0.5, c1 - 1 - n_c / 2 + 0.5, r1 - 1 - n_r / 2 + 0.5, r0 - n_r / 2 - 0.5]) * k_step
+    return img[r0:r1, c0:c1], ext
+
+
 def spectrum_figure(result):
     """Log power spectrum with the spots (indexed spots coloured by |g_perp| / a*) and the fit's key numbers.
 
@@ -1309,15 +1321,16 @@ def spectrum_figure(result):
     s = (1.0 / ps) if ps else 1.0
     unit = "1/nm" if ps else "1/px"
     n = spec.shape[0]
-    ext = np.array([-n / 2 - 0.5, n / 2 - 0.5, n / 2 - 0.5, -n / 2 - 0.5]) * dk * s
     spots = result.tables.get("spots")
     fig = Figure(figsize=(7.2, 6.2), dpi=120, layout="constrained")
     ax = fig.add_subplot(1, 1, 1)
-    ax.imshow(spec, cmap="gray", extent=ext, vmax=float(np.percentile(spec, 99.9)))
     lim = 0.5 * dk * n * s
     if spots is not None and len(spots):
         kx, ky = spots["kx_per_px"].to_numpy() * s, spots["ky_per_px"].to_numpy() * s
         lim = min(lim, 1.15 * float(np.percentile(np.hypot(kx, ky), 95)))
+    shown, ext = _shown_part(spec, dk * s, lim)
+    ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(spec, 99.9)))
+    if spots is not None and len(spots):
         ind = spots["indexed"].to_numpy(dtype=bool) if "indexed" in spots else np.zeros(len(spots), bool)
         ax.scatter(kx[~ind], ky[~ind], s=30, facecolors="none", edgecolors="#bbbbbb", linewidths=0.6,
                    label="spot (not indexed)")
@@ -1457,7 +1470,6 @@ def diffraction_figure(result):
     ps = getattr(result.meta, "pixel_size_nm", None)
     s = (1.0 / ps) if ps else 1.0
     unit = "1/nm" if ps else "1/px"
-    ext = np.array([-n / 2 - 0.5, n / 2 - 0.5, n / 2 - 0.5, -n / 2 - 0.5]) * dk * s
     spots = result.tables.get("spots")
     lim = 0.5 * n * dk * s
     if spots is not None and len(spots):
@@ -1465,7 +1477,8 @@ def diffraction_figure(result):
     fig = Figure(figsize=(11, 5.4), dpi=120, layout="constrained")
     for ax, img, title in zip(fig.subplots(1, 2), (spec, kin),
                               ("image power spectrum", "kinematic |sum f exp(-2 pi i k.r)|^2 of the found columns")):
-        ax.imshow(img, cmap="gray", extent=ext, vmax=float(np.percentile(img, 99.9)))
+        shown, ext = _shown_part(img, dk * s, lim)
+        ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(img, 99.9)))
         ax.set(xlim=(-lim, lim), ylim=(lim, -lim), xlabel=f"k_x ({unit})", ylabel=f"k_y ({unit})")
         ax.set_title(title, fontsize=9)
     return fig

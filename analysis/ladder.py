@@ -194,13 +194,253 @@ def _gauss_bg(r, a, mu, s, c0, c1):
     return a * np.exp(-0.5 * ((r - mu) / s) ** 2) + c0 + c1 * (r - mu)
 
 
+#: stopping rule of the batched Gaussian fit: MINPACK's default relative tolerance (scipy.optimize.leastsq ftol,
+#: xtol) and an iteration cap; a fit not converged by then is handed to curve_fit, so the cap costs time only
+_FIT_TOL = 1.49012e-08
+_FIT_MAX_ITER = 100
+
+
+def _gauss_bg_residual(p: np.ndarray, r: np.ndarray, g: np.ndarray, w: np.ndarray, jacobian: bool):
+    """Residuals (and Jacobian) of :func:`_gauss_bg` for a batch: p (m, 5), r, g, w (m, L); w masks padding."""
+    a, mu, s, c0, c1 = (p[:, k, None] for k in range(5))
+    with np.errstate(all="ignore"):  # a trial step may send s to 0; its cost is then not finite and it is refused
+        z = (r - mu) / s
+        e = np.exp(-0.5 * z * z)
+        res = w * (a * e + c0 + c1 * (r - mu) - g)
+        if not jacobian:
+            return res, None
+        jac = np.stack([e, a * e * z / s - c1, a * e * z * z / s, np.ones_like(r), r - mu], axis=-1) * w[..., None]
+    return res, jac
+
+
+def _fit_gauss_bg_batch(xs: list, ys: list, p0: np.ndarray, *, min_width=None) -> tuple[np.ndarray, np.ndarray]:
+    """Least-squares fits of :func:`_gauss_bg`, one per window, all at once (Levenberg-Marquardt).
+
+    The same estimator as ``scipy.optimize.curve_fit`` (MINPACK's Levenberg-Marquardt with Marquardt's scaling
+    by the diagonal of J^T J; D. W. Marquardt, J. Soc. Indust. Appl. Math. 11 (1963) 431) from the same start,
+    with the analytic Jacobian and every window advanced in one numpy step, so a few hundred fits cost about as
+    much as one. Converged when an accepted step lowers the sum of squares, and the linear model predicts it to
+    lower it, by at most ``_FIT_TOL`` relative (MINPACK's ftol test), when the scaled step is that small relative
+    to the scaled parameters (its xtol test), or when no step can lower it any more; at most ``_FIT_MAX_ITER``
+    steps.
+
+    Parameters
+    ----------
+    xs, ys : list of 1-D arrays
+        Abscissae and data of each window (lengths may differ).
+    p0 : (m, 5) array
+        Start values (a, mu, s, c0, c1) per window.
+    min_width : (m,) array, optional
+        A fit whose width |s| is below this after 20 steps is given up (``ok`` False): the caller only keeps
+        fits at least this wide and refits the others with curve_fit.
+
+    Returns
+    -------
+    params : (m, 5) array
+    ok : (m,) bool
+        False when a fit did not converge within ``_FIT_MAX_ITER`` steps (the caller falls back, as on a
+        ``curve_fit`` RuntimeError).
+    """
+    m = len(xs)
+    p = np.array(p0, dtype=float).reshape(m, 5)
+    ok = np.zeros(m, bool)
+    if m == 0:
+        return p, ok
+    width = max(len(x) for x in xs)
+    r = np.empty((m, width))
+    g = np.zeros((m, width))
+    w = np.zeros((m, width))
+    for k, (x, y) in enumerate(zip(xs, ys)):  # padding only; one row per window
+        r[k] = x[0]
+        r[k, :len(x)] = x
+        g[k, :len(y)] = y
+        w[k, :len(x)] = 1.0
+    res, jac = _gauss_bg_residual(p, r, g, w, True)
+    cost = (res * res).sum(axis=1)
+    lam = np.full(m, 1e-3)
+    active = np.isfinite(cost)
+    eye = np.eye(5)
+    for it in range(_FIT_MAX_ITER):
+        act = np.flatnonzero(active)
+        if len(act) == 0:
+            break
+        ja, ra = jac[act], res[act]
+        jtj = np.einsum("nli,nlj->nij", ja, ja)
+        grad = np.einsum("nli,nl->ni", ja, ra)
+        diag = np.diagonal(jtj, axis1=1, axis2=2)
+        diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
+        with np.errstate(all="ignore"):
+            step = -np.linalg.solve(jtj + lam[act, None, None] * diag[:, :, None] * eye, grad[..., None])[..., 0]
+        trial = p[act] + step
+        r_new, j_new = _gauss_bg_residual(trial, r[act], g[act], w[act], True)
+        c_new = (r_new * r_new).sum(axis=1)
+        c_old = cost[act]
+        better = np.isfinite(c_new) & np.isfinite(trial).all(axis=1) & (c_new <= c_old)
+        pred = -(2.0 * (step * grad).sum(axis=1) + np.einsum("ni,nij,nj->n", step, jtj, step))
+        tol = _FIT_TOL * np.maximum(c_old, 1e-300)
+        scale = np.sqrt(diag)  # MINPACK's variable scaling: the column norms of the Jacobian
+        small_step = np.linalg.norm(scale * step, axis=1) <= _FIT_TOL * np.linalg.norm(scale * p[act], axis=1)
+        conv = better & (((c_old - c_new <= tol) & (np.abs(pred) <= tol)) | small_step)
+        stuck = ~better & (lam[act] > 1e12)  # no step lowers the sum of squares: at its minimum to rounding
+        acc = act[better]
+        p[acc], res[acc], jac[acc], cost[acc] = trial[better], r_new[better], j_new[better], c_new[better]
+        lam[act] = np.where(better, np.maximum(lam[act] / 10.0, 1e-15), lam[act] * 10.0)
+        fin = act[conv | stuck]
+        ok[fin] = True
+        active[fin] = False
+        if min_width is not None and it >= 20:
+            active &= ~(np.abs(p[:, 2]) < min_width)
+    return p, ok & np.isfinite(p).all(axis=1)
+
+
+def _curve_fit_one(x: np.ndarray, y: np.ndarray, p0) -> np.ndarray:
+    """One :func:`_gauss_bg` fit, exactly as ``curve_fit(_gauss_bg, x, y, p0, maxfev=2000)`` (the same MINPACK
+    call, ``leastsq`` with its defaults, on the same residuals) without curve_fit's per-call wrappers and
+    covariance; NaN where curve_fit would raise."""
+    from scipy.optimize import leastsq
+
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    if not (np.isfinite(x).all() and np.isfinite(y).all()):
+        return np.full(5, np.nan)
+
+    def residual(p):
+        return _gauss_bg(x, *p) - y
+
+    with np.errstate(all="ignore"):
+        p, _, _, _, ier = leastsq(residual, np.atleast_1d(np.asarray(p0, dtype=float)), full_output=1, maxfev=2000)
+    return p if ier in (1, 2, 3, 4) else np.full(5, np.nan)
+
+
+def _empty_peaks() -> pd.DataFrame:
+    cols = ["distance_px", "height", "width_px", "prominence", "fit"]
+    return pd.DataFrame({c: pd.Series([], dtype=float if c != "fit" else object) for c in cols})
+
+
+def _peak_candidates(r: np.ndarray, g: np.ndarray, cnt: np.ndarray, min_prominence: float | None,
+                     max_peaks: int) -> dict | None:
+    """Local maxima of a pair distribution and the fit window, start width and start values of each (the first
+    half of :func:`locate_peaks`); None when there is no peak."""
+    from scipy.ndimage import gaussian_filter1d
+    from scipy.signal import find_peaks, peak_widths
+
+    if len(r) < 5:
+        return None
+    g = np.nan_to_num(g, nan=0.0)
+    bw = float(r[1] - r[0])
+    gs = gaussian_filter1d(g, 1.5)
+    noise = np.where(cnt > 0, g / np.sqrt(np.maximum(cnt, 1.0)), 0.0)
+    noise_s = gaussian_filter1d(noise, 5.0)
+    prom_min = 0.03 * float(gs.max()) if min_prominence is None else float(min_prominence)
+    idx, props = find_peaks(gs, prominence=prom_min)
+    prom = props["prominences"]
+    if min_prominence is None:
+        keep = prom >= 4.0 * noise_s[idx]
+        idx, prom = idx[keep], prom[keep]
+    if len(idx) == 0:
+        return None
+    if len(idx) > max_peaks:
+        top = np.sort(np.argsort(-prom)[:max_peaks])
+        idx, prom = idx[top], prom[top]
+    wid = peak_widths(gs, idx, rel_height=0.5)[0] * bw / 2.3548
+    # A fit window never reaches past the midpoint to a neighbouring maximum: otherwise two close peaks (a width
+    # read across both at half height) are fitted as one broad Gaussian halfway between them.
+    mids = 0.5 * (r[idx[1:]] + r[idx[:-1]])
+    left = np.concatenate([[-np.inf], mids])
+    right = np.concatenate([mids, [np.inf]])
+    s0 = np.maximum(np.minimum(wid, (right - left) / 2.5), bw)
+    lo = np.maximum(np.searchsorted(r, np.maximum(r[idx] - 2.5 * s0, left)), 0)
+    hi = np.minimum(np.searchsorted(r, np.minimum(r[idx] + 2.5 * s0, right)) + 1, len(r))
+    return {"r": r, "g": g, "gs": gs, "bw": bw, "idx": idx, "prom": prom, "s0": s0, "lo": lo, "hi": hi,
+            "left": left, "right": right}
+
+
+#: the per-peak entries of a candidates dict (the others describe the whole curve)
+_PER_PEAK = ("idx", "prom", "s0", "lo", "hi", "left", "right")
+
+
+def _fit_windows(c: dict) -> tuple[list, list, list, list]:
+    """(peak numbers, window abscissae, window data, start values) of the peaks with a window of >= 6 bins."""
+    r, g, gs, idx = c["r"], c["g"], c["gs"], c["idx"]
+    which, xs, ys, p0 = [], [], [], []
+    for k, i in enumerate(idx):  # a few dozen peaks at most; the fits themselves run batched
+        lo, hi = c["lo"][k], c["hi"][k]
+        if hi - lo >= 6:
+            floor = gs[lo:hi].min()
+            which.append(k)
+            xs.append(r[lo:hi])
+            ys.append(g[lo:hi])
+            p0.append([g[i] - floor, r[i], c["s0"][k], floor, 0.0])
+    return which, xs, ys, p0
+
+
+def _peaks_table(c: dict, fitted: np.ndarray) -> pd.DataFrame:
+    """The peaks table from the candidates and their fits (rows of NaN for a failed or absent fit); a fit is kept
+    only near its start and inside its window, else the parabola through the three highest bins of log g."""
+    r, gs, bw, idx, s0 = c["r"], c["gs"], c["bw"], c["idx"], c["s0"]
+    a, mu, s = fitted[:, 0], fitted[:, 1], fitted[:, 2]
+    with np.errstate(invalid="ignore"):
+        good = (np.abs(mu - r[idx]) < 2 * s0) & (c["left"] < mu) & (mu < c["right"]) & (np.abs(s) > 0) \
+            & (np.abs(s) < 5 * s0) & (a > 0)
+    dist = np.where(good, mu, np.nan)
+    width = np.where(good, np.abs(s), np.nan)
+    height = np.where(good, a + fitted[:, 3], np.nan)
+    how = np.where(good, "gauss", "parabola").astype(object)
+    for k in np.flatnonzero(~good):  # the rare failed fits
+        j = int(np.clip(idx[k], 1, len(r) - 2))
+        lg = np.log(np.maximum(gs[j - 1:j + 2], 1e-12))
+        den = lg[0] - 2 * lg[1] + lg[2]
+        off = 0.5 * (lg[0] - lg[2]) / den if den < 0 else 0.0
+        dist[k] = r[j] + np.clip(off, -1, 1) * bw
+        width[k] = np.sqrt(-bw * bw / den) if den < 0 else s0[k]
+        height[k] = gs[j]
+    out = pd.DataFrame({"distance_px": dist.astype(float), "height": height.astype(float),
+                        "width_px": width.astype(float), "prominence": c["prom"].astype(float), "fit": how})
+    return out.sort_values("distance_px").reset_index(drop=True)
+
+
+def _locate_peaks_many(curves: list, *, min_prominence: float | None = None, max_peaks: int = 40,
+                       keep=None) -> list:
+    """:func:`locate_peaks` for several curves given as (r, g, count) arrays, with every Gaussian fit of every
+    curve in one batch. ``keep(n, candidates)``, if given, returns a mask of the candidate peaks of curve n to fit
+    and report (windows and start values are those of all candidates, so the kept ones come out unchanged)."""
+    cands = [_peak_candidates(np.asarray(r, float), np.asarray(g, float), np.asarray(n, float), min_prominence,
+                              max_peaks) for r, g, n in curves]
+    if keep is not None:
+        for n, c in enumerate(cands):
+            if c is not None:
+                m = np.asarray(keep(n, c), dtype=bool)
+                cands[n] = {k: (v[m] if k in _PER_PEAK else v) for k, v in c.items()} if m.any() else None
+    owner, which, xs, ys, p0 = [], [], [], [], []
+    for ci, c in enumerate(cands):
+        if c is not None:
+            wk, x, y, p = _fit_windows(c)
+            owner += [ci] * len(wk)
+            which += wk
+            xs += x
+            ys += y
+            p0 += p
+    bins = np.array([cands[ci]["bw"] for ci in owner])
+    params, ok = _fit_gauss_bg_batch(xs, ys, np.asarray(p0, float).reshape(-1, 5), min_width=bins)
+    fitted = [np.full((len(c["idx"]), 5), np.nan) if c is not None else None for c in cands]
+    for n, (ci, k) in enumerate(zip(owner, which)):
+        if not (ok[n] and abs(params[n, 2]) >= cands[ci]["bw"]):
+            # A peak narrower than a bin has no finite least-squares width (it collapses toward a spike) and
+            # where an optimiser stops is then its own choice: such fits, and the rare unconverged ones, are
+            # left to curve_fit exactly as before, so the results stay those of the earlier releases.
+            params[n] = _curve_fit_one(xs[n], ys[n], p0[n])
+        fitted[ci][k] = params[n]
+    return [_empty_peaks() if c is None else _peaks_table(c, f) for c, f in zip(cands, fitted)]
+
+
 def locate_peaks(curve: pd.DataFrame, *, min_prominence: float | None = None, max_peaks: int = 40) -> pd.DataFrame:
     """Peaks of a pair distribution with sub-bin positions and widths.
 
     Local maxima of g smoothed by a 1.5-bin Gaussian, kept when their prominence exceeds ``min_prominence``
     (default: the larger of 4 x the Poisson noise of g near the peak and 3 % of the highest g). Each is then fitted
-    by a Gaussian on a linear background (scipy ``curve_fit``) over +-2.5 widths; a failed fit falls back to the
-    parabola through the three highest bins of log g.
+    by a Gaussian on a linear background (least squares, Levenberg-Marquardt, all peaks at once; the estimator of
+    scipy's ``curve_fit``) over +-2.5 widths; a failed fit falls back to the parabola through the three highest
+    bins of log g.
 
     Parameters
     ----------
@@ -217,67 +457,9 @@ def locate_peaks(curve: pd.DataFrame, *, min_prominence: float | None = None, ma
         distance_px, height (g at the peak), width_px (Gaussian standard deviation), prominence, fit ('gauss'
         or 'parabola'), sorted by distance.
     """
-    from scipy.ndimage import gaussian_filter1d
-    import warnings
-
-    from scipy.optimize import OptimizeWarning, curve_fit
-    from scipy.signal import find_peaks, peak_widths
-
-    cols = ["distance_px", "height", "width_px", "prominence", "fit"]
-    if len(curve) < 5:
-        return pd.DataFrame({c: pd.Series([], dtype=float if c != "fit" else object) for c in cols})
-    r = curve["r_px"].to_numpy(dtype=float)
-    g = np.nan_to_num(curve["g"].to_numpy(dtype=float), nan=0.0)
-    cnt = curve["count"].to_numpy(dtype=float)
-    bw = float(r[1] - r[0])
-    gs = gaussian_filter1d(g, 1.5)
-    noise = np.where(cnt > 0, g / np.sqrt(np.maximum(cnt, 1.0)), 0.0)
-    noise_s = gaussian_filter1d(noise, 5.0)
-    prom_min = 0.03 * float(gs.max()) if min_prominence is None else float(min_prominence)
-    idx, props = find_peaks(gs, prominence=prom_min)
-    if min_prominence is None:
-        ok = props["prominences"] >= 4.0 * noise_s[idx]
-        idx, props = idx[ok], {k: v[ok] for k, v in props.items()}
-    if len(idx) == 0:
-        return pd.DataFrame({c: pd.Series([], dtype=float if c != "fit" else object) for c in cols})
-    if len(idx) > max_peaks:
-        top = np.sort(np.argsort(-props["prominences"])[:max_peaks])
-        idx, props = idx[top], {k: v[top] for k, v in props.items()}
-    wid = peak_widths(gs, idx, rel_height=0.5)[0] * bw / 2.3548
-    # A fit window never reaches past the midpoint to a neighbouring maximum: otherwise two close peaks (a width
-    # read across both at half height) are fitted as one broad Gaussian halfway between them.
-    mids = 0.5 * (r[idx[1:]] + r[idx[:-1]])
-    left = np.concatenate([[-np.inf], mids])
-    right = np.concatenate([mids, [np.inf]])
-    rows = []
-    for k, i in enumerate(idx):  # a few dozen peaks at most
-        s0 = max(min(wid[k], (right[k] - left[k]) / 2.5), bw)
-        lo = np.searchsorted(r, max(r[i] - 2.5 * s0, left[k]))
-        hi = np.searchsorted(r, min(r[i] + 2.5 * s0, right[k])) + 1
-        lo, hi = max(lo, 0), min(hi, len(r))
-        mu, s, a, how = np.nan, np.nan, np.nan, "gauss"
-        if hi - lo >= 6:
-            try:
-                with warnings.catch_warnings():  # an ill-conditioned covariance is judged by the checks below
-                    warnings.simplefilter("ignore", OptimizeWarning)
-                    p, _ = curve_fit(_gauss_bg, r[lo:hi], g[lo:hi], p0=[g[i] - gs[lo:hi].min(), r[i], s0, gs[lo:hi].min(), 0.0],
-                                     maxfev=2000)
-                if abs(p[1] - r[i]) < 2 * s0 and left[k] < p[1] < right[k] and 0 < abs(p[2]) < 5 * s0 and p[0] > 0:
-                    mu, s, a = p[1], abs(p[2]), p[0] + p[3]
-            except (RuntimeError, ValueError):
-                pass
-        if not np.isfinite(mu):
-            how = "parabola"
-            j = int(np.clip(i, 1, len(r) - 2))
-            lg = np.log(np.maximum(gs[j - 1:j + 2], 1e-12))
-            den = lg[0] - 2 * lg[1] + lg[2]
-            off = 0.5 * (lg[0] - lg[2]) / den if den < 0 else 0.0
-            mu = r[j] + np.clip(off, -1, 1) * bw
-            s = np.sqrt(-bw * bw / den) if den < 0 else s0
-            a = gs[j]
-        rows.append((float(mu), float(a), float(s), float(props["prominences"][k]), how))
-    out = pd.DataFrame(rows, columns=cols).sort_values("distance_px").reset_index(drop=True)
-    return out
+    arrays = (curve["r_px"].to_numpy(dtype=float), curve["g"].to_numpy(dtype=float),
+              curve["count"].to_numpy(dtype=float))
+    return _locate_peaks_many([arrays], min_prominence=min_prominence, max_peaks=max_peaks)[0]
 
 
 # --------------------------------------------------------------------------------------------- ladder fit
@@ -588,25 +770,42 @@ def fit_ladder(
         cnt_all = cnt_blk.sum(axis=0)
         ref_blk = np.bincount(blk, minlength=n_blk)
 
-        def locate(b, targets, widths):
-            """Peak positions nearest ``targets`` (within 2 widths) without the pairs of block b's reference points;
-            only a window of the pair distribution around each target is searched."""
-            c = _curve(cnt_all - cnt_blk[b], edges, max(int(len(blk) - ref_blk[b]), 1), xy, True)
-            rr = c["r_px"].to_numpy()
-            out = np.full(len(targets), np.nan)
-            for t, (tg, wd) in enumerate(zip(targets, widths)):  # a handful of rungs
-                half = max(8.0 * wd, 8.0 * bin_px)
-                sub = c[(rr >= tg - half) & (rr <= tg + half)].reset_index(drop=True)
-                pk_b = locate_peaks(sub)
+        def locate(targets, widths):
+            """(blocks, targets) peak positions nearest ``targets`` (within 2 widths) without the pairs of each
+            block's reference points; only a window of the pair distribution around each target is searched, and
+            the peak fits of every block and window run as one batch."""
+            keys, windows = [], []
+            for b in range(n_blk):  # at most _JACKKNIFE_BLOCKS curves
+                c = _curve(cnt_all - cnt_blk[b], edges, max(int(len(blk) - ref_blk[b]), 1), xy, True)
+                rr, gg, nn = (c[k].to_numpy(dtype=float) for k in ("r_px", "g", "count"))
+                for t, (tg, wd) in enumerate(zip(targets, widths)):  # a handful of rungs
+                    half = max(8.0 * wd, 8.0 * bin_px)
+                    sel = (rr >= tg - half) & (rr <= tg + half)
+                    keys.append((b, t, half))
+                    windows.append((rr[sel], gg[sel], nn[sel]))
+            def could_be_nearest(n, c):
+                # A peak's reported position stays within `reach` of its local maximum: the fit is kept within
+                # 2 start widths (or the parabola within 2 bins), the raw-distance refinement moves a narrow peak
+                # (< 3 bins) by at most 2 widths, the Rice shift by noise^2 / r. Peaks that cannot end up nearest
+                # the target are not fitted: the nearest one, the only one used, comes out the same.
+                r_k = c["r"][c["idx"]]
+                reach = (np.maximum(2.0 * c["s0"], 2.0 * c["bw"]) + 6.0 * max(c["bw"], bin_px)
+                         + w_noise ** 2 / np.maximum(r_k, 1e-12) + 1e-9)
+                far = np.abs(r_k - targets[keys[n][1]])
+                return far - reach <= (far + reach).min()
+
+            out = np.full((n_blk, len(targets)), np.nan)
+            for (b, t, half), pk_b in zip(keys, _locate_peaks_many(windows, keep=could_be_nearest)):
                 if len(pk_b) == 0:
                     continue
+                tg = targets[t]
                 lo, hi = np.searchsorted(d_sorted, [tg - half, tg + half])
                 raw = d_sorted[lo:hi][blk_sorted[lo:hi] != b]
                 pk_b = _rice_corrected(_refine_narrow(pk_b, raw, bin_px), w_noise)
                 q_b = pk_b["distance_px"].to_numpy()
                 j = int(np.argmin(np.abs(q_b - tg)))
-                if abs(q_b[j] - tg) <= 2.0 * max(wd, bin_px):
-                    out[t] = q_b[j]
+                if abs(q_b[j] - tg) <= 2.0 * max(widths[t], bin_px):
+                    out[b, t] = q_b[j]
             return out
 
         u = _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, unresolved, locate)
@@ -780,7 +979,7 @@ def _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, 
 
     * **block jackknife of the whole estimator**: the reference points are grouped into image blocks (``blk``),
       and the pair distribution, its peaks and their positions are recomputed with each block left out in turn
-      (``locate(block)``); the jackknife variance (K - 1) / K sum (theta_k - mean)^2 then holds pair-to-pair noise,
+      (``locate(targets, widths)`` returns them for every block at once); the jackknife variance (K - 1) / K sum (theta_k - mean)^2 then holds pair-to-pair noise,
       what the peak fit itself does, and regional differences (strain, drift, distortion gradients, fit bias that
       varies over the field). M. H. Quenouille, Biometrika 43 (1956) 353; J. W. Tukey, Ann. Math. Statist. 29
       (1958) 614; blocks for spatially dependent data: H. R. Kunsch, Ann. Statist. 17 (1989) 1217.
@@ -810,9 +1009,7 @@ def _uncertainty(blk, n_blk, ref_i, d, jbest, inwin, idx, rung, wpx, p, n_boot, 
     ratio_sd = np.sqrt(2.0) * pos / p[idx]
     how = "peak width / sqrt(pairs) (no jackknife: n_boot = 0 or fewer than 4 image blocks)"
     if n_boot > 0 and k > 0 and n_blk >= 4:
-        theta = np.full((n_blk, k), np.nan)
-        for b in range(n_blk):  # at most _JACKKNIFE_BLOCKS re-runs of the peak estimator
-            theta[b] = locate(b, p[idx], wpx[idx])
+        theta = locate(p[idx], wpx[idx])  # (blocks, rungs): the peak estimator redone without each block
         good = np.isfinite(theta).all(axis=0)
         if good.any():
             th = np.where(np.isfinite(theta), theta, p[idx][None, :])  # a block that loses a peak counts as no shift
@@ -964,7 +1161,7 @@ def ladder_figure(result):
     unit = "nm" if ps else "px"
     lad = result.tables.get("ladder", empty_table(LADDER))
     pk = result.tables.get("pair_peaks", empty_table(PEAKS))
-    fig = Figure(figsize=(7.5, 3.2 * len(sets)), dpi=120)
+    fig = Figure(figsize=(7.5, 3.2 * len(sets)), dpi=120, layout="constrained")
     for k, name in enumerate(sets):
         ax = fig.add_subplot(len(sets), 1, k + 1)
         c = result.curves[f"pair_distribution_{name}"]
@@ -990,7 +1187,6 @@ def ladder_figure(result):
         ax.set_ylabel("g(r)")
         ax.set_title(f"pair distribution, {name}" + ("" if ps else " (uncalibrated)"), fontsize=9)
     ax.set_xlabel(f"r ({unit})")
-    fig.tight_layout()
     return fig
 
 

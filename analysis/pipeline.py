@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from . import __version__, _guards
+from . import __version__, _guards, _timing
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
 from ._progress import ProgressCallback, report, sub_progress
@@ -270,6 +270,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
         result.summary["motifs"]["internal_ratios"] = _ladder.motif_ratios(motifs)
     except Exception as exc:  # a ratio summary must never kill the run; say why it is missing
         result.summary["motifs"]["internal_ratios"] = {"error": str(exc)}
+    _timing.lap("motifs")
 
     report(progress, 0.5, "pair distances and golden-ratio ladder")
     rmax = _length_px(params, "ladder_r_max", ps)
@@ -308,6 +309,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     result.tables["pair_peaks"] = conform(pd.concat(peaks, ignore_index=True), PEAKS) if peaks else empty_table(PEAKS)
     l_info["agreement"] = _ladder.ladder_agreement(result.tables["ladder"], result.tables["pair_peaks"])
     result.summary["ladder"] = l_info
+    _timing.lap("ladder")
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
         motifs, edge_px=_length_px(params, "tiling_edge", ps), pixel_size_nm=ps,
@@ -322,10 +324,12 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     notes.extend(n for n in structure_notes(
         n_columns=len(ok), columns_info=result.summary.get("columns"), motifs=motifs, motifs_info=m_info,
         ladder_info=l_info, tiling_info=t_info, pair_peaks=result.tables["pair_peaks"]) if n not in notes)
+    _timing.lap("tiling")
     if params.phason:
         from .phason import phason_stage
 
         phason_stage(result, rng=params.rng)
+        _timing.lap("phason")
     report(progress, 1.0, "structure done")
 
 
@@ -472,6 +476,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
     result.summary = _base_summary(meta, params)
+    clock = _timing.start()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", TenfoldWarning)
         find_columns, tiled = _column_finder(micrograph, params, execution)
@@ -497,6 +502,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
         result.summary["species"] = c_info.get("species")
         # each block once: 'automatic' and 'species' live at the top level only
         result.summary["columns"] = {k: v for k, v in c_info.items() if k not in ("automatic", "species")}
+        _timing.lap("columns")
         f_data, f_valid, f_note = _fourier_input(micrograph, tiled)
         f_micrograph = micrograph if f_note is None else dataclasses.replace(micrograph, data=f_data, valid=f_valid)
         if params.fourier and params.correct_distortion:
@@ -504,6 +510,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
 
             report(progress, 0.55, "power spectrum and scan-distortion correction")
             correct_columns(result, f_micrograph, window=params.fourier_window)
+            _timing.lap("distortion_correction")
         elif params.correct_distortion:
             result.summary.setdefault("notes", []).append(
                 "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
@@ -513,11 +520,14 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
             from .fourier import fourier_stage
 
             fourier_stage(result, f_micrograph, window=params.fourier_window)
+            _timing.lap("fourier")
             if f_note:
                 f_info = result.summary["fourier"]
                 f_info["notes"] = [*(f_info.get("notes") or []), f_note]
                 f_info["crop_note"] = f_note
         report(progress, 1.0, "analysis done")
+    result.summary["timings_s"] = clock.as_dict()  # wall seconds per stage of this run
+    _timing.stop(clock)
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     for w in caught:
         if w not in kept:

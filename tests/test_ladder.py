@@ -84,6 +84,36 @@ def test_locate_peaks_sub_bin_position():
     assert pk["width_px"].iloc[0] == pytest.approx(0.3, rel=0.02)
 
 
+def test_batched_peak_fits_match_curve_fit():
+    # oracle: scipy's curve_fit (MINPACK) on each window alone, from the same start values
+    from scipy.optimize import curve_fit
+
+    from tenfold.analysis.ladder import _fit_gauss_bg_batch, _gauss_bg
+
+    gen = np.random.default_rng(5)
+    xs, ys, p0 = [], [], []
+    for n in range(40):  # resolved peaks (several bins wide), noisy, windows of different lengths
+        r = np.arange(0.0, 4.0 + 0.1 * (n % 7), 0.1)
+        truth = (gen.uniform(2, 6), gen.uniform(1.5, 2.5), gen.uniform(0.3, 0.6), gen.uniform(0.5, 1.5),
+                 gen.uniform(-0.1, 0.1))
+        xs.append(r)
+        ys.append(_gauss_bg(r, *truth) + gen.normal(0.0, 0.05, len(r)))
+        p0.append([truth[0] * 0.8, truth[1] + 0.1, truth[2] * 1.3, truth[3], 0.0])
+    got, ok = _fit_gauss_bg_batch(xs, ys, np.array(p0))
+    assert ok.all()
+    for k in range(len(xs)):
+        ref = curve_fit(_gauss_bg, xs[k], ys[k], p0=p0[k], maxfev=2000)[0]
+        assert got[k, 1] == pytest.approx(ref[1], abs=1e-6)  # peak position
+        assert abs(got[k, 2]) == pytest.approx(abs(ref[2]), rel=1e-5)  # width
+
+
+def test_batched_peak_fits_empty():
+    from tenfold.analysis.ladder import _fit_gauss_bg_batch
+
+    got, ok = _fit_gauss_bg_batch([], [], np.zeros((0, 5)))
+    assert got.shape == (0, 5) and ok.shape == (0,)
+
+
 # --------------------------------------------------------------------------------------------- decagonal sets
 @pytest.fixture(scope="module")
 def decorated():
