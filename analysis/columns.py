@@ -884,7 +884,9 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     smoothed image: the same operator, a third of the work. The mirrored minima of the same detector in the
     window's core estimate the noise detections (``mirror_threshold``).
     """
-    from trackpy.find import grey_dilation
+    from ._lazy import import_trackpy
+
+    grey_dilation = import_trackpy().find.grey_dilation
 
     report(progress, 0.05, "detecting columns (trackpy)")
     t0 = time.perf_counter()
