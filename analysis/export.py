@@ -17,8 +17,8 @@ cancellation or a signal never leaves a half-written results folder. ``overwrite
 previous run wrote (listed, with checksums, in the manifest) and leaves every other file in the folder alone; a
 folder holding the input image is refused (see :mod:`tenfold.analysis._outdir`).
 
-Figure makers live with the stage that knows the data; they register themselves with :func:`register_figure`
-and receive the whole result. matplotlib is imported only inside figure makers and never switches the global
+Figure makers live with the stage that knows the data and receive the whole result; export finds them through the
+fixed table ``STAGE_FIGURES`` (its own, and any added later, through :func:`register_figure`). matplotlib is imported only inside figure makers and never switches the global
 backend: figures are built as :class:`matplotlib.figure.Figure` and rendered with the Agg canvas directly.
 """
 
@@ -63,8 +63,15 @@ SPECIES_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#56B4E9", "#CC79
 SPECIES_MARKERS = ("o", "s", "^", "D", "v", "P")
 _UNCLASSIFIED_COLOUR = "#9e9e9e"
 
-#: stage modules that may register figure makers; imported (if present) before figures are drawn
-_FIGURE_MODULES = ("species", "motifs", "ladder", "tiling", "fourier", "region", "phason")
+#: the stages' figure makers, figure name -> (module, function): a fixed table looked up when figures are drawn,
+#: so no stage imports export and export imports no stage at import time
+STAGE_FIGURES = {
+    "pair_distribution_ladder": ("ladder", "ladder_figure"),
+    "cluster_network": ("tiling", "tiling_figure"),
+    "power_spectrum": ("fourier", "spectrum_figure"),
+    "column_diffraction": ("fourier", "diffraction_figure"),
+    "phason_map": ("phason", "phason_map_figure"),
+}
 
 #: the versions recorded in the provenance (distribution names)
 _VERSIONED = ("tenfold", "numpy", "scipy", "pandas", "trackpy", "scikit-image", "numba", "tifffile", "openpyxl",
@@ -374,12 +381,10 @@ def _restore(col: pd.Series, dtype: str | None) -> pd.Series:
 
 
 def _load_figure_modules() -> None:
-    for mod in _FIGURE_MODULES:
-        try:
-            importlib.import_module(f"{__package__}.{mod}")
-        except ModuleNotFoundError as exc:
-            if exc.name != f"{__package__}.{mod}":
-                raise
+    """Add the stages' figure makers (``STAGE_FIGURES``) to ``FIGURES``."""
+    for name, (mod, func) in STAGE_FIGURES.items():
+        if name not in FIGURES:
+            FIGURES[name] = getattr(importlib.import_module(f"{__package__}.{mod}"), func)
 
 
 #: a drawn layer with more marks than this is rasterised in the SVG (a vector file of 50 000 markers is tens of MB

@@ -1369,14 +1369,6 @@ def spectrum_figure(result):
     return fig
 
 
-def _register_figures() -> None:
-    try:
-        from .export import register_figure
-    except ImportError:  # export not available: the function stays usable on its own
-        return
-    register_figure("power_spectrum")(spectrum_figure)
-    register_figure("column_diffraction")(diffraction_figure)
-
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -1484,4 +1476,3 @@ def diffraction_figure(result):
     return fig
 
 
-_register_figures()

@@ -1188,15 +1188,3 @@ def ladder_figure(result):
         ax.set_title(f"pair distribution, {name}" + ("" if ps else " (uncalibrated)"), fontsize=9)
     ax.set_xlabel(f"r ({unit})")
     return fig
-
-
-def _register_figures() -> None:
-    """Register the figure maker with export's registry when that module is there."""
-    try:
-        from .export import register_figure
-    except ImportError:  # export not available: the function stays usable on its own
-        return
-    register_figure("pair_distribution_ladder")(ladder_figure)
-
-
-_register_figures()

@@ -574,17 +574,6 @@ def phason_map_figure(result):
     return fig
 
 
-def _register_figures() -> None:
-    try:
-        from .export import register_figure
-    except ImportError:  # export not available: the function stays usable on its own
-        return
-    register_figure("phason_map")(phason_map_figure)
-
-
-_register_figures()
-
-
 def phason_stage(result, *, rng=0) -> None:
     """Pipeline glue: the real-space phason analysis of ``result``'s network (fills ``tables['phason_map']`` and
     ``summary['phason']['real_space']``; keeps a ``fourier`` section already there)."""

@@ -502,15 +502,3 @@ def tiling_figure(result):
               loc="upper right", fontsize=7, framealpha=0.85)
     ax.set_title("cluster network and tiles" + ("" if ps else " (uncalibrated)"))
     return fig
-
-
-def _register_figures() -> None:
-    """Register the figure maker with export's registry when that module is there."""
-    try:
-        from .export import register_figure
-    except ImportError:  # export not available: the function stays usable on its own
-        return
-    register_figure("cluster_network")(tiling_figure)
-
-
-_register_figures()
