@@ -99,9 +99,6 @@ def _tilted():
     return tilted, xy
 
 
-@pytest.mark.xfail(strict=True, reason="known: the gap-level background of a crowded image reads 1.5 counts low in "
-                   "the empty 20 px border strip of this flattened tilted image, so one noise maximum in its corner "
-                   "passes the cut (z 4.97 for 4.81); see docs/columns.md, remaining failures")
 def test_flatten_tilted_illumination():
     tilted, xy = _tilted()
     cols, _ = find_columns(tilted, flatten=True, n_species=0)
