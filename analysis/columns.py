@@ -452,9 +452,9 @@ TAIL_REACH_SPACINGS, TAIL_ANGLES, TAIL_MIN_COLUMNS = 2.0, 16, 20
 def _tail_profile(work, fit, good, settings):
     """Light a column adds to the smoothed image beyond its fitted Gaussian, per unit of its smoothed peak.
 
-    Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The model of every fitted
-    column (its Gaussian and the local background) is subtracted from the image; the smoothed residual around the
-    bright columns, median over ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the
+    Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
+    fitted column are subtracted from the image; the smoothed residual around the bright columns, less each one's
+    fitted local background, median over ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the
     columns, is the tail a Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
     The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
     """
@@ -464,8 +464,7 @@ def _tail_profile(work, fit, good, settings):
     if idx.size < TAIL_MIN_COLUMNS:
         return None
     k = settings.sigma
-    resid = work.astype(np.float32) - _model_image(work.shape, fit, good, settings)
-    smooth = ndimage.gaussian_filter(resid, k)
+    smooth = ndimage.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
     idx = idx[np.argsort(amp[idx])[::-1][:400]]
     r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
     th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
@@ -474,38 +473,30 @@ def _tail_profile(work, fit, good, settings):
     vals = ndimage.map_coordinates(smooth, [y.ravel(), x.ravel()], order=1, mode="nearest").reshape(x.shape)
     s2 = fit["sigma_px"].to_numpy()[idx] ** 2
     peak = amp[idx] * s2 / (s2 + k * k)
-    extra = np.median(np.median(vals, axis=2) / peak[:, None], axis=0)
+    # the residual about each column's own local background (its fit's constant)
+    extra = np.median((np.median(vals, axis=2) - fit["background"].to_numpy()[idx][:, None]) / peak[:, None], axis=0)
     # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
     extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
     return [r.tolist(), extra.tolist()]
 
 
-def _model_image(shape, fit, good, settings):
-    """The fitted columns (sampled Gaussians over 4 widths) plus each patch's local background, float32."""
+def _model_image(shape, fit, good):
+    """The fitted columns as sampled Gaussians (over 4 widths), without background, float32."""
     h, w = shape
     model = np.zeros(shape, np.float32)
-    weight = np.zeros(shape, np.float32)
     xs, ys = fit["x_px"].to_numpy()[good], fit["y_px"].to_numpy()[good]
-    a, sg, b = (fit[c].to_numpy()[good] for c in ("amplitude", "sigma_px", "background"))
-    rad = int(math.ceil(4.0 * np.nanmax(sg))) if sg.size else 1
-    off = np.arange(-rad, rad + 1)
-    cx, cy = np.rint(xs).astype(np.int64), np.rint(ys).astype(np.int64)
-    px = cx[:, None, None] + off[None, None, :]
-    py = cy[:, None, None] + off[None, :, None]
+    a, sg = fit["amplitude"].to_numpy()[good], fit["sigma_px"].to_numpy()[good]
+    if not xs.size:
+        return model
+    off = np.arange(-int(math.ceil(4.0 * np.nanmax(sg))), int(math.ceil(4.0 * np.nanmax(sg))) + 1)
+    px = np.rint(xs).astype(np.int64)[:, None, None] + off[None, None, :]
+    py = np.rint(ys).astype(np.int64)[:, None, None] + off[None, :, None]
     px, py = np.broadcast_arrays(px, py)
     inside = (px >= 0) & (px < w) & (py >= 0) & (py < h)
     g = a[:, None, None] * np.exp(-0.5 * ((px - xs[:, None, None]) ** 2 + (py - ys[:, None, None]) ** 2)
                                   / sg[:, None, None] ** 2)
     np.add.at(model, (py[inside], px[inside]), g[inside].astype(np.float32))
-    near = inside & ((px - xs[:, None, None]) ** 2 + (py - ys[:, None, None]) ** 2 <= (2.5 * sg[:, None, None]) ** 2)
-    bb = np.broadcast_to(b[:, None, None], px.shape)
-    np.add.at(weight, (py[near], px[near]), 1.0)
-    bg = np.zeros(shape, np.float32)
-    np.add.at(bg, (py[near], px[near]), bb[near].astype(np.float32))
-    # the local backgrounds, spread over the image by a normalised convolution of the patches' values
-    num = ndimage.gaussian_filter(bg, settings.spacing)
-    den = ndimage.gaussian_filter(weight, settings.spacing)
-    return model + np.where(den > 1e-6, num / np.maximum(den, 1e-6), float(np.nanmedian(b)) if b.size else 0.0)
+    return model
 
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
@@ -1058,6 +1049,9 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
 
 #: side of the central part of the sample on which the common width of the fits is learned, px
 COMMON_WIDTH_PX = 384
+#: margin around that part, in spacings: its columns are fitted as neighbours but do not vote (the neighbour
+#: lists and the fit patches reach about 2 spacings)
+COMMON_WIDTH_MARGIN_SPACINGS = 3.0
 
 
 def _learn_common_width(work, ok, xs, ys, settings):
@@ -1068,12 +1062,12 @@ def _learn_common_width(work, ok, xs, ys, settings):
     so a tiled run reaches the same fixed point as an untiled one.
     """
     h, w = work.shape
-    side = min(max(h, w), COMMON_WIDTH_PX + int(2 * TILE_HALO_SPACINGS * settings.spacing))
+    m = COMMON_WIDTH_MARGIN_SPACINGS * settings.spacing
+    side = min(max(h, w), COMMON_WIDTH_PX + int(2 * m))
     r0, c0 = max(0, (h - side) // 2), max(0, (w - side) // 2)
     r1, c1 = min(h, r0 + side), min(w, c0 + side)
     inside = (ys >= r0) & (ys < r1) & (xs >= c0) & (xs < c1)
-    # only columns at least the tile halo away from a cut edge of the part vote (an edge column misses neighbours)
-    m = TILE_HALO_SPACINGS * settings.spacing
+    # only columns at least the margin away from a cut edge of the part vote (an edge column misses neighbours)
     xi, yi = xs[inside], ys[inside]
     votes = (((yi >= r0 + m) | (r0 == 0)) & ((yi < r1 - m) | (r1 == h)) & ((xi >= c0 + m) | (c0 == 0))
              & ((xi < c1 - m) | (c1 == w)))
