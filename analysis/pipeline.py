@@ -578,7 +578,14 @@ def _fit_hand_added(result: AnalysisResult, cols: pd.DataFrame, hand: np.ndarray
     fit = refine_columns(image, xy[sub], sigma_px=sigma, counts=False, neighbour_passes=1,
                          fixed_width_fallback=False)
     fit = fit[hand[sub]].reset_index(drop=True)
+    # kept when the fit converged (a held width too), found a column (amplitude above 3 standard errors, the
+    # usual detection threshold) and did not slide onto a column that is already there (closer than one width)
     ok = fit["fit_status"].isin(FITTED_STATUSES).to_numpy()
+    ok &= (fit["amplitude"] > 3.0 * fit["amplitude_err"]).to_numpy()
+    others = xy[~hand & np.all(np.isfinite(xy), axis=1)]
+    if len(others) and ok.any():
+        d, _ = cKDTree(others).query(np.nan_to_num(fit[["x_px", "y_px"]].to_numpy(float), nan=-1e9))
+        ok &= d > sigma
     rows = np.flatnonzero(hand)[ok]
     raw = fit[["x_px", "y_px"]].to_numpy(float)[ok]
     fit.loc[ok, ["x_px", "y_px"]] = to_corrected(raw)
@@ -615,9 +622,10 @@ def rerun_from_columns(
         with ``fit_status`` 'added' are columns added by hand: they get new ids (when they have none) and the same
         pixel-integrated Gaussian fit as detected columns (``refine.refine_columns`` with their neighbours, started
         at the run's median width). A fit that converges (status 'ok' or 'fixed_width' from the fit: a width held
-        at the common width is a converged fit too) moves the column and fills its width, intensity and errors,
-        and the column is marked 'added'; otherwise (e.g. a point on empty background) it stays where it was
-        placed, with NaN measurements and ``fit_status`` 'manual'. Species of added columns are -1.
+        at the common width is a converged fit too), with an amplitude above 3 standard errors and not onto a
+        column already there, moves the column and fills its width, intensity and errors, and the column is
+        marked 'added'; otherwise (e.g. a point on empty background) it stays where it was placed, with NaN
+        measurements and ``fit_status`` 'manual'. Species of added columns are -1.
     params : Parameters, optional
         Defaults to the parameters of ``result``.
     regions, progress
