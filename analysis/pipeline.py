@@ -580,12 +580,11 @@ def _fit_hand_added(result: AnalysisResult, cols: pd.DataFrame, hand: np.ndarray
     fit = fit[hand[sub]].reset_index(drop=True)
     # kept when the fit converged (a held width too), found a column (amplitude above 3 standard errors, the
     # usual detection threshold) and did not slide onto a column that is already there (closer than one width)
-    ok = fit["fit_status"].isin(FITTED_STATUSES).to_numpy()
-    ok &= (fit["amplitude"] > 3.0 * fit["amplitude_err"]).to_numpy()
+    ok = fit["fit_status"].isin(FITTED_STATUSES).to_numpy() & (fit["amplitude"] > 3.0 * fit["amplitude_err"]).to_numpy()
     others = xy[~hand & np.all(np.isfinite(xy), axis=1)]
     if len(others) and ok.any():
         d, _ = cKDTree(others).query(np.nan_to_num(fit[["x_px", "y_px"]].to_numpy(float), nan=-1e9))
-        ok &= d > sigma
+        ok = ok & (d > sigma)
     rows = np.flatnonzero(hand)[ok]
     raw = fit[["x_px", "y_px"]].to_numpy(float)[ok]
     fit.loc[ok, ["x_px", "y_px"]] = to_corrected(raw)

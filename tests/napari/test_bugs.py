@@ -117,6 +117,7 @@ def test_plugin_menu_docks_share_one_session(make_napari_viewer, sample_path, qt
     assert notes["error"] == [], notes["error"]
     plots.tabs.setCurrentWidget(plots.table)
     assert plots.table.rowCount() > 0
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())  # a tab is drawn when it is opened
     assert len(plots.pair_figure.axes[0].lines) >= 1
 
 

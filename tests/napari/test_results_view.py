@@ -77,6 +77,7 @@ def test_preview_note_is_information_not_warning(make_napari_viewer, sample_path
 
 def test_pair_peak_click_selects_the_pairs_and_zooms(small_run):
     viewer, _, plots, _ = small_run
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())  # a tab is drawn when it is opened
     result = plots.session.result
     peaks = result.tables["pair_peaks"]
     first = peaks[peaks["set"] == "columns"].sort_values("distance_px").iloc[0]
@@ -134,6 +135,7 @@ def test_motif_table_shows_ten_rows_with_columns_not_cut(small_run, qtbot):
 
 def test_tau_labels_are_powers_and_do_not_overlap(small_run):
     _, _, plots, _ = small_run
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())
     plots.pair_canvas.draw()
     renderer = plots.pair_canvas.get_renderer()
     texts = [t for t in plots._pair_ax.texts if "tau" in t.get_text()]
