@@ -683,7 +683,9 @@ def rerun_from_columns(
     if regions:
         from .region import label_points
 
-        cols["region"] = label_points(cols["x_px"].to_numpy(), cols["y_px"].to_numpy(), regions)
+        # regions are drawn on the image: label the positions in its frame (raw, when the distortion was corrected)
+        raw = _distortion_maps(result.summary)[0](cols[["x_px", "y_px"]].to_numpy(float))
+        cols["region"] = label_points(raw[:, 0], raw[:, 1], regions)
         hand = hand[(cols["region"] > 0).to_numpy()]
         cols = cols[cols["region"] > 0].reset_index(drop=True)
     cols = _fit_hand_added(result, cols, hand, dark_columns=params.dark_columns)
