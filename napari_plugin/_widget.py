@@ -892,7 +892,10 @@ class PipelineWidget(QWidget):
         xy = display_maps(frame)[0](table[["x_px", "y_px"]].to_numpy(float))
         with points.events.data.blocker(self._on_columns_edited):
             points.data = xy[:, ::-1]
-        points.features = pd.DataFrame({"id": table["id"].to_numpy(np.int64)})
+        ids = table["id"].to_numpy(np.int64)
+        if "id" not in points.features or not np.array_equal(points.features["id"].to_numpy(), ids):
+            # only when they changed: napari's features table, if open, rebuilds itself on every assignment
+            points.features = pd.DataFrame({"id": ids})
         points.symbol = species_symbols(table)
 
     def _on_finished(self) -> None:
