@@ -3,7 +3,7 @@
 Run ``xvfb-run -a -s "-screen 0 1600x1200x24" python docs/make_screenshot.py [--all]`` (or with a display). It
 opens the high-dose sample, marks a region, runs the analysis dock, opens the plots dock and saves a window
 screenshot; with ``--all`` also one per state a user passes through (``docs/images/state_*.png``: opened, region
-drawn, after the run, zoom on a selected cluster, the ring picked by a second click, columns coloured by intensity
+drawn, after the run, zoom on a selected cluster, a ring picked with the rings layer active, columns coloured by intensity
 with the legend, each plots tab, after an edit and re-run, after export, a run with the scan distortion corrected).
 """
 
@@ -106,10 +106,11 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900), state
     motif = record.result.tables["motifs"].iloc[int(plots._table_rows[0])]
     widget._show_selection()
     shot("4_zoom_on_a_cluster")
-    # a click in the ring's centre picks its inner pentagon first, a second click the ring (inspector shows it)
-    widget.pick(motif["centre_x_px"], motif["centre_y_px"])
-    widget.pick(motif["centre_x_px"], motif["centre_y_px"])
-    shot("4b_ring_selected_by_a_second_click")
+    # with the rings layer active a click in a ring's centre picks the ring (inspector shows it), not the inner
+    # pentagon that other layers' clicks pick first
+    viewer.layers.selection.active = widget.result_layer("rings")
+    widget.pick(motif["centre_x_px"], motif["centre_y_px"], kinds="rings")
+    shot("4b_ring_selected_with_the_rings_layer_active")
     widget.colour_by.setCurrentText("intensity")
     shot("4c_coloured_by_intensity")
     widget.colour_by.setCurrentText("species")

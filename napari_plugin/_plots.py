@@ -85,7 +85,7 @@ def _canvas(figsize=(4.2, 3.4)):
 
     # fixed margins: matplotlib's constrained layout took about as long as the drawing itself
     figure = Figure(figsize=figsize, dpi=90)
-    figure.subplots_adjust(left=0.17, right=0.97, bottom=0.19, top=0.9)
+    figure.subplots_adjust(left=0.17, right=0.97, bottom=0.23, top=0.9)
     canvas = FigureCanvasQTAgg(figure)
     canvas.setMinimumHeight(280)
     canvas.setMinimumWidth(360)
@@ -390,7 +390,7 @@ class PlotsWidget(QWidget):
             labels = [t.replace("_", " ") for t in shown]
             if not side.isin(list(TILE_COLOURS)).all():  # outer edges and unclassified faces: the network colour
                 handles.append(Line2D([], [], color=NETWORK_COLOUR))
-                labels.append("no classified tile beside it")
+                labels.append("outer / no tile")
             ax.legend(handles, labels, fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
         else:
             ax.text(0.5, 0.5, "no cluster network", ha="center", va="center", transform=ax.transAxes)
@@ -439,7 +439,9 @@ class PlotsWidget(QWidget):
         self._redraw(self.fourier_canvas)
 
     def _fill_notes(self, result) -> None:
-        notes = list(result.summary.get("notes", []))
+        from ._widget import labelled
+
+        notes = [labelled(n) for n in result.summary.get("notes", [])]
         check = spacing_check(result)
         if check:
             notes.insert(0, "warning: " + check)

@@ -139,6 +139,10 @@ def labelled(message: str) -> str:
     """A pipeline message with parameter names replaced by the dock's field labels."""
     import re
 
+    # the viewer draws every overlay back in the image's frame (see result_layers): no offset to warn about there
+    message = re.sub(r"the image itself is not resampled, so overlays on it are offset by up to [0-9.]+ px",
+                     "the image is not resampled; the viewer draws the overlays back in the image's frame, on the "
+                     "atoms", message)
     for flag, label in sorted(_FLAGS.items(), key=lambda kv: -len(kv[0])):
         message = re.sub(rf"\brun with {re.escape(flag)}\b", f"tick '{label}' and run again", message)
         message = re.sub(rf"(?<![\w-]){re.escape(flag)}(?![\w-])", f"'{label}'", message)
@@ -987,14 +991,14 @@ class PipelineWidget(QWidget):
             (lo, c_lo), (hi, c_hi) = legend
             html = (f"{prop}: <span style='color:{c_lo}'>■</span> {lo} (blue) to "
                     f"<span style='color:{c_hi}'>■</span> {hi} (yellow); grey: not measured")
-            canvas = f"columns coloured by {prop}: {lo} (blue) to {hi} (yellow); grey: not measured"
+            canvas = f"{prop}: {lo} (blue) to {hi} (yellow); grey: not measured"
         else:
             html = f"{prop}: " + ", ".join(f"<span style='color:{c}'>■</span> {label}" for label, c in legend)
             names = _colour_names()
-            canvas = f"columns coloured by {prop}: " + ", ".join(f"{label} {names.get(c.lower(), c)}"
-                                                                 for label, c in legend)
+            canvas = f"{prop}: " + ", ".join(f"{label.replace('species ', '')} {names.get(c.lower(), c)}"
+                                             for label, c in legend)
             if prop == "species":
-                canvas += " (one marker shape per species too)"
+                canvas += " (and one marker shape each)"
         self.colour_note.setText(html)
         overlay = self.viewer.canvas.overlays.text
         overlay.text = canvas
@@ -1002,7 +1006,7 @@ class PipelineWidget(QWidget):
         overlay.font_size = 9
         overlay.color = "white"
         try:
-            overlay.position = "bottom_left"
+            overlay.position = "top_left"  # the scale bar has the bottom
         except Exception:  # noqa: BLE001 - napari versions name the corners differently; keep its default
             pass
 
