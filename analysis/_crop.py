@@ -16,7 +16,8 @@ __all__ = ["MARGIN_PX", "crop_to_regions", "shift_result"]
 #: Extra pixels kept around the regions' bounding box.
 MARGIN_PX = 24
 
-_XY = (("x_px", "y_px", "x_nm", "y_nm"), ("centre_x_px", "centre_y_px", "centre_x_nm", "centre_y_nm"))
+_XY = (("x_px", "y_px", "x_nm", "y_nm"), ("centre_x_px", "centre_y_px", "centre_x_nm", "centre_y_nm"),
+       ("x_raw_px", "y_raw_px", None, None))
 
 
 def crop_to_regions(micrograph, regions):
@@ -43,7 +44,7 @@ def shift_result(result, full, offset) -> None:
     """Shift a result computed on a crop back into the pixel frame of the full micrograph ``full`` (in place)."""
     r0, c0 = offset
     ps = full.meta.pixel_size_nm
-    for name in ("columns", "motifs"):
+    for name in ("columns", "motifs", "phason_map"):  # every table holding image positions
         table = result.tables.get(name)
         if table is None or not len(table):
             continue
@@ -52,9 +53,13 @@ def shift_result(result, full, offset) -> None:
             if x in table:
                 table[x] = table[x] + c0
                 table[y] = table[y] + r0
-                table[x_nm] = table[x] * ps if ps else np.nan
-                table[y_nm] = table[y] * ps if ps else np.nan
+                if x_nm is not None:
+                    table[x_nm] = table[x] * ps if ps else np.nan
+                    table[y_nm] = table[y] * ps if ps else np.nan
         result.tables[name] = table
+    correction = result.summary.get("distortion_correction")
+    if isinstance(correction, dict) and correction.get("centre_px") is not None:
+        correction["centre_px"] = [correction["centre_px"][0] + c0, correction["centre_px"][1] + r0]
     box = tuple(int(v) for v in result.meta.shape)
     result.meta = dataclasses.replace(result.meta, shape=full.meta.shape)
     result.image = full.data
@@ -63,5 +68,6 @@ def shift_result(result, full, offset) -> None:
         inp["shape"] = list(full.meta.shape)
     result.summary["analysed_box_px"] = {
         "row0": int(r0), "col0": int(c0), "rows": box[0], "cols": box[1], "margin_px": MARGIN_PX,
-        "note": "the regions' bounding box was analysed; positions are whole-image px; Fourier spots are of that box",
+        "note": "the regions' bounding box was analysed; positions (columns, motifs, phason map) are whole-image px; "
+                "Fourier spots are of that box",
     }

@@ -50,6 +50,7 @@ __all__ = [
     "FIGURES",
     "SPECIES_COLOURS",
     "SPECIES_MARKERS",
+    "summary_table",
 ]
 
 #: name -> figure maker. A maker takes the result and returns a matplotlib Figure, or None when it does not apply.
@@ -77,7 +78,7 @@ STAGE_FIGURES = {
 _VERSIONED = ("tenfold", "numpy", "scipy", "pandas", "trackpy", "scikit-image", "numba", "tifffile", "openpyxl",
               "matplotlib")
 
-_SHEET_EXTRA = ("regions", "provenance")
+_SHEET_EXTRA = ("summary", "regions", "provenance")
 _UNIT_SUFFIX = {"_nm": "nm", "_px": "px", "_deg": "deg", "_pct": "%"}
 
 
@@ -297,6 +298,127 @@ def _write_json(obj, path: Path) -> None:
     with open(path, "w", encoding="utf-8") as fh:
         json.dump(_json_safe(obj), fh, indent=2, allow_nan=False, ensure_ascii=False)
         fh.write("\n")
+
+
+#: Columns of the summary table (workbook sheet 'summary', the viewer's Summary tab).
+SUMMARY_COLUMNS = ("section", "quantity", "value", "error", "unit", "note")
+
+
+def _num(v):
+    return float(v) if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool) \
+        and np.isfinite(v) else None
+
+
+def distortion_verdict(fourier_info: dict) -> tuple[bool, float]:
+    """(significant, largest element of D - identity) of a run's ``summary['fourier']``: the one verdict on the
+    scan distortion that the notes, the workbook and the viewer all show (``fourier._distortion_significant``)."""
+    from .fourier import _distortion_significant
+
+    return _distortion_significant(fourier_info)
+
+
+def summary_table(result: AnalysisResult) -> pd.DataFrame:
+    """The headline results of a run as one tidy table: what a reader checks first, with errors and units.
+
+    Rows, by section: 'image' (pixel size and its source, columns, motifs), 'ladder' (verdict per point set, base
+    d0 and the agreement of the column and centre ladders), 'tiling' (tile counts, thick/thin ratio, edge),
+    'phason' (linear phason strain: singular values with 1-sigma errors from the real-space lift and from the
+    Fourier spots, and whether they agree), 'distortion' (the 2 x 2 scan-distortion matrix with its errors, the
+    spot-ellipse axis ratio and whether a correction was applied), 'region N' (per-region counts and means),
+    'timings' (seconds per stage, when the run recorded ``timings_s``).
+
+    Parameters
+    ----------
+    result : AnalysisResult
+
+    Returns
+    -------
+    DataFrame
+        Columns ``section, quantity, value, error, unit, note``: ``value`` and ``error`` numbers (NaN when not
+        measured or not applicable), verdicts as text in ``note``.
+    """
+    s = result.summary or {}
+    ps = s.get("pixel_size_nm")
+    unit = "nm" if ps else "px"
+    f = float(ps) if ps else 1.0
+    rows: list[tuple] = []
+
+    def add(section, quantity, value=None, error=None, unit="", note=""):
+        rows.append((section, quantity, _num(value), _num(error), unit, note))
+
+    add("image", "pixel size", ps, None, "nm", f"source: {s.get('calibration_source', 'none')}")
+    add("image", "columns", s.get("n_columns"))
+    add("image", "motifs", s.get("n_motifs"))
+    ladder = s.get("ladder") or {}
+    for name in ("columns", "centres"):
+        info = ladder.get(name)
+        if not isinstance(info, dict):
+            continue
+        holds = info.get("holds")
+        d0 = info.get("d0_px")
+        unc = (info.get("uncertainty") or {}).get("d0_px") if isinstance(info.get("uncertainty"), dict) else None
+        verdict = "tau ladder holds" if holds else ("tau ladder does not hold" if holds is not None else "not tested")
+        add("ladder", f"{name}: base d0", d0 * f if _num(d0) is not None else None,
+            unc * f if _num(unc) is not None else None, unit, verdict)
+    agreement = ladder.get("agreement") or {}
+    if agreement.get("compared"):
+        add("ladder", "columns vs centres, largest |z|", agreement.get("max_abs_z"), None, "",
+            "agree" if agreement.get("agree") else "disagree")
+    tiling = s.get("tiling") or {}
+    for tile, n in (tiling.get("tile_counts") or {}).items():
+        if n:
+            add("tiling", tile.replace("_", " "), n)
+    if tiling.get("thick_thin_ratio") is not None:
+        add("tiling", "thick / thin", tiling.get("thick_thin_ratio"), None, "",
+            "ideal Penrose tiling: tau = 1.618")
+    if tiling.get("edge_px") is not None:
+        add("tiling", "edge length", tiling["edge_px"] * f, None, unit, tiling.get("edge_source", ""))
+    phason = s.get("phason") or {}
+    for side in ("real_space", "fourier"):
+        info = phason.get(side) or {}
+        label = "real space (tiling lift)" if side == "real_space" else "Fourier (spot positions)"
+        if not info.get("ok"):
+            add("phason", f"{label}: strain", None, None, "", info.get("reason") or "not measured")
+            continue
+        sv, se = info.get("singular_values") or [], info.get("singular_values_se") or []
+        for k, v in enumerate(sv):
+            add("phason", f"{label}: strain singular value {k + 1}", v, se[k] if k < len(se) else None, "",
+                f"{info.get('n_used', 0)} used")
+    if "agree" in phason:
+        add("phason", "real space vs Fourier, largest |z|", phason.get("agreement_max_sigma"), None, "",
+            "agree" if phason.get("agree") else "disagree")
+    fourier = s.get("fourier") or {}
+    if fourier:
+        matrix = fourier.get("distortion_matrix")
+        se = (fourier.get("indexing") or {}).get("distortion_matrix_se")
+        corr = s.get("distortion_correction") or {}
+        verdict = ("applied" if corr.get("applied") else "not applied") + \
+            (f" (source: {fourier.get('distortion_source')})" if fourier.get("distortion_source") else "")
+        if matrix is not None:
+            for i in range(2):
+                for j in range(2):
+                    add("distortion", f"matrix D[{i + 1},{j + 1}]", matrix[i][j],
+                        se[i][j] if se is not None else None, "", verdict if i == j == 0 else "")
+        if matrix is not None:
+            significant, dev = distortion_verdict(fourier)
+            add("distortion", "largest |D - identity|", dev, None, "",
+                "significant (beyond 3 standard errors)" if significant else "not significant")
+        dist = fourier.get("distortion") or {}
+        if dist.get("axis_ratio") is not None:
+            add("distortion", "spot-ellipse axis ratio", dist["axis_ratio"], dist.get("axis_ratio_se"), "",
+                "suspect scan distortion" if dist.get("warning") else "not significant")
+        add("Fourier", "dominant rotational order", fourier.get("dominant_order") or None)
+    for r in s.get("regions") or []:
+        if not isinstance(r, dict):
+            continue
+        sec = f"region {r.get('region', 0)}"
+        for key, value in r.items():
+            if key == "region" or not isinstance(value, (int, float)) or isinstance(value, bool):
+                continue
+            add(sec, key.replace("_", " ").replace(" nm", ""), value, None, "nm" if key.endswith("_nm") else "")
+    for stage, seconds in (s.get("timings_s") or {}).items():
+        add("timings", str(stage), seconds, None, "s")
+    return pd.DataFrame(rows, columns=list(SUMMARY_COLUMNS)).astype({"value": float, "error": float})
 
 
 def _write_workbook(sheets: dict[str, tuple[pd.DataFrame, list[str]]], path: Path) -> None:
@@ -661,11 +783,17 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
     def workbook() -> list[Path]:
         sheets = {_safe_stem(name)[:31]: (df, _units(name, df)) for name, df in tables.items()
                   if name not in _SHEET_EXTRA}
+        summary = summary_table(result)
+        sheets = {"summary": (summary, [""] * summary.shape[1]), **sheets}
         regions = (result.summary or {}).get("regions")
         if isinstance(regions, list) and regions and all(isinstance(r, dict) for r in regions):
+            # numbers only: a text value (what a mean is taken over) goes to the column's unit row instead
             rdf = pd.DataFrame([{k: (json.dumps(_json_safe(v)) if isinstance(v, (list, dict)) else v)
-                                 for k, v in r.items()} for r in regions])
-            sheets["regions"] = (rdf, _units("regions", rdf))
+                                 for k, v in r.items() if not isinstance(v, str)} for r in regions])
+            units = _units("regions", rdf)
+            if "mean_psi_n" in rdf:
+                units[list(rdf.columns).index("mean_psi_n")] = "over ring motifs and pentagons"
+            sheets["regions"] = (rdf, units)
         pdf = _provenance_table(_json_safe(prov))
         sheets["provenance"] = (pdf, [""] * pdf.shape[1])
         _write_workbook(sheets, tmp / "results.xlsx")

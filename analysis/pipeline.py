@@ -535,6 +535,83 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
     return _finish(result, regions, kept)
 
 
+#: Fit outcomes of refine.refine_columns that are measurements (a width held at the common width is one too).
+FITTED_STATUSES = ("ok", "fixed_width")
+
+
+def _distortion_maps(summary: dict):
+    """(to_raw, to_corrected): maps of (N, 2) x, y px between the image frame and the frame the run's positions
+    are in (``summary['distortion_correction']``, ``r' = D (r - c) + c``); identities when nothing was applied."""
+    corr = summary.get("distortion_correction") or {}
+    if not corr.get("applied"):
+        return (lambda xy: np.asarray(xy, float)), (lambda xy: np.asarray(xy, float))
+    d = np.asarray(corr["matrix"], float)
+    c = np.asarray(corr["centre_px"], float)
+    d_inv = np.linalg.inv(d)
+    return (lambda xy: (np.asarray(xy, float) - c) @ d_inv.T + c), (lambda xy: (np.asarray(xy, float) - c) @ d.T + c)
+
+
+def _fit_hand_added(result: AnalysisResult, cols: pd.DataFrame, hand: np.ndarray, *,
+                    dark_columns: bool = False) -> pd.DataFrame:
+    """Fit the columns added by hand (rows where ``hand``) on the result's image; see :func:`rerun_from_columns`.
+
+    They are fitted together with the columns around them (within 12 widths), so that their neighbours' light is
+    modelled, not taken for background, exactly as in detection; only the added rows take the fit's values.
+    Without an image, or without any fitted column to take the starting width from, nothing is guessed: the
+    added columns stay 'manual'. When the run corrected the scan distortion, positions are taken back to the
+    image's (raw) frame for the fit and the fitted ones mapped forward again (``x_raw_px`` keeps the raw ones).
+    """
+    out = cols.copy()
+    status = out["fit_status"].astype(object).to_numpy(copy=True)
+    status[hand] = "manual"
+    out["fit_status"] = status
+    old = result.tables.get("columns")
+    good_old = (old["fit_status"].isin(FITTED_STATUSES) & old["sigma_px"].notna()).to_numpy() \
+        if old is not None and len(old) else np.zeros(0, bool)
+    xy = out[["x_px", "y_px"]].to_numpy(float)
+    hand = hand & np.all(np.isfinite(xy), axis=1)
+    if not hand.any() or result.image is None or not good_old.any():
+        return out
+    from scipy.spatial import cKDTree
+
+    from .refine import refine_columns
+
+    image = np.asarray(result.image, np.float32)
+    if dark_columns:
+        image = np.nanmax(image) - image
+    sigma = float(np.median(old.loc[good_old, "sigma_px"]))
+    to_raw, to_corrected = _distortion_maps(result.summary)
+    xy = to_raw(xy)
+    near = cKDTree(xy[hand]).query_ball_point(xy, r=12.0 * sigma, return_length=True) > 0
+    near &= np.all(np.isfinite(xy), axis=1)
+    sub = np.flatnonzero(near)
+    fit = refine_columns(image, xy[sub], sigma_px=sigma, counts=False, neighbour_passes=1,
+                         fixed_width_fallback=False)
+    fit = fit[hand[sub]].reset_index(drop=True)
+    # kept when the fit converged (a held width too), found a column (amplitude above 3 standard errors, the
+    # usual detection threshold) and did not slide onto a column that is already there (closer than one width)
+    ok = fit["fit_status"].isin(FITTED_STATUSES).to_numpy() & (fit["amplitude"] > 3.0 * fit["amplitude_err"]).to_numpy()
+    others = xy[~hand & np.all(np.isfinite(xy), axis=1)]
+    if len(others) and ok.any():
+        d, _ = cKDTree(others).query(np.nan_to_num(fit[["x_px", "y_px"]].to_numpy(float), nan=-1e9))
+        ok = ok & (d > sigma)
+    rows = np.flatnonzero(hand)[ok]
+    raw = fit[["x_px", "y_px"]].to_numpy(float)[ok]
+    fit.loc[ok, ["x_px", "y_px"]] = to_corrected(raw)
+    for name in ("x_px", "y_px", "sigma_px", "amplitude", "background", "intensity", "residual", "pos_err_px"):
+        values = out[name].to_numpy(float, copy=True) if name in out else np.full(len(out), np.nan)
+        values[rows] = fit[name].to_numpy(float)[ok]
+        out[name] = values
+    if "x_raw_px" in out:
+        for j, name in enumerate(("x_raw_px", "y_raw_px")):
+            values = out[name].to_numpy(float, copy=True)
+            values[rows] = raw[:, j]
+            out[name] = values
+    status[rows] = "added"
+    out["fit_status"] = status
+    return out
+
+
 def rerun_from_columns(
     result: AnalysisResult,
     columns: pd.DataFrame,
@@ -550,8 +627,14 @@ def rerun_from_columns(
     result : AnalysisResult
         The run being corrected (its image, calibration and Fourier results are kept).
     columns : DataFrame
-        Edited columns; needs ``x_px`` and ``y_px``. Rows without an ``id`` (points added by hand) get new ids;
-        missing fit values stay NaN with ``fit_status`` 'manual'; missing species are -1.
+        Edited columns; needs ``x_px`` and ``y_px``. Rows without an ``id``, with an id the run does not know, or
+        with ``fit_status`` 'added' are columns added by hand: they get new ids (when they have none) and the same
+        pixel-integrated Gaussian fit as detected columns (``refine.refine_columns`` with their neighbours, started
+        at the run's median width). A fit that converges (status 'ok' or 'fixed_width' from the fit: a width held
+        at the common width is a converged fit too), with an amplitude above 3 standard errors and not onto a
+        column already there, moves the column and fills its width, intensity and errors, and the column is
+        marked 'added'; otherwise (e.g. a point on empty background) it stays where it was placed, with NaN
+        measurements and ``fit_status`` 'manual'. Species of added columns are -1.
     params : Parameters, optional
         Defaults to the parameters of ``result``.
     regions, progress
@@ -606,12 +689,16 @@ def rerun_from_columns(
             cols[f.name] = defaults.get(f.name, np.nan)
         elif f.name in defaults:
             cols[f.name] = cols[f.name].fillna(defaults[f.name])
+    hand = fresh | ~np.isin(ids, old["id"].to_numpy()) | (cols["fit_status"].astype(str) == "added").to_numpy()
     if regions:
         from .region import label_points
 
-        cols["region"] = label_points(cols["x_px"].to_numpy(), cols["y_px"].to_numpy(), regions)
-        cols = cols[cols["region"] > 0]
-    cols.loc[fresh, "fit_status"] = "manual"
+        # regions are drawn on the image: label the positions in its frame (raw, when the distortion was corrected)
+        raw = _distortion_maps(result.summary)[0](cols[["x_px", "y_px"]].to_numpy(float))
+        cols["region"] = label_points(raw[:, 0], raw[:, 1], regions)
+        hand = hand[(cols["region"] > 0).to_numpy()]
+        cols = cols[cols["region"] > 0].reset_index(drop=True)
+    cols = _fit_hand_added(result, cols, hand, dark_columns=params.dark_columns)
     cols = _with_nm(cols, ps, {"x_px": "x_nm", "y_px": "y_nm", "sigma_px": "sigma_nm", "pos_err_px": "pos_err_nm"})
     cols = conform(cols, COLUMNS)
     new = AnalysisResult(meta=result.meta, parameters=params.to_dict(), image=result.image)
@@ -627,9 +714,13 @@ def rerun_from_columns(
         "removed": int(len(old_ids - new_ids)),
         "moved": int((cols["fit_status"] == "moved").sum()),
         "kept": int(len(new_ids & old_ids)),
+        "added_fitted": int((cols["fit_status"] == "added").sum()),
     }
     new.tables["columns"] = cols
     new.tables["spots"] = result.tables.get("spots", empty_table(SPOTS))
+    for key in ("analysed_box_px", "distortion_correction"):  # where the positions came from stays recorded
+        if key in result.summary:
+            new.summary[key] = result.summary[key]
     # Hand-placed columns have no fit; the motif search uses every column the user kept.
     struct_cols = cols.copy()
     struct_cols["fit_status"] = "ok"
@@ -637,8 +728,9 @@ def rerun_from_columns(
         warnings.simplefilter("always", TenfoldWarning)
         tmp = AnalysisResult(meta=result.meta, tables={"columns": struct_cols}, summary=new.summary, image=result.image)
         _structure(tmp, params, regions, progress)
-    for key in ("motifs", "ladder", "pair_peaks", "tiles", "network"):
-        new.tables[key] = tmp.tables[key]
+    for key in ("motifs", "ladder", "pair_peaks", "tiles", "network", "phason_map"):
+        if key in tmp.tables:
+            new.tables[key] = tmp.tables[key]
     new.curves = tmp.curves
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     return _finish(new, regions, kept)

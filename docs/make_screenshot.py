@@ -3,7 +3,8 @@
 Run ``xvfb-run -a -s "-screen 0 1600x1200x24" python docs/make_screenshot.py [--all]`` (or with a display). It
 opens the high-dose sample, marks a region, runs the analysis dock, opens the plots dock and saves a window
 screenshot; with ``--all`` also one per state a user passes through (``docs/images/state_*.png``: opened, region
-drawn, after the run, zoom on a cluster, each plots tab, after an edit and re-run, after export).
+drawn, after the run, zoom on a selected cluster, a ring picked with the rings layer active, columns coloured by intensity
+with the legend, each plots tab, after an edit and re-run, after export, a run with the scan distortion corrected).
 """
 
 from __future__ import annotations
@@ -91,22 +92,35 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900), state
     viewer.reset_view()
     viewer.scene.camera.zoom *= ZOOM
     viewer.scene.camera.center = tuple(centre)
-    viewer.layers.selection.active = viewer.layers["columns"]
+    viewer.layers.selection.active = widget.result_layer("columns")
+    widget.colour_by.setCurrentText("species")
+    plots.tabs.setCurrentIndex(0)  # summary
     plots.draw_all()
     viewer.screenshot(str(path), canvas_only=False, flash=False)
     if not states:
         return path
     shot("3_after_run")
-    plots.tabs.setCurrentIndex(2)  # motifs table
+    plots.tabs.setCurrentWidget(plots.table)  # motifs table
     plots.select_motif_row(0)
+    record = widget.session.record
+    motif = record.result.tables["motifs"].iloc[int(plots._table_rows[0])]
+    widget._show_selection()
     shot("4_zoom_on_a_cluster")
+    # with the rings layer active a click in a ring's centre picks the ring (inspector shows it), not the inner
+    # pentagon that other layers' clicks pick first
+    viewer.layers.selection.active = widget.result_layer("rings")
+    widget.pick(motif["centre_x_px"], motif["centre_y_px"], kinds="rings")
+    shot("4b_ring_selected_with_the_rings_layer_active")
+    widget.colour_by.setCurrentText("intensity")
+    shot("4c_coloured_by_intensity")
+    widget.colour_by.setCurrentText("species")
     for i in range(plots.tabs.count()):
         plots.tabs.setCurrentIndex(i)
         if plots.tabs.tabText(i) == "Fourier":
             plots.show_power_spectrum()
             wait(plots)  # the plots dock's worker, same protocol
         shot(f"5_plots_{plots.tabs.tabText(i).lower()}")
-    points = viewer.layers["columns"]
+    points = widget.result_layer("columns")
     points.selected_data = {len(points.data) // 2}
     points.remove_selected()
     widget.rerun_from_columns()
@@ -118,6 +132,11 @@ def make_screenshot(path=OUT, *, viewer=None, wait=None, size=(1500, 900), state
     widget.export()
     wait(widget)
     shot("7_after_export")
+    widget.correct_distortion.setChecked(True)
+    widget.run()
+    wait(widget)
+    shot("8_distortion_corrected_overlays_on_the_atoms")
+    widget.correct_distortion.setChecked(False)
     return path
 
 

@@ -17,7 +17,7 @@ import subprocess
 import sys
 import threading
 
-__all__ = ["run_in_process", "rerun_job", "estimate_job", "export_job", "start", "shutdown"]
+__all__ = ["run_in_process", "rerun_job", "estimate_job", "export_job", "batch_job", "start", "shutdown"]
 
 _LOCK = threading.Lock()
 _STATE: dict = {}  # the helper process
@@ -38,6 +38,12 @@ def _serve() -> None:
     from tenfold.analysis.refine import warm_up
 
     warm_up()
+    try:  # napari's shape triangulation compiles into the same on-disk numba cache the GUI process then loads
+        from napari.layers.shapes._accelerated_triangulate_dispatch import warmup_numba_cache
+
+        warmup_numba_cache()
+    except Exception:  # noqa: BLE001 - napari absent or its private warm-up moved: the GUI thread warms it then
+        pass
     while True:
         try:
             fn, args, kwargs = pickle.load(requests)
@@ -109,13 +115,24 @@ def run_in_process(fn, *args, emit, cancel: threading.Event, **kwargs):
 
 # ---------------------------------------------------------------- job bodies (run in the helper process)
 def rerun_job(result, columns, *, params, regions, progress):
-    """Fit the hand-added columns, then recompute motifs, ladder and tiling from the edited columns."""
+    """Recompute motifs, ladder and tiling from the edited columns (hand-added columns are fitted there)."""
     from tenfold.analysis import pipeline
 
-    from ._layers import fit_added
+    return pipeline.rerun_from_columns(result, columns, params=params, regions=regions, progress=progress)
 
-    fitted = fit_added(result, columns, dark_columns=params.dark_columns)
-    return pipeline.rerun_from_columns(result, fitted, params=params, regions=regions, progress=progress)
+
+def batch_job(inputs, out_dir, *, params, frame, frame_range, rerun, progress):
+    """``batch.run_batch`` with the dock's progress (fraction, message); returns a one-line report."""
+    from tenfold.analysis.batch import run_batch
+
+    def images_done(done, total, message):
+        return progress(done / max(total, 1), f"batch: {done} of {total} images; {message}")
+
+    table = run_batch(inputs, out_dir, params, frame=frame, frame_range=frame_range, rerun=rerun,
+                      progress=images_done)
+    failed = int((table["status"] != "ok").sum()) if "status" in table else 0
+    return (f"batch: {len(table)} images, {failed} failed; comparison.csv, comparison.xlsx and the figure in "
+            f"{out_dir}")
 
 
 def estimate_job(micrograph, *, dark_columns, progress):

@@ -35,7 +35,13 @@ __all__ = [
     "SPECIES_PALETTE",
     "species_colours",
     "added_row_values",
-    "fit_added",
+    "parse_frames",
+    "draw_selection",
+    "layer_name",
+    "RESULT_KINDS",
+    "display_maps",
+    "readable",
+    "MotifPicker",
 ]
 
 #: Layer-metadata key of the :class:`ImageMeta` record (as a dict) of an image opened by Tenfold.
@@ -67,9 +73,9 @@ SPECIES_SYMBOLS = ("disc", "square", "triangle_up", "diamond", "triangle_down", 
 UNCLASSIFIED_COLOUR = "#8c8c8c"
 #: Dark outline of every column marker, so light markers stay visible on bright columns.
 BORDER_COLOUR = "#141414"
-#: Numeric features are coloured on this part of matplotlib's 'viridis' (its darkest and lightest ends vanish on a
-#: HAADF background).
-NUMERIC_RANGE = (0.15, 0.92)
+#: Numeric features are coloured on this part of matplotlib's 'viridis': from its mid blue (relative luminance
+#: about 0.1, still visible on a dark background, with the dark marker outline on bright columns) to its yellow end.
+NUMERIC_RANGE = (0.3, 1.0)
 #: Motif kinds to colours, apart from the species colours of the column markers: rings white, pentagons yellow
 #: (Okabe & Ito 2008), other ring orders cyan; incomplete motifs magenta (cyan and magenta from Paul Tol's
 #: "vibrant" set, 2021, SRON/EPS/TN/09-002); the network cyan too, thinner.
@@ -96,21 +102,53 @@ def image_layer_tuple(micrograph: Micrograph, name: str) -> tuple:
     return (micrograph.data, kwargs, "image")
 
 
-def micrograph_from_layer(layer, *, pixel_size_nm: float | None = None) -> Micrograph:
+def parse_frames(text: str) -> tuple[int | None, tuple[int, int] | None]:
+    """(frame, frame_range) of the dock's 'Stack frames' field: '' -> none, 'K' -> frame K, 'A:B' -> the mean of
+    frames A..B-1 (0-based, as ``tenfold analyze --frame/--frames``); raises TenfoldInputError naming the field."""
+    from tenfold.analysis._errors import TenfoldInputError
+
+    text = (text or "").strip()
+    if not text:
+        return None, None
+    try:
+        if ":" in text:
+            a, b = (int(v) for v in text.split(":"))
+            if not 0 <= a < b:
+                raise ValueError
+            return None, (a, b)
+        k = int(text)
+        if k < 0:
+            raise ValueError
+        return k, None
+    except ValueError:
+        raise TenfoldInputError(f"'Stack frames': {text!r} is not a frame K or a range A:B (0-based, A < B); "
+                                "leave it empty for a single image") from None
+
+
+def micrograph_from_layer(layer, *, pixel_size_nm: float | None = None, frames: str = "") -> Micrograph:
     """Build the :class:`Micrograph` the pipeline needs from a napari image layer.
 
     The calibration comes from the Tenfold metadata record when the layer was opened by Tenfold; otherwise from
     the layer scale only when its units are nm (a bare scale of 1 is napari's default, never a calibration).
-    ``pixel_size_nm`` overrides both.
+    ``pixel_size_nm`` overrides both. A stack layer (3-D, not RGB) needs ``frames`` ('K' or 'A:B', see
+    :func:`parse_frames`).
     """
     from tenfold.analysis._errors import TenfoldInputError
 
     data = np.asarray(layer.data)
+    frame, frame_range = parse_frames(frames)
     if data.ndim == 3 and data.shape[-1] in (3, 4):
         data = data[..., :3].astype(np.float32) @ np.array([0.2125, 0.7154, 0.0721], np.float32)
+    elif data.ndim == 3 and (frame is not None or frame_range is not None):
+        a, b = (frame, frame + 1) if frame is not None else frame_range
+        if b > data.shape[0]:
+            raise TenfoldInputError(f"'Stack frames': {frames!r} asks for frames up to {b - 1}, but image layer "
+                                    f"{layer.name!r} has {data.shape[0]} (0-{data.shape[0] - 1})")
+        data = data[a:b].astype(np.float32).mean(axis=0)
     if data.ndim != 2:
         raise TenfoldInputError(
-            f"image layer {layer.name!r}: needs a 2-D image, got shape {data.shape}; pick one frame first"
+            f"image layer {layer.name!r}: needs a 2-D image, got shape {data.shape}; give 'Stack frames' (a frame "
+            "K or a range A:B to average)"
         )
     stored = dict(layer.metadata.get(META_KEY) or {})
     valid = layer.metadata.get(VALID_KEY)
@@ -180,70 +218,34 @@ def regions_from_shapes(shapes_layer, image_layer) -> list:
     return regions
 
 
-def columns_from_points(points_layer, frame: dict) -> pd.DataFrame:
-    """The (possibly hand-edited) columns of a Points layer as a table with x_px, y_px and the kept features.
+def columns_from_points(points_layer, frame: dict, table: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The (possibly hand-edited) columns of a Points layer as a table with x_px, y_px and the kept measurements.
 
-    Points the user added have NaN/default features; ``rerun_from_columns`` fills their id and species.
+    The layer carries only the column ``id`` as its feature; the other values come from ``table`` (the run's
+    columns table), looked up by id. Points the user added (no id, or an id given twice: napari copies the last
+    selected point's features to a new point) keep their position only, with ``fit_status`` 'added', which
+    ``rerun_from_columns`` then fits. Positions are taken back into the frame of the run's tables (the corrected
+    frame when the run corrected the scan distortion; the layer is drawn in the image's frame).
     """
     rc = layer_to_frame(np.asarray(points_layer.data), points_layer, frame)
-    table = pd.DataFrame(points_layer.features).reset_index(drop=True).copy()
-    if len(table) != len(rc):
-        table = pd.DataFrame(index=range(len(rc)))
-    table["x_px"] = rc[:, 1]
-    table["y_px"] = rc[:, 0]
-    if "id" in table:
-        ids = pd.to_numeric(table["id"], errors="coerce")
-        # napari gives an added point the feature defaults of an existing one, id included: keep the first
-        # row of each id and clear everything measured on the others, which rerun_from_columns then fills
-        added = ids.duplicated().to_numpy()
-        if added.any():
-            measured = [c for c in table.columns if c not in ("x_px", "y_px")]
-            table[measured] = table[measured].astype(object)
-            table.loc[added, measured] = np.nan
-        table["id"] = pd.to_numeric(table["id"], errors="coerce")
-    return table
-
-
-def fit_added(result, columns: pd.DataFrame, *, dark_columns: bool = False) -> pd.DataFrame:
-    """Fit the hand-added columns (``fit_status`` 'added') of an edited table on the result's image.
-
-    Each gets the same pixel-integrated Gaussian fit as detected columns (``refine.refine_columns``, started at
-    the run's median column width); where the fit converges its position, width, intensity and uncertainty are
-    filled in, elsewhere (e.g. a point on empty background) they stay NaN. The status stays 'added', species -1.
-    """
-    if "fit_status" not in columns or result.image is None:
-        return columns
-    added = columns["fit_status"].astype(str).to_numpy() == ADDED_STATUS
-    old = result.tables.get("columns")
-    good_old = old["fit_status"].isin(["ok", "fixed_width"]) & old["sigma_px"].notna() if old is not None else []
-    if not added.any() or not np.any(good_old):
-        return columns  # no measured width to start from: nothing is guessed
-    from tenfold.analysis.refine import refine_columns
-
-    image = np.asarray(result.image, np.float32)
-    if dark_columns:
-        image = np.nanmax(image) - image
-    from scipy.spatial import cKDTree
-
-    sigma = float(np.median(old.loc[good_old, "sigma_px"]))
-    # fitted together with the columns around them, so that their neighbours' light is modelled, not taken
-    # for background (as in detection)
-    xy = columns[["x_px", "y_px"]].to_numpy(float)
-    near = np.zeros(len(xy), bool)
-    hits = cKDTree(xy[added]).query_ball_point(xy, r=12.0 * sigma, return_length=True)
-    near[hits > 0] = True
-    near &= np.all(np.isfinite(xy), axis=1)
-    sub = np.flatnonzero(near)
-    fit = refine_columns(image, xy[sub], sigma_px=sigma, counts=False, neighbour_passes=1,
-                         fixed_width_fallback=False)
-    fit = fit[added[sub]].reset_index(drop=True)
-    ok = fit["fit_status"].eq("ok").to_numpy()
-    out = columns.copy()
-    rows = np.flatnonzero(added)[ok]
-    for name in ("x_px", "y_px", "sigma_px", "amplitude", "background", "intensity", "residual", "pos_err_px"):
-        values = out[name].to_numpy(float, copy=True) if name in out else np.full(len(out), np.nan)
-        values[rows] = fit[name].to_numpy(float)[ok]
-        out[name] = values
+    xy = display_maps(frame)[1](rc[:, ::-1]) if len(rc) else np.zeros((0, 2))
+    feats = pd.DataFrame(points_layer.features).reset_index(drop=True)
+    ids = pd.to_numeric(feats["id"], errors="coerce") if "id" in feats and len(feats) == len(rc) \
+        else pd.Series(np.full(len(rc), np.nan))
+    ids = ids.where(~ids.duplicated(), np.nan).to_numpy(float)
+    if table is not None and "id" in table and len(table):
+        known = np.isin(ids, table["id"].to_numpy())
+        out = table.set_index("id").reindex(ids).reset_index()
+        out.loc[~known, [c for c in out.columns if c != "id"]] = np.nan
+    else:
+        known = np.zeros(len(ids), bool)
+        out = pd.DataFrame({"id": ids})
+    if "fit_status" in out:
+        out["fit_status"] = out["fit_status"].astype(object)
+    out.loc[~known, "fit_status"] = ADDED_STATUS
+    out["id"] = np.where(known, ids, -1).astype(np.int64)
+    out["x_px"] = xy[:, 0]
+    out["y_px"] = xy[:, 1]
     return out
 
 
@@ -273,26 +275,125 @@ def _frame_kwargs(frame: dict) -> dict:
     return {"scale": frame["scale"], "translate": frame["translate"], "units": frame["units"]}
 
 
-def columns_layer_kwargs(columns: pd.DataFrame, frame: dict, *, colour_by: str = "species") -> dict:
-    """Data and keyword arguments of the 'columns' Points layer (features = the columns table).
 
-    Markers carry a dark outline and one symbol per species, so they read on bright columns and dark background
-    alike and colour is never the only cue.
+
+def display_maps(frame_or_summary: dict):
+    """(to_raw, to_corrected) maps of (N, 2) x, y px between the image's frame, where every layer is drawn, and
+    the frame of the run's tables (corrected when the run corrected the scan distortion; identities otherwise).
+    Takes a result frame (with its 'correction' record) or a run summary."""
+    from tenfold.analysis.pipeline import _distortion_maps
+
+    record = frame_or_summary.get("correction") if "correction" in frame_or_summary else \
+        frame_or_summary.get("distortion_correction")
+    return _distortion_maps({"distortion_correction": record or {}})
+
+
+#: Result layers of one image, in drawing order (bottom first); names are ``'<kind> [<image>]'``.
+RESULT_KINDS = ("network", "phason field", "motif centres", "rings", "pentagons", "columns", "selected")
+
+
+def layer_name(kind: str, image: str | None) -> str:
+    """Name of a result layer: the kind and the image it belongs to, so each image keeps its own results."""
+    return f"{kind} [{image}]" if image else kind
+
+
+def kind_of(name: str) -> tuple[str, str | None]:
+    """(kind, image) of a result layer name (image None for a name without one)."""
+    if name.endswith("]") and " [" in name:
+        kind, image = name[:-1].split(" [", 1)
+        return kind, image
+    return name, None
+
+
+#: Readable names and units of the values the inspector shows ('{u}' becomes nm, or px when uncalibrated).
+READABLE = {
+    "id": ("column id", ""), "x": ("x", "{u}"), "y": ("y", "{u}"), "sigma": ("width sigma", "{u}"),
+    "pos_err": ("position error (1 sigma)", "{u}"), "intensity": ("integrated intensity", "image units px\u00b2"),
+    "amplitude": ("peak height", "image units"), "background": ("local background", "image units"),
+    "residual": ("fit residual (rms)", "image units"), "species": ("species", ""),
+    "species_prob": ("species probability", ""), "fit_status": ("fit", ""), "region": ("region", ""),
+    "motif_id": ("motif id", ""), "kind": ("kind", ""), "complete": ("complete", ""),
+    "n_members": ("members", ""), "radius": ("radius", "{u}"), "radial_rms": ("radial spread (rms)", "{u}"),
+    "edge": ("mean edge", "{u}"), "score": ("score (0-1)", ""), "psi_n": ("order |psi_n| (0-1)", ""),
+    "orientation_deg": ("orientation", "deg"), "centre_x": ("centre x", "{u}"), "centre_y": ("centre y", "{u}"),
+    "primary": ("primary shell", ""), "parent_ring": ("inside ring", ""),
+}
+_INSPECT_COLUMNS = ("id", "x", "y", "species", "species_prob", "intensity", "sigma", "pos_err", "fit_status",
+                    "residual", "region")
+_INSPECT_MOTIFS = ("motif_id", "kind", "complete", "n_members", "centre_x", "centre_y", "radius", "radial_rms",
+                   "edge", "orientation_deg", "psi_n", "score", "parent_ring", "region")
+
+
+def _fmt(v) -> str:
+    if isinstance(v, (bool, np.bool_)):
+        return "yes" if v else "no"
+    if isinstance(v, (float, np.floating)):
+        return "-" if not np.isfinite(v) else f"{v:.4g}"
+    return str(v)
+
+
+def readable(row: pd.Series, *, pixel_size_nm: float | None, kind: str = "column") -> list[tuple[str, str]]:
+    """(label with unit, value) pairs of one column or motif row, in one length unit (nm when calibrated)."""
+    unit = "nm" if pixel_size_nm else "px"
+    out = []
+    for key in (_INSPECT_COLUMNS if kind == "column" else _INSPECT_MOTIFS):
+        label, u = READABLE[key]
+        name = key
+        if u == "{u}":
+            name = f"{key}_{unit}" if f"{key}_{unit}" in row else f"{key}_px"
+            if name.endswith("_px") and unit == "nm" and pixel_size_nm:
+                value = row.get(name, np.nan) * pixel_size_nm
+            else:
+                value = row.get(name, np.nan)
+            u = unit
+        else:
+            value = row.get(name, np.nan)
+        if name not in row and not (u == unit and f"{key}_px" in row):
+            continue
+        out.append((f"{label} ({u})" if u else label, _fmt(value)))
+    return out
+
+
+def _marker_px(columns: pd.DataFrame, frame: dict) -> float:
+    """Marker size in px: 0.6 x the median nearest-neighbour column distance, else a few pixels."""
+    if len(columns) >= 2:
+        from scipy.spatial import cKDTree
+
+        xy = columns[["x_px", "y_px"]].to_numpy(float)
+        xy = xy[np.all(np.isfinite(xy), axis=1)]
+        if len(xy) >= 2:
+            d, _ = cKDTree(xy).query(xy, k=2)
+            return max(2.0, 0.6 * float(np.median(d[:, 1])))
+    return max(3.0, min(frame["shape"]) / 170.0)
+
+
+def _rc(xy: np.ndarray) -> np.ndarray:
+    return np.asarray(xy, float)[:, ::-1] if len(xy) else np.zeros((0, 2))
+
+
+def columns_layer_kwargs(columns: pd.DataFrame, frame: dict, *, colour_by: str = "species", name="columns") -> dict:
+    """Data and keyword arguments of the columns Points layer, drawn in the image's frame.
+
+    The layer's only feature is the column ``id`` (the full table stays with the dock): napari's own features
+    table redraws every cell of the selected layer on every edit, which froze the viewer for seconds. Markers
+    carry a dark outline and one symbol per species, so they read on bright columns and dark background alike
+    and colour is never the only cue.
     """
-    data = columns[["y_px", "x_px"]].to_numpy(float) if len(columns) else np.zeros((0, 2))
+    to_raw = display_maps(frame)[0]
+    data = _rc(to_raw(columns[["x_px", "y_px"]].to_numpy(float))) if len(columns) else np.zeros((0, 2))
     kwargs = dict(
         data=data,
-        features=columns.reset_index(drop=True),
-        size=_point_size(frame),
+        features=pd.DataFrame({"id": columns["id"].to_numpy(np.int64)}) if len(columns) else None,
+        size=frame.get("marker_px") or _marker_px(columns, frame),
         symbol=species_symbols(columns) if len(columns) else "disc",
         border_width=0.12,
         border_width_is_relative=True,
         border_color=BORDER_COLOUR,
         opacity=0.9,
-        name="columns",
+        name=name,
         **_frame_kwargs(frame),
     )
-    kwargs.update(colour_kwargs(columns, colour_by))
+    kwargs["face_color"] = colour_kwargs(columns, colour_by)["face_color"]
     return kwargs
 
 
@@ -305,12 +406,6 @@ def species_symbols(table: pd.DataFrame) -> np.ndarray:
                     "disc")
 
 
-def _point_size(frame: dict) -> float:
-    """Marker size in px: 0.6 x the median nearest-neighbour column distance of the result (set by
-    :func:`result_layers`), else a few pixels."""
-    return float(frame.get("marker_px") or max(3.0, min(frame["shape"]) / 170.0))
-
-
 def species_colours(species) -> np.ndarray:
     """(N, 4) RGBA of species numbers from :data:`SPECIES_PALETTE` (by value; -1 / NaN: unclassified grey)."""
     from matplotlib.colors import to_rgba_array
@@ -321,22 +416,32 @@ def species_colours(species) -> np.ndarray:
 
 
 def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
-    """``face_color`` (an explicit (N, 4) RGBA array) colouring points by one feature.
+    """``face_color`` (an explicit (N, 4) RGBA array) colouring points by one feature, and its legend.
 
     Species by value from :data:`SPECIES_PALETTE`; other categories from :data:`PALETTE`; numbers on the
     :data:`NUMERIC_RANGE` part of 'viridis', scaled between this feature's own 2nd and 98th percentiles (so each
     feature gets its own gradient); NaN (e.g. hand-added columns) grey. Explicit colours, not napari's colour
     cycles or colormaps, so a later choice never inherits an earlier one's contrast limits.
+
+    Returns
+    -------
+    dict
+        'face_color'; 'limits' (lo, hi) for numbers; 'legend': list of (label, hex colour) for categories, or
+        for numbers the colours of the low and high ends.
     """
     from matplotlib import colormaps
-    from matplotlib.colors import to_rgba, to_rgba_array
+    from matplotlib.colors import to_hex, to_rgba, to_rgba_array
 
     n = len(table)
     if prop not in table or n == 0:
-        return {"face_color": np.tile(to_rgba(UNCLASSIFIED_COLOUR), (n, 1)) if n else UNCLASSIFIED_COLOUR}
+        return {"face_color": np.tile(to_rgba(UNCLASSIFIED_COLOUR), (n, 1)) if n else UNCLASSIFIED_COLOUR,
+                "legend": []}
     values = table[prop]
     if prop == "species":
-        return {"face_color": species_colours(values)}
+        sp = pd.to_numeric(values, errors="coerce").fillna(-1).astype(np.int64)
+        legend = [(f"species {k}" if k >= 0 else "unclassified / added",
+                   to_hex(species_colours([k])[0])) for k in sorted(sp.unique())]
+        return {"face_color": species_colours(values), "legend": legend}
     numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
     if numeric and values.nunique() > len(PALETTE):
         v = values.to_numpy(float)
@@ -346,13 +451,16 @@ def colour_kwargs(table: pd.DataFrame, prop: str) -> dict:
             lo, hi = v[ok].min(), v[ok].max()
         t = np.clip((v - lo) / (hi - lo), 0, 1) if hi > lo else np.full(n, 0.5)
         lo_c, hi_c = NUMERIC_RANGE
-        rgba = colormaps["viridis"](lo_c + (hi_c - lo_c) * np.nan_to_num(t))
+        cmap = colormaps["viridis"]
+        rgba = cmap(lo_c + (hi_c - lo_c) * np.nan_to_num(t))
         rgba[~ok] = to_rgba(UNCLASSIFIED_COLOUR)
-        return {"face_color": rgba, "limits": (float(lo), float(hi))}
+        return {"face_color": rgba, "limits": (float(lo), float(hi)),
+                "legend": [(f"{lo:.3g}", to_hex(cmap(lo_c))), (f"{hi:.3g}", to_hex(cmap(hi_c)))]}
     text = values.astype(str).to_numpy()
     cats = sorted(pd.unique(text))
-    lookup = to_rgba_array([PALETTE[i % len(PALETTE)] for i in range(len(cats))])
-    return {"face_color": lookup[np.searchsorted(cats, text)]}
+    colours = [PALETTE[i % len(PALETTE)] for i in range(len(cats))]
+    lookup = to_rgba_array(colours)
+    return {"face_color": lookup[np.searchsorted(cats, text)], "legend": list(zip(cats, colours))}
 
 
 #: Features of a column the user adds by hand: nothing is measured yet (NaN), species unclassified, status 'added'.
@@ -360,8 +468,8 @@ ADDED_STATUS = "added"
 
 
 def added_row_values(features: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
-    """``features`` with ``rows`` reset to a hand-added column's values: a new unique id, NaN measurements,
-    species -1, status 'added' (napari would otherwise copy the last selected point's features)."""
+    """``features`` with ``rows`` given new unique ids (napari would otherwise copy the last selected point's
+    id), and every other feature of those rows cleared."""
     feats = features.copy()
     rows = np.asarray(rows, np.int64)
     if not len(rows):
@@ -375,13 +483,6 @@ def added_row_values(features: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
             new = col.to_numpy(copy=True)
             new[rows] = np.arange(start, start + len(rows))
             feats[name] = new
-        elif name == "fit_status":
-            feats[name] = feats[name].astype(object)
-            feats.loc[rows, name] = ADDED_STATUS
-        elif name in ("species", "region"):
-            new = col.to_numpy(copy=True)
-            new[rows] = -1 if name == "species" else 0
-            feats[name] = new
         elif pd.api.types.is_float_dtype(col):
             new = col.to_numpy(copy=True)
             new[rows] = np.nan
@@ -393,21 +494,22 @@ def added_row_values(features: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
 
 
 def motif_polygons(motifs: pd.DataFrame, columns: pd.DataFrame) -> list[np.ndarray]:
-    """Member polygons (row, col) of each motif, vertices in the table's angular order.
+    """Member polygons (x, y px) of each motif, vertices in the table's angular order.
 
     Members missing from ``columns`` (deleted by hand) are skipped; a motif with fewer than 3 left falls back
-    to a regular polygon of its radius and orientation, so every motif row keeps exactly one shape.
+    to a regular polygon of its radius and orientation, so every motif row keeps exactly one polygon.
     """
     pos = pd.DataFrame({"x": columns["x_px"].to_numpy(), "y": columns["y_px"].to_numpy()},
                        index=columns["id"].to_numpy() if "id" in columns else None)
+    pos = pos[~pos.index.duplicated()]
     member_lists = [np.array(str(m).split(), dtype=np.int64) for m in motifs["members"]]
     flat = np.concatenate(member_lists) if member_lists else np.zeros(0, np.int64)
     known = np.isin(flat, pos.index.to_numpy())
     xy = np.full((len(flat), 2), np.nan)
-    xy[known] = pos.loc[flat[known], ["y", "x"]].to_numpy()
+    xy[known] = pos.loc[flat[known], ["x", "y"]].to_numpy()
     bounds = np.cumsum([0] + [len(m) for m in member_lists])
     out = []
-    for k, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+    for k, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):  # one slice per motif; the geometry is vectorised
         verts = xy[a:b]
         verts = verts[np.isfinite(verts[:, 0])]
         if len(verts) < 3:
@@ -415,104 +517,112 @@ def motif_polygons(motifs: pd.DataFrame, columns: pd.DataFrame) -> list[np.ndarr
             n = int(row["order"]) if row["order"] > 2 else 10
             ang = np.deg2rad(row["orientation_deg"] if np.isfinite(row["orientation_deg"]) else 0.0)
             t = ang + 2 * np.pi * np.arange(n) / n
-            verts = np.c_[row["centre_y_px"] + row["radius_px"] * np.sin(t),
-                          row["centre_x_px"] + row["radius_px"] * np.cos(t)]
+            verts = np.c_[row["centre_x_px"] + row["radius_px"] * np.cos(t),
+                          row["centre_y_px"] + row["radius_px"] * np.sin(t)]
         out.append(verts)
     return out
 
 
-def _kind_colours(motifs: pd.DataFrame) -> np.ndarray:
-    from matplotlib.colors import to_rgba_array
+def _outline_vectors(polygons: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """(vectors (E, 2, 2) in (row, col), owner (E,)) of the closed outlines: one segment per polygon edge.
 
+    A Vectors layer draws all segments as one mesh with no triangulation (a Shapes layer of the same polygons
+    took seconds to build and held the GUI for the first shape while numba compiled napari's triangulation)."""
+    if not polygons:
+        return np.zeros((0, 2, 2)), np.zeros(0, np.int64)
+    lengths = np.array([len(p) for p in polygons])
+    start = np.concatenate(polygons)
+    offsets = np.cumsum(lengths) - lengths
+    nxt = np.arange(len(start)) + 1
+    last = offsets + lengths - 1
+    nxt[last] = offsets
+    end = start[nxt]
+    owner = np.repeat(np.arange(len(polygons)), lengths)
+    return np.stack([_rc(start), _rc(end - start)], axis=1), owner
+
+
+def _motif_colours(motifs: pd.DataFrame) -> np.ndarray:
+    """(N, 4) RGBA per motif: kind colour, opacity by score, incomplete motifs magenta."""
+    from matplotlib.colors import to_rgba, to_rgba_array
+
+    if not len(motifs):
+        return np.zeros((0, 4))
     kinds = motifs["kind"].astype(str)
     hexes = np.where(kinds.str.startswith("ring"), KIND_COLOURS["ring"],
                      np.where(kinds == "pentagon", KIND_COLOURS["pentagon"], KIND_COLOURS["other"]))
-    return to_rgba_array(list(hexes)) if len(hexes) else np.zeros((0, 4))
+    rgba = to_rgba_array(list(hexes))
+    rgba[:, 3] = 0.5 + 0.5 * np.nan_to_num(np.clip(motifs["score"].to_numpy(float), 0, 1))
+    rgba[~motifs["complete"].to_numpy(bool)] = to_rgba(KIND_COLOURS["incomplete"])
+    return rgba
 
 
-def motifs_layer_kwargs(motifs: pd.DataFrame, columns: pd.DataFrame, frame: dict) -> dict:
-    """Data and keyword arguments of the 'motifs' Shapes layer: rings and pentagons as outlines (no fill).
-
-    Edge colour by kind (:data:`KIND_COLOURS`), edge opacity by score; incomplete motifs magenta so vacancies
-    stand out. Pentagons are drawn above the rings with half their line width, so both stay visible where they
-    share edges.
-    """
-    from matplotlib.colors import to_rgba
-
-    polys = motif_polygons(motifs, columns) if len(motifs) else []
-    edge = _kind_colours(motifs)
-    width = 0.2 * _point_size(frame)
-    widths, z = width, 0
-    if len(motifs):
-        score = np.clip(motifs["score"].to_numpy(float), 0, 1)
-        edge[:, 3] = 0.5 + 0.5 * np.nan_to_num(score)
-        incomplete = ~motifs["complete"].to_numpy(bool)
-        edge[incomplete] = to_rgba(KIND_COLOURS["incomplete"])
-        pent = motifs["kind"].astype(str).to_numpy() == "pentagon"
-        widths = np.where(pent, 0.5 * width, width).tolist()
-        z = pent.astype(int).tolist()  # napari wants lists here
-    return dict(
-        data=polys,
-        shape_type="polygon",
-        features=motifs.reset_index(drop=True),
-        edge_color=edge if len(motifs) else "white",
-        face_color="transparent",
-        edge_width=widths,
-        z_index=z,
-        name="motifs",
-        **_frame_kwargs(frame),
-    )
-
-
-def centres_layer_kwargs(motifs: pd.DataFrame, frame: dict) -> dict:
-    """The 'motif centres' Points layer: a hollow ring per motif, coloured by kind, wide enough to leave a
-    column at the centre visible inside it."""
-    data = motifs[["centre_y_px", "centre_x_px"]].to_numpy(float) if len(motifs) else np.zeros((0, 2))
-    return dict(
-        data=data,
-        features=motifs[["motif_id", "kind", "complete", "score"]].reset_index(drop=True)
-        if len(motifs) else pd.DataFrame(),
-        symbol="ring",
-        size=1.9 * _point_size(frame),
-        face_color=_kind_colours(motifs) if len(motifs) else KIND_COLOURS["ring"],
-        border_width=0.0,
-        name="motif centres",
-        **_frame_kwargs(frame),
-    )
-
-
-def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dict) -> dict:
-    """The 'network' Vectors layer: one segment per edge between motif centres.
-
-    A Vectors layer (start + displacement per edge) draws tens of thousands of segments as one mesh; as Shapes
-    lines the same network took seconds to triangulate.
-    """
-    centres = motifs.set_index("motif_id")[["centre_y_px", "centre_x_px"]] if len(motifs) else None
-    if len(network) and centres is not None:
-        ok = network["motif_a"].isin(centres.index) & network["motif_b"].isin(centres.index)
-        network = network[ok].reset_index(drop=True)
-        a = centres.loc[network["motif_a"]].to_numpy()
-        b = centres.loc[network["motif_b"]].to_numpy()
-        vectors = np.stack([a, b - a], axis=1)
-    else:
-        vectors, network = np.zeros((0, 2, 2)), network.iloc[0:0]
+def motif_layer_kwargs(motifs: pd.DataFrame, columns: pd.DataFrame, frame: dict, *, name: str,
+                       width_factor: float = 0.2) -> dict:
+    """A Vectors layer of motif outlines (one per kind: rings, pentagons), edges coloured by kind and score,
+    incomplete motifs magenta. ``features`` holds the ``motif_id`` of each segment's motif."""
+    to_raw = display_maps(frame)[0]
+    polys = [to_raw(p) for p in motif_polygons(motifs, columns)] if len(motifs) else []
+    vectors, owner = _outline_vectors(polys)
+    colours = _motif_colours(motifs)[owner] if len(owner) else np.zeros((0, 4))
     return dict(
         data=vectors,
-        features=network.reset_index(drop=True),
-        edge_color=NETWORK_COLOUR,
-        edge_width=0.1 * _point_size(frame),
+        features=pd.DataFrame({"motif_id": motifs["motif_id"].to_numpy()[owner]}) if len(owner) else None,
+        edge_color=colours if len(owner) else "white",
+        edge_width=width_factor * frame["marker_px"],
+        vector_style="line",
+        name=name,
+        **_frame_kwargs(frame),
+    )
+
+
+def centres_layer_kwargs(motifs: pd.DataFrame, frame: dict, *, name="motif centres") -> dict:
+    """The motif-centres Points layer: a thin hollow ring per motif, coloured by kind, wide enough to leave a
+    column at the centre visible inside it (it is drawn below the columns layer too)."""
+    to_raw = display_maps(frame)[0]
+    data = _rc(to_raw(motifs[["centre_x_px", "centre_y_px"]].to_numpy(float))) if len(motifs) else np.zeros((0, 2))
+    return dict(
+        data=data,
+        symbol="ring",
+        size=2.4 * frame["marker_px"],
+        face_color=_motif_colours(motifs) if len(motifs) else KIND_COLOURS["ring"],
+        border_width=0.0,
         opacity=0.7,
-        name="network",
+        name=name,
+        **_frame_kwargs(frame),
+    )
+
+
+def network_layer_kwargs(network: pd.DataFrame, motifs: pd.DataFrame, frame: dict, *, name="network") -> dict:
+    """The network Vectors layer: one segment per edge between motif centres (one mesh for any number)."""
+    to_raw = display_maps(frame)[0]
+    centres = motifs.set_index("motif_id")[["centre_x_px", "centre_y_px"]] if len(motifs) else None
+    if len(network) and centres is not None:
+        centres = centres[~centres.index.duplicated()]
+        ok = network["motif_a"].isin(centres.index) & network["motif_b"].isin(centres.index)
+        network = network[ok].reset_index(drop=True)
+        a = to_raw(centres.loc[network["motif_a"]].to_numpy())
+        b = to_raw(centres.loc[network["motif_b"]].to_numpy())
+        vectors = np.stack([_rc(a), _rc(b - a)], axis=1)
+    else:
+        vectors = np.zeros((0, 2, 2))
+    return dict(
+        data=vectors,
+        edge_color=NETWORK_COLOUR,
+        edge_width=0.1 * frame["marker_px"],
+        opacity=0.7,
+        name=name,
         vector_style="line",
         **_frame_kwargs(frame),
     )
 
 
-def phason_layer_kwargs(phason_map: pd.DataFrame, edge_px: float | None, frame: dict) -> dict:
-    """The 'phason field' Vectors layer: at every lifted tiling vertex, its residual perpendicular displacement
+def phason_layer_kwargs(phason_map: pd.DataFrame, edge_px: float | None, frame: dict, *,
+                        name="phason field") -> dict:
+    """The phason-field Vectors layer: at every lifted tiling vertex, its residual perpendicular displacement
     (drawn at half an edge length per edge length of displacement), red at phason-flip sites."""
+    to_raw = display_maps(frame)[0]
     if len(phason_map):
-        start = phason_map[["y_px", "x_px"]].to_numpy(float)
+        start = _rc(to_raw(phason_map[["x_px", "y_px"]].to_numpy(float)))
         scale = 0.5 * float(edge_px or 1.0)
         disp = phason_map[["dy_perp", "dx_perp"]].to_numpy(float) * scale
         vectors = np.stack([start, disp], axis=1)
@@ -522,72 +632,129 @@ def phason_layer_kwargs(phason_map: pd.DataFrame, edge_px: float | None, frame: 
         vectors, colours = np.zeros((0, 2, 2)), np.zeros((0, 4))
     return dict(
         data=vectors,
-        features=phason_map.reset_index(drop=True),
+        features=phason_map[["motif_id", "flip"]].reset_index(drop=True) if len(phason_map) else None,
         edge_color=colours,
-        edge_width=0.15 * _point_size(frame),
-        name="phason field",
+        edge_width=0.15 * frame.get("marker_px", 3.0),
+        name=name,
         vector_style="arrow",
         **_frame_kwargs(frame),
     )
 
 
-def result_layers(result, frame: dict, *, columns: bool = True, colour_by: str = "species") -> list:
-    """napari layers ('columns', 'motifs', 'motif centres', 'network') for a result, built but not added.
+#: Colour of the selection highlight (not used by any other overlay).
+HIGHLIGHT_COLOUR = "#39ff14"
 
-    Building them is the slow part (polygon triangulation), so the widget calls this in its worker thread and
-    only inserts the finished layers on the GUI thread. ``columns=False`` leaves the (hand-edited) columns
-    layer alone after a re-run from columns.
+
+def highlight_vectors(polygons: list[np.ndarray]) -> np.ndarray:
+    """Outline segments (row, col) of the polygons (x, y px, display frame) to highlight."""
+    return _outline_vectors([np.asarray(p, float) for p in polygons])[0]
+
+
+def circle(x: float, y: float, r: float, n: int = 16) -> np.ndarray:
+    t = 2 * np.pi * np.arange(n) / n
+    return np.c_[x + r * np.cos(t), y + r * np.sin(t)]
+
+
+def result_layers(result, frame: dict, *, image: str | None = None, columns: bool = True,
+                  colour_by: str = "species") -> list:
+    """napari layers of one result ('columns', 'rings', 'pentagons', 'motif centres', 'network', 'phason field',
+    'selected', each named ``'<kind> [<image>]'``), built but not added, in drawing order (bottom first).
+
+    Every layer is drawn in the image's frame: when the run corrected the scan distortion, positions are mapped
+    back with the inverse of the applied matrix, so markers sit on the atoms of the (unresampled) image.
+    ``columns=False`` leaves the (hand-edited) columns layer alone after a re-run from columns.
     """
-    from napari.layers import Points, Shapes, Vectors
-
-    from scipy.spatial import cKDTree
+    from napari.layers import Points, Vectors
 
     cols = result.tables["columns"]
     motifs = result.tables["motifs"]
-    if len(cols) >= 2 and "marker_px" not in frame:
-        xy = cols[["x_px", "y_px"]].to_numpy(float)
-        d, _ = cKDTree(xy).query(xy, k=2)
-        frame = {**frame, "marker_px": max(2.0, 0.6 * float(np.median(d[:, 1])))}
-    out = []
-    if columns:
-        out.append(Points(**columns_layer_kwargs(cols, frame, colour_by=colour_by)))
-    out.append(_chunked_shapes(motifs_layer_kwargs(motifs, cols, frame)))
-    out.append(Points(**centres_layer_kwargs(motifs, frame)))
-    out.append(Vectors(**network_layer_kwargs(result.tables["network"], motifs, frame)))
+    frame = {**frame, "correction": result.summary.get("distortion_correction")}
+    frame.setdefault("marker_px", _marker_px(cols, frame))
+    kinds = motifs["kind"].astype(str) if len(motifs) else pd.Series([], dtype=str)
+    rings = motifs[kinds.str.startswith("ring").to_numpy()] if len(motifs) else motifs
+    others = motifs[~kinds.str.startswith("ring").to_numpy()] if len(motifs) else motifs
+    out = [Vectors(**network_layer_kwargs(result.tables["network"], motifs, frame,
+                                          name=layer_name("network", image)))]
     phason_map = result.tables.get("phason_map")
     if phason_map is not None and len(phason_map):
         edge = (result.summary.get("tiling") or {}).get("edge_px")
-        out.append(Vectors(**phason_layer_kwargs(phason_map, edge, frame)))
+        out.append(Vectors(**phason_layer_kwargs(phason_map, edge, frame, name=layer_name("phason field", image))))
+    out.append(Points(**centres_layer_kwargs(motifs, frame, name=layer_name("motif centres", image))))
+    out.append(Vectors(**motif_layer_kwargs(rings, cols, frame, name=layer_name("rings", image))))
+    out.append(Vectors(**motif_layer_kwargs(others, cols, frame, name=layer_name("pentagons", image),
+                                            width_factor=0.1)))
+    if columns:
+        out.append(Points(**columns_layer_kwargs(cols, frame, colour_by=colour_by, name=layer_name("columns", image))))
+    out.append(Vectors(data=np.zeros((0, 2, 2)), edge_color=HIGHLIGHT_COLOUR, edge_width=0.3 * frame["marker_px"],
+                       vector_style="line", name=layer_name("selected", image), **_frame_kwargs(frame)))
+    for layer in out:
+        layer.metadata["tenfold_frame"] = frame
     return out
 
 
-def _chunked_shapes(kwargs: dict, chunk: int = 500):
-    """A Shapes layer built ``chunk`` shapes at a time, pausing 1 ms in between.
+class MotifPicker:
+    """Which motif a click means: the motifs whose outline contains the point, innermost first.
 
-    napari's Shapes constructor holds the GIL for long stretches on thousands of shapes (the GUI thread then
-    stalls although the work runs in a worker); built in chunks with a pause, the longest stall drops from
-    ~160 ms to ~30 ms per 6000 polygons (and the build is faster too, see benchmarks/bench_gui.py).
+    The rule: a click inside a pentagon that sits in a ring picks the pentagon; the same click again picks the
+    ring around it (and so on outwards, then back to the innermost). With the 'rings' or 'pentagons' layer active,
+    only motifs of that layer are considered, so a click anywhere inside a ring picks the ring at once.
     """
-    import time
 
-    from napari.layers import Shapes
+    def __init__(self, motifs: pd.DataFrame, columns: pd.DataFrame) -> None:
+        from scipy.spatial import cKDTree
 
-    data = kwargs["data"]
-    n = len(data)
-    if n <= chunk:
-        return Shapes(**kwargs)
+        self.motifs = motifs.reset_index(drop=True)
+        self.polygons = motif_polygons(self.motifs, columns) if len(self.motifs) else []
+        centres = self.motifs[["centre_x_px", "centre_y_px"]].to_numpy(float) if len(self.motifs) else np.zeros((0, 2))
+        self.tree = cKDTree(centres) if len(centres) else None
+        self.reach = float(np.nanmax(self.motifs["radius_px"])) * 1.3 if len(self.motifs) else 0.0
+        self.last: tuple | None = None
 
-    def part(value, lo, hi):
-        return value[lo:hi] if isinstance(value, (np.ndarray, list)) and len(value) == n else value
+    def containing(self, x: float, y: float, kinds: str | None = None) -> np.ndarray:
+        """Rows of the motifs whose outline contains (x, y), smallest area first."""
+        from matplotlib.path import Path
 
-    per_shape = {k: kwargs[k] for k in ("edge_color", "face_color", "edge_width", "z_index") if k in kwargs}
-    first = {**kwargs, "data": data[:chunk], "features": kwargs["features"].iloc[:chunk],
-             **{k: part(v, 0, chunk) for k, v in per_shape.items()}}
-    layer = Shapes(**first)
-    for lo in range(chunk, n, chunk):
-        time.sleep(0.001)  # let the GUI thread take the GIL
-        hi = min(lo + chunk, n)
-        layer.add(data[lo:hi], shape_type=kwargs["shape_type"],
-                  **{k: part(v, lo, hi) for k, v in per_shape.items()})
-    layer.features = kwargs["features"]
-    return layer
+        if self.tree is None:
+            return np.zeros(0, np.int64)
+        near = np.asarray(self.tree.query_ball_point([x, y], self.reach), np.int64)
+        if kinds is not None and len(near):
+            is_ring = self.motifs["kind"].astype(str).str.startswith("ring").to_numpy()[near]
+            near = near[is_ring] if kinds == "rings" else near[~is_ring]
+        inside = [k for k in near if Path(self.polygons[k]).contains_point((x, y))]
+        area = [0.5 * abs(np.dot(p[:, 0], np.roll(p[:, 1], 1)) - np.dot(p[:, 1], np.roll(p[:, 0], 1)))
+                for p in (self.polygons[k] for k in inside)]
+        return np.asarray(inside, np.int64)[np.argsort(area, kind="stable")] if inside else np.zeros(0, np.int64)
+
+    def pick(self, x: float, y: float, kinds: str | None = None) -> int | None:
+        """The row of the motif meant by a click at (x, y) px (tables' frame), or None."""
+        hits = self.containing(x, y, kinds)
+        if not len(hits):
+            self.last = None
+            return None
+        k = 0
+        if self.last is not None and np.hypot(x - self.last[0], y - self.last[1]) < 0.25 * self.reach / 1.3 \
+                and self.last[2] in hits.tolist():
+            k = (hits.tolist().index(self.last[2]) + 1) % len(hits)
+        self.last = (x, y, int(hits[k]))
+        return int(hits[k])
+
+
+def draw_selection(viewer, record, kind: str | None, row: int | None) -> None:
+    """Outline the selected motif (its member polygon) or column (a circle) in the record's 'selected' layer."""
+    if record is None:
+        return
+    name = layer_name("selected", record.image)
+    if name not in viewer.layers:
+        return
+    layer = viewer.layers[name]
+    frame = layer.metadata.get("tenfold_frame") or record.frame
+    to_raw = display_maps(frame)[0]
+    result = record.result
+    polys = []
+    if kind == "motif" and row is not None and row < len(result.tables["motifs"]):
+        polys = motif_polygons(result.tables["motifs"].iloc[[row]], result.tables["columns"])
+    elif kind == "column" and row is not None and row < len(result.tables["columns"]):
+        c = result.tables["columns"].iloc[row]
+        polys = [circle(c["x_px"], c["y_px"], 0.9 * frame.get("marker_px", 3.0))]
+    layer.data = highlight_vectors([to_raw(p) for p in polys]) if polys else np.zeros((0, 2, 2))
+    layer.edge_color = HIGHLIGHT_COLOUR

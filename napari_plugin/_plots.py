@@ -1,6 +1,7 @@
 """The plots dock: every result of the current run, readable without export.
 
-Tabs: distances (pair distribution with the tau ladder and the ladder table), species (intensity histogram),
+Tabs: summary (the headline numbers with errors and units, the same table as the workbook's 'summary' sheet),
+distances (pair distribution with the tau ladder and the ladder table), species (intensity histogram),
 motifs (table), tiling (counts, thick/thin ratio, map), Fourier (dominant order, distortion, spots, power
 spectrum as a plot in 1/nm: never a layer beside the nm layers) and notes (the run's notes and checks).
 Clicking a pair-distance peak, a histogram bar or a table row selects those columns or motifs in the viewer
@@ -13,8 +14,11 @@ import math
 
 import numpy as np
 import pandas as pd
+from qtpy.QtCore import Qt
 from qtpy.QtWidgets import (
     QAbstractItemView,
+    QComboBox,
+    QSplitter,
     QHBoxLayout,
     QHeaderView,
     QLabel,
@@ -28,6 +32,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._layers import KIND_COLOURS, NETWORK_COLOUR, PALETTE, SPECIES_PALETTE, UNCLASSIFIED_COLOUR, data_to_data
+from ._layers import display_maps, layer_name, motif_polygons
 from ._session import session_for
 
 
@@ -80,9 +85,10 @@ def _canvas(figsize=(4.2, 3.4)):
 
     # fixed margins: matplotlib's constrained layout took about as long as the drawing itself
     figure = Figure(figsize=figsize, dpi=90)
-    figure.subplots_adjust(left=0.16, right=0.97, bottom=0.2, top=0.9)
+    figure.subplots_adjust(left=0.17, right=0.97, bottom=0.23, top=0.9)
     canvas = FigureCanvasQTAgg(figure)
-    canvas.setMinimumHeight(240)
+    canvas.setMinimumHeight(280)
+    canvas.setMinimumWidth(360)
     return figure, canvas
 
 
@@ -119,24 +125,39 @@ class PlotsWidget(QWidget):
         self.session = session_for(napari_viewer)
         self.worker = None
         self._spectrum = None
+        self.setMinimumWidth(440)
         root = QVBoxLayout(self)
+        row = QHBoxLayout()
+        row.addWidget(QLabel("Results of"))
+        self.image_choice = QComboBox()
+        self.image_choice.setToolTip("The image whose result these plots show; every analysed image keeps its own")
+        row.addWidget(self.image_choice, 1)
+        root.addLayout(row)
         self.tabs = QTabWidget()
         root.addWidget(self.tabs, 1)
         self.info = QLabel("")
         self.info.setWordWrap(True)
         root.addWidget(self.info)
 
-        page, lay = QWidget(), QVBoxLayout()
-        page.setLayout(lay)
+        self.summary_table = _table(("section", "quantity", "value", "\u00b1 (1 sigma)", "unit", "note"))
+        self.summary_table.setToolTip("The run's headline results with their 1-sigma errors and units (also the "
+                                      "'summary' sheet of results.xlsx)")
+        self.tabs.addTab(self.summary_table, "Summary")
+
+        splitter = QSplitter(Qt.Vertical)
         self.pair_figure, self.pair_canvas = _canvas()
         self.pair_canvas.setToolTip("Column pair distribution g(r) with the matched tau-ladder rungs; click a peak "
                                     "to select the column pairs at that distance")
-        lay.addWidget(self.pair_canvas, 3)
+        splitter.addWidget(self.pair_canvas)
         self.ladder_table = _table(_LADDER_COLUMNS)
+        self.ladder_table.setMinimumHeight(int(self.ladder_table.horizontalHeader().sizeHint().height()
+                                               + 5.5 * self.ladder_table.verticalHeader().defaultSectionSize()))
         self.ladder_table.setToolTip("Golden-ratio ladder d0 x tau^n: measured peak, deviation from the ideal "
                                      "ratio and its 1-sigma uncertainty, both in percent")
-        lay.addWidget(self.ladder_table, 2)
-        self.tabs.addTab(page, "Distances")
+        splitter.addWidget(self.ladder_table)
+        splitter.setStretchFactor(0, 3)
+        splitter.setStretchFactor(1, 2)
+        self.tabs.addTab(splitter, "Distances")
 
         self.species_figure, self.species_canvas = _canvas()
         self.species_canvas.setToolTip("Integrated column intensities by species; click a bar to select those "
@@ -146,7 +167,7 @@ class PlotsWidget(QWidget):
         self.table = _table(_TABLE_COLUMNS)
         rows = self.table.verticalHeader().defaultSectionSize()
         self.table.setMinimumHeight(int(self.table.horizontalHeader().sizeHint().height() + 10.5 * rows + 4))
-        self.table.setToolTip("Motifs, best score first; click a row to select the motif and zoom to it")
+        self.table.setToolTip("Motifs, best score first; click a row to select (outline) the motif and zoom to it")
         self.tabs.addTab(self.table, "Motifs")
 
         page, lay = QWidget(), QVBoxLayout()
@@ -191,8 +212,17 @@ class PlotsWidget(QWidget):
         self.pair_canvas.mpl_connect("button_press_event", self._on_pair_click)
         self.species_canvas.mpl_connect("button_press_event", self._on_species_click)
         self.session.changed.connect(self.refresh)
-        self.tabs.currentChanged.connect(lambda _: self._draw_current())
+        self.image_choice.currentTextChanged.connect(self._choose_image)
+        self.tabs.currentChanged.connect(self._on_tab)
         self.refresh()
+
+    def _choose_image(self, image: str) -> None:
+        if image:
+            self.session.show(image)
+
+    def _on_tab(self, _index: int) -> None:
+        self.info.setText(self._tab_info.get(self.tabs.currentIndex(), "") if hasattr(self, "_tab_info") else "")
+        self._draw_current()
 
     # ---------------------------------------------------------------- drawing
     def refresh(self) -> None:
@@ -202,6 +232,14 @@ class PlotsWidget(QWidget):
         self._spectrum = None
         self._bins = None
         self._peaks = None
+        self._tab_info = {}
+        self.info.setText("")
+        self.image_choice.blockSignals(True)
+        self.image_choice.clear()
+        self.image_choice.addItems(list(self.session.records))
+        if self.session.image:
+            self.image_choice.setCurrentText(self.session.image)
+        self.image_choice.blockSignals(False)
         for fig in (self.pair_figure, self.species_figure, self.tiling_figure, self.fourier_figure):
             fig.clear()
         if result is None:
@@ -214,10 +252,32 @@ class PlotsWidget(QWidget):
             self._todo = {}
             return
         n = len(result.tables["motifs"])
-        self.info.setText(f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
-        self._todo = {0: self._draw_pairs, 1: self._draw_species, 2: lambda r: self._fill_table(r.tables["motifs"]),
-                      3: self._draw_tiling, 4: self._draw_fourier_text, 5: self._fill_notes}
+        self._tab_info[self._index_of(self.table)] = (
+            f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
+        self._todo = {self._index_of(self.summary_table): self._fill_summary,
+                      self._index_of(self.pair_canvas): self._draw_pairs,
+                      self._index_of(self.species_canvas): self._draw_species,
+                      self._index_of(self.table): lambda r: self._fill_table(r.tables["motifs"]),
+                      self._index_of(self.tiling_canvas): self._draw_tiling,
+                      self._index_of(self.fourier_canvas): self._draw_fourier_text,
+                      self._index_of(self.notes): self._fill_notes}
+        self.info.setText(self._tab_info.get(self.tabs.currentIndex(), ""))
         self._draw_current()
+
+    def _index_of(self, widget) -> int:
+        """Index of the tab holding ``widget`` (the tab page itself or a child of it)."""
+        while widget is not None:
+            i = self.tabs.indexOf(widget)
+            if i >= 0:
+                return i
+            widget = widget.parentWidget()
+        return -1
+
+    def _fill_summary(self, result) -> None:
+        from tenfold.analysis.export import summary_table
+
+        table = summary_table(result)
+        _fill(self.summary_table, table)
 
     def draw_all(self) -> None:
         """Build every tab now (for scripts and screenshots)."""
@@ -294,6 +354,7 @@ class PlotsWidget(QWidget):
         self._redraw(self.species_canvas)
 
     def _draw_tiling(self, result) -> None:
+        self.tiling_figure.subplots_adjust(right=0.7)
         info = result.summary.get("tiling") or {}
         counts = info.get("tile_counts") or {}
         thick, thin = counts.get("thick_rhombus", 0), counts.get("thin_rhombus", 0)
@@ -325,8 +386,12 @@ class PlotsWidget(QWidget):
             from matplotlib.lines import Line2D
 
             shown = [t for t in TILE_COLOURS if (side == t).any()]
-            ax.legend([Line2D([], [], color=TILE_COLOURS[t]) for t in shown], [t.replace("_", " ") for t in shown],
-                      fontsize=7, frameon=False, loc="upper right")
+            handles = [Line2D([], [], color=TILE_COLOURS[t]) for t in shown]
+            labels = [t.replace("_", " ") for t in shown]
+            if not side.isin(list(TILE_COLOURS)).all():  # outer edges and unclassified faces: the network colour
+                handles.append(Line2D([], [], color=NETWORK_COLOUR))
+                labels.append("outer / no tile")
+            ax.legend(handles, labels, fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
         else:
             ax.text(0.5, 0.5, "no cluster network", ha="center", va="center", transform=ax.transAxes)
         ax.set_xlabel(f"x ({unit})", fontsize=8)
@@ -343,10 +408,18 @@ class PlotsWidget(QWidget):
             _fill(self.spots_table, pd.DataFrame(columns=["shell", "d", "n_spots", "order", "strength"]))
             return
         order = info.get("rotational_order") or 0
+        from tenfold.analysis.export import distortion_verdict
+
         dist = info.get("distortion")
-        dist_text = (f"axis ratio {dist['axis_ratio']:.4f} at {dist['major_axis_deg']:.0f} deg"
-                     + (" (suspect scan distortion)" if dist.get("warning") else " (not significant)")
-                     if dist else "not estimated")
+        if info.get("distortion_matrix") is not None:
+            significant, dev = distortion_verdict(info)
+            applied = (result.summary.get("distortion_correction") or {}).get("applied")
+            dist_text = (f"largest |D - identity| {dev:.4f}, "
+                         + ("significant (beyond 3 standard errors)" if significant else "not significant")
+                         + ("; corrected" if applied else "")
+                         + (f"; spot-ellipse axis ratio {dist['axis_ratio']:.4f}" if dist else ""))
+        else:
+            dist_text = "not estimated"
         self.fourier_label.setText(
             f"dominant order: {order}-fold" if order else "dominant order: none found"
         )
@@ -366,7 +439,9 @@ class PlotsWidget(QWidget):
         self._redraw(self.fourier_canvas)
 
     def _fill_notes(self, result) -> None:
-        notes = list(result.summary.get("notes", []))
+        from ._widget import labelled
+
+        notes = [labelled(n) for n in result.summary.get("notes", [])]
         check = spacing_check(result)
         if check:
             notes.insert(0, "warning: " + check)
@@ -379,7 +454,6 @@ class PlotsWidget(QWidget):
         self._table_rows = np.zeros(0, dtype=np.int64)
         if motifs is None or not len(motifs):
             self.table.setRowCount(0)
-            self.info.setText("")
             return
         order = np.argsort(-motifs["score"].to_numpy(float), kind="stable")[:MAX_TABLE_ROWS]
         self._table_rows = order
@@ -400,7 +474,8 @@ class PlotsWidget(QWidget):
 
     def highlight_columns(self, ids) -> int:
         """Select the columns with these ids in the 'columns' layer and zoom to them; returns how many."""
-        points = self.viewer.layers["columns"] if "columns" in self.viewer.layers else None
+        name = layer_name("columns", self.session.image)
+        points = self.viewer.layers[name] if name in self.viewer.layers else None
         if points is None or "id" not in points.features:
             return 0
         idx = np.flatnonzero(np.isin(points.features["id"].to_numpy(), np.asarray(ids)))
@@ -435,7 +510,7 @@ class PlotsWidget(QWidget):
         width = max(2.0 * float(self._peaks["width_px"].to_numpy(float)[k]), 0.02 * d[k])
         ids = self.columns_at_distance(d[k], width)
         label = self._peaks["label"].iloc[k]
-        self.info.setText(f"pair peak {label} at {d[k] * f:.3g}: {len(ids)} columns selected")
+        self._say(f"pair peak {label} at {d[k] * f:.3g}: {len(ids)} columns selected")
         return self.highlight_columns(ids)
 
     def select_intensity_bin(self, value: float) -> int:
@@ -447,8 +522,14 @@ class PlotsWidget(QWidget):
         cols = self.session.result.tables["columns"]
         inten = cols["intensity"].to_numpy(float)
         ids = cols["id"].to_numpy()[(inten >= lo) & ((inten < hi) | (k == len(self._bins) - 2) & (inten <= hi))]
-        self.info.setText(f"intensity {lo:.4g}-{hi:.4g}: {len(ids)} columns selected")
+        self._say(f"intensity {lo:.4g}-{hi:.4g}: {len(ids)} columns selected")
         return self.highlight_columns(ids)
+
+    def _say(self, text: str) -> None:
+        """The info line, for the current tab only (cleared when another tab is opened)."""
+        self._tab_info = getattr(self, "_tab_info", {})
+        self._tab_info[self.tabs.currentIndex()] = text
+        self.info.setText(text)
 
     def _on_pair_click(self, event) -> None:
         if event.inaxes is getattr(self, "_pair_ax", None) and event.xdata is not None:
@@ -459,19 +540,26 @@ class PlotsWidget(QWidget):
             self.select_intensity_bin(float(event.xdata))
 
     def select_motif_row(self, row: int, column: int = 0) -> None:
-        """Select the motif of a table row in the 'motifs' layer and zoom to it."""
-        layer = self.viewer.layers["motifs"] if "motifs" in self.viewer.layers else None
-        if layer is None or row >= len(self._table_rows):
+        """Select (outline) the motif of a table row and zoom to it, with its neighbourhood."""
+        record = self.session.record
+        if record is None or row >= len(self._table_rows):
             return
         index = int(self._table_rows[row])
-        if index >= len(layer.data):
+        motifs = record.result.tables["motifs"]
+        if index >= len(motifs):
             return
-        self.viewer.layers.selection.active = layer
-        layer.selected_data = {index}
-        verts = np.asarray(layer.data[index])[:, -2:]
-        self._zoom_to(verts * np.asarray(layer.scale)[-2:] + np.asarray(layer.translate)[-2:])
+        self.session.select("motif", index)
+        frame = record.frame
+        name = layer_name("selected", record.image)
+        if name in self.viewer.layers:
+            frame = self.viewer.layers[name].metadata.get("tenfold_frame") or frame
+        xy = display_maps(frame)[0](motif_polygons(motifs.iloc[[index]], record.result.tables["columns"])[0])
+        world = xy[:, ::-1] * np.asarray(frame["scale"]) + np.asarray(frame["translate"])
+        self._zoom_to(world)
         # a motif alone fills the canvas; show its neighbourhood too
         self.viewer.scene.camera.zoom = self.viewer.scene.camera.zoom / 4
+        kind = motifs["kind"].iloc[index]
+        self._say(f"{kind} {int(motifs['motif_id'].iloc[index])} selected (outlined in green)")
 
     # ---------------------------------------------------------------- power spectrum
     def show_power_spectrum(self) -> None:
@@ -497,7 +585,7 @@ class PlotsWidget(QWidget):
         data = np.asarray(image_layer.data)
         active = self.viewer.layers.selection.active
         where = "image"
-        if isinstance(active, Shapes) and active.name != "motifs" and active.selected_data:
+        if isinstance(active, Shapes) and active.selected_data:
             verts = np.asarray(active.data[min(active.selected_data)])[:, -2:]
             rc = data_to_data(verts, active, image_layer)
             r0, c0 = np.floor(rc.min(axis=0)).astype(int).clip(0)
@@ -517,7 +605,7 @@ class PlotsWidget(QWidget):
         worker.finished.connect(self._spectrum_done)
         self.worker = worker
         self.spectrum_button.setEnabled(False)
-        self.info.setText(f"computing the power spectrum of the {where}...")
+        self._say(f"computing the power spectrum of the {where}...")
         worker.start()
 
     def _spectrum_done(self) -> None:
@@ -530,7 +618,7 @@ class PlotsWidget(QWidget):
         value, error = out
         if error:
             show_error(f"power spectrum: {error}")
-            self.info.setText(f"power spectrum: {error}")
+            self._say(f"power spectrum: {error}")
             return
         spectrum, k_step = value
         self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())  # builds the tab's text first
@@ -555,6 +643,6 @@ class PlotsWidget(QWidget):
         ax.tick_params(labelsize=7)
         self._spectrum = {"data": spectrum, "step": step, "unit": unit, "source": where, "extent": extent}
         self._redraw(self.fourier_canvas)
-        self.info.setText(f"power spectrum of the {where}, {step:.3g} {unit} per pixel")
+        self._say(f"power spectrum of the {where}, {step:.3g} {unit} per pixel")
 
     add_power_spectrum = show_power_spectrum  # the older name

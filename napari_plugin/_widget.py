@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from qtpy.QtCore import QObject, QTimer, Signal
+from qtpy.QtCore import QObject, Qt, QTimer, Signal
 from qtpy.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -27,13 +27,30 @@ from qtpy.QtWidgets import (
     QMessageBox,
     QProgressBar,
     QPushButton,
+    QScrollArea,
     QSpinBox,
     QVBoxLayout,
     QWidget,
 )
 
-from ._layers import colour_kwargs, columns_from_points, frame_of, micrograph_from_layer, regions_from_shapes
-from ._layers import result_layers
+from ._layers import (
+    HIGHLIGHT_COLOUR,
+    RESULT_KINDS,
+    MotifPicker,
+    circle,
+    colour_kwargs,
+    columns_from_points,
+    display_maps,
+    frame_of,
+    highlight_vectors,
+    kind_of,
+    layer_name,
+    micrograph_from_layer,
+    motif_polygons,
+    readable,
+    regions_from_shapes,
+    result_layers,
+)
 from ._session import session_for
 
 
@@ -51,7 +68,10 @@ _NM_FIELDS = (  # (Parameters name, label, estimate key)
     ("column_diameter_nm", "Column diameter (nm)", "column_diameter"),
     ("ring_radius_nm", "Ring radius (nm)", None),
     ("d0_nm", "Ladder base d0 (nm)", None),
+    ("ladder_r_max_nm", "Ladder range (nm)", None),
+    ("tiling_edge_nm", "Tiling edge (nm)", None),
 )
+_WINDOWS = ("hann", "periodic_smooth")
 
 
 @dataclass
@@ -71,7 +91,7 @@ class _Bridge(QObject):
     progress = Signal(float, str)
 
 
-def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outcome:
+def _job(kind, compute, frame, cancel, emit, build_columns, colour_by, image=None) -> _Outcome:
     """Worker body: run ``compute = (fn, args, kwargs)`` in the helper process (see ``_compute``), build the
     result layers here, report every failure as text."""
     from tenfold.analysis._errors import Cancelled, TenfoldInputError
@@ -84,7 +104,7 @@ def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outco
         if frame is None:  # export, estimate: no layers; export returns its message
             return _Outcome("ok", message=str(result), result=result, kind=kind)
         emit(1.0, "building layers")
-        layers = result_layers(result, frame, columns=build_columns, colour_by=colour_by)
+        layers = result_layers(result, frame, image=image, columns=build_columns, colour_by=colour_by)
         if cancel.is_set():
             raise Cancelled("cancelled")
         return _Outcome("ok", result=result, layers=layers, kind=kind)
@@ -100,16 +120,36 @@ def _job(kind, compute, frame, cancel, emit, build_columns, colour_by) -> _Outco
 _LABELS = {"pixel_size_nm": "Pixel size (nm)", **{name: label for name, label, _ in _NM_FIELDS},
            "n_species": "Species", "ring_order": "Ring order", "radius_tolerance": "Radius tolerance",
            "dark_columns": "Contrast", "flatten": "flatten uneven background", "pentagons": "pentagons",
-           "half_step": "half-step ladder", "fourier": "Fourier spots"}
+           "half_step": "half-step ladder", "fourier": "Fourier spots", "min_mass": "Minimum intensity",
+           "correct_distortion": "correct scan distortion", "phason": "phason analysis",
+           "fourier_window": "Fourier window"}
+#: Command-line flags named in pipeline notes, and the dock control that does the same.
+_FLAGS = {"--correct-distortion": "correct scan distortion", "--pixel-size": "Pixel size (nm)",
+          "--column-spacing": "Column spacing (nm)", "--column-diameter": "Column diameter (nm)",
+          "--ring-radius": "Ring radius (nm)", "--ladder-base": "Ladder base d0 (nm)",
+          "--ladder-range": "Ladder range (nm)", "--tiling-edge": "Tiling edge (nm)",
+          "--min-intensity": "Minimum intensity", "--species": "Species", "--ring-order": "Ring order",
+          "--radius-tolerance": "Radius tolerance", "--dark-columns": "Contrast", "--flatten":
+          "flatten uneven background", "--no-fourier": "Fourier spots", "--no-phason": "phason analysis",
+          "--no-pentagons": "pentagons", "--half-step": "half-step ladder", "--fourier-window": "Fourier window",
+          "--frames": "Stack frames", "--frame": "Stack frames"}
 
 
 def labelled(message: str) -> str:
     """A pipeline message with parameter names replaced by the dock's field labels."""
     import re
 
+    # the viewer draws every overlay back in the image's frame (see result_layers): no offset to warn about there
+    message = re.sub(r"the image itself is not resampled, so overlays on it are offset by up to [0-9.]+ px",
+                     "the image is not resampled; the viewer draws the overlays back in the image's frame, on the "
+                     "atoms", message)
+    for flag, label in sorted(_FLAGS.items(), key=lambda kv: -len(kv[0])):
+        message = re.sub(rf"\brun with {re.escape(flag)}\b", f"tick '{label}' and run again", message)
+        message = re.sub(rf"(?<![\w-]){re.escape(flag)}(?![\w-])", f"'{label}'", message)
     for name, label in sorted(_LABELS.items(), key=lambda kv: -len(kv[0])):
         message = re.sub(rf"\bparameters? {name}\b", f"'{label}'", message)
-        message = re.sub(rf"\b{name}\b", f"'{label}'", message)
+        if "_" in name:  # plain words (phason, fourier, flatten) also occur in prose
+            message = re.sub(rf"(?<!')\b{name}\b", f"'{label}'", message)
     return message
 
 
@@ -145,8 +185,7 @@ def _freeze_startup_objects() -> None:
     if not _FROZEN:
         import gc
 
-        gc.collect()
-        gc.freeze()
+        gc.freeze()  # no collect first: it took most of a second, and what little garbage it would free is tiny
         _FROZEN = True
 
 
@@ -154,17 +193,45 @@ def _nm_text(value) -> str:
     return "-" if value is None or not math.isfinite(value) else f"{value:.3g}"
 
 
+_WARMED = threading.Event()
+
+
+def _warm_numba_in_background() -> None:
+    """Compile (or load from numba's on-disk cache) napari's shape triangulation in a daemon thread, once.
+
+    napari compiles it on the GUI thread the first time a shape is drawn (a regions rectangle), which froze the
+    viewer 14-22 s because installing Tenfold installs numba; Tenfold's own kernels run in the helper process,
+    which warms them (and this cache) when it starts.
+    """
+    if _WARMED.is_set():
+        return
+    _WARMED.set()
+
+    def warm():
+        try:
+            from napari.layers.shapes._accelerated_triangulate_dispatch import warmup_numba_cache
+
+            warmup_numba_cache()
+        except Exception:  # noqa: BLE001 - a private napari helper that may move: napari then warms it itself
+            pass
+
+    threading.Thread(target=warm, name="tenfold-numba-warm-up", daemon=True).start()
+
+
 class PipelineWidget(QWidget):
     """Tenfold analysis dock.
 
     Attributes usable from scripts and tests: ``run()``, ``preview()``, ``cancel()``, ``rerun_from_columns()``,
-    ``export(folder=None)``, ``estimate()``; ``choose_folder`` and ``confirm_overwrite`` are replaceable
-    callables (the defaults open a QFileDialog / QMessageBox); ``worker`` is the running worker or None.
+    ``export(folder=None)``, ``estimate()``, ``load_parameters(path=None)``, ``save_parameters(path=None)``,
+    ``batch(inputs=None, folder=None)``, ``result_layer(kind)``, ``pick(x_px, y_px, kinds=None)``;
+    ``choose_folder``, ``choose_open_file``, ``choose_save_file``, ``choose_images`` and ``confirm_overwrite``
+    are replaceable callables (the defaults open Qt dialogs); ``worker`` is the running worker or None.
     """
 
     def __init__(self, napari_viewer) -> None:
         super().__init__()
         _freeze_startup_objects()
+        _warm_numba_in_background()
         from ._compute import start
 
         start()  # the helper process loads the analysis code while the user sets up the first run
@@ -176,16 +243,33 @@ class PipelineWidget(QWidget):
         self._bridge.progress.connect(self._on_progress)
         self.choose_folder = self._ask_folder
         self.confirm_overwrite = self._ask_overwrite
+        self.choose_open_file = lambda: QFileDialog.getOpenFileName(
+            self, "Load Tenfold parameters", "", "Parameters (*.toml)")[0] or None
+        self.choose_save_file = lambda: QFileDialog.getSaveFileName(
+            self, "Save Tenfold parameters", "parameters.toml", "Parameters (*.toml)")[0] or None
+        self.choose_images = lambda: QFileDialog.getOpenFileNames(self, "Images for the batch")[0] or None
+        self._px_lengths: dict = {}
         self._build()
         for ev in (napari_viewer.layers.events.inserted, napari_viewer.layers.events.removed,
                    napari_viewer.layers.events.moved):
             ev.connect(self._refresh_layers)
+        napari_viewer.layers.selection.events.active.connect(self._on_active_layer)
+        napari_viewer.mouse_drag_callbacks.append(self._on_click)
+        self.session.selected.connect(self._show_selection)
+        self.session.changed.connect(self._on_session_changed)
         self._refresh_layers()
         self._set_busy(False)
 
     # ---------------------------------------------------------------- layout
     def _build(self) -> None:
-        root = QVBoxLayout(self)
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        scroll = QScrollArea()
+        scroll.setWidgetResizable(True)
+        inner = QWidget()
+        scroll.setWidget(inner)
+        outer.addWidget(scroll)
+        root = QVBoxLayout(inner)
 
         box = QGroupBox("Input")
         form = QFormLayout(box)
@@ -193,20 +277,18 @@ class PipelineWidget(QWidget):
         self.regions_combo = QComboBox()
         self.pixel_size = QLineEdit()
         self.pixel_size.setPlaceholderText("from file")
-        self.pixel_size.setToolTip("Override the pixel size (nm per pixel); empty = calibration of the file")
+        self.frames = QLineEdit()
+        self.frames.setPlaceholderText("single image")
         form.addRow("Image", self.image_combo)
         form.addRow("Regions", self.regions_combo)
         form.addRow("Pixel size (nm)", self.pixel_size)
+        form.addRow("Stack frames", self.frames)
         root.addWidget(box)
 
-        box = QGroupBox("Columns")
-        form = QFormLayout(box)
-        self.contrast = QComboBox()
-        self.contrast.addItems(["bright columns (HAADF)", "dark columns (HRTEM, ABF)"])
-        form.addRow("Contrast", self.contrast)
         self.nm_fields: dict[str, QLineEdit] = {}
         self.estimate_labels: dict[str, QLabel] = {}
-        for name, label, key in _NM_FIELDS:
+
+        def nm_row(form, name, label, key):
             edit = QLineEdit()
             edit.setPlaceholderText("auto")
             row = QHBoxLayout()
@@ -218,17 +300,27 @@ class PipelineWidget(QWidget):
                 self.estimate_labels[key] = est
             self.nm_fields[name] = edit
             form.addRow(label, row)
+
+        box = QGroupBox("Columns")
+        form = QFormLayout(box)
+        self.contrast = QComboBox()
+        self.contrast.addItems(["bright columns (HAADF)", "dark columns (HRTEM, ABF)"])
+        form.addRow("Contrast", self.contrast)
+        for name, label, key in _NM_FIELDS[:2]:
+            nm_row(form, name, label, key)
+        self.min_intensity = QLineEdit()
+        self.min_intensity.setPlaceholderText("none")
+        form.addRow("Minimum intensity", self.min_intensity)
         self.species = QSpinBox()
         self.species.setRange(-1, 8)
         self.species.setValue(-1)
         self.species.setSpecialValueText("auto")
-        self.species.setToolTip("number of intensity classes: auto (by ICL), 0 = skip, or 1-8")
         form.addRow("Species", self.species)
         self.flatten = QCheckBox("flatten uneven background")
         form.addRow("", self.flatten)
         root.addWidget(box)
 
-        box = QGroupBox("Motifs, ladder, tiling")
+        box = QGroupBox("Motifs, ladder, tiling, Fourier")
         form = QFormLayout(box)
         self.ring_order = QComboBox()
         self.ring_order.addItems(["10", "12", "8", "6", "5"])
@@ -238,6 +330,8 @@ class PipelineWidget(QWidget):
         self.radius_tolerance.setSingleStep(0.01)
         self.radius_tolerance.setValue(0.12)
         form.addRow("Radius tolerance", self.radius_tolerance)
+        for name, label, key in _NM_FIELDS[2:]:
+            nm_row(form, name, label, key)
         self.pentagons = QCheckBox("pentagons")
         self.pentagons.setChecked(True)
         self.half_step = QCheckBox("half-step ladder")
@@ -248,24 +342,28 @@ class PipelineWidget(QWidget):
             row.addWidget(w)
         form.addRow(row)
         self.correct_distortion = QCheckBox("correct scan distortion")
-        self.correct_distortion.setToolTip(
-            "apply the distortion measured from the Fourier spots to the column positions before motifs, "
-            "ladders, tiling and phasons (overlays are then in the corrected frame)")
         self.phason = QCheckBox("phason analysis")
         self.phason.setChecked(True)
-        self.phason.setToolTip("linear phason strain from both sides (real-space lift of the cluster tiling and the "
-                               "Fourier spot positions) and the phason field layer")
         row = QHBoxLayout()
         for w in (self.correct_distortion, self.phason):
             row.addWidget(w)
         form.addRow(row)
+        self.fourier_window = QComboBox()
+        self.fourier_window.addItems(list(_WINDOWS))
+        form.addRow("Fourier window", self.fourier_window)
         root.addWidget(box)
 
         row = QHBoxLayout()
+        self.load_button = QPushButton("Load parameters...")
+        self.save_button = QPushButton("Save parameters...")
+        self.batch_button = QPushButton("Batch...")
+        for w in (self.load_button, self.save_button, self.batch_button):
+            row.addWidget(w)
+        root.addLayout(row)
+
+        row = QHBoxLayout()
         self.estimate_button = QPushButton("Estimate")
-        self.estimate_button.setToolTip("quick automatic scale, shown next to the fields")
         self.preview_button = QPushButton("Preview")
-        self.preview_button.setToolTip(f"analyse the central {PREVIEW_SIZE_PX} x {PREVIEW_SIZE_PX} px only")
         self.run_button = QPushButton("Run")
         self.cancel_button = QPushButton("Cancel")
         for w in (self.estimate_button, self.preview_button, self.run_button, self.cancel_button):
@@ -281,18 +379,25 @@ class PipelineWidget(QWidget):
 
         box = QGroupBox("Results")
         form = QFormLayout(box)
+        self.showing = QLabel("no result yet")
+        self.showing.setWordWrap(True)
+        form.addRow("Showing", self.showing)
         self.colour_by = QComboBox()
         self.colour_by.addItems(list(_COLOUR_PROPS))
         form.addRow("Colour columns by", self.colour_by)
         self.colour_note = QLabel("")
-        form.addRow("", self.colour_note)
+        self.colour_note.setWordWrap(True)
+        form.addRow("Legend", self.colour_note)
         row = QHBoxLayout()
         self.rerun_button = QPushButton("Re-run from columns")
-        self.rerun_button.setToolTip("recompute motifs, ladder and tiling from the edited 'columns' layer")
         self.export_button = QPushButton("Export...")
         row.addWidget(self.rerun_button)
         row.addWidget(self.export_button)
         form.addRow(row)
+        self.inspector = QLabel("click a column or motif (pan/zoom mode) to inspect it")
+        self.inspector.setWordWrap(True)
+        self.inspector.setTextFormat(Qt.RichText)
+        form.addRow("Selected", self.inspector)
         root.addWidget(box)
         root.addStretch(1)
 
@@ -303,26 +408,38 @@ class PipelineWidget(QWidget):
         self.cancel_button.clicked.connect(self.cancel)
         self.rerun_button.clicked.connect(self.rerun_from_columns)
         self.export_button.clicked.connect(lambda: self.export())
+        self.load_button.clicked.connect(lambda: self.load_parameters())
+        self.save_button.clicked.connect(lambda: self.save_parameters())
+        self.batch_button.clicked.connect(lambda: self.batch())
         self.colour_by.currentTextChanged.connect(self._recolour)
         self.regions_combo.currentTextChanged.connect(self._style_regions)
 
     def _add_tooltips(self) -> None:
         tips = {
-            self.image_combo: "Image layer to analyse; an image opened later is chosen automatically.",
+            self.image_combo: "Image layer to analyse; an image opened later is chosen automatically. Each image "
+                              "keeps its own result layers (their names end in [image]).",
             self.regions_combo: "Shapes layer whose rectangles, polygons or ellipses are the regions analysed "
                                 "(labels 1, 2, ... in the order drawn); '(whole image)' analyses everything.",
             self.pixel_size: "Pixel size in nm per pixel. Empty: the calibration stored in the file; without one "
                              "every nm value is left empty (never guessed).",
+            self.frames: "For a stack (a 3-D image layer): 'K' analyses frame K, 'A:B' the mean of frames A to "
+                         "B-1 (0-based). Empty for a single image.",
             self.contrast: "Bright columns on a dark background (HAADF) or dark columns on a bright one "
                            "(HRTEM, ABF).",
             self.nm_fields["column_spacing_nm"]: "Nearest-neighbour distance between columns, in nm. Empty: "
                                                  "measured from the image (Estimate shows the value).",
             self.nm_fields["column_diameter_nm"]: "Full column diameter in nm (about 4.5 Gaussian sigma). Empty: "
                                                   "measured from the image (Estimate shows the value).",
+            self.min_intensity: "Drop columns whose integrated intensity (image units x px\u00b2) is below this. "
+                                "Empty: no cut (the significance test decides).",
             self.nm_fields["ring_radius_nm"]: "Radius of the ring motifs in nm. Empty: the pair-distance peak that "
                                               "fits the ring order best.",
             self.nm_fields["d0_nm"]: "Base distance d0 of the golden-ratio ladder d0 x tau^n, in nm. Empty: the "
                                      "strongest short-range pair-distance peak.",
+            self.nm_fields["ladder_r_max_nm"]: "Largest pair distance the ladder analysis looks at, in nm. Empty: "
+                                               "automatic.",
+            self.nm_fields["tiling_edge_nm"]: "Edge length of the cluster network, in nm. Empty: from the pair "
+                                              "distances of the cluster centres.",
             self.species: "Number of intensity classes of the columns: auto chooses by the Bayesian information "
                           "criterion; 0 skips classification; 1-8 fixes the number.",
             self.flatten: "Subtract a smooth background first (uneven illumination or thickness). Off by default.",
@@ -331,21 +448,41 @@ class PipelineWidget(QWidget):
             self.pentagons: "Also look for pentagons of columns (inside rings or free-standing).",
             self.half_step: "Also try half steps tau^(n/2) on the distance ladder.",
             self.fourier: "Locate the Bragg spots of the power spectrum and check it for scan distortion.",
+            self.correct_distortion: "Apply the distortion measured from the Fourier spots to the column positions "
+                                     "before motifs, ladders, tiling and phasons. The tables are then in the "
+                                     "corrected frame; the overlays are drawn back in the image's frame, on the "
+                                     "atoms.",
+            self.phason: "Linear phason strain from both sides (real-space lift of the cluster tiling and the "
+                         "Fourier spot positions) and the phason field layer.",
+            self.fourier_window: "Window of the power spectrum: 'hann', or 'periodic_smooth' (no window; about "
+                                 "half the uncertainty of the phason strain from the spots).",
+            self.load_button: "Fill the fields from a parameters.toml (one written with every export, or saved "
+                              "here).",
+            self.save_button: "Write the fields to a parameters.toml (for the command line, a batch, or later).",
+            self.batch_button: "Analyse a list of image files with these parameters, one results folder each, plus "
+                               "a comparison table and figure (in the background; Cancel stops after the current "
+                               "image, and a second start resumes).",
             self.estimate_button: "Measure the automatic column spacing and diameter now (runs in the background) "
                                   "and show them next to the fields.",
             self.preview_button: f"Analyse only the central {PREVIEW_SIZE_PX} x {PREVIEW_SIZE_PX} px, for a quick "
-                                 "check of the parameters.",
-            self.run_button: "Analyse the image (or only the regions) in the background; result layers replace "
-                             "those of the last run.",
+                                 "check of the parameters (without the Fourier stage: a crop that small cannot "
+                                 "judge the scan distortion).",
+            self.run_button: "Analyse the image (or only the regions) in the background; the result layers of this "
+                             "image replace those of its last run, other images keep theirs.",
             self.cancel_button: "Stop the running job at its next progress report; layers stay as they were.",
             self.progress_bar: "Progress of the running job.",
             self.status: "What the last job did: counts of columns, rings, pentagons and tiles.",
+            self.showing: "The image whose result the docks show; select one of its layers to show another.",
             self.colour_by: "Feature that colours the column markers: species in their own colours, numbers on "
                             "a colour scale from the feature's 2nd to 98th percentile.",
-            self.rerun_button: "Recompute motifs, ladder and tiling from the edited 'columns' layer (added points "
+            self.colour_note: "What the marker colours mean (also written on the canvas).",
+            self.rerun_button: "Recompute motifs, ladder and tiling from the edited columns layer (added points "
                                "are fitted, deleted ones left out); no new detection.",
-            self.export_button: "Write tables (CSV, xlsx), summary.json and figures to a folder; asks before "
-                                "overwriting.",
+            self.export_button: "Write tables (CSV, xlsx with a summary sheet), summary.json, parameters.toml and "
+                                "figures to a folder; asks before overwriting.",
+            self.inspector: "The selected column or motif. Click one in pan/zoom mode with a result layer "
+                            "active; inside a pentagon that sits in a ring, a second click selects the ring (with "
+                            "the rings layer active the first click does).",
         }
         for widget, tip in tips.items():
             widget.setToolTip(tip)
@@ -356,7 +493,7 @@ class PipelineWidget(QWidget):
 
         images = [ly.name for ly in self.viewer.layers if isinstance(ly, Image) and ly.name != "power spectrum"]
         shapes = [ly.name for ly in self.viewer.layers
-                  if isinstance(ly, Shapes) and ly.name not in ("motifs", "network")]
+                  if isinstance(ly, Shapes) and kind_of(ly.name)[0] not in RESULT_KINDS]
         for combo, names in ((self.image_combo, images), (self.regions_combo, [_WHOLE_IMAGE] + shapes)):
             current = combo.currentText()
             combo.blockSignals(True)
@@ -395,6 +532,10 @@ class PipelineWidget(QWidget):
     def _layer(self, name: str):
         return self.viewer.layers[name] if name in self.viewer.layers else None
 
+    def result_layer(self, kind: str, image: str | None = None):
+        """The result layer of this kind ('columns', 'rings', ...) of ``image`` (default: the current one)."""
+        return self._layer(layer_name(kind, image or self.session.image))
+
     # ---------------------------------------------------------------- parameters
     def parameters(self):
         """The :class:`Parameters` the fields describe (validated); raises TenfoldInputError naming the field."""
@@ -402,7 +543,8 @@ class PipelineWidget(QWidget):
         from tenfold.analysis.pipeline import Parameters
 
         values: dict = {}
-        for name, edit in [("pixel_size_nm", self.pixel_size)] + list(self.nm_fields.items()):
+        fields = [("pixel_size_nm", self.pixel_size), ("min_mass", self.min_intensity)] + list(self.nm_fields.items())
+        for name, edit in fields:
             text = edit.text().strip()
             if not text:
                 values[name] = None
@@ -411,8 +553,11 @@ class PipelineWidget(QWidget):
                 values[name] = float(text)
             except ValueError:
                 raise TenfoldInputError(
-                    f"{_LABELS[name]}: {text!r} is not a number; give a value in nm or leave it empty for auto"
+                    f"{_LABELS.get(name, name)}: {text!r} is not a number; give a value or leave it empty for auto"
                 ) from None
+        for name, value in self._px_lengths.items():  # lengths in px from a loaded file, when no nm is given
+            if values.get(name.replace("_px", "_nm")) is None:
+                values[name] = value
         n = self.species.value()
         values.update(
             dark_columns=self.contrast.currentIndex() == 1,
@@ -425,14 +570,84 @@ class PipelineWidget(QWidget):
             fourier=self.fourier.isChecked(),
             correct_distortion=self.correct_distortion.isChecked(),
             phason=self.phason.isChecked(),
+            fourier_window=self.fourier_window.currentText(),
+            rng=getattr(self, "_rng", 0),
         )
         try:
             return Parameters(**values).validate()
         except TenfoldInputError as exc:
             raise TenfoldInputError(labelled(str(exc))) from None
 
+    def set_parameters(self, params) -> None:
+        """Fill every field from a :class:`Parameters` (lengths given in px are kept and used as they are)."""
+        def text(v):
+            return "" if v is None else f"{v:.6g}"
+
+        self.pixel_size.setText(text(params.pixel_size_nm))
+        self.min_intensity.setText(text(params.min_mass))
+        for name, edit in self.nm_fields.items():
+            edit.setText(text(getattr(params, name)))
+        self._px_lengths = {f"{name[:-3]}_px": getattr(params, f"{name[:-3]}_px") for name in self.nm_fields
+                            if getattr(params, f"{name[:-3]}_px", None) is not None}
+        self._px_lengths.update({f: getattr(params, f) for f in ("column_diameter_px", "column_spacing_px")
+                                 if getattr(params, f) is not None})
+        self.contrast.setCurrentIndex(1 if params.dark_columns else 0)
+        self.species.setValue(-1 if params.n_species is None else int(params.n_species))
+        self.flatten.setChecked(bool(params.flatten))
+        self.ring_order.setCurrentText(str(params.ring_order))
+        self.radius_tolerance.setValue(float(params.radius_tolerance))
+        self.pentagons.setChecked(bool(params.pentagons))
+        self.half_step.setChecked(bool(params.half_step))
+        self.fourier.setChecked(bool(params.fourier))
+        self.correct_distortion.setChecked(bool(params.correct_distortion))
+        self.phason.setChecked(bool(params.phason))
+        self.fourier_window.setCurrentText(params.fourier_window)
+        self._rng = int(params.rng)
+
+    def load_parameters(self, path=None) -> None:
+        """Fill the fields from a parameters file (or a results folder holding one)."""
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis._params_file import load_parameters
+
+        path = path or self.choose_open_file()
+        if not path:
+            return
+        try:
+            self.set_parameters(load_parameters(path))
+        except Exception as exc:  # shown, never raised into Qt
+            show_error(labelled(str(exc)))
+            return
+        kept = f" (lengths in px kept as given: {', '.join(self._px_lengths)})" if self._px_lengths else ""
+        self.status.setText(f"parameters loaded from {path}{kept}")
+
+    def save_parameters(self, path=None) -> None:
+        """Write the fields to a parameters file; an existing file is replaced only when ``confirm_overwrite``
+        says yes."""
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis._params_file import save_parameters
+
+        path = path or self.choose_save_file()
+        if not path:
+            return
+        path = Path(path)
+        try:
+            params = self.parameters()
+            overwrite = path.exists() and self.confirm_overwrite(path)
+            if path.exists() and not overwrite:
+                self.status.setText(f"parameters not saved: {path} left as it was")
+                return
+            save_parameters(params, path, overwrite=overwrite)
+        except Exception as exc:
+            show_error(labelled(str(exc)))
+            return
+        self.status.setText(f"parameters saved to {path}")
+
     def _inputs(self, *, preview: bool = False):
         """(image layer, micrograph, params, regions, frame) for a run; raises TenfoldInputError."""
+        import dataclasses
+
         from tenfold.analysis._errors import TenfoldInputError
         from tenfold.analysis.region import Region
 
@@ -440,7 +655,8 @@ class PipelineWidget(QWidget):
         if image_layer is None:
             raise TenfoldInputError("no image layer chosen: open a micrograph first (File > Open, or a sample)")
         params = self.parameters()
-        micrograph = micrograph_from_layer(image_layer, pixel_size_nm=params.pixel_size_nm)
+        micrograph = micrograph_from_layer(image_layer, pixel_size_nm=params.pixel_size_nm,
+                                           frames=self.frames.text())
         regions_layer = self._layer(self.regions_combo.currentText())
         regions = regions_from_shapes(regions_layer, image_layer) if regions_layer is not None else []
         offset = (0, 0)
@@ -452,9 +668,13 @@ class PipelineWidget(QWidget):
             micrograph.valid = np.ascontiguousarray(micrograph.valid[sl])
             micrograph.meta.shape = micrograph.data.shape
             micrograph.meta.notes = micrograph.meta.notes + [
-                f"preview: central {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px from row {r0}, col {c0}"
+                f"preview: central {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px from row {r0}, col "
+                f"{c0}, without the Fourier stage (a crop this small cannot judge the scan distortion; Run does)"
             ]
             offset, regions = (r0, c0), []
+            # the distortion verdict needs the spot pattern of the whole field: a 256 px crop holds a few tiles,
+            # and the indexing seeded from them called a clean image distorted while the full run did not
+            params = dataclasses.replace(params, fourier=False, correct_distortion=False)
         regions = [Region(label=r.label, kind=r.kind, vertices_px=r.vertices_px) for r in regions]
         return image_layer, micrograph, params, regions or None, frame_of(image_layer, offset_px=offset)
 
@@ -510,47 +730,77 @@ class PipelineWidget(QWidget):
         compute = (run_pipeline, (micrograph, params), {"regions": regions or None})
 
         context = (image_layer, frame, regions)
-        self._launch("preview" if preview else "run", compute, frame, context, build_columns=True)
+        self._launch("preview" if preview else "run", compute, frame, context, build_columns=True,
+                     image=image_layer.name)
 
     def rerun_from_columns(self) -> None:
-        """Recompute motifs, ladder and tiling from the (edited) 'columns' layer, without re-detecting."""
+        """Recompute motifs, ladder and tiling from the current image's (edited) columns layer, without
+        re-detecting; columns added by hand are fitted first."""
         from napari.utils.notifications import show_error
 
         from ._compute import rerun_job
 
         session = self.session
-        points = self._layer("columns")
+        points = self.result_layer("columns")
         if self.worker is not None:
             return
         if session.result is None or points is None:
-            show_error("re-run from columns: run an analysis first; there is no 'columns' layer to start from")
+            show_error("re-run from columns: run an analysis first; there is no columns layer to start from")
             return
         try:
             params = self.parameters()
-            columns = columns_from_points(points, session.frame)
+            columns = columns_from_points(points, points.metadata.get("tenfold_frame") or session.frame,
+                                          session.result.tables["columns"])
         except Exception as exc:
-            show_error(str(exc))
+            show_error(labelled(str(exc)))
             return
         result, regions = session.result, session.regions or None
 
         compute = (rerun_job, (result, columns), {"params": params, "regions": regions})
 
         context = (session.image_layer, session.frame, session.regions)
-        self._launch("re-run", compute, session.frame, context, build_columns=False)
+        self._launch("re-run", compute, session.frame, context, build_columns=False, image=session.image)
+
+    def batch(self, inputs=None, folder=None) -> None:
+        """Analyse image files with the dock's parameters through ``batch.run_batch`` (one results folder per
+        image, the comparison table and figure), in the helper process; Cancel stops after the running image."""
+        from napari.utils.notifications import show_error
+
+        from ._compute import batch_job
+        from ._layers import parse_frames
+
+        if self.worker is not None:
+            return
+        inputs = inputs or self.choose_images()
+        if not inputs:
+            return
+        folder = folder or self.choose_folder()
+        if not folder:
+            return
+        try:
+            params = self.parameters()
+            frame, frame_range = parse_frames(self.frames.text())
+        except Exception as exc:
+            show_error(labelled(str(exc)))
+            return
+        compute = (batch_job, ([str(p) for p in inputs], str(folder)),
+                   {"params": params, "frame": frame, "frame_range": frame_range, "rerun": False})
+        self._launch("batch", compute, None, None, build_columns=False)
 
     def cancel(self) -> None:
         """Ask the running worker to stop at the next progress report."""
         self._cancel.set()
         self.status.setText("cancelling...")
 
-    def _launch(self, kind, compute, frame, context, *, build_columns: bool) -> None:
+    def _launch(self, kind, compute, frame, context, *, build_columns: bool, image: str | None = None) -> None:
         from napari.qt.threading import create_worker
 
         self._cancel = threading.Event()
         self._context = context
+        self._image = image
         worker = create_worker(
             _job, kind, compute, frame, self._cancel, self._bridge.progress.emit, build_columns,
-            self.colour_by.currentText(), _start_thread=False,
+            self.colour_by.currentText(), image, _start_thread=False,
         )
         worker.returned.connect(self._on_returned)
         worker.finished.connect(self._on_finished)
@@ -571,14 +821,15 @@ class PipelineWidget(QWidget):
         from napari.utils.notifications import show_error, show_info
 
         if outcome.status == "error":
-            show_error(outcome.message)
-            self.status.setText(outcome.message)
+            message = labelled(outcome.message)
+            show_error(message)
+            self.status.setText(message)
             return
         if outcome.status == "cancelled":
             self.status.setText(f"{outcome.kind} cancelled; layers unchanged")
             self.progress_bar.setValue(0)
             return
-        if outcome.kind == "export":
+        if outcome.kind in ("export", "batch"):
             show_info(outcome.message)
             self.status.setText(outcome.message)
             return
@@ -597,17 +848,26 @@ class PipelineWidget(QWidget):
             self._put_layer(self._pending.pop(0))
             QTimer.singleShot(0, self._insert_next)
             return
-        outcome, self._pending_outcome = self._pending_outcome, None
+        outcome = self._pending_outcome
+        try:
+            self._show_outcome(outcome)
+        finally:  # whatever happens in showing it, the dock is free again
+            self._pending_outcome = None
+            self._go_idle()
+
+    def _show_outcome(self, outcome) -> None:
         image_layer, frame, regions = self._context
-        points = self._layer("columns")
+        image = self._image
+        points = self._layer(layer_name("columns", image))
         if points is not None:
             self.viewer.layers.selection.active = points
         if outcome.kind == "re-run" and points is not None:
             self._update_columns_layer(points, outcome.result.tables["columns"])
-        self.session.set_result(outcome.result, frame, image_layer, regions or [])
+        self.session.set_result(outcome.result, frame, image_layer, regions or [], image=image)
+        self._recolour(self.colour_by.currentText())
         self.viewer.canvas.overlays.scale_bar.visible = True
         summary = outcome.result.summary
-        self.status.setText(f"{outcome.kind}: {status_counts(outcome.result)}"
+        self.status.setText(f"{outcome.kind} of {image}: {status_counts(outcome.result)}"
                             + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
         # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not hidden;
         # what only describes the run (a preview's crop, the analysed box) is information
@@ -621,18 +881,26 @@ class PipelineWidget(QWidget):
         for note in summary.get("notes", []):
             if note.startswith("uncalibrated"):
                 continue
-            (show_info if note.startswith(_INFO_NOTES) else show_warning)(note)
-        self._go_idle()
+            (show_info if note.startswith(_INFO_NOTES) else show_warning)(labelled(note))
 
     def _update_columns_layer(self, points, table) -> None:
-        """After a re-run the edited columns layer is kept; its features (new ids, fitted added columns) and the
-        fitted positions of added columns are taken from the re-run's table when the rows still match."""
+        """After a re-run the edited columns layer is kept; its ids (new ones for added columns) and the fitted
+        positions of added columns are taken from the re-run's table when the rows still match."""
         if len(table) != len(points.data):
             return
+        import pandas as pd
+
+        from ._layers import species_symbols
+
+        frame = points.metadata.get("tenfold_frame") or self.session.frame
+        xy = display_maps(frame)[0](table[["x_px", "y_px"]].to_numpy(float))
         with points.events.data.blocker(self._on_columns_edited):
-            points.data = table[["y_px", "x_px"]].to_numpy(float)
-        points.features = table.reset_index(drop=True)
-        self._recolour(self.colour_by.currentText())
+            points.data = xy[:, ::-1]
+        ids = table["id"].to_numpy(np.int64)
+        if "id" not in points.features or not np.array_equal(points.features["id"].to_numpy(), ids):
+            # only when they changed: napari's features table, if open, rebuilds itself on every assignment
+            points.features = pd.DataFrame({"id": ids})
+        points.symbol = species_symbols(table)
 
     def _on_finished(self) -> None:
         self._worker_done = True
@@ -645,7 +913,7 @@ class PipelineWidget(QWidget):
 
     def _set_busy(self, busy: bool) -> None:
         for w in (self.estimate_button, self.preview_button, self.run_button, self.rerun_button,
-                  self.export_button):
+                  self.export_button, self.batch_button, self.load_button):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
@@ -669,7 +937,7 @@ class PipelineWidget(QWidget):
     def _put_layer(self, new) -> None:
         """Insert a finished layer where the old one of its name was (same visibility and opacity) when that
         place is above the analysed image, else on top (a second image opened since)."""
-        if new.name == "columns":
+        if kind_of(new.name)[0] == "columns":
             new.events.data.connect(self._on_columns_edited)
         place = getattr(self, "_places", {}).pop(new.name, None)
         if place is None:
@@ -685,8 +953,8 @@ class PipelineWidget(QWidget):
         self.viewer.layers.insert(min(index, len(self.viewer.layers)), new)
 
     def _on_columns_edited(self, event) -> None:
-        """A point added by hand is a new column: its own id, NaN measurements, species -1, status 'added'
-        (napari would give it the features and colour of the last selected point)."""
+        """A point added by hand is a new column: its own id (napari would copy the last selected point's) and
+        the grey of unclassified columns."""
         if getattr(event, "action", None) != "added":  # napari's ActionType is a str enum
             return
         layer = event.source
@@ -702,14 +970,126 @@ class PipelineWidget(QWidget):
         face[rows] = to_rgba(UNCLASSIFIED_COLOUR)
         layer.face_color = face
 
+    def _aligned_columns(self, points):
+        """The current result's columns table row-aligned with a (possibly edited) columns layer, by id."""
+        table = self.session.result.tables["columns"]
+        ids = points.features["id"].to_numpy() if "id" in points.features else np.zeros(0)
+        return table.drop_duplicates("id").set_index("id").reindex(ids).reset_index()
+
     def _recolour(self, prop: str) -> None:
-        points = self._layer("columns")
-        if points is None or prop not in points.features:
+        """Colour the current image's column markers by ``prop`` and write the legend (dock and canvas)."""
+        points = self.result_layer("columns")
+        if points is None or self.session.result is None:
             return
-        kwargs = colour_kwargs(points.features, prop)
+        table = self._aligned_columns(points)
+        if prop not in table:
+            return
+        kwargs = colour_kwargs(table, prop)
         points.face_color = kwargs["face_color"]
-        lo_hi = kwargs.get("limits")
-        self.colour_note.setText(f"{prop}: {lo_hi[0]:.3g} (dark) to {lo_hi[1]:.3g} (light)" if lo_hi else "")
+        legend = kwargs.get("legend") or []
+        if kwargs.get("limits"):
+            (lo, c_lo), (hi, c_hi) = legend
+            html = (f"{prop}: <span style='color:{c_lo}'>■</span> {lo} (blue) to "
+                    f"<span style='color:{c_hi}'>■</span> {hi} (yellow); grey: not measured")
+            canvas = f"{prop}: {lo} (blue) to {hi} (yellow); grey: not measured"
+        else:
+            html = f"{prop}: " + ", ".join(f"<span style='color:{c}'>■</span> {label}" for label, c in legend)
+            names = _colour_names()
+            canvas = f"{prop}: " + ", ".join(f"{label.replace('species ', '')} {names.get(c.lower(), c)}"
+                                             for label, c in legend)
+            if prop == "species":
+                canvas += " (and one marker shape each)"
+        self.colour_note.setText(html)
+        overlay = self.viewer.canvas.overlays.text
+        overlay.text = canvas
+        overlay.visible = True
+        overlay.font_size = 9
+        overlay.color = "white"
+        try:
+            overlay.position = "top_left"  # the scale bar has the bottom
+        except Exception:  # noqa: BLE001 - napari versions name the corners differently; keep its default
+            pass
+
+    # ---------------------------------------------------------------- selection and inspector
+    def _on_active_layer(self, event=None) -> None:
+        """Selecting a result layer of another image shows that image's result in both docks."""
+        active = self.viewer.layers.selection.active
+        if active is None:
+            return
+        kind, image = kind_of(active.name)
+        if kind in RESULT_KINDS and image in self.session.records:
+            self.session.show(image)
+
+    def _on_session_changed(self) -> None:
+        image = self.session.image
+        images = list(self.session.records)
+        others = [i for i in images if i != image]
+        self.showing.setText(f"{image}" + (f" (also: {', '.join(others)})" if others else "") if image
+                             else "no result yet")
+        self.inspector.setText("click a column or motif (pan/zoom mode) to inspect it")
+
+    def _on_click(self, viewer, event):
+        """A click (no drag) with a result layer active selects the column or motif under it."""
+        if event.type != "mouse_press" or getattr(event, "button", 1) != 1:
+            return
+        active = viewer.layers.selection.active
+        if active is None or getattr(active, "mode", "pan_zoom") not in ("pan_zoom", None):
+            return
+        kind, image = kind_of(active.name)
+        if kind not in RESULT_KINDS or image not in self.session.records:
+            return
+        start = np.asarray(event.position, float)[-2:]
+        yield
+        while event.type == "mouse_move":
+            if np.hypot(*(np.asarray(event.position, float)[-2:] - start)) > 0:
+                return  # a drag pans the view
+            yield
+        self.session.show(image)
+        frame = active.metadata.get("tenfold_frame") or self.session.frame
+        from ._layers import world_to_frame
+
+        rc = world_to_frame(start[None], frame)[0]
+        x, y = display_maps(frame)[1](np.array([[rc[1], rc[0]]]))[0]
+        self.pick(x, y, kinds=kind if kind in ("rings", "pentagons", "columns") else None)
+
+    def pick(self, x_px: float, y_px: float, kinds: str | None = None):
+        """Select what a click at (x_px, y_px) (frame of the tables) means: with ``kinds`` 'columns' the nearest
+        column, 'rings' / 'pentagons' the motif of that kind around the point, otherwise the innermost motif
+        around it (the next one out on a repeated click, see ``MotifPicker``), else the nearest column.
+
+        Returns ('column' | 'motif', row) or None."""
+        record = self.session.record
+        if record is None:
+            return None
+        result = record.result
+        if kinds != "columns":
+            if record.picker is None:
+                record.picker = MotifPicker(result.tables["motifs"], result.tables["columns"])
+            row = record.picker.pick(x_px, y_px, None if kinds == "columns" else
+                                     (kinds if kinds in ("rings", "pentagons") else None))
+            if row is not None:
+                self.session.select("motif", row)
+                return ("motif", row)
+        cols = result.tables["columns"]
+        if len(cols):
+            d = np.hypot(cols["x_px"].to_numpy(float) - x_px, cols["y_px"].to_numpy(float) - y_px)
+            k = int(np.nanargmin(d))
+            if d[k] <= (record.frame.get("marker_px") or _marker_default(record)):
+                self.session.select("column", k)
+                return ("column", k)
+        self.session.select(None)
+        return None
+
+    def _show_selection(self) -> None:
+        record, sel = self.session.record, self.session.selection
+        if record is None or sel is None:
+            self.inspector.setText("nothing selected")
+            return
+        kind, row = sel
+        table = record.result.tables["columns" if kind == "column" else "motifs"]
+        pairs = readable(table.iloc[row], pixel_size_nm=record.result.meta.pixel_size_nm, kind=kind)
+        rows = "".join(f"<tr><td>{label}</td><td align='right'>&nbsp;{value}</td></tr>" for label, value in pairs)
+        self.inspector.setText(f"<b>{kind} in {record.image}</b><table>{rows}</table>")
 
     # ---------------------------------------------------------------- export
     def _ask_folder(self) -> str | None:
@@ -755,3 +1135,21 @@ class PipelineWidget(QWidget):
         compute = (export_job, (result, folder), {"overwrite": overwrite})
 
         self._launch("export", compute, None, None, build_columns=False)
+
+
+def _marker_default(record) -> float:
+    from ._layers import _marker_px
+
+    return _marker_px(record.result.tables["columns"], record.frame)
+
+
+def _colour_names() -> dict:
+    """Plain names of the legend colours, for the canvas text (which is one colour)."""
+    from ._layers import PALETTE, SPECIES_PALETTE, UNCLASSIFIED_COLOUR
+
+    species = ("blue", "orange", "green", "vermillion", "sky blue", "purple")
+    other = ("blue", "orange", "teal", "yellow", "brick red", "violet", "sky blue", "grey")
+    names = {c.lower(): n for c, n in zip(SPECIES_PALETTE, species)}
+    names.update({c.lower(): n for c, n in zip(PALETTE, other)})
+    names[UNCLASSIFIED_COLOUR.lower()] = "grey"
+    return names

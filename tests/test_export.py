@@ -222,7 +222,7 @@ def test_workbook_matches_csvs(tmp_path, result):
     out = tmp_path / "res"
     write_results(result, out, figures=False)
     wb = read_workbook(out / "results.xlsx")
-    assert set(wb) == set(S.TABLES) | {"regions", "provenance"}
+    assert set(wb) == set(S.TABLES) | {"summary", "regions", "provenance"}
     for name, fields in S.TABLES.items():
         csv = _read_csv(out / f"{name}.csv", fields)
         sheet = wb[name]
@@ -271,6 +271,51 @@ def test_workbook_units_row_and_numeric_cells(tmp_path, result):
     regions = wb["regions"]
     assert [c.value for c in regions[1]] == ["region", "n_columns", "mean_psi_n", "mean_pos_err_nm"]
     assert regions.cell(row=2, column=4).value == "nm"
+
+
+def test_regions_sheet_holds_numbers_only(tmp_path, result):
+    # the pipeline writes what a region's mean is taken over as text; in the sheet that text is the unit-row label
+    # of the mean, never a text cell in a column of numbers
+    from openpyxl import load_workbook
+
+    result.summary["regions"][0]["mean_psi_n_over"] = "ring motifs and pentagons"
+    out = tmp_path / "res"
+    write_results(result, out, figures=False)
+    ws = load_workbook(out / "results.xlsx")["regions"]
+    names = [c.value for c in ws[1]]
+    assert "mean_psi_n_over" not in names
+    assert ws.cell(row=2, column=names.index("mean_psi_n") + 1).value == "over ring motifs and pentagons"
+    assert all(c.data_type == "n" for c in ws[3])
+
+
+def test_summary_sheet_lists_the_headline_results(tmp_path, result):
+    # every headline number of summary.json is in the workbook's first sheet, with its error and unit
+    result.summary.update({
+        "ladder": {"columns": {"holds": True, "d0_px": 10.0}, "agreement": {"compared": 1, "max_abs_z": 0.5,
+                                                                              "agree": True}},
+        "phason": {"real_space": {"ok": True, "singular_values": [0.04, 0.01], "singular_values_se": [0.02, 0.02],
+                                  "n_used": 50},
+                   "fourier": {"ok": False, "reason": "no decagonal indexing"}},
+        "fourier": {"distortion_matrix": [[1.01, 0.0], [0.0, 0.99]], "dominant_order": 10,
+                    "indexing": {"distortion_matrix_se": [[0.001, 0.001], [0.0, 0.001]]}},
+        "timings_s": {"columns": 2.5, "motifs": 0.5},
+    })
+    out = tmp_path / "res"
+    write_results(result, out, figures=False)
+    wb = read_workbook(out / "results.xlsx")
+    assert list(wb)[0] == "summary"
+    sheet = wb["summary"].set_index(["section", "quantity"])
+    d0 = sheet.loc[("ladder", "columns: base d0")]
+    assert d0["value"] == pytest.approx(10.0 * 0.02) and d0["unit"] == "nm" and d0["note"] == "tau ladder holds"
+    sv = sheet.loc[("phason", "real space (tiling lift): strain singular value 1")]
+    assert sv["value"] == pytest.approx(0.04) and sv["error"] == pytest.approx(0.02)
+    assert sheet.loc[("phason", "Fourier (spot positions): strain"), "note"] == "no decagonal indexing"
+    d11 = sheet.loc[("distortion", "matrix D[1,1]")]
+    assert d11["value"] == pytest.approx(1.01) and d11["error"] == pytest.approx(0.001)
+    # 0.01 off the identity is 10 standard errors: significant
+    assert sheet.loc[("distortion", "largest |D - identity|"), "note"].startswith("significant")
+    assert sheet.loc[("timings", "columns"), "value"] == pytest.approx(2.5)
+    assert sheet.loc[("region 0", "n columns"), "value"] == 12
 
 
 def test_read_workbook_bad_path(tmp_path):

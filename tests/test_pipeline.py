@@ -145,3 +145,60 @@ def test_pentagonal_clusters_without_rings_make_the_network():
     tiles = new.tables["tiles"].set_index("tile")["count"]
     assert tiles.get("thick_rhombus", 0) > 0 and tiles.get("thin_rhombus", 0) > 0
     assert new.summary["tiling"]["edge_nm"] == pytest.approx(2.0, rel=0.01)
+
+
+@pytest.fixture(scope="module")
+def region_run():
+    """A rectangle of 400 x 400 px well inside the 1024 px sample: the pipeline analyses its box (with a margin)."""
+    from tenfold.analysis.region import Region
+
+    mg = read_micrograph(SAMPLE)
+    reg = [Region(1, "rectangle", np.array([[300.0, 300.0], [700.0, 300.0], [700.0, 700.0], [300.0, 700.0]]))]
+    return mg, reg, run_pipeline(mg, Parameters(fourier=False), regions=reg)
+
+
+def test_region_run_puts_the_phason_map_in_image_pixels(region_run):
+    # the phason map's vertices are the cluster centres: in whole-image pixels they are the ground-truth centres
+    # of the full sample (generator truth), never the same centres shifted by the analysed box's corner
+    from scipy.spatial import cKDTree
+
+    _, _, res = region_run
+    pm = res.tables["phason_map"]
+    assert len(pm) >= 10
+    assert res.summary["analysed_box_px"]["col0"] == 300 - 24
+    truth = pd.read_csv(SAMPLE.with_name("decagonal_haadf_high_dose_centres.csv"))
+    d, _ = cKDTree(truth[["x_px", "y_px"]].to_numpy()).query(pm[["x_px", "y_px"]].to_numpy())
+    assert np.percentile(d, 95) < 1.0
+    assert pm["x_px"].between(290, 710).all() and pm["y_px"].between(290, 710).all()
+    np.testing.assert_allclose(pm["x_nm"], pm["x_px"] * res.meta.pixel_size_nm)
+
+
+def test_rerun_from_columns_keeps_the_phason_map_and_the_analysed_box(region_run):
+    mg, reg, res = region_run
+    new = rerun_from_columns(res, res.tables["columns"], regions=reg)
+    assert new.summary["analysed_box_px"] == res.summary["analysed_box_px"]
+    pm_old, pm_new = res.tables["phason_map"], new.tables["phason_map"]
+    assert len(pm_new) == len(pm_old)
+    np.testing.assert_allclose(np.sort(pm_new["x_px"].to_numpy()), np.sort(pm_old["x_px"].to_numpy()), atol=1e-6)
+    assert new.summary["phason"]["real_space"]["ok"]
+
+
+def test_a_column_added_by_hand_is_fitted_and_kept(result):
+    # delete a detected column and place it again by eye, a pixel off: the re-run fits it like a detected one and
+    # it lands on the generator's true position (the sample's ground truth), with a width and an intensity
+    from scipy.spatial import cKDTree
+
+    cols = result.tables["columns"]
+    fitted = cols[cols["fit_status"].isin(["ok", "fixed_width"])]
+    truth = pd.read_csv(SAMPLE.with_name("decagonal_haadf_high_dose_columns.csv"))
+    picks = fitted.iloc[[len(fitted) // 3, len(fitted) // 2, 2 * len(fitted) // 3]]
+    kept = cols[~cols["id"].isin(picks["id"])][["id", "x_px", "y_px"]]
+    placed = pd.DataFrame({"x_px": picks["x_px"].to_numpy() + 0.8, "y_px": picks["y_px"].to_numpy() - 0.6})
+    new = rerun_from_columns(result, pd.concat([kept, placed], ignore_index=True))
+    c = new.tables["columns"]
+    added = c[c["fit_status"] == "added"]
+    assert len(added) == 3 and new.summary["columns"]["hand_edited"]["added_fitted"] == 3
+    assert added[["sigma_px", "intensity", "pos_err_px"]].notna().all().all()
+    d, _ = cKDTree(truth[["x_px", "y_px"]].to_numpy()).query(added[["x_px", "y_px"]].to_numpy())
+    assert d.max() < 0.3
+    np.testing.assert_allclose(np.sort(added["intensity"]), np.sort(picks["intensity"]), rtol=0.2)

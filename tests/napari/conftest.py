@@ -104,3 +104,13 @@ def small_run(make_napari_viewer, sample_path, qtbot, notes):
     run_and_wait(qtbot, widget)
     assert notes["error"] == [], notes["error"]
     return viewer, widget, plots, image
+
+
+def layer(viewer, kind, image=None):
+    """The result layer of this kind ('columns', 'rings', ...): of ``image``, or the only one in the viewer."""
+    from tenfold.napari_plugin._layers import kind_of
+
+    found = [ly for ly in viewer.layers if kind_of(ly.name)[0] == kind
+             and (image is None or kind_of(ly.name)[1] == image)]
+    assert len(found) == 1, [ly.name for ly in viewer.layers]
+    return found[0]

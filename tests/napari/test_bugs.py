@@ -12,7 +12,7 @@ from matplotlib import colormaps
 from matplotlib.colors import to_rgba
 from scipy.spatial import cKDTree
 
-from conftest import add_box, run_and_wait
+from conftest import layer, add_box, run_and_wait
 from tenfold.napari_plugin._layers import (
     NUMERIC_RANGE,
     SPECIES_PALETTE,
@@ -27,11 +27,11 @@ from tenfold.napari_plugin._widget import PipelineWidget
                                    ("residual", "sigma_px", "intensity")], ids=["forward", "other-order"])
 def test_every_numeric_colour_choice_gets_its_own_gradient(small_run, order):
     viewer, widget, _, _ = small_run
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     lo_c, hi_c = NUMERIC_RANGE
     for prop in order:
         widget.colour_by.setCurrentText(prop)
-        values = points.features[prop].to_numpy(float)
+        values = widget.session.result.tables["columns"][prop].to_numpy(float)
         face = np.asarray(points.face_color)
         assert len(np.unique(face.round(4), axis=0)) > 10, prop  # a gradient, not one colour
         ok = np.isfinite(values)
@@ -40,6 +40,9 @@ def test_every_numeric_colour_choice_gets_its_own_gradient(small_run, order):
         np.testing.assert_allclose(face[np.nanargmin(values)], colormaps["viridis"](lo_c), atol=1e-6)
         np.testing.assert_allclose(face[np.nanargmax(values)], colormaps["viridis"](hi_c), atol=1e-6)
         assert f"{lo:.3g}" in widget.colour_note.text() and f"{hi:.3g}" in widget.colour_note.text()
+        # the legend is on the canvas too
+        text = viewer.canvas.overlays.text
+        assert text.visible and prop in text.text and f"{hi:.3g}" in text.text
 
 
 # ---------------------------------------------------------------- 2. added points
@@ -56,9 +59,9 @@ def test_added_point_has_no_borrowed_measurements(small_run, qtbot, notes):
     from conftest import SMALL_BOX
 
     viewer, widget, plots, _ = small_run
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     feats = points.features
-    victim = int(np.flatnonzero(feats["species"].to_numpy() >= 0)[0])
+    victim = int(np.flatnonzero(widget.session.result.tables["columns"]["species"].to_numpy() >= 0)[0])
     victim_id = int(feats["id"].iloc[victim])
     max_id = int(feats["id"].max())
     points.selected_data = {victim}  # napari now takes its features as the defaults for new points
@@ -68,9 +71,6 @@ def test_added_point_has_no_borrowed_measurements(small_run, qtbot, notes):
     points.add(spot[None])
     new = points.features.iloc[-1]
     assert int(new["id"]) == max_id + 1 and int(new["id"]) != victim_id
-    assert new["fit_status"] == "added" and int(new["species"]) == -1
-    for name in ("intensity", "species_prob", "sigma_px", "pos_err_nm", "amplitude"):
-        assert np.isnan(new[name]), name
     np.testing.assert_allclose(points.face_color[-1], to_rgba(UNCLASSIFIED_COLOUR))
     assert points.features["id"].is_unique
 
@@ -78,16 +78,17 @@ def test_added_point_has_no_borrowed_measurements(small_run, qtbot, notes):
     assert notes["error"] == [], notes["error"]
     cols = widget.session.result.tables["columns"]
     row = cols[cols["id"] == max_id + 1].iloc[0]
-    assert row["fit_status"] == "added" and row["species"] == -1
-    assert np.isnan(row["intensity"])  # nothing to fit on empty background: stays NaN, never borrowed
+    # nothing to fit on empty background: kept where it was placed, 'manual', NaN, never borrowed
+    assert row["fit_status"] == "manual" and row["species"] == -1
+    assert np.isnan(row["intensity"])
 
 
 def test_rerun_fits_a_column_added_by_hand(small_run, qtbot, notes):
     viewer, widget, _, _ = small_run
-    points = viewer.layers["columns"]
-    feats = points.features
-    k = int(np.flatnonzero((feats["fit_status"] == "ok").to_numpy())[len(feats) // 2])
-    truth = feats.iloc[k]
+    points = layer(viewer, "columns")
+    cols = widget.session.result.tables["columns"]
+    k = int(np.flatnonzero(cols["fit_status"].isin(["ok", "fixed_width"]).to_numpy())[len(cols) // 2])
+    truth = cols.iloc[k]
     points.selected_data = {k}
     points.remove_selected()
     points.add(np.array([[truth["y_px"] - 0.6, truth["x_px"] + 0.8]]))  # placed by eye, a pixel off
@@ -95,11 +96,13 @@ def test_rerun_fits_a_column_added_by_hand(small_run, qtbot, notes):
     assert notes["error"] == [], notes["error"]
     cols = widget.session.result.tables["columns"]
     row = cols[cols["fit_status"] == "added"].iloc[0]
-    # the same fit as detection, started a pixel off, lands on the detected position and intensity
+    # the same fit as detection (a held width counts as fitted), started a pixel off, lands on the detected
+    # position and intensity
     assert np.hypot(row["x_px"] - truth["x_px"], row["y_px"] - truth["y_px"]) < 0.3
     assert row["intensity"] == pytest.approx(truth["intensity"], rel=0.2)
-    layer_row = points.features[points.features["fit_status"] == "added"].iloc[0]
-    assert layer_row["intensity"] == pytest.approx(row["intensity"])  # the layer shows the fitted values
+    # the marker moved onto the fitted position
+    k_new = int(np.flatnonzero(points.features["id"].to_numpy() == row["id"])[0])
+    np.testing.assert_allclose(np.asarray(points.data)[k_new], [row["y_px"], row["x_px"]], atol=1e-6)
 
 
 # ---------------------------------------------------------------- 3. docks from the plugin menu
@@ -114,6 +117,7 @@ def test_plugin_menu_docks_share_one_session(make_napari_viewer, sample_path, qt
     assert notes["error"] == [], notes["error"]
     plots.tabs.setCurrentWidget(plots.table)
     assert plots.table.rowCount() > 0
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())  # a tab is drawn when it is opened
     assert len(plots.pair_figure.axes[0].lines) >= 1
 
 
@@ -137,10 +141,16 @@ def test_second_image_is_chosen_and_its_results_are_on_top(make_napari_viewer, s
     run_and_wait(qtbot, widget, "preview")
     assert notes["error"] == [], notes["error"]
     names = [ly.name for ly in viewer.layers]
-    for name in ("columns", "motifs", "motif centres", "network"):
-        assert names.count(name) == 1
-        assert names.index(name) > names.index(second.name), names
+    first = "decagonal_haadf_high_dose"
+    for kind in ("columns", "rings", "motif centres", "network"):
+        assert names.count(f"{kind} [{second.name}]") == 1
+        assert names.index(f"{kind} [{second.name}]") > names.index(second.name), names
+        assert f"{kind} [{first}]" in names  # the first image keeps its results
     assert widget.session.image_layer is second
+    assert set(widget.session.records) == {first, second.name}
+    # selecting a layer of the first image shows its result again
+    viewer.layers.selection.active = viewer.layers[f"columns [{first}]"]
+    assert widget.session.image == first and widget.session.image_layer is not second
 
 
 # ---------------------------------------------------------------- 5. power spectrum
@@ -208,8 +218,8 @@ def test_five_species_drawn_in_visible_colours(make_napari_viewer, sample_path, 
     widget.species.setValue(5)
     run_and_wait(qtbot, widget)
     assert notes["error"] == [], notes["error"]
-    points = viewer.layers["columns"]
-    species = points.features["species"].to_numpy()
+    points = layer(viewer, "columns")
+    species = widget.session.result.tables["columns"]["species"].to_numpy()
     assert set(species) == {0, 1, 2, 3, 4}
     face = np.asarray(points.face_color)
     for s in range(5):

@@ -32,7 +32,7 @@ def _export(qtbot, w, folder):
 
 
 def test_gui_overwrite_keeps_user_files(widget, qtbot, tmp_path, notes):
-    widget.session.result = _demo_result()
+    widget.session.set_result(_demo_result(), {}, None, [], image="demo")
     out = tmp_path / "res"
     _export(qtbot, widget, out)
     (out / "notes.txt").write_text("mine")
@@ -45,7 +45,8 @@ def test_gui_export_into_input_folder_refused(widget, qtbot, tmp_path, notes):
     image = tmp_path / "scan.tif"
     image.write_bytes(b"the user's image")
     result = _demo_result()
-    widget.session.result = dataclasses.replace(result, meta=dataclasses.replace(result.meta, path=str(image)))
+    widget.session.set_result(dataclasses.replace(result, meta=dataclasses.replace(result.meta, path=str(image))),
+                              {}, None, [], image="demo")
     _export(qtbot, widget, tmp_path)
     assert any("holds the input image" in e for e in notes["error"]), notes
     assert sorted(p.name for p in tmp_path.iterdir()) == ["scan.tif"]

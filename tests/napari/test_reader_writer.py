@@ -153,27 +153,22 @@ def test_qt_binding_keeps_python_singletons_alive(qapp):
         assert sys.getrefcount(True) > before_true - 1000 and sys.getrefcount(None) > before_none - 1000
 
 
-def test_chunked_shapes_equal_one_piece_build():
-    from napari.layers import Shapes
-
-    from tenfold.napari_plugin._layers import _chunked_shapes
+def test_motif_outlines_are_the_closed_polygons():
+    # the vectorised outline segments against a plain loop over each polygon's edges (slow, obvious oracle)
+    from tenfold.napari_plugin._layers import _outline_vectors
 
     rng = np.random.default_rng(0)
-    t = np.linspace(0, 2 * np.pi, 10, endpoint=False)
-    centres = rng.uniform(0, 500, (23, 2))
-    polys = [np.c_[cy + 5 * np.sin(t), cx + 5 * np.cos(t)] for cy, cx in centres]
-    edge = rng.uniform(0, 1, (23, 4))
-    kwargs = dict(data=polys, shape_type="polygon", features=pd.DataFrame({"motif_id": np.arange(23)}),
-                  edge_color=edge, face_color="transparent", edge_width=0.5, name="motifs")
-    whole, parts = Shapes(**kwargs), _chunked_shapes(kwargs, chunk=5)
-    assert len(parts.data) == 23
-    for a, b in zip(whole.data, parts.data):
-        np.testing.assert_allclose(a, b)
-    np.testing.assert_allclose(parts.edge_color, whole.edge_color)
-    assert parts.features["motif_id"].tolist() == list(range(23))
-    lines = dict(data=[p[:2] for p in polys], shape_type="line", features=pd.DataFrame({"edge_id": range(23)}),
-                 edge_color="#f2d64b", edge_width=0.3, name="network")  # one colour, no face colour
-    assert len(_chunked_shapes(lines, chunk=4).data) == 23
+    polys = [rng.uniform(0, 100, (n, 2)) for n in (5, 10, 3, 12)]
+    vectors, owner = _outline_vectors(polys)
+    expect, who = [], []
+    for k, p in enumerate(polys):
+        for i in range(len(p)):
+            a, b = p[i], p[(i + 1) % len(p)]
+            expect.append([[a[1], a[0]], [b[1] - a[1], b[0] - a[0]]])  # (row, col) start and displacement
+            who.append(k)
+    np.testing.assert_allclose(vectors, np.array(expect))
+    assert owner.tolist() == who
+    assert _outline_vectors([])[0].shape == (0, 2, 2)
 
 
 def test_species_colours_by_value_not_by_first_appearance():

@@ -10,7 +10,7 @@ import pytest
 from matplotlib.backend_bases import MouseEvent
 from qtpy.QtWidgets import QAbstractButton, QComboBox, QLineEdit, QSpinBox, QDoubleSpinBox
 
-from conftest import run_and_wait
+from conftest import layer, run_and_wait
 from tenfold.napari_plugin._plots import TAU, spacing_check
 
 
@@ -77,15 +77,16 @@ def test_preview_note_is_information_not_warning(make_napari_viewer, sample_path
 
 def test_pair_peak_click_selects_the_pairs_and_zooms(small_run):
     viewer, _, plots, _ = small_run
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())  # a tab is drawn when it is opened
     result = plots.session.result
     peaks = result.tables["pair_peaks"]
     first = peaks[peaks["set"] == "columns"].sort_values("distance_px").iloc[0]
     ps = result.meta.pixel_size_nm
     _click(plots.pair_canvas, plots._pair_ax, first["distance_px"] * ps)
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     chosen = np.array(sorted(points.selected_data))
     assert len(chosen) > 0.8 * len(points.data)  # nearest neighbours: nearly every column has one
-    xy = points.features[["x_px", "y_px"]].to_numpy()
+    xy = result.tables["columns"][["x_px", "y_px"]].to_numpy()
     from scipy.spatial import cKDTree
 
     d, _ = cKDTree(xy).query(xy[chosen], k=2)
@@ -106,7 +107,7 @@ def test_histogram_bar_click_selects_those_columns(small_run):
     bins = plots._bins
     k = np.searchsorted(bins, target) - 1
     expect = set(np.flatnonzero((inten >= bins[k]) & (inten < bins[k + 1])).tolist())
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     assert points.selected_data == expect and len(expect) > 0
 
 
@@ -123,15 +124,18 @@ def test_motif_table_shows_ten_rows_with_columns_not_cut(small_run, qtbot):
         need = max(table.sizeHintForColumn(j), table.horizontalHeader().sectionSizeHint(j))
         assert table.columnWidth(j) >= need, table.horizontalHeaderItem(j).text()
     plots.select_motif_row(3)
-    motifs = viewer.layers["motifs"]
     index = int(plots._table_rows[3])
-    assert motifs.selected_data == {index}
-    world = np.asarray(motifs.data[index]) * motifs.scale + motifs.translate
+    assert plots.session.selection == ("motif", index)
+    selected = layer(viewer, "selected")
+    starts = np.asarray(selected.data)[:, 0]
+    assert len(starts) >= 5  # its outline: one segment per member
+    world = starts * selected.scale + selected.translate
     assert _in_view(viewer, world)
 
 
 def test_tau_labels_are_powers_and_do_not_overlap(small_run):
     _, _, plots, _ = small_run
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())
     plots.pair_canvas.draw()
     renderer = plots.pair_canvas.get_renderer()
     texts = [t for t in plots._pair_ax.texts if "tau" in t.get_text()]
@@ -182,14 +186,12 @@ def test_overlays_do_not_hide_each_other(small_run):
     viewer, widget, _, _ = small_run
     regions = viewer.layers["regions"]
     assert np.all(np.asarray(regions.face_color)[:, 3] == 0)  # region outline only
-    motifs = viewer.layers["motifs"]
-    pent = (motifs.features["kind"] == "pentagon").to_numpy()
-    assert pent.any() and (~pent).any()
-    widths = np.asarray(motifs.edge_width)
-    assert widths[pent].max() < widths[~pent].min()  # pentagons thinner ...
-    z = np.asarray(motifs.z_index)
-    assert z[pent].min() > z[~pent].max()  # ... and drawn above the rings
-    assert np.all(np.asarray(motifs.face_color)[:, 3] == 0)
-    centres = viewer.layers["motif centres"]
+    rings, pentagons = layer(viewer, "rings"), layer(viewer, "pentagons")
+    assert len(rings.data) and len(pentagons.data)
+    assert pentagons.edge_width < rings.edge_width  # pentagons thinner ...
+    names = [ly.name for ly in viewer.layers]
+    assert names.index(pentagons.name) > names.index(rings.name)  # ... and drawn above the rings
+    centres = layer(viewer, "motif centres")
     assert {str(s) for s in np.atleast_1d(centres.symbol)} == {"ring"}  # hollow: a centre column shows through
-    assert centres.size.min() > viewer.layers["columns"].size.max()
+    assert centres.size.min() > layer(viewer, "columns").size.max()
+    assert names.index(centres.name) < names.index(layer(viewer, "columns").name)  # and drawn below the columns

@@ -26,5 +26,5 @@ def test_make_screenshot(make_napari_viewer, qtbot, tmp_path):
     img = iio.imread(out)
     assert img.ndim == 3 and img.shape[0] > 300 and img.shape[1] > 600
     assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 100  # more than a blank window
-    for name in ("columns", "motifs", "motif centres", "network"):
-        assert name in viewer.layers
+    for name in ("columns", "rings", "pentagons", "motif centres", "network", "selected"):
+        assert f"{name} [decagonal_haadf_high_dose]" in viewer.layers

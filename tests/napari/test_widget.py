@@ -9,6 +9,8 @@ import pandas as pd
 import pytest
 from scipy.spatial import cKDTree
 
+from conftest import layer
+from tenfold.napari_plugin._layers import motif_polygons
 from tenfold.napari_plugin._plots import PlotsWidget
 from tenfold.napari_plugin._widget import PipelineWidget
 
@@ -62,7 +64,7 @@ def analysed(viewer_widget, qtbot, notes):
 
 def test_run_in_region_finds_ground_truth_columns_and_rings(analysed):
     viewer, widget, image = analysed
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     found = np.asarray(points.data)  # (row, col) = image px, layers share the image's scale
     assert tuple(points.scale) == tuple(image.scale)
     truth = _truth("columns")
@@ -78,10 +80,14 @@ def test_run_in_region_finds_ground_truth_columns_and_rings(analysed):
     precision = np.mean(d_found < 1.0)
     assert inner.sum() > 400  # the box holds a meaningful sample
     assert recall >= 0.95 and precision >= 0.95, (recall, precision)
-    assert {"id", "species", "intensity", "pos_err_nm"} <= set(points.features.columns)
+    # the layer carries only the ids (napari's features table redraws every cell on every edit); the table is the
+    # result's, row for row
+    assert list(points.features.columns) == ["id"]
+    cols = widget.session.result.tables["columns"]
+    np.testing.assert_array_equal(points.features["id"], cols["id"])
+    assert {"id", "species", "intensity", "pos_err_nm"} <= set(cols.columns)
 
-    motifs = viewer.layers["motifs"]
-    feats = motifs.features
+    feats = widget.session.result.tables["motifs"]
     rings = feats[feats["kind"] == "ring10"]
     truth_m = _truth("motifs")
     truth_rings = truth_m[truth_m["kind"] == "ring10"]
@@ -99,10 +105,13 @@ def test_run_in_region_finds_ground_truth_columns_and_rings(analysed):
     d, _ = cKDTree(truth_rings[["centre_x_px", "centre_y_px"]].to_numpy()).query(
         rings[["centre_x_px", "centre_y_px"]].to_numpy())
     assert np.mean(d < 2.0) >= 0.9
-    assert len(motifs.data) == len(feats)
-    for name in ("motif centres", "network"):
-        assert name in viewer.layers
-        assert tuple(viewer.layers[name].scale) == tuple(image.scale)
+    # one outline segment per ring member, all in the rings layer
+    ring_layer = layer(viewer, "rings")
+    all_rings = feats[feats["kind"].str.startswith("ring")]
+    assert len(ring_layer.data) == sum(len(p) for p in motif_polygons(all_rings, cols))
+    for name in ("motif centres", "network", "rings", "pentagons", "selected"):
+        assert tuple(layer(viewer, name).scale) == tuple(image.scale)
+        assert layer(viewer, name).name == f"{name} [{image.name}]"  # results carry their image
     assert widget.run_button.isEnabled() and not widget.cancel_button.isEnabled()
 
 
@@ -110,20 +119,20 @@ def test_rerun_updates_layers_in_place_and_colour_by(analysed, qtbot):
     viewer, widget, _ = analysed
     n_layers = len(viewer.layers)
     widget.colour_by.setCurrentText("intensity")
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     assert points.face_color.shape == (len(points.data), 4)
     assert len(np.unique(points.face_color, axis=0)) > 3  # a colormap over intensities, not one colour
     _run(qtbot, widget)
     assert len(viewer.layers) == n_layers
-    assert [ly.name for ly in viewer.layers].count("columns") == 1
+    assert [ly.name for ly in viewer.layers].count(f"columns [{widget.session.image}]") == 1
 
 
 def test_deleting_a_ring_member_then_rerun_makes_it_incomplete(analysed, qtbot, notes):
     viewer, widget, _ = analysed
-    motifs = viewer.layers["motifs"].features
+    motifs = widget.session.result.tables["motifs"]
     ring = motifs[(motifs["kind"] == "ring10") & motifs["complete"]].iloc[0]
     victim = int(ring["members"].split()[0])
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     index = int(np.flatnonzero(points.features["id"].to_numpy() == victim)[0])
     n_before = len(points.data)
     points.selected_data = {index}
@@ -131,8 +140,8 @@ def test_deleting_a_ring_member_then_rerun_makes_it_incomplete(analysed, qtbot, 
     assert len(points.data) == n_before - 1
     _run(qtbot, widget, "rerun_from_columns")
     assert notes["error"] == [], notes["error"]
-    assert viewer.layers["columns"] is points  # the edited layer is kept, not replaced
-    new = viewer.layers["motifs"].features
+    assert layer(viewer, "columns") is points  # the edited layer is kept, not replaced
+    new = widget.session.result.tables["motifs"]
     d = np.hypot(new["centre_x_px"] - ring["centre_x_px"], new["centre_y_px"] - ring["centre_y_px"])
     same = new[(d < 2.0) & (new["kind"] == "ring10")]
     assert len(same) == 1
@@ -171,8 +180,8 @@ def test_preview_analyses_the_central_square(viewer_widget, qtbot, notes):
     viewer, widget, image = viewer_widget
     _run(qtbot, widget, "preview")
     assert notes["error"] == [], notes["error"]
-    pts = np.asarray(viewer.layers["columns"].data)
-    world = pts * np.asarray(viewer.layers["columns"].scale) + np.asarray(viewer.layers["columns"].translate)
+    pts = np.asarray(layer(viewer, "columns").data)
+    world = pts * np.asarray(layer(viewer, "columns").scale) + np.asarray(layer(viewer, "columns").translate)
     px = world / np.asarray(image.scale)
     assert len(px) > 100
     assert px.min() >= 1024 // 2 - 128 - 1 and px.max() <= 1024 // 2 + 128 + 1
@@ -212,7 +221,7 @@ def test_export_asks_before_overwriting(analysed, qtbot, tmp_path, notes):
     qtbot.waitUntil(lambda: widget.worker is None, timeout=WAIT_MS)
     assert notes["error"] == [], notes["error"]
     back = pd.read_csv(out / "columns.csv")
-    assert len(back) == len(viewer.layers["columns"].data)
+    assert len(back) == len(layer(viewer, "columns").data)
 
 
 def test_plots_dock_follows_results(analysed, qtbot):
@@ -220,17 +229,18 @@ def test_plots_dock_follows_results(analysed, qtbot):
     plots = PlotsWidget(viewer)
     viewer.window.add_dock_widget(plots, name="Tenfold plots")
     plots.tabs.setCurrentWidget(plots.table)  # a tab is built when it is opened
-    assert plots.table.rowCount() == min(len(viewer.layers["motifs"].data), 400)
+    assert plots.table.rowCount() == min(len(widget.session.result.tables["motifs"]), 400)
+    plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())
     axes = plots.pair_figure.axes
     assert len(axes) == 1 and len(axes[0].lines) >= 1
     plots.select_motif_row(0)
-    motifs = viewer.layers["motifs"]
-    assert motifs.selected_data == {int(plots._table_rows[0])}
+    assert widget.session.selection == ("motif", int(plots._table_rows[0]))
+    assert len(layer(viewer, "selected").data) >= 5  # the motif's outline, drawn
 
 
 def test_added_point_gets_a_new_id_on_rerun(analysed, qtbot, notes):
     viewer, widget, image = analysed
-    points = viewer.layers["columns"]
+    points = layer(viewer, "columns")
     n = len(points.data)
     old_ids = set(points.features["id"].astype(int))
     points.add(np.array([[500.0, 500.0]]))  # data coordinates of the points layer are image px
@@ -241,8 +251,13 @@ def test_added_point_gets_a_new_id_on_rerun(analysed, qtbot, notes):
     assert cols["id"].is_unique
     new = cols[~cols["id"].isin(old_ids)]
     assert len(new) == 1
-    assert new["x_px"].iloc[0] == pytest.approx(500.0) and new["y_px"].iloc[0] == pytest.approx(500.0)
-    assert new["fit_status"].iloc[0] == "added" and new["species"].iloc[0] == -1
+    # placed on a column: fitted (moved onto it, width and intensity measured); species unclassified
+    assert np.hypot(new["x_px"].iloc[0] - 500.0, new["y_px"].iloc[0] - 500.0) < 3.0
+    assert new["species"].iloc[0] == -1
+    if new["fit_status"].iloc[0] == "added":
+        assert np.isfinite(new["intensity"].iloc[0])
+    else:
+        assert new["fit_status"].iloc[0] == "manual" and np.isnan(new["intensity"].iloc[0])
 
 
 def test_uncalibrated_image_runs_in_pixels_with_nan_nm(make_napari_viewer, qtbot, notes, sample_path):
@@ -254,7 +269,7 @@ def test_uncalibrated_image_runs_in_pixels_with_nan_nm(make_napari_viewer, qtbot
     widget = PipelineWidget(viewer)
     _run(qtbot, widget, "preview")
     assert notes["error"] == [], notes["error"]
-    feats = viewer.layers["columns"].features
+    feats = widget.session.result.tables["columns"]
     assert len(feats) > 100
     assert feats["pos_err_nm"].isna().all() and feats["x_nm"].isna().all()
     assert "uncalibrated" in widget.status.text()
