@@ -411,6 +411,7 @@ def run_pipeline(
     """
     params = (params or Parameters()).validate()
     micrograph = _calibrated(micrograph, params)
+    _guards.check_lengths(params, micrograph.data.shape, micrograph.meta.pixel_size_nm)
     try:
         return _run_regions(micrograph, params, regions, progress, execution)
     except TenfoldInputError as exc:  # the one line names the file, whichever stage raised

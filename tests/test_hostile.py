@@ -519,3 +519,13 @@ def test_option_names_replace_parameters_not_paths(message, expected):
     from tenfold.analysis.cli import _flag_names
 
     assert _flag_names(message) == expected
+
+
+def test_public_pipeline_refuses_lengths_beyond_the_image():
+    # the API, not only the command line, names a length larger than the image instead of hanging in the scale stage
+    from tenfold.analysis.io import micrograph_from_array
+    from tenfold.analysis.pipeline import Parameters, run_pipeline
+
+    mg = micrograph_from_array(np.random.default_rng(0).poisson(20, (64, 64)).astype(np.float32))
+    with pytest.raises(TenfoldInputError, match="column_spacing_px=1e\\+06 px is larger than the image"):
+        run_pipeline(mg, Parameters(column_spacing_px=1e6))
