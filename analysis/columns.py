@@ -449,7 +449,7 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profil
 TAIL_REACH_SPACINGS, TAIL_ANGLES, TAIL_MIN_COLUMNS = 2.0, 16, 20
 
 
-def _tail_profile(work, fit, good, settings):
+def _tail_profile(work, fit, good, settings, background):
     """Light a column adds to the smoothed image beyond its fitted Gaussian, per unit of its smoothed peak.
 
     Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
@@ -473,8 +473,12 @@ def _tail_profile(work, fit, good, settings):
     vals = ndimage.map_coordinates(smooth, [y.ravel(), x.ravel()], order=1, mode="nearest").reshape(x.shape)
     s2 = fit["sigma_px"].to_numpy()[idx] ** 2
     peak = amp[idx] * s2 / (s2 + k * k)
-    # the residual about each column's own local background (its fit's constant)
-    extra = np.median((np.median(vals, axis=2) - fit["background"].to_numpy()[idx][:, None]) / peak[:, None], axis=0)
+    # the residual above the detection's background (estimated away from the columns): a fit's own constant
+    # background would have absorbed the tail
+    field = SignificanceField(smooth, background[0], np.ones((1, 1), bool), 0.0, None, 0.0, 1.0, background[1],
+                              background[2])
+    bg = field.background(y.ravel(), x.ravel()).reshape(x.shape)
+    extra = np.median(np.median(vals - bg, axis=2) / peak[:, None], axis=0)
     # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
     extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
     return [r.tolist(), extra.tolist()]
@@ -939,7 +943,8 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
             "z_mirror_core": -field.z(mr.astype(np.float64), mc.astype(np.float64)),
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
-            "inner": _inner_box(origin, image_shape, s.border_margin, data.shape)}
+            "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
+            "background": None if s.flatten else (field.bg_coarse, field.factor, tuple(field.origin))}
 
 
 def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
@@ -1020,9 +1025,15 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     t_refine = time.perf_counter() - t0
     fit["z_detect"] = z
     fit["_core"] = core
-    if s.tail_profile is None:
+    if s.tail_profile is None and det["background"] is not None:
         good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
-        s = replace(s, tail_profile=_tail_profile(work, fit, good, s))
+        s = replace(s, tail_profile=_tail_profile(work, fit, good, s, det["background"]))
+    if s.tail_profile is not None:
+        auto["tail_profile"] = {"r_px": s.tail_profile[0], "extra_per_peak": s.tail_profile[1],
+                                "how": "smoothed residual around the bright columns beyond their fitted Gaussians, "
+                                       "per unit of the smoothed peak; median over 16 directions and the columns, "
+                                       "non-increasing outwards; subtracted with the Gaussian in the significance "
+                                       "test given the neighbours"}
     fit, width_median = _prune(fit, xs, ys, z, sd, s, z_cut, counts_tab, auto, det["inner"])
     # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
     # Fisher matrices near-singular)
