@@ -142,7 +142,7 @@ def _inside(x: np.ndarray, y: np.ndarray, region: Region) -> np.ndarray:
     for i in range(n):  # loop over the few edges, not over points
         (xa, ya), (xb, yb) = v[i], v[(i + 1) % n]
         crosses = (ya > y) != (yb > y)
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a near-horizontal edge: +-inf
             xint = xa + (y - ya) * (xb - xa) / (yb - ya)
         inside ^= crosses & (x < xint)
         ex, ey = xb - xa, yb - ya
