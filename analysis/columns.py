@@ -944,7 +944,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
-            "background": None if s.flatten else (field.bg_coarse, field.factor, tuple(field.origin))}
+            "background": (field.bg_coarse, field.factor, tuple(field.origin))}
 
 
 def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
@@ -1025,9 +1025,11 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     t_refine = time.perf_counter() - t0
     fit["z_detect"] = z
     fit["_core"] = core
-    if s.tail_profile is None and det["background"] is not None:
+    if s.tail_profile is None:
         good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
-        s = replace(s, tail_profile=_tail_profile(work, fit, good, s, det["background"]))
+        # the detection's image: flattened when asked (the background grid describes that one)
+        seen = work - _smooth_surface(work, ok, 3.0 * s.spacing) if s.flatten else work
+        s = replace(s, tail_profile=_tail_profile(seen, fit, good, s, det["background"]))
     if s.tail_profile is not None:
         auto["tail_profile"] = {"r_px": s.tail_profile[0], "extra_per_peak": s.tail_profile[1],
                                 "how": "smoothed residual around the bright columns beyond their fitted Gaussians, "

@@ -215,11 +215,15 @@ def test_degenerate_region_is_an_error():
 
 def test_absurd_spacing_explains_empty_result(sample):
     crop = micrograph_from_array(sample.data[:200, :200], pixel_size_nm=0.04, name="crop")
+    # beyond the image: a named error before any work (issue 17)
+    with pytest.raises(TenfoldInputError, match="column_spacing_px=5000 px is larger than the image"):
+        run_pipeline(crop, Parameters(column_spacing_px=5000.0, column_diameter_px=20.0, fourier=False))
+    # absurd but inside the image: the empty result explains itself
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", TenfoldWarning)
-        res = run_pipeline(crop, Parameters(column_spacing_px=5000.0, column_diameter_px=20.0, fourier=False))
+        res = run_pipeline(crop, Parameters(column_spacing_px=150.0, column_diameter_px=20.0, fourier=False))
     if res.summary["n_columns"] == 0:
-        assert any("no columns found with a column spacing of 5000 px" in n for n in res.summary["notes"])
+        assert any("no columns found with a column spacing of 150 px" in n for n in res.summary["notes"])
     else:
         assert any("no ring motifs found" in n for n in res.summary["notes"])
 
