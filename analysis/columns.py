@@ -636,8 +636,16 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         tiling = {"windows": 1, "n_tiles": 0, "tile_size_px": None, "overlap_px": 0, "seam_duplicates_removed": 0,
                   "how": "whole image, which is also the sample the scale was settled on"}
     else:
-        fit, counts_tab, detail, tiling = _run_windows(img, ok, settings, tile_size, overlap_px, execution,
-                                                        sub_progress(progress, 0.3, 0.85))
+        # a large untiled image runs in internal tiles (the same result, see TILE_HALO_SPACINGS) so that their
+        # detection can share the cores
+        internal = tile_size is None and not flatten and max(img.shape) > INTERNAL_TILE_ABOVE_PX
+        fit, counts_tab, detail, tiling = _run_windows(img, ok, settings,
+                                                        INTERNAL_TILE_PX if internal else tile_size, overlap_px,
+                                                        execution, sub_progress(progress, 0.3, 0.85))
+        if internal:
+            tiling.update(n_tiles=0, tile_size_px=None, internal_tiles_px=INTERNAL_TILE_PX,
+                          how="untiled result; computed in internal tiles whose detection runs on every core "
+                              "(tiles equal the whole image, see docs/columns.md)")
     timings["windows"] = time.perf_counter() - t0
     auto["rounds"] = rounds
     auto["noise_model"] = settings.noise
@@ -701,6 +709,8 @@ NEIGHBOUR_PASSES = 10
 CONVERGE_PX = 2e-4
 #: side of the central sample the image-wide choices are settled on, px (the scale is a local property)
 SETTLE_PX = 1024
+#: an untiled image with a side longer than this is computed in internal tiles of INTERNAL_TILE_PX (same result)
+INTERNAL_TILE_ABOVE_PX, INTERNAL_TILE_PX = 3072, 2048
 #: default halo of a tile, in column spacings (plus 8 sigma): the background's two passes (each a Gaussian of 1.5
 #: spacings truncated at 3 scales, the second masked by the first's sources), the smoothing and source masks
 #: (4 sigma each), fit patches and the neighbour passes all reach less far
@@ -1157,6 +1167,7 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
         overlap = overlap_px if overlap_px is not None else max(
             32, int(math.ceil(TILE_HALO_SPACINGS * settings.spacing + 8.0 * settings.sigma)))
         grid = tile_grid((h, w), int(tile_size), int(overlap))
+    serial = execution is None or not execution.parallel
     execution = execution or Execution(workers=1)
     wins = [_halo_window(core, halo, settings) for core, halo in grid]
     # each task gets only its window (a view, or a slice read from a memory map), never the whole image
@@ -1164,7 +1175,8 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
              for (w0, w1, v0, v1), core_w in wins]
     dets: list = [None] * len(tasks)
     report(progress, 0.0, f"detecting columns in {len(grid)} window(s)")
-    for done, (k, res) in enumerate(map_tasks(tasks, execution), start=1):
+    runner = _threaded(tasks) if serial and len(tasks) > 1 else map_tasks(tasks, execution)
+    for done, (k, res) in enumerate(runner, start=1):
         dets[k] = res
         report(progress, 0.3 * done / len(tasks), f"detection: window {done} of {len(tasks)}")
     z_cut, cut_info = _significance_cut(np.concatenate([d["z_core"] for d in dets]),
@@ -1200,6 +1212,23 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
                      "them; one significance cut from all windows' candidates; each column kept by the window "
                      "whose core holds its candidate pixel"}
     return fit, counts_tab, detail, tiling
+
+
+def _threaded(tasks):
+    """Yield ``(index, func(*args))`` from a pool of threads, one per usable core: for the detection, whose
+    filters release the GIL (scipy.ndimage), never for the fits (their numba kernel is parallel already)."""
+    from concurrent.futures import ThreadPoolExecutor, as_completed
+
+    from ._resources import usable_cores
+
+    with ThreadPoolExecutor(max_workers=min(usable_cores(), len(tasks))) as pool:
+        futures = {pool.submit(func, *args): k for k, (func, args) in enumerate(tasks)}
+        try:
+            for fut in as_completed(futures):
+                yield futures[fut], fut.result()
+        finally:
+            for fut in futures:
+                fut.cancel()
 
 
 def _halo_window(core, halo, settings):

@@ -179,3 +179,21 @@ def test_image_shape_from_headers_and_mapping_only_when_tiled(tmp_path):
     mg = mapped_if_tiled(tmp_path / "a.tif", Execution(tile_size=64))
     assert mg is not None and isinstance(mg.data, np.memmap)
     assert mapped_if_tiled(tmp_path / "a.mrc", Execution(tile_size=64), frame=2).meta.frames == "frame 2"
+
+
+def test_internal_tiles_of_a_large_untiled_image_change_nothing(grid640, monkeypatch):
+    # an untiled image larger than INTERNAL_TILE_ABOVE_PX is computed in tiles whose detection runs in threads; the
+    # result must be the one-window result (scaled down here: a 512 px sample, internal tiles of 256 px)
+    from tenfold.analysis import columns as C
+
+    img, x, y, _ = grid640
+    monkeypatch.setattr(C, "SETTLE_PX", 512)
+    monkeypatch.setattr(C, "INTERNAL_TILE_ABOVE_PX", 10**9)
+    one, info_one = find_columns(img, n_species=0)
+    monkeypatch.setattr(C, "INTERNAL_TILE_ABOVE_PX", 300)
+    monkeypatch.setattr(C, "INTERNAL_TILE_PX", 256)
+    tiles, info_tiles = find_columns(img, n_species=0)
+    assert info_one["tiling"]["windows"] == 1 and info_tiles["tiling"]["windows"] == 9
+    assert len(tiles) == len(one) == x.size and info_tiles["notes"] == info_one["notes"]
+    d, j = _match(one, tiles)
+    assert d.max() < 1e-3 and np.unique(j).size == len(j)
