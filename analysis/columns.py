@@ -250,12 +250,7 @@ class SignificanceField:
     levels: dict | None = None
 
     def background(self, rows, cols):
-        f = self.factor
-        r0, c0 = self.origin
-        # block k of the window covers whole-image rows [(g0 + k) f, (g0 + k + 1) f), g0 = floor(r0 / f)
-        gr = (np.asarray(rows) + r0 + 0.5) / f - 0.5 - (r0 // f)
-        gc = (np.asarray(cols) + c0 + 0.5) / f - 0.5 - (c0 // f)
-        return ndimage.map_coordinates(self.bg_coarse, [gr, gc], order=1, mode="nearest")
+        return _coarse_background(self.bg_coarse, self.factor, self.origin, rows, cols)
 
     def sd(self, rows, cols, bg=None):
         if self.white_sd is not None:
@@ -283,6 +278,15 @@ class SignificanceField:
 
 #: scale of the background's Gaussian, in column spacings
 BG_SCALE_SPACINGS = 1.5
+def _coarse_background(bg_coarse, factor, origin, rows, cols):
+    """The background grid of ``_local_background`` at (row, col) positions of its window (bilinear)."""
+    r0, c0 = origin
+    # block k of the window covers whole-image rows [(g0 + k) f, (g0 + k + 1) f), g0 = floor(r0 / f)
+    gr = (np.asarray(rows) + r0 + 0.5) / factor - 0.5 - (r0 // factor)
+    gc = (np.asarray(cols) + c0 + 0.5) / factor - 0.5 - (c0 // factor)
+    return ndimage.map_coordinates(bg_coarse, [gr, gc], order=1, mode="nearest")
+
+
 #: ridge of the locally linear background fit, relative to a fully supported window's second moment: keeps the
 #: slope finite where only a sliver of kept pixels is in reach (image corners, masks)
 _BG_RIDGE = 0.3
@@ -453,9 +457,10 @@ def _tail_profile(work, fit, good, settings, background):
     """Light a column adds to the smoothed image beyond its fitted Gaussian, per unit of its smoothed peak.
 
     Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
-    fitted column are subtracted from the image; the smoothed residual around the bright columns, less each one's
-    fitted local background, median over ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the
-    columns, is the tail a Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
+    fitted column are subtracted from the image; the smoothed residual around the bright columns, less the
+    detection's background (``background``: its coarse grid, block size and window origin), median over
+    ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the columns, is the tail a
+    Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
     The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
     """
     amp = fit["amplitude"].to_numpy()
@@ -475,9 +480,7 @@ def _tail_profile(work, fit, good, settings, background):
     peak = amp[idx] * s2 / (s2 + k * k)
     # the residual above the detection's background (estimated away from the columns): a fit's own constant
     # background would have absorbed the tail
-    field = SignificanceField(smooth, background[0], np.ones((1, 1), bool), 0.0, None, 0.0, 1.0, background[1],
-                              background[2])
-    bg = field.background(y.ravel(), x.ravel()).reshape(x.shape)
+    bg = _coarse_background(*background, y.ravel(), x.ravel()).reshape(x.shape)
     extra = np.median(np.median(vals - bg, axis=2) / peak[:, None], axis=0)
     # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
     extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
