@@ -836,9 +836,9 @@ class PipelineWidget(QWidget):
         if outcome.kind == "estimate":
             self._show_estimate(outcome.result)
             return
-        # the old result layers go in one batch (napari cleans its scene graph once, not once per layer), the
-        # new ones one per event-loop turn, so the GUI never stalls for the sum of all insertions
-        self._places = self._remove_old([ly.name for ly in outcome.layers])
+        # an image's result layers are updated in place (one redraw each, no new visual, control widget or
+        # selection move); new ones are inserted one per event-loop turn, so the GUI never stalls for the sum
+        self._places = self._remove_old(outcome.layers, self._image, rebuilt_columns=outcome.kind != "re-run")
         self._pending = list(outcome.layers)
         self._pending_outcome = outcome
         QTimer.singleShot(0, self._insert_next)
@@ -890,17 +890,17 @@ class PipelineWidget(QWidget):
             return
         import pandas as pd
 
-        from ._layers import species_symbols
+        from ._layers import set_quietly, species_symbols
 
         frame = points.metadata.get("tenfold_frame") or self.session.frame
         xy = display_maps(frame)[0](table[["x_px", "y_px"]].to_numpy(float))
-        with points.events.data.blocker(self._on_columns_edited):
-            points.data = xy[:, ::-1]
+        values = {"data": xy[:, ::-1]}
         ids = table["id"].to_numpy(np.int64)
-        if "id" not in points.features or not np.array_equal(points.features["id"].to_numpy(), ids):
-            # only when they changed: napari's features table, if open, rebuilds itself on every assignment
-            points.features = pd.DataFrame({"id": ids})
-        points.symbol = species_symbols(table)
+        changed = "id" not in points.features or not np.array_equal(points.features["id"].to_numpy(), ids)
+        if changed:  # only then: napari's features table, if open, rebuilds itself on every features event
+            values["features"] = pd.DataFrame({"id": ids})
+        values["symbol"] = species_symbols(table)
+        set_quietly(points, announce_features=changed, **values)
 
     def _on_finished(self) -> None:
         self._worker_done = True
@@ -917,11 +917,16 @@ class PipelineWidget(QWidget):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
-    def _remove_old(self, names) -> dict:
-        """Remove the previous layers of these names in one batch; returns name -> (index among the layers left,
-        visible, opacity), so that the new layers take their places."""
+    def _remove_old(self, new_layers, image, *, rebuilt_columns: bool = True) -> dict:
+        """Remove, in one batch, the previous result layers of ``image`` that cannot be updated in place: those
+        whose type changed and, after a run, kinds the new result has no layer for (a phason field that is no
+        longer computed). Returns name -> (index among the layers left, visible, opacity), so that a new layer
+        takes the place of the one it replaces."""
         layers = self.viewer.layers
-        old = [layers[n] for n in names if n in layers]
+        new = {ly.name: ly for ly in new_layers}
+        kept = set(new) | ({layer_name("columns", image)} if not rebuilt_columns else set())
+        old = [ly for ly in layers if kind_of(ly.name)[1] == image and kind_of(ly.name)[0] in RESULT_KINDS
+               and (ly.name not in kept or type(ly) is not type(new.get(ly.name, ly)))]
         if not old:
             return {}
         removed = sorted(layers.index(ly) for ly in old)
@@ -935,22 +940,39 @@ class PipelineWidget(QWidget):
         return places
 
     def _put_layer(self, new) -> None:
-        """Insert a finished layer where the old one of its name was (same visibility and opacity) when that
-        place is above the analysed image, else on top (a second image opened since)."""
+        """Update the result layer of this name in place, or insert a finished layer where the old one of its
+        name was (same visibility and opacity) when that place is above the analysed image, else on top (a
+        second image opened since). Inserting does not select the layer (each selection change rebuilds the
+        layer controls and napari's features table); the columns layer is selected once at the end."""
+        from ._layers import update_layer
+
+        layers = self.viewer.layers
+        image = self._context[0] if getattr(self, "_context", None) else None
+        old = self._layer(new.name)
+        if old is not None and type(old) is type(new):
+            update_layer(old, new)
+            if image is not None and image in layers and layers.index(old) < layers.index(image):
+                layers.move(layers.index(old), len(layers))  # drawn under its image it would be hidden
+            return
         if kind_of(new.name)[0] == "columns":
             new.events.data.connect(self._on_columns_edited)
         place = getattr(self, "_places", {}).pop(new.name, None)
         if place is None:
-            self.viewer.add_layer(new)
-            return
-        index, new.visible, new.opacity = place
-        image = self._context[0] if getattr(self, "_context", None) else None
-        if image is not None and image in self.viewer.layers and index <= self.viewer.layers.index(image):
-            index = len(self.viewer.layers)
-        for other, (j, *_rest) in self._places.items():  # the later layers sit above this one
-            if j >= index:
-                self._places[other] = (j + 1, *_rest)
-        self.viewer.layers.insert(min(index, len(self.viewer.layers)), new)
+            index = len(layers)
+        else:
+            index, new.visible, new.opacity = place
+            if image is not None and image in layers and index <= layers.index(image):
+                index = len(layers)
+            for other, (j, *_rest) in self._places.items():  # the later layers sit above this one
+                if j >= index:
+                    self._places[other] = (j + 1, *_rest)
+        activate = getattr(layers, "_activate_on_insert", None)
+        layers._activate_on_insert = False  # napari's switch (private): select the new layer on insert
+        try:
+            layers.insert(min(index, len(layers)), new)
+        finally:
+            if activate is not None:
+                layers._activate_on_insert = activate
 
     def _on_columns_edited(self, event) -> None:
         """A point added by hand is a new column: its own id (napari would copy the last selected point's) and
@@ -962,13 +984,14 @@ class PipelineWidget(QWidget):
         rows = np.unique(np.asarray(event.data_indices, np.int64) % max(n, 1))
         if not len(rows) or len(layer.features) != n:
             return
-        from ._layers import UNCLASSIFIED_COLOUR, added_row_values
+        from ._layers import UNCLASSIFIED_COLOUR, added_row_values, set_quietly
         from matplotlib.colors import to_rgba
 
-        layer.features = added_row_values(layer.features, rows)
         face = np.array(layer.face_color, copy=True)
         face[rows] = to_rgba(UNCLASSIFIED_COLOUR)
-        layer.face_color = face
+        # napari emits its 'features' event right after this 'added' one: napari's features table, if open,
+        # rebuilds once, with these ids, instead of once more for an assignment of ours
+        set_quietly(layer, features=added_row_values(layer.features, rows), face_color=face)
 
     def _aligned_columns(self, points):
         """The current result's columns table row-aligned with a (possibly edited) columns layer, by id."""
