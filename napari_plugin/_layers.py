@@ -83,6 +83,8 @@ NUMERIC_RANGE = (0.3, 1.0)
 #: "vibrant" set, 2021, SRON/EPS/TN/09-002); the network cyan too, thinner.
 KIND_COLOURS = {"ring": "#f5f5f5", "pentagon": "#F0E442", "other": "#33BBEE", "incomplete": "#EE3377"}
 NETWORK_COLOUR = "#33BBEE"
+#: Segments sampled for a Vectors layer's thumbnail in napari's layer list (napari's default is 1024).
+THUMBNAIL_SEGMENTS = 128
 
 
 def _layer_scale(meta: ImageMeta) -> tuple[float, float]:
@@ -744,6 +746,10 @@ def result_layers(result, frame: dict, *, image: str | None = None, columns: boo
                        vector_style="line", name=layer_name("selected", image), **_frame_kwargs(frame)))
     for layer in out:
         layer.metadata["tenfold_frame"] = frame
+        if isinstance(layer, Vectors):
+            # napari draws a layer-list thumbnail of up to 1024 sampled segments in a Python loop (about 40 ms,
+            # on the GUI thread, at every insertion and update); a 32 px icon shows the pattern with far fewer
+            layer._max_vectors_thumbnail = THUMBNAIL_SEGMENTS
     return out
 
 

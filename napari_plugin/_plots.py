@@ -79,6 +79,25 @@ def spacing_check(result) -> str | None:
             "missed or split)")
 
 
+def _import_matplotlib_in_background() -> None:
+    """Import matplotlib's Qt canvas and figure in a daemon thread, once (about a second of import work that
+    froze the GUI when the plots dock opened); the first figure drawn waits for it if it is not done."""
+    import sys
+    import threading
+
+    if "matplotlib.backends.backend_qtagg" in sys.modules or getattr(_import_matplotlib_in_background, "started",
+                                                                      False):
+        return
+    _import_matplotlib_in_background.started = True
+
+    def load():
+        import matplotlib.backends.backend_qtagg  # noqa: F401
+        import matplotlib.colors  # noqa: F401
+        import matplotlib.figure  # noqa: F401
+
+    threading.Thread(target=load, name="tenfold-matplotlib-import", daemon=True).start()
+
+
 def _canvas(figsize=(4.2, 3.4)):
     from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
     from matplotlib.figure import Figure
@@ -125,6 +144,10 @@ class PlotsWidget(QWidget):
         self.session = session_for(napari_viewer)
         self.worker = None
         self._spectrum = None
+        self._figures: dict = {}  # key -> (matplotlib figure, canvas), made when first drawn
+        self._placeholders: dict = {}
+        self._page: dict = {}  # key -> the tab page holding that figure
+        _import_matplotlib_in_background()
         self.setMinimumWidth(440)
         root = QVBoxLayout(self)
         row = QHBoxLayout()
@@ -145,10 +168,9 @@ class PlotsWidget(QWidget):
         self.tabs.addTab(self.summary_table, "Summary")
 
         splitter = QSplitter(Qt.Vertical)
-        self.pair_figure, self.pair_canvas = _canvas()
-        self.pair_canvas.setToolTip("Column pair distribution g(r) with the matched tau-ladder rungs; click a peak "
-                                    "to select the column pairs at that distance")
-        splitter.addWidget(self.pair_canvas)
+        splitter.addWidget(self._placeholder("pair", "Column pair distribution g(r) with the matched tau-ladder "
+                                                     "rungs; click a peak to select the column pairs at that "
+                                                     "distance"))
         self.ladder_table = _table(_LADDER_COLUMNS)
         self.ladder_table.setMinimumHeight(int(self.ladder_table.horizontalHeader().sizeHint().height()
                                                + 5.5 * self.ladder_table.verticalHeader().defaultSectionSize()))
@@ -158,11 +180,15 @@ class PlotsWidget(QWidget):
         splitter.setStretchFactor(0, 3)
         splitter.setStretchFactor(1, 2)
         self.tabs.addTab(splitter, "Distances")
+        self._page["pair"] = splitter
 
-        self.species_figure, self.species_canvas = _canvas()
-        self.species_canvas.setToolTip("Integrated column intensities by species; click a bar to select those "
-                                       "columns")
-        self.tabs.addTab(self.species_canvas, "Species")
+        page, lay = QWidget(), QVBoxLayout()
+        page.setLayout(lay)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.addWidget(self._placeholder("species", "Integrated column intensities by species; click a bar to "
+                                                   "select those columns"), 1)
+        self.tabs.addTab(page, "Species")
+        self._page["species"] = page
 
         self.table = _table(_TABLE_COLUMNS)
         rows = self.table.verticalHeader().defaultSectionSize()
@@ -175,10 +201,9 @@ class PlotsWidget(QWidget):
         self.tiling_label = QLabel("")
         self.tiling_label.setWordWrap(True)
         lay.addWidget(self.tiling_label)
-        self.tiling_figure, self.tiling_canvas = _canvas()
-        self.tiling_canvas.setToolTip("Cluster network edges coloured by the tile on their side")
-        lay.addWidget(self.tiling_canvas, 1)
+        lay.addWidget(self._placeholder("tiling", "Cluster network edges coloured by the tile on their side"), 1)
         self.tabs.addTab(page, "Tiling")
+        self._page["tiling"] = page
 
         page, lay = QWidget(), QVBoxLayout()
         page.setLayout(lay)
@@ -194,13 +219,13 @@ class PlotsWidget(QWidget):
         row.addWidget(self.spectrum_button)
         row.addStretch(1)
         lay.addLayout(row)
-        self.fourier_figure, self.fourier_canvas = _canvas((4.2, 4.2))
-        lay.addWidget(self.fourier_canvas, 1)
+        lay.addWidget(self._placeholder("fourier", "", figsize=(4.2, 4.2)), 1)
         self.spots_table = _table(("shell", "d", "n_spots", "order", "strength"))
         self.spots_table.setToolTip("Spot shells of the power spectrum: lattice-plane spacing d, number of spots, "
                                     "rotational order (0 = none) and mean strength over background")
         lay.addWidget(self.spots_table)
         self.tabs.addTab(page, "Fourier")
+        self._page["fourier"] = page
 
         self.notes = QPlainTextEdit()
         self.notes.setReadOnly(True)
@@ -209,12 +234,54 @@ class PlotsWidget(QWidget):
 
         self.spectrum_button.clicked.connect(self.show_power_spectrum)
         self.table.cellClicked.connect(self.select_motif_row)
-        self.pair_canvas.mpl_connect("button_press_event", self._on_pair_click)
-        self.species_canvas.mpl_connect("button_press_event", self._on_species_click)
         self.session.changed.connect(self.refresh)
         self.image_choice.currentTextChanged.connect(self._choose_image)
         self.tabs.currentChanged.connect(self._on_tab)
         self.refresh()
+
+    # ---------------------------------------------------------------- figures, made when first drawn
+    def _placeholder(self, key: str, tip: str, figsize=(4.2, 3.4)) -> QLabel:
+        """A label standing where figure ``key`` will be: importing matplotlib's Qt backend took 1-1.5 s of
+        frozen GUI when the dock opened, so it is imported in a background thread then and the figure is made
+        when its tab is first drawn."""
+        label = QLabel("run an analysis")
+        label.setAlignment(Qt.AlignCenter)
+        label.setMinimumHeight(280)
+        label.setMinimumWidth(360)
+        label.setToolTip(tip)
+        label.figsize = figsize
+        self._placeholders[key] = label
+        return label
+
+    def _figure(self, key: str):
+        """(figure, canvas) of ``key``, made now if needed, in its placeholder's place (same parent)."""
+        made = self._figures.get(key)
+        if made is None:
+            label = self._placeholders.pop(key)
+            figure, canvas = _canvas(label.figsize)
+            canvas.setToolTip(label.toolTip())
+            parent = label.parentWidget()
+            if isinstance(parent, QSplitter):
+                parent.replaceWidget(parent.indexOf(label), canvas)
+            else:
+                parent.layout().replaceWidget(label, canvas)
+            label.hide()
+            label.deleteLater()
+            if key == "pair":
+                canvas.mpl_connect("button_press_event", self._on_pair_click)
+            elif key == "species":
+                canvas.mpl_connect("button_press_event", self._on_species_click)
+            self._figures[key] = made = (figure, canvas)
+        return made
+
+    pair_figure = property(lambda self: self._figure("pair")[0])
+    pair_canvas = property(lambda self: self._figure("pair")[1])
+    species_figure = property(lambda self: self._figure("species")[0])
+    species_canvas = property(lambda self: self._figure("species")[1])
+    tiling_figure = property(lambda self: self._figure("tiling")[0])
+    tiling_canvas = property(lambda self: self._figure("tiling")[1])
+    fourier_figure = property(lambda self: self._figure("fourier")[0])
+    fourier_canvas = property(lambda self: self._figure("fourier")[1])
 
     def _choose_image(self, image: str) -> None:
         if image:
@@ -240,10 +307,13 @@ class PlotsWidget(QWidget):
         if self.session.image:
             self.image_choice.setCurrentText(self.session.image)
         self.image_choice.blockSignals(False)
-        for fig in (self.pair_figure, self.species_figure, self.tiling_figure, self.fourier_figure):
+        for fig, _ in self._figures.values():
             fig.clear()
         if result is None:
-            for fig, canvas in ((self.pair_figure, self.pair_canvas), (self.species_figure, self.species_canvas)):
+            for key in ("pair", "species"):
+                if key not in self._figures:  # its placeholder says so
+                    continue
+                fig, canvas = self._figures[key]
                 ax = fig.add_subplot()
                 ax.text(0.5, 0.5, "run an analysis", ha="center", va="center", transform=ax.transAxes)
                 ax.set_axis_off()
@@ -255,11 +325,11 @@ class PlotsWidget(QWidget):
         self._tab_info[self._index_of(self.table)] = (
             f"{n} motifs" + (f" (best {MAX_TABLE_ROWS} listed)" if n > MAX_TABLE_ROWS else ""))
         self._todo = {self._index_of(self.summary_table): self._fill_summary,
-                      self._index_of(self.pair_canvas): self._draw_pairs,
-                      self._index_of(self.species_canvas): self._draw_species,
+                      self._index_of(self._page["pair"]): self._draw_pairs,
+                      self._index_of(self._page["species"]): self._draw_species,
                       self._index_of(self.table): lambda r: self._fill_table(r.tables["motifs"]),
-                      self._index_of(self.tiling_canvas): self._draw_tiling,
-                      self._index_of(self.fourier_canvas): self._draw_fourier_text,
+                      self._index_of(self._page["tiling"]): self._draw_tiling,
+                      self._index_of(self._page["fourier"]): self._draw_fourier_text,
                       self._index_of(self.notes): self._fill_notes}
         self.info.setText(self._tab_info.get(self.tabs.currentIndex(), ""))
         self._draw_current()
@@ -621,7 +691,7 @@ class PlotsWidget(QWidget):
             self._say(f"power spectrum: {error}")
             return
         spectrum, k_step = value
-        self.tabs.setCurrentWidget(self.fourier_canvas.parentWidget())  # builds the tab's text first
+        self.tabs.setCurrentWidget(self._page["fourier"])  # builds the tab's text first
         unit = "1/nm" if px else "1/px"
         step = k_step / px if px else k_step
         n_rows, n_cols = spectrum.shape

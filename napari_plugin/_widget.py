@@ -72,6 +72,8 @@ _NM_FIELDS = (  # (Parameters name, label, estimate key)
     ("tiling_edge_nm", "Tiling edge (nm)", None),
 )
 _WINDOWS = ("hann", "periodic_smooth")
+#: Pause between inserting two result layers (ms): the canvas paints in between.
+_INSERT_GAP_MS = 20
 
 
 @dataclass
@@ -189,6 +191,11 @@ def _freeze_startup_objects() -> None:
         _FROZEN = True
 
 
+def _rgba(hex_colour: str) -> np.ndarray:
+    """'#rrggbb' as RGBA floats (without importing matplotlib, which costs a second on the GUI thread)."""
+    return np.array([int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)] + [1.0])
+
+
 def _nm_text(value) -> str:
     return "-" if value is None or not math.isfinite(value) else f"{value:.3g}"
 
@@ -216,6 +223,37 @@ def _warm_numba_in_background() -> None:
             pass
 
     threading.Thread(target=warm, name="tenfold-numba-warm-up", daemon=True).start()
+
+
+#: Characters whose glyphs are made ahead, in idle time (legend, scale bar, status text on the canvas).
+_GLYPHS = "0123456789.-+ " + "abcdefghijklmnopqrstuvwxyz" + "ABCDEFGHIJKLMNOPQRSTUVWXYZ" + "()[]:;,/%=_'\"!?<>*#&"
+
+
+def _warm_glyphs(viewer) -> None:
+    """Make the canvas font's glyphs one per event-loop turn while the user sets up the first run.
+
+    vispy draws canvas text (our legend, the scale bar) from a signed-distance-field atlas that napari fills on
+    the GUI thread, 20-40 ms per new character (rendered at 256 pt and blurred on the CPU), during the paint
+    that first shows it: the first run's legend froze the viewer for about half a second. One glyph per turn
+    keeps each step far below that; characters already made cost nothing.
+    """
+    viewer = getattr(viewer, "__wrapped__", viewer)  # a plugin dock's viewer proxy refuses private names
+    try:  # napari's canvas internals: without them the glyphs are made when first drawn, as before
+        info = viewer.window._qt_viewer.canvas._font_info
+        font = info.font_manager.get_font(info.face)
+    except Exception:  # noqa: BLE001
+        return
+    pending = list(_GLYPHS)
+
+    def step():
+        if pending:
+            try:
+                font[pending.pop(0)]
+            except Exception:  # noqa: BLE001 - a glyph this font lacks is made (or not) when drawn
+                pass
+            QTimer.singleShot(5, step)
+
+    QTimer.singleShot(200, step)
 
 
 class PipelineWidget(QWidget):
@@ -259,6 +297,7 @@ class PipelineWidget(QWidget):
         self.session.changed.connect(self._on_session_changed)
         self._refresh_layers()
         self._set_busy(False)
+        _warm_glyphs(self.viewer)
 
     # ---------------------------------------------------------------- layout
     def _build(self) -> None:
@@ -491,6 +530,11 @@ class PipelineWidget(QWidget):
     def _refresh_layers(self, event=None) -> None:
         from napari.layers import Image, Shapes
 
+        changed = getattr(event, "value", None) if event is not None and event.type in ("inserted", "removed") \
+            else None
+        if changed is not None and kind_of(getattr(changed, "name", ""))[0] in RESULT_KINDS \
+                and not isinstance(changed, (Image, Shapes)):
+            return  # a result layer is never an image or a regions choice: nothing to refresh
         images = [ly.name for ly in self.viewer.layers if isinstance(ly, Image) and ly.name != "power spectrum"]
         shapes = [ly.name for ly in self.viewer.layers
                   if isinstance(ly, Shapes) and kind_of(ly.name)[0] not in RESULT_KINDS]
@@ -522,8 +566,10 @@ class PipelineWidget(QWidget):
             return
         layer.current_face_color = "transparent"
         layer.current_edge_color = REGION_COLOUR
-        if len(layer.data):
+        # only what differs: each assignment redraws the layer (and ran on every layer inserted)
+        if len(layer.data) and np.any(np.asarray(layer.face_color)[:, 3] != 0):
             layer.face_color = "transparent"
+        if len(layer.data) and not np.allclose(layer.edge_color, _rgba(REGION_COLOUR)):
             layer.edge_color = REGION_COLOUR
         if image is not None and np.allclose(layer.scale[-2:], 1.0) and \
                 {str(u) for u in layer.units} == {"pixel"} and {str(u) for u in image.units} != {"pixel"}:
@@ -796,6 +842,7 @@ class PipelineWidget(QWidget):
         from napari.qt.threading import create_worker
 
         self._cancel = threading.Event()
+        self._launch_colour = self.colour_by.currentText()
         self._context = context
         self._image = image
         worker = create_worker(
@@ -846,7 +893,9 @@ class PipelineWidget(QWidget):
     def _insert_next(self) -> None:
         if self._pending:
             self._put_layer(self._pending.pop(0))
-            QTimer.singleShot(0, self._insert_next)
+            # a short pause, not 0 ms: the canvas paints the change in between (a paint and the next insertion in
+            # one event-loop turn froze the GUI for their sum)
+            QTimer.singleShot(_INSERT_GAP_MS, self._insert_next)
             return
         outcome = self._pending_outcome
         try:
@@ -864,7 +913,8 @@ class PipelineWidget(QWidget):
         if outcome.kind == "re-run" and points is not None:
             self._update_columns_layer(points, outcome.result.tables["columns"])
         self.session.set_result(outcome.result, frame, image_layer, regions or [], image=image)
-        self._recolour(self.colour_by.currentText())
+        built = outcome.kind != "re-run" and self.colour_by.currentText() == self._launch_colour
+        self._recolour(self.colour_by.currentText(), colours=not built)  # a new layer has its colours already
         self.viewer.canvas.overlays.scale_bar.visible = True
         summary = outcome.result.summary
         self.status.setText(f"{outcome.kind} of {image}: {status_counts(outcome.result)}"
@@ -999,8 +1049,9 @@ class PipelineWidget(QWidget):
         ids = points.features["id"].to_numpy() if "id" in points.features else np.zeros(0)
         return table.drop_duplicates("id").set_index("id").reindex(ids).reset_index()
 
-    def _recolour(self, prop: str) -> None:
-        """Colour the current image's column markers by ``prop`` and write the legend (dock and canvas)."""
+    def _recolour(self, prop: str, *, colours: bool = True) -> None:
+        """Colour the current image's column markers by ``prop`` (unless ``colours`` is False: the layer was
+        built so) and write the legend (dock and canvas)."""
         points = self.result_layer("columns")
         if points is None or self.session.result is None:
             return
@@ -1008,7 +1059,8 @@ class PipelineWidget(QWidget):
         if prop not in table:
             return
         kwargs = colour_kwargs(table, prop)
-        points.face_color = kwargs["face_color"]
+        if colours:
+            points.face_color = kwargs["face_color"]
         legend = kwargs.get("legend") or []
         if kwargs.get("limits"):
             (lo, c_lo), (hi, c_hi) = legend

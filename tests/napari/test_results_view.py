@@ -102,7 +102,7 @@ def test_histogram_bar_click_selects_those_columns(small_run):
     cols = plots.session.result.tables["columns"]
     inten = cols["intensity"].to_numpy(float)
     target = float(np.nanmedian(inten))
-    plots.tabs.setCurrentWidget(plots.species_canvas)
+    plots.tabs.setCurrentWidget(plots.species_canvas.parentWidget())
     _click(plots.species_canvas, plots._species_ax, target)
     bins = plots._bins
     k = np.searchsorted(bins, target) - 1
