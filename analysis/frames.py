@@ -76,6 +76,9 @@ NEWTON_STEPS = 4
 #: outlier frames: robust z of the correlation below this, and correlation below this fraction of the median
 REJECT_Z = -5.0
 REJECT_FRACTION = 0.8
+#: below this share of the frames' power in structure (noise alone gives < 0.005 on 64-512 px frames, a decagonal
+#: frame with 2.5 counts per column peak 0.14; measured in tests/test_frames.py) the frames cannot be registered
+MIN_SIGNAL_SHARE = 0.02
 #: non-rigid step: rows per strip (at least), and strips per frame (at most)
 STRIP_ROWS = 32
 MAX_STRIPS = 32
@@ -109,12 +112,17 @@ class FrameAlignment:
         ``n_frames``, ``n_used``, ``rejected`` (frame indices), ``rounds``, ``residual_drift_px`` (largest shift
         change in the last round), ``drift_px_per_frame`` (straight-line fit through the shifts, x and y),
         ``path_px`` (total length of the drift path), ``covered_fraction``, ``register_crop_px``, ``notes``.
+    row_shift_px : ndarray (N, H, 2) or None
+        Non-rigid step only: each frame's displacement (x, y) of every row beyond its rigid shift, measured against
+        the rigid mean (so relative to the frames' average distortion, which no registration can see); NaN for
+        frames left out.
     """
 
     mean: np.ndarray
     valid: np.ndarray
     table: pd.DataFrame
     info: dict = field(default_factory=dict)
+    row_shift_px: np.ndarray | None = None
 
     @property
     def n_used(self) -> int:
@@ -375,6 +383,16 @@ def _registration_crops(arr, valid, offsets: np.ndarray) -> np.ndarray:
     return crops
 
 
+def _check_structure(n0: float, signal: np.ndarray, grid: _Grid) -> float:
+    """The shift bound (px) when the frames hold structure above their noise; else a clear error."""
+    share = float(np.sum(grid.mult * signal) / max(np.sum(grid.mult * (signal + n0)), 1e-300))
+    sd = _shift_sd(n0, signal, grid)
+    if not math.isfinite(sd) or share < MIN_SIGNAL_SHARE or sd > 1.0:
+        raise TenfoldInputError("frames: the frames hold no common structure above their noise, so they cannot be "
+                                "registered; average them without alignment (--no-align) or check the frame range")
+    return sd
+
+
 def _shift_sd(n0: float, signal: np.ndarray, grid: _Grid) -> float:
     """Cramer-Rao bound (px) of one shift component of a frame registered to a noise-free template."""
     info = 4 * np.pi ** 2 * np.sum(grid.mult * 0.5 * grid.q2 * signal)  # mean of the x and y information
@@ -609,6 +627,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     grid = _Grid(*crops.shape[1:])
     spectra = _spectra(crops, np.zeros((n, 2)))
     n0, signal = _power(spectra[usable], grid)
+    _check_structure(n0, signal, grid)
     guess = _first_guess(spectra, _Band(grid, signal), n0)
     del spectra
     report(progress, 0.1, "frames: first guess from consecutive frames")
@@ -640,19 +659,18 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
                      f"{first_frame + new_ref} is the reference instead")
         ref = new_ref
     shifts = reg["shifts"] - reg["shifts"][ref]
-    signal_share = float(np.sum(grid.mult * signal) / max(np.sum(grid.mult * (signal + n0)), 1e-300))
-    sd = _shift_sd(n0, signal, grid)
-    if not math.isfinite(sd) or signal_share < 1e-4:
-        raise TenfoldInputError("frames: the frames hold no common structure above their noise, so they cannot be "
-                                "registered; average them without alignment (--no-align) or check the frame range")
+    sd = _check_structure(n0, signal, grid)
     ks = np.flatnonzero(used)
     mean, full = _mean_of(arr, ks, shifts, valid, sub_progress(progress, 0.5, 0.75 if nonrigid else 1.0), "frames")
     wobble = np.full(n, np.nan)
     method = "rigid"
+    row_shift = None
     if nonrigid:
         fields = _row_fields(arr, ks, shifts, mean, full, valid, sub_progress(progress, 0.75, 0.9))
+        row_shift = np.full((n, h, 2), np.nan)
         for k, fk in fields.items():
             wobble[k] = float(np.sqrt(np.mean(np.sum(fk ** 2, axis=1))))
+            row_shift[k] = fk
         mean, full = _mean_of(arr, ks, shifts, valid, sub_progress(progress, 0.9, 1.0), "frames (non-rigid)",
                               resample=_resampler(fields, shifts))
         method = "rigid + non-rigid rows"
@@ -667,7 +685,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     table.loc[ref, "shift_sd_px"] = 0.0
     info = _summary(table, ref + int(first_frame), reg, method, full, box, notes)
     report(progress, 1.0, "frames: aligned")
-    return FrameAlignment(mean=mean, valid=full, table=table, info=info)
+    return FrameAlignment(mean=mean, valid=full, table=table, info=info, row_shift_px=row_shift)
 
 
 def _summary(table: pd.DataFrame, ref_frame: int, reg: dict, method: str, full: np.ndarray, crop, notes) -> dict:

@@ -1649,7 +1649,8 @@ def drifting_stack(cond: StressCondition, *, n_frames: int = 12, drift_px_per_fr
         ``frame, shift_x_px, shift_y_px, wobble_rms_px`` (rigid part; the wobble has zero mean over the rows).
     params : dict
         The cell's parameters plus ``n_frames``, ``dose_per_frame`` (fraction), ``drift_px_per_frame``,
-        ``jump_px``, ``jump_chance``, ``wobble_px``.
+        ``jump_px``, ``jump_chance``, ``wobble_px`` and ``wobble_rows_px`` (n_frames, H): each frame's smooth x
+        displacement per row.
 
     Examples
     --------
@@ -1674,19 +1675,22 @@ def drifting_stack(cond: StressCondition, *, n_frames: int = 12, drift_px_per_fr
     x, y, counts = truth["x_px"].to_numpy(), truth["y_px"].to_numpy(), truth["counts"].to_numpy()
     frames = np.empty((n_frames, n, n), dtype=np.float32)
     wob_rms = np.zeros(n_frames)
+    wob_rows = np.zeros((n_frames, n))
     for k in range(n_frames):
         rows = _wobble(n, wobble_px, gen) if wobble_px > 0 else np.zeros(n)
+        wob_rows[k] = rows
         wob_rms[k] = float(np.sqrt(np.mean(rows ** 2)))
         if cond.row_jitter_px > 0:
             rows = rows + gen.normal(0.0, cond.row_jitter_px, n)
+        # column_signal draws row r's columns at x - row_shift_px[r]: pass -rows so the specimen moves by +rows
         signal = column_signal(x + shift[k, 0], y + shift[k, 1], counts, shape=(n, n), sigma_px=params["sigma_px"],
-                               probe=probe, row_shift_px=rows if np.any(rows) else None)
+                               probe=probe, row_shift_px=-rows if np.any(rows) else None)
         frames[k] = gen.poisson((background + signal) / n_frames)
     shifts = pd.DataFrame({"frame": np.arange(n_frames), "shift_x_px": shift[:, 0], "shift_y_px": shift[:, 1],
                            "wobble_rms_px": wob_rms})
     params = {**params, "n_frames": int(n_frames), "dose_per_frame": 1.0 / n_frames,
               "drift_px_per_frame": drift.tolist(), "jump_px": float(jump_px), "jump_chance": float(jump_chance),
-              "wobble_px": float(wobble_px), "value_scale": 1.0, "value_offset": 0.0}
+              "wobble_px": float(wobble_px), "wobble_rows_px": wob_rows, "value_scale": 1.0, "value_offset": 0.0}
     return frames, truth, shifts, params
 
 
