@@ -60,6 +60,7 @@ from scipy import fft as sfft
 
 from ._errors import TenfoldInputError
 from ._progress import ProgressCallback, report, sub_progress
+from ._schema import FRAMES, conform
 
 __all__ = ["FrameAlignment", "align_frames", "FRAME_COLUMNS", "plain_mean"]
 
@@ -87,9 +88,8 @@ MIN_SIGNAL_SHARE = 0.02
 STRIP_ROWS = 32
 MAX_STRIPS = 32
 
-#: columns of :attr:`FrameAlignment.table` (the ``frames.csv`` contract)
-FRAME_COLUMNS = ("frame", "shift_x_px", "shift_y_px", "correlation", "used", "reason", "shift_sd_px",
-                 "wobble_rms_px")
+#: columns of :attr:`FrameAlignment.table` (the ``frames.csv`` contract, ``_schema.FRAMES``)
+FRAME_COLUMNS = tuple(f.name for f in FRAMES)
 
 _WORKERS = max(1, min(2, os.cpu_count() or 1))
 
@@ -773,6 +773,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     })
     table.loc[~usable, ["shift_x_px", "shift_y_px", "correlation"]] = np.nan
     table.loc[ref, "shift_sd_px"] = 0.0
+    table = conform(table, FRAMES)
     info = _summary(table, ref + int(first_frame), reg, method, full, box, notes)
     report(progress, 1.0, "frames: aligned")
     return FrameAlignment(mean=mean, valid=full, table=table, info=info, row_shift_px=row_shift)

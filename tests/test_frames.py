@@ -55,9 +55,9 @@ def test_low_dose_shifts_within_target(low_dose):
     err = _errors(out, shifts)
     rms = float(np.sqrt(np.mean(err[1:] ** 2)))
     assert rms < 0.05  # the target: 0.05 px RMS at 1/12 of a normal dose per frame
-    # the reported precision is honest: actual RMS within a factor 3 of the Cramer-Rao figure
+    # the reported precision is honest: the actual RMS error within 0.6-1.6 of the reported one
     sd = float(np.sqrt(np.mean(out.table["shift_sd_px"].to_numpy()[1:] ** 2)))
-    assert 1 / 3 < rms / sd < 3, (rms, sd)
+    assert 0.6 < rms / sd < 1.6, (rms, sd)
     assert out.info["method"] == "rigid" and out.info["reference"] == 0
 
 
@@ -221,3 +221,20 @@ def test_cli_writes_frames_table_and_aligned_mean(tmp_path, low_dose):
     assert not (out2 / "frames.csv").exists() and not (out2 / "aligned_mean.tif").exists()
     notes = json.loads((out2 / "summary.json").read_text())["notes"]
     assert any("without alignment" in n for n in notes)
+
+
+def test_batch_aligns_stacks(tmp_path, low_dose):
+    from tenfold.analysis.batch import run_batch
+
+    stack, _, shifts, _ = low_dose
+    folder = tmp_path / "in"
+    folder.mkdir()
+    for name, part in (("a", stack[:4]), ("b", stack[4:8])):
+        tifffile.imwrite(folder / f"{name}.tif", part.astype(np.uint16), imagej=True,
+                         resolution=(1 / 0.028, 1 / 0.028), metadata={"unit": "nm"})
+    table = run_batch([str(folder)], tmp_path / "out", frame_range=(0, 4), figures=False)
+    assert (table["status"] == "ok").all()
+    b = pd.read_csv(tmp_path / "out" / "b" / "frames.csv")
+    expect = shifts.loc[4:7, "shift_x_px"].to_numpy() - shifts.loc[4, "shift_x_px"]
+    assert np.allclose(b["shift_x_px"], expect, atol=0.05)
+    assert (tmp_path / "out" / "a" / "aligned_mean.tif").exists()
