@@ -17,7 +17,8 @@ import subprocess
 import sys
 import threading
 
-__all__ = ["run_in_process", "rerun_job", "estimate_job", "export_job", "batch_job", "start", "shutdown"]
+__all__ = ["run_in_process", "analysis_job", "rerun_job", "estimate_job", "align_job", "export_job", "batch_job",
+           "start", "shutdown"]
 
 _LOCK = threading.Lock()
 _STATE: dict = {}  # the helper process
@@ -121,7 +122,41 @@ def rerun_job(result, columns, *, params, regions, progress):
     return pipeline.rerun_from_columns(result, columns, params=params, regions=regions, progress=progress)
 
 
-def batch_job(inputs, out_dir, *, params, frame, frame_range, rerun, progress):
+def _micrograph(source, progress, share: float):
+    """The micrograph of a dock's layer record (``_layers.layer_source``), built here in the helper: aligning a
+    frame range takes the first ``share`` of the job's progress."""
+    from tenfold.analysis._progress import sub_progress
+
+    from ._layers import micrograph_from_source
+
+    aligning = source["frame_range"] is not None and source["align"]
+    return micrograph_from_source(source, progress=sub_progress(progress, 0.0, share) if aligning else None), \
+        (share if aligning else 0.0)
+
+
+def analysis_job(source, params, *, regions, preview_px, progress):
+    """Run (or, with ``preview_px``, preview on the central square without the Fourier stage) the pipeline on
+    the micrograph of a dock's layer record."""
+    from tenfold.analysis._progress import sub_progress
+    from tenfold.analysis.pipeline import run_pipeline
+
+    from ._layers import crop_centre
+
+    micrograph, done = _micrograph(source, progress, 0.4)
+    if preview_px:
+        micrograph, _ = crop_centre(micrograph, preview_px)
+    return run_pipeline(micrograph, params, regions=regions, progress=sub_progress(progress, done, 1.0))
+
+
+def align_job(source, *, progress):
+    """Align and average the frame range of a stack layer; returns the micrograph (``alignment`` attached)."""
+    micrograph, _ = _micrograph(dict(source, align=True), progress, 1.0)
+    if micrograph.alignment is None:
+        raise RuntimeError("no alignment was made (a single frame?)")
+    return micrograph
+
+
+def batch_job(inputs, out_dir, *, params, frame, frame_range, rerun, progress, align=True, nonrigid=False):
     """``batch.run_batch`` with the dock's progress (fraction, message); returns a one-line report."""
     from tenfold.analysis.batch import run_batch
 
@@ -129,16 +164,17 @@ def batch_job(inputs, out_dir, *, params, frame, frame_range, rerun, progress):
         return progress(done / max(total, 1), f"batch: {done} of {total} images; {message}")
 
     table = run_batch(inputs, out_dir, params, frame=frame, frame_range=frame_range, rerun=rerun,
-                      progress=images_done)
+                      progress=images_done, align=align, nonrigid=nonrigid)
     failed = int((table["status"] != "ok").sum()) if "status" in table else 0
     return (f"batch: {len(table)} images, {failed} failed; comparison.csv, comparison.xlsx and the figure in "
             f"{out_dir}")
 
 
-def estimate_job(micrograph, *, dark_columns, progress):
+def estimate_job(source, *, dark_columns, progress):
     from tenfold.analysis.pipeline import estimate_defaults
 
-    progress(0.1, "estimating column spacing and diameter")
+    micrograph, done = _micrograph(source, progress, 0.8)
+    progress(max(done, 0.1), "estimating column spacing and diameter")
     return estimate_defaults(micrograph, dark_columns=dark_columns)
 
 

@@ -18,11 +18,18 @@ __all__ = [
     "VALID_KEY",
     "PALETTE",
     "image_layer_tuple",
+    "stack_layer_tuple",
     "frame_of",
     "world_to_frame",
     "layer_to_frame",
     "result_layers",
     "micrograph_from_layer",
+    "layer_source",
+    "micrograph_from_source",
+    "crop_centre",
+    "crop_offset",
+    "is_stack",
+    "FRAMES_KEY",
     "data_to_data",
     "regions_from_shapes",
     "columns_from_points",
@@ -106,6 +113,21 @@ def image_layer_tuple(micrograph: Micrograph, name: str) -> tuple:
     return (micrograph.data, kwargs, "image")
 
 
+def stack_layer_tuple(stack: np.ndarray, meta: ImageMeta, name: str) -> tuple:
+    """napari layer-data tuple for a frame series (frames first), opened as a stack: the frame axis unscaled, the
+    image axes in nm when calibrated, the first frame's :class:`ImageMeta` record attached."""
+    px = _layer_scale(meta)
+    kwargs = {
+        "name": name if meta.calibrated else f"{name} (uncalibrated)",
+        "scale": (1.0, *px),
+        "metadata": {META_KEY: meta.to_dict()},
+        "colormap": "gray",
+    }
+    if meta.calibrated:
+        kwargs["units"] = ("pixel", "nm", "nm")
+    return (stack, kwargs, "image")
+
+
 def parse_frames(text: str) -> tuple[int | None, tuple[int, int] | None]:
     """(frame, frame_range) of the dock's 'Stack frames' field: '' -> none, 'K' -> frame K, 'A:B' -> the mean of
     frames A..B-1 (0-based, as ``tenfold analyze --frame/--frames``); raises TenfoldInputError naming the field."""
@@ -129,56 +151,121 @@ def parse_frames(text: str) -> tuple[int | None, tuple[int, int] | None]:
                                 "leave it empty for a single image") from None
 
 
-def micrograph_from_layer(layer, *, pixel_size_nm: float | None = None, frames: str = "") -> Micrograph:
-    """Build the :class:`Micrograph` the pipeline needs from a napari image layer.
+#: Layer-metadata key of a frame series' alignment (its ``table`` and ``info``), kept on the aligned-mean layer.
+FRAMES_KEY = "tenfold_frames"
+#: Provenance fields a 2-D layer's stored record keeps (an aligned mean's frames and noise model among them);
+#: a stack layer's frame fields are computed anew from the frames chosen.
+_KEPT = ("path", "original_dtype", "frames", "frames_averaged", "frames_hold_counts", "converted_from_rgb", "sha256")
+_KEPT_FOR_STACK = ("path", "original_dtype", "sha256")
+
+
+def is_stack(layer) -> bool:
+    """True for a 3-D image layer that is not RGB: a frame series (frames first)."""
+    return np.ndim(layer.data) == 3 and not getattr(layer, "rgb", False)
+
+
+def layer_source(layer, *, pixel_size_nm: float | None = None, frames: str = "", align: bool = True,
+                 nonrigid: bool = False) -> dict:
+    """What the helper process needs to build the :class:`Micrograph` of an image layer (see
+    :func:`micrograph_from_source`), checked here so a bad choice is named as the dock labels it.
 
     The calibration comes from the Tenfold metadata record when the layer was opened by Tenfold; otherwise from
     the layer scale only when its units are nm (a bare scale of 1 is napari's default, never a calibration).
     ``pixel_size_nm`` overrides both. A stack layer (3-D, not RGB) needs ``frames`` ('K' or 'A:B', see
-    :func:`parse_frames`).
+    :func:`parse_frames`); 'A:B' frames are aligned before they are averaged unless ``align`` is False.
     """
     from tenfold.analysis._errors import TenfoldInputError
 
-    data = np.asarray(layer.data)
+    data = layer.data
     frame, frame_range = parse_frames(frames)
-    if data.ndim == 3 and data.shape[-1] in (3, 4):
-        data = data[..., :3].astype(np.float32) @ np.array([0.2125, 0.7154, 0.0721], np.float32)
-    elif data.ndim == 3 and (frame is not None or frame_range is not None):
-        a, b = (frame, frame + 1) if frame is not None else frame_range
-        if b > data.shape[0]:
-            raise TenfoldInputError(f"'Stack frames': {frames!r} asks for frames up to {b - 1}, but image layer "
-                                    f"{layer.name!r} has {data.shape[0]} (0-{data.shape[0] - 1})")
-        data = data[a:b].astype(np.float32).mean(axis=0)
-    if data.ndim != 2:
+    stack = is_stack(layer)
+    if stack and frame is None and frame_range is None:
         raise TenfoldInputError(
-            f"image layer {layer.name!r}: needs a 2-D image, got shape {data.shape}; give 'Stack frames' (a frame "
-            "K or a range A:B to average)"
-        )
+            f"image layer {layer.name!r}: is a stack of {np.shape(data)[0]} frames; give 'Stack frames' (a frame K "
+            "or a range A:B to align and average)")
+    if stack and max(frame if frame is not None else 0, (frame_range or (0, 0))[1] - 1) >= np.shape(data)[0]:
+        last = frame if frame is not None else frame_range[1] - 1
+        raise TenfoldInputError(f"'Stack frames': {frames!r} asks for frames up to {last}, but image layer "
+                                f"{layer.name!r} has {np.shape(data)[0]} (0-{np.shape(data)[0] - 1})")
+    if not stack:
+        frame = frame_range = None  # a single image: the field does not apply
+    if np.ndim(data) == 3 and not stack or np.ndim(data) not in (2, 3):
+        if not (np.ndim(data) == 3 and np.shape(data)[-1] in (3, 4)):
+            raise TenfoldInputError(f"image layer {layer.name!r}: needs a 2-D image or a stack of frames, got shape "
+                                    f"{np.shape(data)}")
     stored = dict(layer.metadata.get(META_KEY) or {})
-    valid = layer.metadata.get(VALID_KEY)
     if pixel_size_nm is not None:
         px, source = float(pixel_size_nm), "user"
     elif stored:
         px, source = stored.get("pixel_size_nm"), stored.get("calibration_source", "none")
-    elif tuple(str(u) for u in getattr(layer, "units", ())) [-1:] in (("nanometer",), ("nm",)):
+    elif tuple(str(u) for u in getattr(layer, "units", ()))[-1:] in (("nanometer",), ("nm",)):
         px, source = float(layer.scale[-1]), "napari-layer"
     else:
         px, source = None, "none"
-    meta = ImageMeta(
-        path=stored.get("path", ""),
-        pixel_size_nm=px,
-        calibration_source=source if px is not None else "none",
-        original_dtype=stored.get("original_dtype", str(data.dtype)),
-        shape=tuple(data.shape),
-        frames=stored.get("frames", ""),
-        converted_from_rgb=bool(stored.get("converted_from_rgb", False)),
-        masked_fraction=float(stored.get("masked_fraction", 0.0)),
-        sha256=stored.get("sha256", ""),
-        notes=list(stored.get("notes", [])),
-    )
-    if valid is not None and np.shape(valid) != data.shape:
-        valid = None
-    return Micrograph(data=np.ascontiguousarray(data, dtype=np.float32), meta=meta, valid=valid)
+    valid = layer.metadata.get(VALID_KEY)
+    return {"data": np.asarray(data), "name": layer.name, "pixel_size_nm": px, "calibration_source": source,
+            "frame": frame, "frame_range": frame_range, "align": bool(align), "nonrigid": bool(nonrigid),
+            "stored": stored, "valid": None if stack or valid is None else np.asarray(valid),
+            "frames_record": None if stack else layer.metadata.get(FRAMES_KEY)}
+
+
+def micrograph_from_source(source: dict, *, progress=None) -> Micrograph:
+    """The :class:`Micrograph` of a :func:`layer_source` record, through ``io.micrograph_from_array`` (frame
+    choice, alignment of a frame range, checks), with the layer's stored provenance put back: the file's path,
+    checksum and calibration source, the validity mask, and for an aligned-mean layer its frames (so the run
+    reports the frames table and the noise model knows how many frames the image averages)."""
+    from tenfold.analysis.frames import FrameAlignment
+    from tenfold.analysis.io import micrograph_from_array
+
+    stack = source["frame"] is not None or source["frame_range"] is not None
+    micrograph = micrograph_from_array(
+        source["data"], pixel_size_nm=source["pixel_size_nm"], name=source["name"], frame=source["frame"],
+        frame_range=source["frame_range"], align=source["align"], nonrigid=source["nonrigid"], progress=progress)
+    meta, stored = micrograph.meta, source["stored"]
+    for key in (_KEPT_FOR_STACK if stack else _KEPT):
+        if key in stored:
+            setattr(meta, key, stored[key])
+    meta.calibration_source = source["calibration_source"] if meta.pixel_size_nm is not None else "none"
+    own = [n for n in meta.notes if not n.startswith(f"array {source['name']!r}: uncalibrated")]
+    meta.notes = list(dict.fromkeys(list(stored.get("notes", [])) + own))
+    valid = source.get("valid")
+    if valid is not None and np.shape(valid) == micrograph.data.shape:
+        micrograph.valid = micrograph.valid & valid
+        meta.masked_fraction = float(1 - micrograph.valid.mean())
+    record = source.get("frames_record")
+    if record is not None and micrograph.alignment is None:
+        micrograph.alignment = FrameAlignment(mean=micrograph.data, valid=micrograph.valid,
+                                              table=pd.DataFrame(record["table"]), info=dict(record["info"]))
+    return micrograph
+
+
+def micrograph_from_layer(layer, *, pixel_size_nm: float | None = None, frames: str = "", align: bool = True,
+                          nonrigid: bool = False, progress=None) -> Micrograph:
+    """The :class:`Micrograph` of an image layer, built here (scripts and tests; the dock builds it in its helper
+    process): :func:`micrograph_from_source` of :func:`layer_source`."""
+    return micrograph_from_source(layer_source(layer, pixel_size_nm=pixel_size_nm, frames=frames, align=align,
+                                               nonrigid=nonrigid), progress=progress)
+
+
+def crop_centre(micrograph: Micrograph, size_px: int) -> tuple[Micrograph, tuple[int, int]]:
+    """The central ``size_px`` square of a micrograph (a preview), with a note, and its (row, col) offset."""
+    r0, c0 = crop_offset(micrograph.data.shape, size_px)
+    sl = np.s_[r0:r0 + size_px, c0:c0 + size_px]
+    micrograph.data = np.ascontiguousarray(micrograph.data[sl])
+    micrograph.valid = np.ascontiguousarray(micrograph.valid[sl])
+    micrograph.meta.shape = micrograph.data.shape
+    micrograph.alignment = None  # its frames table describes the whole field
+    micrograph.meta.notes = micrograph.meta.notes + [
+        f"preview: central {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px from row {r0}, col "
+        f"{c0}, without the Fourier stage (a crop this small cannot judge the scan distortion; Run does)"
+    ]
+    return micrograph, (r0, c0)
+
+
+def crop_offset(shape, size_px: int) -> tuple[int, int]:
+    """(row, col) of the central ``size_px`` square of an image of ``shape`` (as :func:`crop_centre`)."""
+    rows, cols = shape[-2:]
+    return max(0, (rows - size_px) // 2), max(0, (cols - size_px) // 2)
 
 
 def _affine_of(layer) -> tuple[np.ndarray, np.ndarray]:
@@ -193,9 +280,12 @@ def _affine_of(layer) -> tuple[np.ndarray, np.ndarray]:
 
 def data_to_data(coords: np.ndarray, source, target) -> np.ndarray:
     """Map (N, D) data coordinates of layer ``source`` into data coordinates of layer ``target`` (vectorised)."""
-    coords = np.asarray(coords, float).reshape(-1, source.ndim)
-    m_s, o_s = _affine_of(source)
-    m_t, o_t = _affine_of(target)
+    coords = np.asarray(coords, float)
+    k = coords.shape[-1] if coords.ndim else source.ndim
+    coords = coords.reshape(-1, k)
+    # the trailing k axes of each layer: a stack's frame axis (or a 3-D shape's) is left out
+    m_s, o_s = (a[-k:, -k:] if a.ndim == 2 else a[-k:] for a in _affine_of(source))
+    m_t, o_t = (a[-k:, -k:] if a.ndim == 2 else a[-k:] for a in _affine_of(target))
     world = coords @ m_s.T + o_s
     return np.linalg.solve(m_t, (world - o_t).T).T
 

@@ -227,6 +227,17 @@ class PlotsWidget(QWidget):
         self.tabs.addTab(page, "Fourier")
         self._page["fourier"] = page
 
+        page, lay = QWidget(), QVBoxLayout()
+        page.setLayout(lay)
+        self.frames_label = QLabel("align a stack (analysis dock, 'Align stack') or run on 'Stack frames' A:B")
+        self.frames_label.setWordWrap(True)
+        lay.addWidget(self.frames_label)
+        lay.addWidget(self._placeholder("frames", "Shift of every frame relative to the reference frame: x and y "
+                                                  "in px; filled markers: frames in the mean, red crosses: frames "
+                                                  "left out"), 1)
+        self.tabs.addTab(page, "Frames")
+        self._page["frames"] = page
+
         self.notes = QPlainTextEdit()
         self.notes.setReadOnly(True)
         self.notes.setToolTip("The run's notes: automatic choices that could mislead, checks that failed")
@@ -235,6 +246,7 @@ class PlotsWidget(QWidget):
         self.spectrum_button.clicked.connect(self.show_power_spectrum)
         self.table.cellClicked.connect(self.select_motif_row)
         self.session.changed.connect(self.refresh)
+        self.session.aligned.connect(self._on_aligned)
         self.image_choice.currentTextChanged.connect(self._choose_image)
         self.tabs.currentChanged.connect(self._on_tab)
         self.refresh()
@@ -282,6 +294,8 @@ class PlotsWidget(QWidget):
     tiling_canvas = property(lambda self: self._figure("tiling")[1])
     fourier_figure = property(lambda self: self._figure("fourier")[0])
     fourier_canvas = property(lambda self: self._figure("fourier")[1])
+    frames_figure = property(lambda self: self._figure("frames")[0])
+    frames_canvas = property(lambda self: self._figure("frames")[1])
 
     def _choose_image(self, image: str) -> None:
         if image:
@@ -319,7 +333,8 @@ class PlotsWidget(QWidget):
                 ax.set_axis_off()
                 canvas.draw_idle()
             self._fill_table(None)
-            self._todo = {}
+            self._todo = {self._index_of(self._page["frames"]): self._draw_frames}
+            self._draw_current()
             return
         n = len(result.tables["motifs"])
         self._tab_info[self._index_of(self.table)] = (
@@ -330,6 +345,7 @@ class PlotsWidget(QWidget):
                       self._index_of(self.table): lambda r: self._fill_table(r.tables["motifs"]),
                       self._index_of(self._page["tiling"]): self._draw_tiling,
                       self._index_of(self._page["fourier"]): self._draw_fourier_text,
+                      self._index_of(self._page["frames"]): self._draw_frames,
                       self._index_of(self.notes): self._fill_notes}
         self.info.setText(self._tab_info.get(self.tabs.currentIndex(), ""))
         self._draw_current()
@@ -359,8 +375,50 @@ class PlotsWidget(QWidget):
 
     def _draw_tab(self, index: int) -> None:
         draw = getattr(self, "_todo", {}).pop(index, None)
-        if draw is not None and self.session.result is not None:
+        if draw is not None and (self.session.result is not None or draw == self._draw_frames):
             draw(self.session.result)
+
+    def _on_aligned(self, image: str) -> None:
+        """A stack was just aligned: show its shifts."""
+        self.tabs.setCurrentWidget(self._page["frames"])
+        self._draw_frames(None)
+
+    def _draw_frames(self, _result=None) -> None:
+        """Shift x and y of every frame against the frame index: used frames joined and filled, frames left out
+        as red crosses (their reasons in the label), the reference frame marked."""
+        record = self.session.frames_table()
+        if record is None:
+            self.frames_label.setText("align a stack (analysis dock, 'Align stack') or run on 'Stack frames' A:B")
+            return
+        table, info, image = record
+        figure = self.frames_figure
+        figure.clear()
+        ax = figure.add_subplot()
+        frame = table["frame"].to_numpy()
+        used = table["used"].to_numpy(bool)
+        for column, colour, label in (("shift_x_px", PALETTE[0], "shift x"), ("shift_y_px", PALETTE[1], "shift y")):
+            v = table[column].to_numpy(float)
+            ax.plot(frame[used], v[used], "o-", color=colour, ms=4, lw=1.0, label=f"{label} (used)")
+            if (~used).any():
+                ax.plot(frame[~used], v[~used], "x", color=PALETTE[4], ms=8, mew=1.8,
+                        label="left out" if column == "shift_x_px" else None)
+        reference = info.get("reference")
+        if reference is not None:
+            ax.axvline(reference, color="0.5", lw=0.8, ls=":", label="reference frame")
+        ax.set_xlabel("frame", fontsize=8)
+        ax.set_ylabel("shift (px)", fontsize=8)
+        ax.set_title(f"Frame shifts of {image}", fontsize=9)
+        ax.tick_params(labelsize=7)
+        ax.legend(fontsize=7, frameon=False)
+        self._frames_ax = ax
+        self._redraw(self.frames_canvas)
+        left = table[~used]
+        reasons = "; ".join(f"frame {int(r.frame)}: {r.reason}" for r in left.itertuples()) if len(left) else ""
+        drift = info.get("residual_drift_px")
+        self.frames_label.setText(
+            f"{image}: {int(used.sum())} of {len(table)} frames used ({info.get('method', '')}, reference frame "
+            f"{reference})" + (f", residual drift {drift:.3g} px" if isinstance(drift, (int, float)) else "")
+            + (f"; left out: {reasons}" if reasons else ""))
 
     def _redraw(self, canvas) -> None:
         canvas.draw_idle()

@@ -34,6 +34,7 @@ class Session(QObject):
 
     changed = Signal()
     selected = Signal()
+    aligned = Signal(str)
 
     def __init__(self, viewer) -> None:
         super().__init__()
@@ -41,6 +42,8 @@ class Session(QObject):
         self.records: dict[str, Record] = {}
         self.current: str | None = None
         self.selection: tuple | None = None  # ('column' | 'motif', row index in the current result's table)
+        self.alignments: dict[str, tuple] = {}  # aligned-mean layer name -> (frames table, alignment info)
+        self.last_aligned: str | None = None
 
     # the current record's fields, as the docks read them
     @property
@@ -73,6 +76,22 @@ class Session(QObject):
         self.current = image
         self.selection = None
         self.changed.emit()
+
+    def set_alignment(self, image: str, table, info: dict) -> None:
+        """Record a frame series' alignment (shown in the plots dock) under the aligned-mean layer's name."""
+        self.alignments[image] = (table, dict(info))
+        self.last_aligned = image
+        self.aligned.emit(image)
+
+    def frames_table(self):
+        """(table, info, image) of the frame alignment to show: the current result's, else the last one made."""
+        result = self.result
+        if result is not None and result.tables.get("frames") is not None:
+            return result.tables["frames"], result.summary.get("frames") or {}, self.image
+        image = self.current if self.current in self.alignments else self.last_aligned
+        if image is None:
+            return None
+        return (*self.alignments[image], image)
 
     def show(self, image: str) -> None:
         """Make ``image``'s result the current one (no-op when it already is or has none)."""

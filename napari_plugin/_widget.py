@@ -45,7 +45,6 @@ from ._layers import (
     highlight_vectors,
     kind_of,
     layer_name,
-    micrograph_from_layer,
     motif_polygons,
     readable,
     regions_from_shapes,
@@ -103,8 +102,8 @@ def _job(kind, compute, frame, cancel, emit, build_columns, colour_by, image=Non
     fn, args, kwargs = compute
     try:
         result = run_in_process(fn, *args, emit=emit, cancel=cancel, **kwargs)
-        if frame is None:  # export, estimate: no layers; export returns its message
-            return _Outcome("ok", message=str(result), result=result, kind=kind)
+        if frame is None:  # export, estimate, align: no result layers; export returns its message
+            return _Outcome("ok", message=result if isinstance(result, str) else "", result=result, kind=kind)
         emit(1.0, "building layers")
         layers = result_layers(result, frame, image=image, columns=build_columns, colour_by=colour_by)
         if cancel.is_set():
@@ -322,6 +321,14 @@ class PipelineWidget(QWidget):
         form.addRow("Regions", self.regions_combo)
         form.addRow("Pixel size (nm)", self.pixel_size)
         form.addRow("Stack frames", self.frames)
+        self.align_frames = QCheckBox("Align frames")
+        self.align_frames.setChecked(True)
+        self.nonrigid = QCheckBox("Non-rigid")
+        self.align_button = QPushButton("Align stack")
+        row = QHBoxLayout()
+        for w in (self.align_frames, self.nonrigid, self.align_button):
+            row.addWidget(w)
+        form.addRow("", row)
         root.addWidget(box)
 
         self.nm_fields: dict[str, QLineEdit] = {}
@@ -441,6 +448,7 @@ class PipelineWidget(QWidget):
         root.addStretch(1)
 
         self._add_tooltips()
+        self.align_button.clicked.connect(self.align_stack)
         self.estimate_button.clicked.connect(self.estimate)
         self.preview_button.clicked.connect(self.preview)
         self.run_button.clicked.connect(self.run)
@@ -462,7 +470,15 @@ class PipelineWidget(QWidget):
             self.pixel_size: "Pixel size in nm per pixel. Empty: the calibration stored in the file; without one "
                              "every nm value is left empty (never guessed).",
             self.frames: "For a stack (a 3-D image layer): 'K' analyses frame K, 'A:B' the mean of frames A to "
-                         "B-1 (0-based). Empty for a single image.",
+                         "B-1 (0-based), aligned first when 'Align frames' is ticked. Empty for a single image.",
+            self.align_frames: "Register the frames of 'Stack frames' A:B to frame A (sub-pixel shifts, outlier "
+                               "frames left out) before averaging, so drift does not smear the columns; results "
+                               "are in frame A's coordinates. Off: the plain mean (with a note).",
+            self.nonrigid: "Also correct scan distortion that changes from frame to frame (a smooth displacement "
+                           "per image row); slower, off by default.",
+            self.align_button: "Align and average the frames 'Stack frames' A:B of the chosen stack now (in the "
+                               "background): adds the aligned mean as a new image layer, calibrated like the "
+                               "stack, and plots each frame's shift in the plots dock (Frames tab).",
             self.contrast: "Bright columns on a dark background (HAADF) or dark columns on a bright one "
                            "(HRTEM, ABF).",
             self.nm_fields["column_spacing_nm"]: "Nearest-neighbour distance between columns, in nm. Empty: "
@@ -691,38 +707,32 @@ class PipelineWidget(QWidget):
         self.status.setText(f"parameters saved to {path}")
 
     def _inputs(self, *, preview: bool = False):
-        """(image layer, micrograph, params, regions, frame) for a run; raises TenfoldInputError."""
+        """(image layer, layer record, params, regions, frame) for a job; the helper process builds the
+        micrograph from the record (``_layers.layer_source``: frame choice, alignment); raises
+        TenfoldInputError."""
         import dataclasses
 
         from tenfold.analysis._errors import TenfoldInputError
         from tenfold.analysis.region import Region
 
+        from ._layers import crop_offset, layer_source
+
         image_layer = self._layer(self.image_combo.currentText())
         if image_layer is None:
             raise TenfoldInputError("no image layer chosen: open a micrograph first (File > Open, or a sample)")
         params = self.parameters()
-        micrograph = micrograph_from_layer(image_layer, pixel_size_nm=params.pixel_size_nm,
-                                           frames=self.frames.text())
+        source = layer_source(image_layer, pixel_size_nm=params.pixel_size_nm, frames=self.frames.text(),
+                              align=self.align_frames.isChecked(), nonrigid=self.nonrigid.isChecked())
         regions_layer = self._layer(self.regions_combo.currentText())
         regions = regions_from_shapes(regions_layer, image_layer) if regions_layer is not None else []
         offset = (0, 0)
         if preview:
-            rows, cols = micrograph.data.shape
-            r0, c0 = max(0, (rows - PREVIEW_SIZE_PX) // 2), max(0, (cols - PREVIEW_SIZE_PX) // 2)
-            sl = np.s_[r0:r0 + PREVIEW_SIZE_PX, c0:c0 + PREVIEW_SIZE_PX]
-            micrograph.data = np.ascontiguousarray(micrograph.data[sl])
-            micrograph.valid = np.ascontiguousarray(micrograph.valid[sl])
-            micrograph.meta.shape = micrograph.data.shape
-            micrograph.meta.notes = micrograph.meta.notes + [
-                f"preview: central {micrograph.data.shape[0]} x {micrograph.data.shape[1]} px from row {r0}, col "
-                f"{c0}, without the Fourier stage (a crop this small cannot judge the scan distortion; Run does)"
-            ]
-            offset, regions = (r0, c0), []
+            offset, regions = crop_offset(np.shape(image_layer.data), PREVIEW_SIZE_PX), []
             # the distortion verdict needs the spot pattern of the whole field: a 256 px crop holds a few tiles,
             # and the indexing seeded from them called a clean image distorted while the full run did not
             params = dataclasses.replace(params, fourier=False, correct_distortion=False)
         regions = [Region(label=r.label, kind=r.kind, vertices_px=r.vertices_px) for r in regions]
-        return image_layer, micrograph, params, regions or None, frame_of(image_layer, offset_px=offset)
+        return image_layer, source, params, regions or None, frame_of(image_layer, offset_px=offset)
 
     # ---------------------------------------------------------------- actions
     def estimate(self) -> None:
@@ -734,12 +744,12 @@ class PipelineWidget(QWidget):
         if self.worker is not None:
             return
         try:
-            _, micrograph, params, _, _ = self._inputs()
+            _, source, params, _, _ = self._inputs()
         except Exception as exc:  # shown, never raised into Qt
             show_error(str(exc))
             return
 
-        compute = (estimate_job, (micrograph,), {"dark_columns": params.dark_columns})
+        compute = (estimate_job, (source,), {"dark_columns": params.dark_columns})
         self._launch("estimate", compute, None, None, build_columns=False)
 
     def _show_estimate(self, est: dict) -> None:
@@ -752,6 +762,72 @@ class PipelineWidget(QWidget):
             f"{label.lower()} {lab.text()[5:]}" for (_, label, key) in _NM_FIELDS
             for k2, lab in self.estimate_labels.items() if k2 == key))
 
+    def align_stack(self) -> None:
+        """Align and average the frames 'Stack frames' A:B (empty: every frame) of the chosen stack layer in the
+        helper process (``io.micrograph_from_array`` with ``align=True``); the aligned mean becomes a new image
+        layer, calibrated like the stack, carrying the validity mask and the frames table, and the shifts are
+        plotted in the plots dock."""
+        from napari.utils.notifications import show_error
+
+        from tenfold.analysis._errors import TenfoldInputError
+
+        from ._compute import align_job
+        from ._layers import is_stack, layer_source, parse_frames
+
+        if self.worker is not None:
+            return
+        try:
+            layer = self._layer(self.image_combo.currentText())
+            if layer is None or not is_stack(layer):
+                raise TenfoldInputError("Align stack: choose a stack (a 3-D image layer) as 'Image'; "
+                                        f"{'no image is chosen' if layer is None else repr(layer.name) + ' is a single image'}")
+            n = int(np.shape(layer.data)[0])
+            frame, frame_range = parse_frames(self.frames.text())
+            if frame is not None:
+                raise TenfoldInputError(f"'Stack frames': {self.frames.text().strip()!r} is one frame; give a range "
+                                        "A:B to align (or leave it empty for every frame)")
+            a, b = frame_range or (0, n)
+            params = self.parameters()
+            source = layer_source(layer, pixel_size_nm=params.pixel_size_nm, frames=f"{a}:{b}", align=True,
+                                  nonrigid=self.nonrigid.isChecked())
+        except Exception as exc:  # shown, never raised into Qt
+            show_error(labelled(str(exc)))
+            return
+        self._align_input = (layer, (a, b))
+        self._launch("align", (align_job, (source,), {}), None, None, build_columns=False)
+
+    def _show_alignment(self, micrograph) -> None:
+        """Add (or update) the aligned-mean layer of the last alignment and plot its shifts."""
+        from napari.utils.notifications import show_warning
+
+        from ._layers import FRAMES_KEY, image_layer_tuple
+
+        stack, (a, b) = self._align_input
+        alignment = micrograph.alignment
+        data, kwargs, _ = image_layer_tuple(micrograph, f"{stack.name} aligned {a}-{b - 1}")
+        kwargs["metadata"][FRAMES_KEY] = {"table": alignment.table, "info": alignment.info}
+        kwargs["translate"] = tuple(stack.translate[-2:])
+        name = kwargs["name"]
+        old = self._layer(name)
+        if old is not None and np.shape(old.data) == data.shape:  # a second alignment of the same frames
+            old.data = data
+            old.metadata.update(kwargs["metadata"])
+            self.image_combo.setCurrentText(name)
+        else:
+            if old is not None:
+                self.viewer.layers.remove(old)
+            self.viewer.add_image(data, **kwargs)  # chosen as the image to analyse next
+        info = alignment.info
+        self.session.set_alignment(name, alignment.table, info)
+        drift = info.get("residual_drift_px")
+        self.status.setText(
+            f"aligned frames {a}-{b - 1} of {stack.name}: {info.get('n_used')} of {info.get('n_frames')} used "
+            f"({info.get('method')}, reference {info.get('reference')}"
+            + (f", residual drift {drift:.3g} px" if isinstance(drift, (int, float)) else "")
+            + f"); new layer '{name}' (Run analyses it)")
+        for note in info.get("notes", []):
+            show_warning(labelled(note))
+
     def run(self) -> None:
         """Analyse the chosen image (inside the regions, if a regions layer is chosen) in a worker."""
         self._start_analysis(preview=False)
@@ -763,17 +839,18 @@ class PipelineWidget(QWidget):
     def _start_analysis(self, *, preview: bool) -> None:
         from napari.utils.notifications import show_error
 
-        from tenfold.analysis.pipeline import run_pipeline
+        from ._compute import analysis_job
 
         if self.worker is not None:
             return
         try:
-            image_layer, micrograph, params, regions, frame = self._inputs(preview=preview)
+            image_layer, source, params, regions, frame = self._inputs(preview=preview)
         except Exception as exc:
             show_error(str(exc))
             return
 
-        compute = (run_pipeline, (micrograph, params), {"regions": regions or None})
+        compute = (analysis_job, (source, params),
+                   {"regions": regions or None, "preview_px": PREVIEW_SIZE_PX if preview else None})
 
         context = (image_layer, frame, regions)
         self._launch("preview" if preview else "run", compute, frame, context, build_columns=True,
@@ -830,7 +907,8 @@ class PipelineWidget(QWidget):
             show_error(labelled(str(exc)))
             return
         compute = (batch_job, ([str(p) for p in inputs], str(folder)),
-                   {"params": params, "frame": frame, "frame_range": frame_range, "rerun": False})
+                   {"params": params, "frame": frame, "frame_range": frame_range, "rerun": False,
+                    "align": self.align_frames.isChecked(), "nonrigid": self.nonrigid.isChecked()})
         self._launch("batch", compute, None, None, build_columns=False)
 
     def cancel(self) -> None:
@@ -882,6 +960,9 @@ class PipelineWidget(QWidget):
             return
         if outcome.kind == "estimate":
             self._show_estimate(outcome.result)
+            return
+        if outcome.kind == "align":
+            self._show_alignment(outcome.result)
             return
         # an image's result layers are updated in place (one redraw each, no new visual, control widget or
         # selection move); new ones are inserted one per event-loop turn, so the GUI never stalls for the sum
@@ -963,7 +1044,7 @@ class PipelineWidget(QWidget):
 
     def _set_busy(self, busy: bool) -> None:
         for w in (self.estimate_button, self.preview_button, self.run_button, self.rerun_button,
-                  self.export_button, self.batch_button, self.load_button):
+                  self.export_button, self.batch_button, self.load_button, self.align_button):
             w.setEnabled(not busy)
         self.cancel_button.setEnabled(busy)
 
