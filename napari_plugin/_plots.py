@@ -399,9 +399,10 @@ class PlotsWidget(QWidget):
         for column, colour, label in (("shift_x_px", PALETTE[0], "shift x"), ("shift_y_px", PALETTE[1], "shift y")):
             v = table[column].to_numpy(float)
             ax.plot(frame[used], v[used], "o-", color=colour, ms=4, lw=1.0, label=f"{label} (used)")
-            if (~used).any():
-                ax.plot(frame[~used], v[~used], "x", color=PALETTE[4], ms=8, mew=1.8,
-                        label="left out" if column == "shift_x_px" else None)
+            if (~used).any():  # a shift measured for a frame left out: a red cross
+                ax.plot(frame[~used], v[~used], "x", color=PALETTE[4], ms=8, mew=1.8)
+        for k, f in enumerate(frame[~used]):  # every frame left out, measured or not: a red band
+            ax.axvspan(f - 0.3, f + 0.3, color=PALETTE[4], alpha=0.25, lw=0, label="left out" if k == 0 else None)
         reference = info.get("reference")
         if reference is not None:
             ax.axvline(reference, color="0.5", lw=0.8, ls=":", label="reference frame")
@@ -409,7 +410,8 @@ class PlotsWidget(QWidget):
         ax.set_ylabel("shift (px)", fontsize=8)
         ax.set_title(f"Frame shifts of {image}", fontsize=9)
         ax.tick_params(labelsize=7)
-        ax.legend(fontsize=7, frameon=False)
+        figure.subplots_adjust(bottom=0.32)
+        ax.legend(fontsize=7, frameon=False, ncol=2, loc="upper center", bbox_to_anchor=(0.5, -0.2))
         self._frames_ax = ax
         self._redraw(self.frames_canvas)
         left = table[~used]
