@@ -14,7 +14,7 @@ import math
 
 import numpy as np
 import pandas as pd
-from qtpy.QtCore import Qt
+from qtpy.QtCore import Qt, QTimer
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QComboBox,
@@ -80,8 +80,9 @@ def spacing_check(result) -> str | None:
 
 
 def _import_matplotlib_in_background() -> None:
-    """Import matplotlib's Qt canvas and figure in a daemon thread, once (about a second of import work that
-    froze the GUI when the plots dock opened); the first figure drawn waits for it if it is not done."""
+    """Import matplotlib's Qt canvas and figure (and the analysis modules the tabs use) in a daemon thread, once
+    (about a second of import work that froze the GUI when the plots dock opened); the first figure drawn waits
+    for it if it is not done."""
     import sys
     import threading
 
@@ -94,6 +95,9 @@ def _import_matplotlib_in_background() -> None:
         import matplotlib.backends.backend_qtagg  # noqa: F401
         import matplotlib.colors  # noqa: F401
         import matplotlib.figure  # noqa: F401
+
+        import tenfold.analysis.export  # noqa: F401  (the summary tab's table)
+        import tenfold.analysis.fourier  # noqa: F401
 
     threading.Thread(target=load, name="tenfold-matplotlib-import", daemon=True).start()
 
@@ -147,7 +151,9 @@ class PlotsWidget(QWidget):
         self._figures: dict = {}  # key -> (matplotlib figure, canvas), made when first drawn
         self._placeholders: dict = {}
         self._page: dict = {}  # key -> the tab page holding that figure
-        _import_matplotlib_in_background()
+        # once the docks are built and shown: a thread importing now would share the interpreter lock with
+        # (and so slow down) the construction the user is waiting for
+        QTimer.singleShot(0, _import_matplotlib_in_background)
         self.setMinimumWidth(440)
         root = QVBoxLayout(self)
         row = QHBoxLayout()

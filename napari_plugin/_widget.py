@@ -1,8 +1,10 @@
 """The analysis dock: pick an image and regions, set parameters, run, correct by hand, export.
 
-It only wires fields to :mod:`tenfold.analysis.pipeline`. Runs go to a napari worker thread; the pipeline's
-progress callback feeds the progress bar and reads the cancel flag; the result layers are built in the worker
-too, so the GUI thread only inserts finished layers.
+It only wires fields to :mod:`tenfold.analysis.pipeline`. Jobs run in a helper process (``_compute``), waited for
+by a napari worker thread; the pipeline's progress callback feeds the progress bar and reads the cancel flag; the
+micrograph is built in the helper too (frame choice and alignment of a stack through
+``io.micrograph_from_array``), and the result layers in the worker thread, so the GUI thread only updates or
+inserts finished layers (see docs/napari.md, Responsiveness).
 """
 
 from __future__ import annotations
@@ -225,29 +227,41 @@ def _warm_numba_in_background() -> None:
 
 
 #: Characters whose glyphs are made ahead, in idle time (legend, scale bar, status text on the canvas).
-_GLYPHS = "0123456789.-+ " + "abcdefghijklmnopqrstuvwxyz" + "ABCDEFGHIJKLMNOPQRSTUVWXYZ" + "()[]:;,/%=_'\"!?<>*#&"
+_GLYPHS = "0123456789.-+ " + "abcdefghijklmnopqrstuvwxyz" + "\u00b5():;,"  # the scale bar's and legend's
+_MORE_GLYPHS = "ABCDEFGHIJKLMNOPQRSTUVWXYZ" + "[]/%=_'\"!?<>*#&"
 
 
-def _warm_glyphs(viewer) -> None:
-    """Make the canvas font's glyphs one per event-loop turn while the user sets up the first run.
+def _warm_canvas(viewer) -> None:
+    """Prepare, one step per event-loop turn while the user sets up the first run, what the first result shows on
+    the canvas: the scale bar and the legend's text overlay (napari builds their visuals when they first become
+    visible, about 0.1 s each) and the font's glyphs.
 
-    vispy draws canvas text (our legend, the scale bar) from a signed-distance-field atlas that napari fills on
-    the GUI thread, 20-40 ms per new character (rendered at 256 pt and blurred on the CPU), during the paint
-    that first shows it: the first run's legend froze the viewer for about half a second. One glyph per turn
-    keeps each step far below that; characters already made cost nothing.
+    vispy draws canvas text from a signed-distance-field atlas that napari fills on the GUI thread, 20-40 ms per
+    new character (rendered at 256 pt and blurred on the CPU), during the paint that first shows it: the first
+    run's legend froze the viewer for about half a second. One step per turn keeps each far below that;
+    characters already made cost nothing.
     """
     viewer = getattr(viewer, "__wrapped__", viewer)  # a plugin dock's viewer proxy refuses private names
+    overlays = viewer.canvas.overlays
+
+    def show_text():
+        if not overlays.text.visible:
+            overlays.text.text = ""  # nothing to read yet; the legend fills it
+            overlays.text.visible = True
+
+    overlays_on = [lambda: setattr(overlays.scale_bar, "visible", True), show_text]
     try:  # napari's canvas internals: without them the glyphs are made when first drawn, as before
         info = viewer.window._qt_viewer.canvas._font_info
         font = info.font_manager.get_font(info.face)
+        # the characters first: an overlay shown before its glyphs exist makes them all in one paint
+        steps = [lambda c=c: font[c] for c in _GLYPHS] + overlays_on + [lambda c=c: font[c] for c in _MORE_GLYPHS]
     except Exception:  # noqa: BLE001
-        return
-    pending = list(_GLYPHS)
+        steps = overlays_on
 
     def step():
-        if pending:
+        if steps:
             try:
-                font[pending.pop(0)]
+                steps.pop(0)()
             except Exception:  # noqa: BLE001 - a glyph this font lacks is made (or not) when drawn
                 pass
             QTimer.singleShot(5, step)
@@ -268,7 +282,7 @@ class PipelineWidget(QWidget):
     def __init__(self, napari_viewer) -> None:
         super().__init__()
         _freeze_startup_objects()
-        _warm_numba_in_background()
+        QTimer.singleShot(0, _warm_numba_in_background)  # after the docks are built (see _plots)
         from ._compute import start
 
         start()  # the helper process loads the analysis code while the user sets up the first run
@@ -296,7 +310,7 @@ class PipelineWidget(QWidget):
         self.session.changed.connect(self._on_session_changed)
         self._refresh_layers()
         self._set_busy(False)
-        _warm_glyphs(self.viewer)
+        _warm_canvas(self.viewer)
 
     # ---------------------------------------------------------------- layout
     def _build(self) -> None:
@@ -779,8 +793,8 @@ class PipelineWidget(QWidget):
         try:
             layer = self._layer(self.image_combo.currentText())
             if layer is None or not is_stack(layer):
-                raise TenfoldInputError("Align stack: choose a stack (a 3-D image layer) as 'Image'; "
-                                        f"{'no image is chosen' if layer is None else repr(layer.name) + ' is a single image'}")
+                what = "no image is chosen" if layer is None else f"{layer.name!r} is a single image"
+                raise TenfoldInputError(f"Align stack: choose a stack (a 3-D image layer) as 'Image'; {what}")
             n = int(np.shape(layer.data)[0])
             frame, frame_range = parse_frames(self.frames.text())
             if frame is not None:
