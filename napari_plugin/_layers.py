@@ -189,10 +189,9 @@ def layer_source(layer, *, pixel_size_nm: float | None = None, frames: str = "",
                                 f"{layer.name!r} has {np.shape(data)[0]} (0-{np.shape(data)[0] - 1})")
     if not stack:
         frame = frame_range = None  # a single image: the field does not apply
-    if np.ndim(data) == 3 and not stack or np.ndim(data) not in (2, 3):
-        if not (np.ndim(data) == 3 and np.shape(data)[-1] in (3, 4)):
-            raise TenfoldInputError(f"image layer {layer.name!r}: needs a 2-D image or a stack of frames, got shape "
-                                    f"{np.shape(data)}")
+    if np.ndim(data) not in (2, 3):  # (a 3-D layer that is no stack is an RGB(A) image)
+        raise TenfoldInputError(f"image layer {layer.name!r}: needs a 2-D image or a stack of frames, got shape "
+                                f"{np.shape(data)}")
     stored = dict(layer.metadata.get(META_KEY) or {})
     if pixel_size_nm is not None:
         px, source = float(pixel_size_nm), "user"

@@ -144,7 +144,7 @@ class PlotsWidget(QWidget):
 
     def __init__(self, napari_viewer) -> None:
         super().__init__()
-        self.viewer = napari_viewer
+        self.viewer = getattr(napari_viewer, "__wrapped__", napari_viewer)  # as the analysis dock
         self.session = session_for(napari_viewer)
         self.worker = None
         self._spectrum = None

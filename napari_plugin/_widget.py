@@ -286,7 +286,9 @@ class PipelineWidget(QWidget):
         from ._compute import start
 
         start()  # the helper process loads the analysis code while the user sets up the first run
-        self.viewer = napari_viewer
+        # the viewer itself, not the proxy napari hands a plugin dock: updating layers in place uses a few of
+        # napari's private switches (see _layers.set_quietly), which the proxy refuses with a warning
+        self.viewer = getattr(napari_viewer, "__wrapped__", napari_viewer)
         self.session = session_for(napari_viewer)
         self.worker = None
         self._cancel = threading.Event()

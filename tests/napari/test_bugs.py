@@ -122,6 +122,11 @@ def test_plugin_menu_docks_share_one_session(make_napari_viewer, sample_path, qt
     assert plots.table.rowCount() > 0
     plots.tabs.setCurrentWidget(plots.pair_canvas.parentWidget())  # a tab is drawn when it is opened
     assert len(plots.pair_figure.axes[0].lines) >= 1
+    # a second run updates the layers in place through the dock's viewer (napari hands plugin docks a proxy that
+    # refuses private names with a warning, an error here)
+    points = analysis.result_layer("columns")
+    run_and_wait(qtbot, analysis)
+    assert notes["error"] == [] and analysis.result_layer("columns") is points
 
 
 # ---------------------------------------------------------------- 4. a second image
