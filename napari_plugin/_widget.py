@@ -812,8 +812,8 @@ class PipelineWidget(QWidget):
         self._align_input = (layer, (a, b))
         self._launch("align", (align_job, (source,), {}), None, None, build_columns=False)
 
-    def _show_alignment(self, micrograph) -> None:
-        """Add (or update) the aligned-mean layer of the last alignment and plot its shifts."""
+    def _alignment_steps(self, micrograph) -> list:
+        """Showing an alignment: add (or update) the aligned-mean layer, then plot its shifts and say so."""
         from napari.utils.notifications import show_warning
 
         from ._layers import FRAMES_KEY, image_layer_tuple
@@ -824,25 +824,31 @@ class PipelineWidget(QWidget):
         kwargs["metadata"][FRAMES_KEY] = {"table": alignment.table, "info": alignment.info}
         kwargs["translate"] = tuple(stack.translate[-2:])
         name = kwargs["name"]
-        old = self._layer(name)
-        if old is not None and np.shape(old.data) == data.shape:  # a second alignment of the same frames
-            old.data = data
-            old.metadata.update(kwargs["metadata"])
-            self.image_combo.setCurrentText(name)
-        else:
-            if old is not None:
-                self.viewer.layers.remove(old)
-            self.viewer.add_image(data, **kwargs)  # chosen as the image to analyse next
-        info = alignment.info
-        self.session.set_alignment(name, alignment.table, info)
-        drift = info.get("residual_drift_px")
-        self.status.setText(
-            f"aligned frames {a}-{b - 1} of {stack.name}: {info.get('n_used')} of {info.get('n_frames')} used "
-            f"({info.get('method')}, reference {info.get('reference')}"
-            + (f", residual drift {drift:.3g} px" if isinstance(drift, (int, float)) else "")
-            + f"); new layer '{name}' (Run analyses it)")
-        for note in info.get("notes", []):
-            show_warning(labelled(note))
+
+        def add_layer():
+            old = self._layer(name)
+            if old is not None and np.shape(old.data) == data.shape:  # a second alignment of the same frames
+                old.data = data
+                old.metadata.update(kwargs["metadata"])
+                self.image_combo.setCurrentText(name)
+            else:
+                if old is not None:
+                    self.viewer.layers.remove(old)
+                self.viewer.add_image(data, **kwargs)  # chosen as the image to analyse next
+
+        def plot():
+            info = alignment.info
+            self.session.set_alignment(name, alignment.table, info)
+            drift = info.get("residual_drift_px")
+            self.status.setText(
+                f"aligned frames {a}-{b - 1} of {stack.name}: {info.get('n_used')} of {info.get('n_frames')} used "
+                f"({info.get('method')}, reference {info.get('reference')}"
+                + (f", residual drift {drift:.3g} px" if isinstance(drift, (int, float)) else "")
+                + f"); new layer '{name}' (Run analyses it)")
+            for note in info.get("notes", []):
+                show_warning(labelled(note))
+
+        return [add_layer, plot]
 
     def run(self) -> None:
         """Analyse the chosen image (inside the regions, if a regions layer is chosen) in a worker."""
@@ -977,8 +983,10 @@ class PipelineWidget(QWidget):
         if outcome.kind == "estimate":
             self._show_estimate(outcome.result)
             return
-        if outcome.kind == "align":
-            self._show_alignment(outcome.result)
+        if outcome.kind == "align":  # the new layer, then the plot, each in its own event-loop turn
+            self._pending, self._pending_outcome = [], outcome
+            self._steps = self._alignment_steps(outcome.result)
+            QTimer.singleShot(0, self._insert_next)
             return
         # an image's result layers are updated in place (one redraw each, no new visual, control widget or
         # selection move); new ones are inserted one per event-loop turn, so the GUI never stalls for the sum
@@ -988,47 +996,72 @@ class PipelineWidget(QWidget):
         QTimer.singleShot(0, self._insert_next)
 
     def _insert_next(self) -> None:
+        """One step per event-loop turn: each result layer, then the steps of showing the outcome
+        (``_outcome_steps``), with a short pause, not 0 ms, in between, so the canvas paints each change apart (a
+        paint and the next step in one turn froze the GUI for their sum)."""
         if self._pending:
             self._put_layer(self._pending.pop(0))
-            # a short pause, not 0 ms: the canvas paints the change in between (a paint and the next insertion in
-            # one event-loop turn froze the GUI for their sum)
             QTimer.singleShot(_INSERT_GAP_MS, self._insert_next)
             return
         outcome = self._pending_outcome
+        if not hasattr(self, "_steps"):
+            self._steps = self._outcome_steps(outcome)
         try:
-            self._show_outcome(outcome)
-        finally:  # whatever happens in showing it, the dock is free again
-            self._pending_outcome = None
-            self._go_idle()
+            step = self._steps.pop(0)
+            step()
+        except Exception as exc:  # noqa: BLE001 - shown as one line; the dock is free again in any case
+            from napari.utils.notifications import show_error
 
-    def _show_outcome(self, outcome) -> None:
+            self._steps = []
+            show_error(f"{outcome.kind}: showing the result failed ({type(exc).__name__}: {exc})")
+        if self._steps:
+            QTimer.singleShot(_INSERT_GAP_MS, self._insert_next)
+            return
+        del self._steps
+        self._pending_outcome = None
+        self._go_idle()
+
+    def _outcome_steps(self, outcome) -> list:
+        """What showing a finished run, preview or re-run takes after its layers, one step per event-loop turn:
+        select the image's columns layer (with napari's features table open this rebuilds it), the re-run's
+        columns, the result in both docks, the notes."""
         image_layer, frame, regions = self._context
         image = self._image
         points = self._layer(layer_name("columns", image))
-        if points is not None:
-            self.viewer.layers.selection.active = points
-        if outcome.kind == "re-run" and points is not None:
-            self._update_columns_layer(points, outcome.result.tables["columns"])
-        self.session.set_result(outcome.result, frame, image_layer, regions or [], image=image)
-        built = outcome.kind != "re-run" and self.colour_by.currentText() == self._launch_colour
-        self._recolour(self.colour_by.currentText(), colours=not built)  # a new layer has its colours already
-        self.viewer.canvas.overlays.scale_bar.visible = True
-        summary = outcome.result.summary
-        self.status.setText(f"{outcome.kind} of {image}: {status_counts(outcome.result)}"
-                            + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
-        # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not hidden;
-        # what only describes the run (a preview's crop, the analysed box) is information
-        from napari.utils.notifications import show_info, show_warning
 
-        from ._plots import spacing_check
+        def select():
+            if points is not None:
+                self.viewer.layers.selection.active = points
 
-        check = spacing_check(outcome.result)
-        if check:
-            show_warning(check)
-        for note in summary.get("notes", []):
-            if note.startswith("uncalibrated"):
-                continue
-            (show_info if note.startswith(_INFO_NOTES) else show_warning)(labelled(note))
+        def rerun_columns():
+            if outcome.kind == "re-run" and points is not None:
+                self._update_columns_layer(points, outcome.result.tables["columns"])
+
+        def result():
+            self.session.set_result(outcome.result, frame, image_layer, regions or [], image=image)
+            built = outcome.kind != "re-run" and self.colour_by.currentText() == self._launch_colour
+            self._recolour(self.colour_by.currentText(), colours=not built)  # a new layer has its colours
+            self.viewer.canvas.overlays.scale_bar.visible = True
+            summary = outcome.result.summary
+            self.status.setText(f"{outcome.kind} of {image}: {status_counts(outcome.result)}"
+                                + ("" if summary.get("calibrated", True) else " (uncalibrated: nm values are NaN)"))
+
+        def notes():
+            # what could mislead (scan distortion, masked pixels, a ladder that does not hold) is said, not
+            # hidden; what only describes the run (a preview's crop, the analysed box) is information
+            from napari.utils.notifications import show_info, show_warning
+
+            from ._plots import spacing_check
+
+            check = spacing_check(outcome.result)
+            if check:
+                show_warning(check)
+            for note in outcome.result.summary.get("notes", []):
+                if note.startswith("uncalibrated"):
+                    continue
+                (show_info if note.startswith(_INFO_NOTES) else show_warning)(labelled(note))
+
+        return [select, rerun_columns, result, notes]
 
     def _update_columns_layer(self, points, table) -> None:
         """After a re-run the edited columns layer is kept; its ids (new ones for added columns) and the fitted
