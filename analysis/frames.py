@@ -84,6 +84,8 @@ REJECT_FRACTION = 0.8
 #: below this share of the frames' power in structure (noise alone gives < 0.005 on 64-512 px frames, a decagonal
 #: frame with 2.5 counts per column peak 0.14; measured in tests/test_frames.py) the frames cannot be registered
 MIN_SIGNAL_SHARE = 0.02
+#: consecutive frames whose second correlation peak reaches this share of the first show a repeating structure
+PERIODIC_RATIO = 0.8
 #: non-rigid step: rows per strip (at least), and strips per frame (at most)
 STRIP_ROWS = 32
 MAX_STRIPS = 32
@@ -248,11 +250,15 @@ class _Band:
         return ey[:, self.row] * ex[:, self.col]
 
 
-def _integer_peaks(cross: np.ndarray, band: _Band) -> np.ndarray:
-    """(n, 2) (dx, dy) of the highest point of each weighted cross-correlation map (whole map searched).
+def _integer_peaks(cross: np.ndarray, band: _Band) -> tuple[np.ndarray, np.ndarray]:
+    """(n, 2) (dx, dy) of the highest point of each weighted cross-correlation map (whole map searched), and for
+    each map the ratio of its second-highest separate peak to the highest.
 
     The band holds no frequency above its largest |qx|, |qy|, so the map is computed on a coarser grid that still
-    samples it (spectrum cropped to the band), in steps of ``h / sh``, ``w / sw`` px; Newton steps refine it.
+    samples it (spectrum cropped to the band), in steps of ``h / sh``, ``w / sw`` px; Newton steps refine it. A
+    periodic structure gives every lattice translation (nearly) the same height, so among the points within
+    ``1 - PERIODIC_RATIO`` of the highest the smallest shift is taken (for an aperiodic structure that is the
+    highest point itself). A ratio near 1 says the structure repeats.
     """
     h, w = band.grid.shape
     sh, sw, keep = band.map_grid()
@@ -260,11 +266,22 @@ def _integer_peaks(cross: np.ndarray, band: _Band) -> np.ndarray:
     small = np.zeros((len(cross), sh, sw // 2 + 1), dtype=np.complex64)
     small[:, rows, band.col[keep]] = cross[:, keep]
     maps = sfft.irfft2(small, s=(sh, sw), workers=_WORKERS)
-    flat = maps.reshape(len(maps), -1).argmax(axis=1)
+    flat_maps = maps.reshape(len(maps), -1)
+    top = flat_maps.max(axis=1)
+    lag2 = ((np.fft.fftfreq(sh) * h)[:, None] ** 2 + (np.fft.fftfreq(sw) * w)[None, :] ** 2).ravel()
+    flat = np.where(flat_maps >= (PERIODIC_RATIO * top)[:, None], lag2[None, :], np.inf).argmin(axis=1)
     iy, ix = np.divmod(flat, sw)
+    best = flat_maps.argmax(axis=1)
+    by, bx = np.divmod(best, sw)
+    # the second peak: the highest point more than a few grid steps (about a column width) from the first
+    yy = np.abs(((np.arange(sh)[None, :] - by[:, None]) + sh // 2) % sh - sh // 2)
+    xx = np.abs(((np.arange(sw)[None, :] - bx[:, None]) + sw // 2) % sw - sw // 2)
+    near = (yy[:, :, None] <= 3) & (xx[:, None, :] <= 3)
+    second = np.where(near, -np.inf, maps).reshape(len(maps), -1).max(axis=1)
+    ratio = np.where(top > 0, second / np.maximum(top, 1e-30), 1.0)
     iy = np.where(iy > sh // 2, iy - sh, iy) * (h / sh)
     ix = np.where(ix > sw // 2, ix - sw, ix) * (w / sw)
-    return np.stack([ix, iy], axis=1).astype(np.float64)
+    return np.stack([ix, iy], axis=1).astype(np.float64), ratio
 
 
 def _coarse(band: _Band) -> float:
@@ -331,15 +348,18 @@ def _crop_box(shape: tuple[int, int], n_frames: int) -> tuple[int, int, int, int
     return r0, r0 + ch, c0, c0 + cw
 
 
-def _first_guess(spectra: np.ndarray, band: _Band, n0: float) -> np.ndarray:
-    """Shifts from consecutive frames registered to each other (whole map searched), summed (module step 3)."""
+def _first_guess(spectra: np.ndarray, band: _Band, n0: float) -> tuple[np.ndarray, float]:
+    """Shifts from consecutive frames registered to each other (whole map searched), summed (module step 3), and the
+    median second-to-first peak ratio of their correlation maps."""
     shifts = np.zeros((len(spectra), 2))
     if len(spectra) > 1:
         sel = band.take(spectra)
         cross = np.conj(sel[:-1]) * sel[1:] * band.weight(n0, 1.0)
-        step, _ = _newton(cross, band, _integer_peaks(cross, band), steps=2 * NEWTON_STEPS, reach=_coarse(band))
+        peaks, ratio = _integer_peaks(cross, band)
+        step, _ = _newton(cross, band, peaks, steps=2 * NEWTON_STEPS, reach=_coarse(band))
         shifts[1:] = np.cumsum(step, axis=0)
-    return shifts
+        return shifts, float(np.median(ratio))
+    return shifts, 0.0
 
 
 def _register(crops: np.ndarray, spectra: np.ndarray, band: _Band, n0: float, used: np.ndarray, shifts: np.ndarray,
@@ -371,7 +391,7 @@ def _register(crops: np.ndarray, spectra: np.ndarray, band: _Band, n0: float, us
         reach = 0.5
         start = shifts
         if rnd == 0:  # keep the guess where the whole-map peak agrees with it to within the map's grid step
-            peaks = _integer_peaks(cross, band)
+            peaks, _ = _integer_peaks(cross, band)
             reach = _coarse(band)
             far = np.any(np.abs(peaks - shifts) > reach + 0.5, axis=1)
             start = np.where(far[:, None], peaks, shifts)
@@ -715,7 +735,11 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     spectra = _spectra(crops, np.zeros((n, 2)))
     n0, signal = _power(spectra[usable], grid)
     _check_structure(n0, signal, grid)
-    guess = _first_guess(spectra, _Band(grid, signal), n0)
+    guess, repeat = _first_guess(spectra, _Band(grid, signal), n0)
+    if repeat > PERIODIC_RATIO:
+        notes.append(f"frames: the structure repeats (the second correlation peak is {100 * repeat:.0f} % of the "
+                     "first), so a shift is known only up to a lattice translation; the smallest shift that fits is "
+                     "taken, and a jump of more than half a lattice spacing between frames would be missed")
     del spectra
     report(progress, 0.1, "frames: first guess from consecutive frames")
     for attempt in range(3):
