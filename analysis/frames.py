@@ -348,18 +348,23 @@ def _crop_box(shape: tuple[int, int], n_frames: int) -> tuple[int, int, int, int
     return r0, r0 + ch, c0, c0 + cw
 
 
-def _first_guess(spectra: np.ndarray, band: _Band, n0: float) -> tuple[np.ndarray, float]:
-    """Shifts from consecutive frames registered to each other (whole map searched), summed (module step 3), and the
-    median second-to-first peak ratio of their correlation maps."""
+def _first_guess(spectra: np.ndarray, band: _Band, n0: float, usable: np.ndarray) -> tuple[np.ndarray, float]:
+    """Shifts from consecutive usable frames registered to each other (whole map searched), summed (module step 3),
+    and the median second-to-first peak ratio of their correlation maps. Unusable frames get the shift of the
+    usable frame before them."""
     shifts = np.zeros((len(spectra), 2))
-    if len(spectra) > 1:
-        sel = band.take(spectra)
-        cross = np.conj(sel[:-1]) * sel[1:] * band.weight(n0, 1.0)
-        peaks, ratio = _integer_peaks(cross, band)
-        step, _ = _newton(cross, band, peaks, steps=2 * NEWTON_STEPS, reach=_coarse(band))
-        shifts[1:] = np.cumsum(step, axis=0)
-        return shifts, float(np.median(ratio))
-    return shifts, 0.0
+    ks = np.flatnonzero(usable)
+    if len(ks) < 2:
+        return shifts, 0.0
+    sel = band.take(spectra[ks])
+    cross = np.conj(sel[:-1]) * sel[1:] * band.weight(n0, 1.0)
+    peaks, ratio = _integer_peaks(cross, band)
+    step, _ = _newton(cross, band, peaks, steps=2 * NEWTON_STEPS, reach=_coarse(band))
+    at = np.zeros((len(ks), 2))
+    at[1:] = np.cumsum(step, axis=0)
+    # every frame takes the shift of the last usable frame at or before it (the first usable one for leading ones)
+    idx = np.clip(np.searchsorted(ks, np.arange(len(spectra)), side="right") - 1, 0, None)
+    return at[idx], float(np.median(ratio))
 
 
 def _register(crops: np.ndarray, spectra: np.ndarray, band: _Band, n0: float, used: np.ndarray, shifts: np.ndarray,
@@ -735,7 +740,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     spectra = _spectra(crops, np.zeros((n, 2)))
     n0, signal = _power(spectra[usable], grid)
     _check_structure(n0, signal, grid)
-    guess, repeat = _first_guess(spectra, _Band(grid, signal), n0)
+    guess, repeat = _first_guess(spectra, _Band(grid, signal), n0, usable)
     if repeat > PERIODIC_RATIO:
         notes.append(f"frames: the structure repeats (the second correlation peak is {100 * repeat:.0f} % of the "
                      "first), so a shift is known only up to a lattice translation; the smallest shift that fits is "
