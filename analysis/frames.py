@@ -456,8 +456,8 @@ def _check_structure(n0: float, signal: np.ndarray, grid: _Grid) -> float:
     sd = _shift_sd(n0, signal, grid)
     if not math.isfinite(sd) or share < MIN_SIGNAL_SHARE or sd > 1.0:
         raise TenfoldInputError("frames: the frames hold no common structure above their noise, so they cannot be "
-                                "registered; average them without alignment (--no-align; align=False in Python) or check the frame "
-                                "range")
+                                "registered; average them without alignment (--no-align; align=False in Python) "
+                                "or check the frame range")
     return sd
 
 
