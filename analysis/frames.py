@@ -540,7 +540,7 @@ def _mean_of(stack, ks, shifts, fill_valid, progress, label, resample=None
         raise TenfoldInputError("frames: no pixel is covered by every used frame (the drift is larger than the "
                                 "image); align a shorter range of frames")
     var = np.where(full, (squares - len(ks) * mean * mean) / max(len(ks) - 1, 1), np.nan)
-    mean[~full] = np.median(mean[full])
+    mean[count == 0] = np.median(mean[full])  # partly covered pixels keep the mean of the frames that cover them
     return mean.astype(np.float32), full, var
 
 
