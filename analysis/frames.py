@@ -646,7 +646,7 @@ def _row_fields(stack, ks, shifts, mean, valid, fill_valid, progress) -> dict[in
         for a in range(2):
             lam = None if n_strips > 4 else 1e6
             spl = make_smoothing_spline(centres, d[:, a], lam=lam)
-            field_k[:, a] = spl(rows)
+            field_k[:, a] = spl(np.clip(rows, centres[0], centres[-1]))  # held, not extrapolated, at the ends
         fields[k] = field_k
         report(progress, (i + 1) / len(ks), f"frames: non-rigid rows, frame {i + 1} of {len(ks)}")
     return fields
