@@ -110,12 +110,12 @@ class Parameters:
 
     def validate(self) -> "Parameters":
         """Check every value; raise :class:`TenfoldInputError` naming the first bad parameter."""
+        check_pixel_size(self.pixel_size_nm, "parameter pixel_size_nm")  # the one calibration check
         for name in ("column_diameter_nm", "column_spacing_nm", "ring_radius_nm",
                      "ladder_r_max_nm", "d0_nm", "tiling_edge_nm", "min_mass", *(f"{b}_px" for b in LENGTHS)):
             v = getattr(self, name)
             if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
                 raise TenfoldInputError(f"parameter {name} must be a positive number (or empty for automatic), got {v!r}")
-        check_pixel_size(self.pixel_size_nm, "parameter pixel_size_nm")
         if not isinstance(self.rng, np.random.Generator) and (
                 isinstance(self.rng, bool) or not (isinstance(self.rng, (int, np.integer)) and self.rng >= 0)):
             raise TenfoldInputError(f"parameter rng must be a whole number 0 or larger (the seed), got {self.rng!r}")

@@ -38,7 +38,7 @@ import pandas as pd
 from ._errors import TenfoldInputError
 from ._pentagrid import E_PERP, TAU
 from ._schema import PHASON_MAP, conform, empty_table
-from ._strain import strain_summary  # noqa: F401  (public here too)
+from ._strain import strain_summary
 from .fourier import _compare_phason, fourier_phason_summary
 
 __all__ = ["lift_tiling", "phason_from_network", "window_contains", "phason_map_figure", "phason_stage",
