@@ -27,7 +27,12 @@ class ImageMeta:
     shape : tuple of int
         (rows, cols) of the analysed 2-D image.
     frames : str
-        What was taken from a stack: '' for a plain 2-D image, 'frame 3', 'mean of frames 0-9'.
+        What was taken from a stack: '' for a plain 2-D image, 'frame 3', 'mean of frames 0-9', 'aligned mean of
+        frames 0-11 (reference 0)'.
+    frames_averaged : int
+        How many frames the analysed image averages (1 for a single image or frame).
+    frames_hold_counts : bool
+        The averaged frames held whole non-negative numbers (raw counts), so the image is counts / frames_averaged.
     converted_from_rgb : bool
         True when an RGB(A) image was converted to luminance.
     masked_fraction : float
@@ -44,6 +49,8 @@ class ImageMeta:
     original_dtype: str = "float32"
     shape: tuple[int, int] = (0, 0)
     frames: str = ""
+    frames_averaged: int = 1
+    frames_hold_counts: bool = False
     converted_from_rgb: bool = False
     masked_fraction: float = 0.0
     sha256: str = ""
@@ -65,12 +72,14 @@ class Micrograph:
     """A 2-D float32 image with its metadata and validity mask.
 
     ``valid`` is a boolean array of the image shape, False where the file had NaN/inf (those pixels hold the
-    median of the valid pixels in ``data`` so filters behave, and no column is reported there).
+    median of the valid pixels in ``data`` so filters behave, and no column is reported there). ``alignment`` is
+    the :class:`~tenfold.analysis.frames.FrameAlignment` when the image is the aligned mean of a frame series.
     """
 
     data: np.ndarray
     meta: ImageMeta
     valid: np.ndarray | None = None
+    alignment: object | None = None
 
     def __post_init__(self) -> None:
         if self.valid is None:

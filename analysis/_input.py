@@ -23,8 +23,12 @@ _MAPPABLE = tuple(np.dtype(t) for t in (np.uint8, np.int8, np.uint16, np.int16, 
 _SAMPLE_PX = 1_000_000
 
 
-def read_for_run(path, execution, *, pixel_size_nm=None, frame=None, frame_range=None):
+def read_for_run(path, execution, *, pixel_size_nm=None, frame=None, frame_range=None, align=True, nonrigid=False,
+                 align_reference=None, progress=None):
     """The micrograph of ``path`` for a run with ``execution`` (see the module docstring).
+
+    A ``frame_range`` of a stack is aligned before it is averaged unless ``align`` is False (see
+    :func:`~tenfold.analysis.io.read_micrograph` for ``nonrigid``, ``align_reference`` and ``progress``).
 
     Returns
     -------
@@ -46,7 +50,8 @@ def read_for_run(path, execution, *, pixel_size_nm=None, frame=None, frame_range
         mg = None
     if mg is not None:
         return mg
-    return read_micrograph(path, pixel_size_nm=pixel_size_nm, frame=frame, frame_range=frame_range)
+    return read_micrograph(path, pixel_size_nm=pixel_size_nm, frame=frame, frame_range=frame_range, align=align,
+                           nonrigid=nonrigid, align_reference=align_reference, progress=progress)
 
 
 def _needs_whole_read(data) -> bool:

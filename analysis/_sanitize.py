@@ -208,8 +208,11 @@ def masked_reach_note(ok: np.ndarray, sigma_px: float, *, label: str = "image") 
     if n_masked == 0:
         return None
     reach = int(math.ceil(2.0 * sigma_px + 0.5))
-    lost = ndimage.maximum_filter(masked.view(np.uint8), size=2 * reach + 1)
-    share_lost = float(np.count_nonzero(lost)) / ok.size
+    # the image edge keeps columns out anyway: count only what the mask costs beyond that, so a masked band along
+    # the edges (the drift margin of an aligned frame series) costs no more than its own area
+    lost = ndimage.maximum_filter(masked.view(np.uint8), size=2 * reach + 1, mode="constant", cval=1)
+    edge = ndimage.maximum_filter(np.zeros(ok.shape, np.uint8), size=2 * reach + 1, mode="constant", cval=1)
+    share_lost = float(np.count_nonzero(lost) - np.count_nonzero(edge)) / ok.size
     share_masked = n_masked / ok.size
     if share_lost < 1.5 * share_masked or share_lost < 0.01:
         return None

@@ -35,6 +35,7 @@ __all__ = [
     "TABLES",
     "EXTRAS",
     "SUMMARY_KEYS",
+    "FRAMES",
     "empty_table",
     "conform",
 ]
@@ -241,6 +242,23 @@ TABLES: dict[str, tuple[Field, ...]] = {
 }
 
 
+#: A frame series' shifts (``frames.csv``, workbook sheet ``frames``): written only when a stack's frames were
+#: aligned (``--frames A:B``), so it is not one of the tables every run writes.
+FRAMES = _fields(
+    ("frame", "int64", "", "frame index in the file"),
+    ("shift_x_px", "float64", "px", "specimen displacement in this frame relative to the reference frame, x "
+                                    "(frame(x) = reference(x - shift)); NaN for a blank frame"),
+    ("shift_y_px", "float64", "px", "the same, y"),
+    ("correlation", "float64", "", "weighted correlation coefficient with the mean of the other used frames"),
+    ("used", "bool", "", "the frame is in the aligned mean"),
+    ("reason", "object", "", "why a frame was left out ('' when used)"),
+    ("shift_sd_px", "float64", "px", "standard deviation of each shift component relative to the reference, from "
+                                     "the frames' measured noise (0 for the reference)"),
+    ("wobble_rms_px", "float64", "px", "non-rigid step: RMS per-row displacement beyond the rigid shift; NaN "
+                                       "without it"),
+)
+
+
 #: Keys of summary.json that other tools read (section -> [(key, meaning)]); sections of other stages are
 #: described in their modules.
 SUMMARY_KEYS: dict[str, tuple[tuple[str, str], ...]] = {
@@ -273,6 +291,17 @@ SUMMARY_KEYS: dict[str, tuple[tuple[str, str], ...]] = {
         ("source", "'indexing' or 'shell_ellipse'"),
         ("significant", "the matrix differs from the identity by more than 3 standard errors"),
         ("max_shift_px", "largest position change"),
+    ),
+    "frames": (
+        ("method", "'rigid' or 'rigid + non-rigid rows' (present only for an aligned frame series)"),
+        ("reference", "file index of the frame whose coordinates every result uses"),
+        ("n_frames", "frames in the range"),
+        ("n_used", "frames in the aligned mean"),
+        ("rejected", "file indices of the frames left out"),
+        ("residual_drift_px", "largest shift change in the last registration round (convergence)"),
+        ("drift_px_per_frame", "straight-line drift rate through the shifts, [x, y]"),
+        ("shift_sd_px", "median shift standard deviation"),
+        ("covered_fraction", "share of the field every used frame covers (the rest is masked)"),
     ),
     # how each user length was resolved to px before the stages ran (_lengths.lengths_record)
     "lengths_px": tuple(
@@ -330,6 +359,10 @@ def schema_markdown() -> str:
         lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in fields]
         lines += [f"| `{f.name}` (extra) | {f.dtype} | {f.unit} | {f.doc} |" for f in EXTRAS.get(key, ())]
         lines.append("")
+    lines += ["## frames (`frames.csv`, workbook sheet `frames`; only for an aligned frame series)", "",
+              "| column | dtype | unit | meaning |", "| --- | --- | --- | --- |"]
+    lines += [f"| `{f.name}` | {f.dtype} | {f.unit} | {f.doc} |" for f in FRAMES]
+    lines += ["", "`aligned_mean.tif` beside it holds the aligned mean, calibrated like the input.", ""]
     lines += ["## summary.json sections (contract keys)", ""]
     for section, keys in SUMMARY_KEYS.items():
         lines += [f"### `{section}`", "", "| key | meaning |", "| --- | --- |"]

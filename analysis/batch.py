@@ -210,7 +210,7 @@ def _classify(items: list[BatchItem], out: Path, params_text: str, rerun: bool) 
 
 
 def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, figures: bool, overwrite: bool,
-                   execution: dict) -> dict:
+                   execution: dict, align: bool = True, nonrigid: bool = False) -> dict:
     """Analyse one image into ``folder`` (runs in the batch process or on a dask worker); never raises."""
     t0 = time.perf_counter()
     try:
@@ -226,7 +226,7 @@ def _analyse_image(path: str, folder: str, params: dict, frame, frame_range, fig
             ex = Execution(**execution)
             # a large image that will be tiled is memory-mapped, not read whole
             mg = read_for_run(path, ex, pixel_size_nm=params.get("pixel_size_nm"), frame=frame,
-                              frame_range=frame_range)
+                              frame_range=frame_range, align=align, nonrigid=nonrigid)
             check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
             result = run_pipeline(mg, Parameters.from_dict(params), execution=ex)
             write_results(result, folder, overwrite=overwrite, figures=figures)
@@ -245,6 +245,8 @@ def run_batch(
     *,
     frame: int | None = None,
     frame_range: tuple[int, int] | None = None,
+    align: bool = True,
+    nonrigid: bool = False,
     rerun: bool = False,
     figures: bool = True,
     execution=None,
@@ -263,6 +265,8 @@ def run_batch(
         The same for every image (default: everything automatic).
     frame, frame_range : optional
         For stacks, as in :func:`~tenfold.analysis.io.read_micrograph` (frame series: ``frame_range`` averages).
+    align, nonrigid : bool
+        Frame series: register the frames before averaging (default), also per row; as in ``read_micrograph``.
     rerun : bool
         Analyse every image again, replacing existing sub-folders (default False: finished images are skipped,
         so an interrupted batch resumes where it stopped).
@@ -317,7 +321,7 @@ def run_batch(
     else:
         inner.update(workers=1)
     tasks = [(_analyse_image, (str(it.path), str(out / it.folder), params.to_dict(), frame, frame_range, figures,
-                               rerun, inner)) for it in todo]
+                               rerun, inner, align, nonrigid)) for it in todo]
     errors = {}
     stop = False
     for k, res in map_tasks(tasks, execution if images_parallel else None):

@@ -180,12 +180,27 @@ def _execution(args):
     return Execution(tile_size=args.tile_size, workers=args.workers, scheduler=args.scheduler)
 
 
-def _read_for(args, execution):
+def _read_for(args, execution, progress=None):
     """The micrograph: memory-mapped when it will be tiled and the file allows it, else read whole."""
     from ._input import read_for_run
 
     return read_for_run(args.image, execution, pixel_size_nm=args.pixel_size, frame=args.frame,
-                        frame_range=args.frames)
+                        frame_range=args.frames, align=not args.no_align, nonrigid=args.nonrigid,
+                        align_reference=args.align_reference, progress=progress)
+
+
+def _add_frame_options(group, *, reference: bool) -> None:
+    """The frame-series options of analyze, info and batch (one wording everywhere)."""
+    group.add_argument("--no-align", action="store_true",
+                       help="with --frames: average the frames as they are (default: register them to the first "
+                       "frame of the range, sub-pixel, before averaging)")
+    group.add_argument("--nonrigid", action="store_true",
+                       help="with --frames: also correct per-row scan distortions that change from frame to frame "
+                       "(slower)")
+    if reference:
+        group.add_argument("--align-reference", type=int, metavar="K",
+                           help="with --frames: the frame (file index) whose coordinates the results use; default "
+                           "the first frame of the range")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -216,7 +231,10 @@ def build_parser() -> argparse.ArgumentParser:
     cal = a.add_argument_group("calibration and image")
     cal.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
     cal.add_argument("--frame", type=int, metavar="K", help="for a stack: analyse frame K (0-based)")
-    cal.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: analyse the mean of frames A..B-1")
+    cal.add_argument("--frames", type=_frames, metavar="A:B",
+                     help="for a stack: analyse the aligned mean of frames A..B-1 (see --no-align); writes frames.csv "
+                     "and aligned_mean.tif")
+    _add_frame_options(cal, reference=True)
     cal.add_argument("--region", action="append", metavar="X0,Y0,X1,Y1",
                      help="rectangle to analyse (repeatable: each is a labelled region); corners in --region-unit")
     cal.add_argument("--region-unit", choices=("nm", "px"), default="nm", help="unit of --region corners (default nm)")
@@ -269,7 +287,8 @@ def build_parser() -> argparse.ArgumentParser:
     i.add_argument("image", type=Path)
     i.add_argument("--pixel-size", type=_pixel_size, metavar="NM", help="pixel size in nm; overrides the file")
     i.add_argument("--frame", type=int, metavar="K", help="for a stack: show frame K (0-based)")
-    i.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: show the mean of frames A..B-1")
+    i.add_argument("--frames", type=_frames, metavar="A:B", help="for a stack: show the aligned mean of frames A..B-1")
+    _add_frame_options(i, reference=True)
     i.add_argument("--dark-columns", action="store_true",
                    help="columns darker than the background (HRTEM-like contrast), for the automatic scale; "
                    "default: bright (HAADF)")
@@ -293,7 +312,9 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--pixel-size", type=_positive, metavar="NM", help="pixel size in nm for every image; overrides "
                    "the files and the parameters file")
     b.add_argument("--frame", type=int, metavar="K", help="for stacks: analyse frame K")
-    b.add_argument("--frames", type=_frames, metavar="A:B", help="for stacks: analyse the mean of frames A..B-1")
+    b.add_argument("--frames", type=_frames, metavar="A:B",
+                   help="for stacks: analyse the aligned mean of frames A..B-1 (see --no-align)")
+    _add_frame_options(b, reference=False)
     b.add_argument("--rerun", action="store_true",
                    help="analyse every image again and replace its sub-folder (default: skip finished images)")
     b.add_argument("--no-figures", action="store_true", help="no per-image figures (the comparison figure is drawn)")
@@ -438,7 +459,7 @@ def _analyze(args) -> int:
     prog = _Progress(args.quiet)
     prog(0.0, f"reading {args.image}")
     t_read = time.perf_counter()
-    mg = _read_for(args, execution)
+    mg = _read_for(args, execution, progress=prog if args.frames else None)
     t_read = time.perf_counter() - t_read
     check_lengths(params, mg.data.shape, mg.meta.pixel_size_nm)
     execution = _capped(execution, mg.data.shape)
@@ -526,6 +547,7 @@ def _batch(args) -> int:
 
     try:
         table = run_batch(args.inputs, args.out, params, frame=args.frame, frame_range=args.frames,
+                          align=not args.no_align, nonrigid=args.nonrigid,
                           rerun=args.rerun, figures=not args.no_figures, execution=_execution(args),
                           progress=progress)
     finally:
@@ -546,8 +568,12 @@ def _info(args) -> int:
 
     check_image_file(args.image)
 
-    mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames)
+    mg = read_micrograph(args.image, pixel_size_nm=args.pixel_size, frame=args.frame, frame_range=args.frames,
+                         align=not args.no_align, nonrigid=args.nonrigid, align_reference=args.align_reference)
     out = mg.meta.to_dict()
+    if mg.alignment is not None:
+        out["frames_alignment"] = mg.alignment.info
+        out["frames_table"] = mg.alignment.table.to_dict(orient="records")
     out["automatic_scale"] = estimate_defaults(mg, dark_columns=args.dark_columns)
     print(json.dumps(out, indent=2, default=str))
     return 0

@@ -507,7 +507,7 @@ def _model_image(shape, fit, good):
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
                  column_diameter_nm=None, column_spacing_nm=None, column_diameter_px=None, column_spacing_px=None,
                  min_mass=None, flatten=False, n_species=None, rng=0, tile_size=None, overlap_px=None,
-                 execution=None, progress=None) -> tuple[pd.DataFrame, dict]:
+                 execution=None, progress=None, frames_averaged=1) -> tuple[pd.DataFrame, dict]:
     """Find and refine the atomic columns of an image, whole or in tiles, with one result.
 
     Parameters
@@ -549,6 +549,9 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         Workers / scheduler for the tiles (default serial).
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
+    frames_averaged : int
+        The image is the mean of this many frames of raw counts (a frame series): the first noise model is then
+        Poisson counts scaled by ``1 / frames_averaged`` (still checked against the fit residuals). Default 1.
 
     Returns
     -------
@@ -625,7 +628,8 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     own_sample = sample == (0, img.shape[0], 0, img.shape[1]) and not tiled
     auto: dict = {}
     settings, last, rounds, polarity = _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes,
-                                               progress=sub_progress(progress, 0.0, 0.85 if own_sample else 0.3))
+                                               progress=sub_progress(progress, 0.0, 0.85 if own_sample else 0.3),
+                                               frames_averaged=frames_averaged)
     timings["settle"] = time.perf_counter() - t0
     reach_note = _sanitize.masked_reach_note(ok, settings.sigma)  # (analysis/_sanitize.py)
     if reach_note:
@@ -786,7 +790,7 @@ def _window_data(img_w, ok_w, fill):
     return np.where(okw, np.asarray(img_w, dtype=np.float64), fill), okw
 
 
-def _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes, *, progress):
+def _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes, *, progress, frames_averaged=1):
     """Scale, noise model, detection levels and common width, settled in rounds on the central sample.
 
     Returns the settings, the last round's result on the sample (the answer when the sample is the image), the
@@ -801,7 +805,7 @@ def _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes, *, pro
     sigma, spacing, _ = _resolve_scale(data, okw, lengths, dark_columns, auto)
     invert_at = _valid_max(img, ok) if dark_columns else 0.0
     polarity = _check_polarity((invert_at - data) if dark_columns else data, okw, spacing, dark_columns, notes)
-    noise = _initial_noise_model(data, okw, dark_columns)
+    noise = _initial_noise_model(data, okw, dark_columns, frames_averaged)
     core = (0, r1 - r0, 0, c1 - c0)
     rounds = []
     for rnd in range(MAX_SCALE_ROUNDS):
@@ -1392,14 +1396,19 @@ def _check_polarity(work, ok, spacing, dark_columns, notes):
     return polarity
 
 
-def _initial_noise_model(data, ok, dark_columns):
+def _initial_noise_model(data, ok, dark_columns, frames_averaged=1):
     """Noise model for the first round: raw counts if every value is a non-negative whole number, else white.
 
+    The mean of ``frames_averaged`` > 1 frames of raw counts starts as counts scaled by ``1 / frames_averaged``.
     This guess is checked after the first round against the fit residuals (``noise_model``): an integer image
     whose variance does not equal its mean (a contrast-stretched 8-bit export, counts x 1000) is converted to
     equivalent counts or treated as white noise there.
     """
     v = data[ok]
+    if frames_averaged > 1 and not dark_columns:  # the caller knows the frames held counts
+        return {"model": "scaled counts", "gain": 1.0 / frames_averaged, "offset": 0.0,
+                "how": f"mean of {frames_averaged} frames of raw counts: counts = image x {frames_averaged} (checked "
+                       "after the first round)", "check": None}
     counts = bool(np.all(v >= 0) and np.all(np.mod(v, 1.0) == 0)) and not dark_columns
     return {"model": "counts" if counts else "white", "gain": 1.0, "offset": 0.0,
             "how": "integer non-negative values: assumed raw counts (checked after the first round)" if counts else

@@ -7,6 +7,7 @@ Layout of ``DIR``::
     summary.json                                                                       result.summary, JSON-safe
     provenance.json                                                                    input, calibration, parameters, versions
     parameters.toml                                                                    the parameters as set, to repeat the run
+    frames.csv, aligned_mean.tif                                                       a frame series: shifts per frame, the aligned mean
     results.xlsx                                                                       one sheet per table + 'regions' + 'provenance'
     figures/<name>.png, figures/<name>.svg                                             every registered figure that applies
 
@@ -779,6 +780,8 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
     job("summary.json", lambda: (_write_json(result.summary, tmp / "summary.json"), [tmp / "summary.json"])[1])
     job("provenance.json", lambda: (_write_json(prov, tmp / "provenance.json"), [tmp / "provenance.json"])[1])
     job("parameters.toml", lambda: _write_parameters(result, tmp))
+    if "frames" in (result.summary or {}) and result.image is not None:
+        job("aligned_mean.tif", lambda: [_write_aligned_mean(result, tmp / "aligned_mean.tif")])
 
     def workbook() -> list[Path]:
         sheets = {_safe_stem(name)[:31]: (df, _units(name, df)) for name, df in tables.items()
@@ -809,6 +812,17 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
         written.extend(func())
     report(progress, 1.0, "results written")
     return written
+
+
+def _write_aligned_mean(result: AnalysisResult, path: Path) -> Path:
+    """The analysed image of a frame series (the aligned mean), calibrated like the input."""
+    from .io import write_tiff
+
+    info = result.summary["frames"]
+    return write_tiff(path, np.asarray(result.image, dtype=np.float32), pixel_size_nm=result.meta.pixel_size_nm,
+                      description=f"Tenfold {info.get('method', '')} mean of {info.get('n_used')} of "
+                                  f"{info.get('n_frames')} frames of {Path(result.meta.path).name}, in the "
+                                  f"coordinates of frame {info.get('reference')}")
 
 
 def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:

@@ -489,7 +489,8 @@ def _is_grey_alpha(arr: np.ndarray) -> bool:
     return arr.ndim == 3 and arr.shape[-1] == 2 and arr.shape[0] > 4 and arr.shape[1] > 4
 
 
-def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: str, sha256: str) -> Micrograph:
+def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: str, sha256: str,
+           align: bool = True, nonrigid: bool = False, align_reference=None, progress=None) -> Micrograph:
     """Validate ``raw`` and turn it into a float32 :class:`Micrograph`; emits the collected warnings."""
     arr = np.asarray(raw)
     original_dtype = str(arr.dtype)
@@ -513,6 +514,7 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         px, source = _resolve_calibration(cal, label)
     converted = False
     frames = ""
+    alignment, aligned_valid, n_avg, hold_counts = None, None, 1, False
     warn: list[str] = list(cal.warnings)
     notes: list[str] = list(cal.notes)
     if frame is not None and frame_range is not None:
@@ -552,8 +554,31 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
             frames = f"frame {k}"
         else:
             a, b = _check_range(frame_range, n, label)
-            data = arr[a:b].astype(np.float64).mean(axis=0)
-            frames = f"mean of frames {a}-{b - 1}"
+            n_avg = b - a
+            hold_counts = _whole_counts(arr, a, b)
+            if align and b - a >= 2:
+                ref = a if align_reference is None else _check_index(align_reference, n, label)
+                if not a <= ref < b:
+                    raise TenfoldInputError(f"{label}: the alignment reference frame {ref} lies outside the frames "
+                                            f"{a}-{b - 1}; choose a reference inside the range")
+                from .frames import align_frames
+
+                try:
+                    alignment = align_frames(arr[a:b], reference=ref - a, nonrigid=nonrigid, first_frame=a,
+                                             progress=progress)
+                except TenfoldInputError as exc:
+                    raise TenfoldInputError(f"{label}: {exc}") from None
+                data = alignment.mean.astype(np.float64)
+                aligned_valid = alignment.valid
+                n_avg = alignment.n_used
+                frames = f"aligned mean of frames {a}-{b - 1} (reference {alignment.info['reference']})"
+                notes.extend(f"{label}: {t}" for t in alignment.info["notes"])
+            else:
+                data = arr[a:b].astype(np.float64).mean(axis=0)
+                frames = f"mean of frames {a}-{b - 1}"
+                if b - a >= 2:
+                    notes.append(f"{label}: frames {a}-{b - 1} averaged without alignment; any drift between them "
+                                 "smears the columns")
     elif arr.ndim == 2:
         if frame is not None or frame_range is not None:
             raise TenfoldInputError(f"{label}: is a single 2-D image, not a stack; drop frame/frame_range")
@@ -576,6 +601,8 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         n_nonfinite = int(data.size - np.count_nonzero(np.isfinite(data)))
     data32, valid, precision_notes = to_float32(data, label=label)  # (analysis/_sanitize.py)
     del data
+    if aligned_valid is not None:
+        valid &= aligned_valid
     warn.extend(precision_notes)
     n_bad = int(valid.size - np.count_nonzero(valid))
     if n_bad == valid.size:
@@ -604,12 +631,25 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
         original_dtype=original_dtype,
         shape=(int(rows), int(cols)),
         frames=frames,
+        frames_averaged=int(n_avg),
+        frames_hold_counts=bool(hold_counts),
         converted_from_rgb=converted,
         masked_fraction=float(masked_fraction),
         sha256=sha256,
         notes=list(dict.fromkeys(warn + notes)),
     )
-    return Micrograph(data=data32, meta=meta, valid=valid)
+    return Micrograph(data=data32, meta=meta, valid=valid, alignment=alignment)
+
+
+def _whole_counts(arr, a: int, b: int) -> bool:
+    """Whether frames a..b-1 hold whole non-negative numbers (raw counts); checked on every 7th value of each."""
+    if np.issubdtype(arr.dtype, np.integer) or arr.dtype == bool:
+        return bool(all(np.min(arr[k]) >= 0 for k in range(a, b)))
+    for k in range(a, b):
+        v = np.asarray(arr[k]).ravel()[::7]
+        if not (np.all(np.isfinite(v)) and np.all(v >= 0) and np.all(np.mod(v, 1.0) == 0)):
+            return False
+    return True
 
 
 def _check_index(frame, n: int, label: str) -> int:
@@ -667,7 +707,8 @@ def check_image_file(path) -> Path:
     return p
 
 
-def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -> Micrograph:
+def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None, align=True, nonrigid=False,
+                    align_reference=None, progress=None) -> Micrograph:
     """Read a micrograph file into a 2-D float32 :class:`Micrograph` with its calibration and provenance.
 
     Parameters
@@ -682,6 +723,17 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -
     frame_range : (int, int), optional
         For a stack: average frames ``a .. b-1``. Exactly one of ``frame``/``frame_range`` is required for a
         stack, and neither is allowed for a single image.
+    align : bool
+        Default True: the frames of ``frame_range`` are registered to one reference frame before they are
+        averaged (:func:`tenfold.analysis.frames.align_frames`); the result's ``alignment`` holds the shifts.
+        False gives the plain mean (with a note).
+    nonrigid : bool
+        Also correct per-row distortions that change from frame to frame (slower).
+    align_reference : int, optional
+        File index of the reference frame (default: the first frame of the range); the columns are reported in
+        its coordinates.
+    progress : callable, optional
+        ``progress(fraction, message)`` during the alignment; returning False cancels.
 
     Returns
     -------
@@ -728,12 +780,14 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None) -
     raw = _READERS[_SUFFIXES[suffix]](p, cal)
     return _build(
         raw, label=str(p), cal=cal, override=override, frame=frame, frame_range=frame_range,
-        path=str(p.resolve()), sha256=sha,
+        path=str(p.resolve()), sha256=sha, align=align, nonrigid=nonrigid, align_reference=align_reference,
+        progress=progress,
     )
 
 
 def micrograph_from_array(
-    array, *, pixel_size_nm=None, name: str = "", frame=None, frame_range=None
+    array, *, pixel_size_nm=None, name: str = "", frame=None, frame_range=None, align=True, nonrigid=False,
+    align_reference=None, progress=None
 ) -> Micrograph:
     """Wrap an in-memory array as a :class:`Micrograph`, with the same checks as :func:`read_micrograph`.
 
@@ -745,8 +799,8 @@ def micrograph_from_array(
         Pixel size in nm (``calibration_source='user'``); None leaves the image uncalibrated ('none').
     name : str
         Label used in messages and stored as ``meta.path`` (e.g. the napari layer name).
-    frame, frame_range
-        Frame choice for a stack, as in :func:`read_micrograph`.
+    frame, frame_range, align, nonrigid, align_reference, progress
+        Frame choice and frame-series alignment for a stack, as in :func:`read_micrograph`.
 
     Returns
     -------
@@ -758,5 +812,6 @@ def micrograph_from_array(
     check_memory(_planar_shape(np.shape(array)), label=label)
     return _build(
         array, label=label, cal=_Calib(), override=override, frame=frame, frame_range=frame_range,
-        path=str(name), sha256="",
+        path=str(name), sha256="", align=align, nonrigid=nonrigid, align_reference=align_reference,
+        progress=progress,
     )

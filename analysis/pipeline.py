@@ -45,7 +45,7 @@ def _calibrated(micrograph: Micrograph, params: Parameters) -> Micrograph:
         notes.append(f"the given pixel size {new:.6g} nm overrides the file's {old:.6g} nm (from "
                      f"{micrograph.meta.calibration_source}), {100 * (new / old - 1):+.1f} %")
     meta = dataclasses.replace(micrograph.meta, pixel_size_nm=new, calibration_source="user", notes=notes)
-    return Micrograph(micrograph.data, meta, micrograph.valid)
+    return dataclasses.replace(micrograph, meta=meta)
 
 
 def estimate_defaults(micrograph: Micrograph, *, dark_columns: bool = False) -> dict:
@@ -203,6 +203,7 @@ def _base_summary(meta: ImageMeta, params: Parameters) -> dict:
         "version": __version__,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "input": {"file": meta.path, "sha256": meta.sha256, "shape": list(meta.shape), "frames": meta.frames,
+                  "frames_averaged": meta.frames_averaged,
                   "original_dtype": meta.original_dtype, "converted_from_rgb": meta.converted_from_rgb,
                   "masked_fraction": meta.masked_fraction},
         "pixel_size_nm": meta.pixel_size_nm,
@@ -344,6 +345,9 @@ def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, r
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
     result.summary = _base_summary(meta, params)
+    if micrograph.alignment is not None:  # a frame series: how the frames were moved (frames.csv, summary)
+        result.tables["frames"] = micrograph.alignment.table
+        result.summary["frames"] = dict(micrograph.alignment.info)
     clock = _timing.start()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", TenfoldWarning)
@@ -362,6 +366,7 @@ def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, r
             n_species=params.n_species,
             rng=params.rng,
             progress=sub_progress(progress, 0.0, 0.55),
+            frames_averaged=meta.frames_averaged if meta.frames_hold_counts else 1,
         )
         result.tables["columns"] = cols
         result.summary["automatic"] = c_info.get("automatic", c_info)

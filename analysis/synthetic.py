@@ -32,7 +32,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Mapping, Sequence
 
@@ -51,6 +51,7 @@ __all__ = [
     "decagonal_model",
     "counts_from_z",
     "render_image",
+    "drifting_stack",
     "expected_image",
     "crlb_position_px",
     "make_sample",
@@ -1604,6 +1605,93 @@ def stress_sample(cond: StressCondition, *, rng: np.random.Generator | int | Non
         img = img.astype(np.float32)
     params.update(value_scale=scale, value_offset=offset)
     return img, truth, params
+
+
+def _wobble(h: int, amplitude: float, gen: np.random.Generator) -> np.ndarray:
+    """A smooth x displacement per row (three low sine terms of random phase), RMS ``amplitude`` px."""
+    if amplitude <= 0:
+        return np.zeros(h)
+    y = np.arange(h) / h
+    f = sum(gen.normal() * np.sin(2 * np.pi * (j + 0.5 * gen.random()) * y + 2 * np.pi * gen.random())
+            for j in (1, 2, 3))
+    f = f - f.mean()
+    return amplitude * f / max(float(np.sqrt(np.mean(f ** 2))), 1e-12)
+
+
+def drifting_stack(cond: StressCondition, *, n_frames: int = 12, drift_px_per_frame=(0.6, -0.35),
+                   jump_px: float = 1.5, jump_chance: float = 0.25, wobble_px: float = 0.0,
+                   rng: np.random.Generator | int | None = None) -> tuple[np.ndarray, pd.DataFrame, pd.DataFrame, dict]:
+    """A frame series of one stress cell: the specimen drifts and jumps between frames, the dose is split.
+
+    Frame k shows the specimen moved by ``shift_k`` (``frame_k(x) = frame_0(x - shift_k)``): a steady drift
+    ``k * drift_px_per_frame`` plus, after each frame with probability ``jump_chance``, a jump drawn from a normal
+    distribution of ``jump_px`` per axis (a stage settling, a charging event). With ``wobble_px`` every frame also
+    gets its own smooth x displacement per row (slow-scan distortion that changes from frame to frame), RMS
+    ``wobble_px``; the cell's ``row_jitter_px`` adds a fresh white jitter per row and frame. Each frame carries
+    ``1 / n_frames`` of the cell's dose (peaks and background), so the frames sum to one image of the full dose.
+
+    Parameters
+    ----------
+    cond : StressCondition
+        Bright-field-free (HAADF-like) cell; ``dark`` cells are refused.
+    n_frames : int
+    drift_px_per_frame : (float, float)
+    jump_px, jump_chance, wobble_px : float
+    rng : numpy Generator or int seed
+
+    Returns
+    -------
+    stack : ndarray float32 (n_frames, H, W)
+        Poisson counts per frame.
+    truth : DataFrame
+        As :func:`stress_sample`, positions in frame 0's coordinates (the reference).
+    shifts : DataFrame
+        ``frame, shift_x_px, shift_y_px, wobble_rms_px`` (rigid part; the wobble has zero mean over the rows).
+    params : dict
+        The cell's parameters plus ``n_frames``, ``dose_per_frame`` (fraction), ``drift_px_per_frame``,
+        ``jump_px``, ``jump_chance``, ``wobble_px`` and ``wobble_rows_px`` (n_frames, H): each frame's smooth x
+        displacement per row.
+
+    Examples
+    --------
+    >>> cond = StressCondition(structure="square", size_px=64, sigma_over_spacing=0.2)
+    >>> stack, truth, shifts, params = drifting_stack(cond, n_frames=3, jump_chance=0.0, rng=1)
+    >>> stack.shape, shifts["shift_x_px"].round(2).tolist()
+    ((3, 64, 64), [0.0, 0.6, 1.2])
+    """
+    if cond.dark:
+        raise TenfoldInputError("drifting_stack: dark (HRTEM-like) cells are not supported; use a bright cell")
+    if int(n_frames) < 1:
+        raise TenfoldInputError(f"n_frames={n_frames!r} must be at least 1")
+    gen = _rng(rng)
+    _, truth, params = stress_sample(replace(cond, row_jitter_px=0.0, rescale="none"), rng=gen, noise=False)
+    n = int(cond.size_px)
+    probe = [tuple(c) for c in params["probe_components"]]
+    background = stress_background(cond, params)
+    drift = np.asarray(drift_px_per_frame, dtype=float)
+    jumps = np.where(gen.random(n_frames)[:, None] < jump_chance, gen.normal(0.0, jump_px, (n_frames, 2)), 0.0)
+    jumps[0] = 0.0
+    shift = np.arange(n_frames)[:, None] * drift[None, :] + np.cumsum(jumps, axis=0)
+    x, y, counts = truth["x_px"].to_numpy(), truth["y_px"].to_numpy(), truth["counts"].to_numpy()
+    frames = np.empty((n_frames, n, n), dtype=np.float32)
+    wob_rms = np.zeros(n_frames)
+    wob_rows = np.zeros((n_frames, n))
+    for k in range(n_frames):
+        rows = _wobble(n, wobble_px, gen) if wobble_px > 0 else np.zeros(n)
+        wob_rows[k] = rows
+        wob_rms[k] = float(np.sqrt(np.mean(rows ** 2)))
+        if cond.row_jitter_px > 0:
+            rows = rows + gen.normal(0.0, cond.row_jitter_px, n)
+        # column_signal draws row r's columns at x - row_shift_px[r]: pass -rows so the specimen moves by +rows
+        signal = column_signal(x + shift[k, 0], y + shift[k, 1], counts, shape=(n, n), sigma_px=params["sigma_px"],
+                               probe=probe, row_shift_px=-rows if np.any(rows) else None)
+        frames[k] = gen.poisson((background + signal) / n_frames)
+    shifts = pd.DataFrame({"frame": np.arange(n_frames), "shift_x_px": shift[:, 0], "shift_y_px": shift[:, 1],
+                           "wobble_rms_px": wob_rms})
+    params = {**params, "n_frames": int(n_frames), "dose_per_frame": 1.0 / n_frames,
+              "drift_px_per_frame": drift.tolist(), "jump_px": float(jump_px), "jump_chance": float(jump_chance),
+              "wobble_px": float(wobble_px), "wobble_rows_px": wob_rows, "value_scale": 1.0, "value_offset": 0.0}
+    return frames, truth, shifts, params
 
 
 def stress_background(cond: StressCondition, params: dict) -> np.ndarray:

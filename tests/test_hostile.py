@@ -212,7 +212,7 @@ def test_signal_inside_a_weakref_callback_ends_like_ctrl_c(monkeypatch, capsys):
 # 3. batch: the batch level's files are protected like a single run's; resume compares checksums
 
 
-def _fake_analyse(path, folder, params, frame, frame_range, figures, overwrite, execution):
+def _fake_analyse(path, folder, params, frame, frame_range, figures, overwrite, execution, align=True, nonrigid=False):
     """Stand-in for one image's analysis: a finished folder as write_results leaves it (summary, parameters)."""
     from tenfold.analysis._params_file import parameters_to_toml
     from tenfold.analysis.pipeline import Parameters
