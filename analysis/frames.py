@@ -66,6 +66,8 @@ __all__ = ["FrameAlignment", "align_frames", "FRAME_COLUMNS", "plain_mean"]
 
 #: largest side of the central crop used to measure shifts (a rigid shift is the same everywhere)
 REGISTER_PX = 1024
+#: side of the central crop for the first guess (whole pixels only)
+GUESS_PX = 512
 #: registration crops of all frames together stay below this many pixels (memory: 8 bytes per pixel)
 REGISTER_BUDGET_PX = 48_000_000
 #: Tukey taper of the registration crops: fraction of each side that is tapered
@@ -338,9 +340,8 @@ def _newton(cross: np.ndarray, band: _Band, start: np.ndarray, steps: int = NEWT
 # ----------------------------------------------------------------------------------------------------------------
 
 
-def _crop_box(shape: tuple[int, int], n_frames: int) -> tuple[int, int, int, int]:
+def _crop_box(shape: tuple[int, int], n_frames: int, side: int = REGISTER_PX) -> tuple[int, int, int, int]:
     h, w = shape
-    side = REGISTER_PX
     while side > 128 and n_frames * side * side > REGISTER_BUDGET_PX:
         side //= 2
     ch, cw = min(h, side), min(w, side)
@@ -432,21 +433,20 @@ def _outliers(corr: np.ndarray, used: np.ndarray) -> np.ndarray:
     return used & ((corr - med) / scale < REJECT_Z) & (corr < REJECT_FRACTION * med)
 
 
-def _registration_crops(arr, valid, offsets: np.ndarray) -> np.ndarray:
-    """Each frame's crop (float32), moved by its whole-pixel offset: the central box of at most ``REGISTER_PX`` on a
+def _registration_crops(arr, valid, offsets: np.ndarray, side: int = REGISTER_PX) -> np.ndarray:
+    """Each frame's crop (float32), moved by its whole-pixel offset: the central box of at most ``side`` px on a
     side that fits inside every frame at its offset."""
     n, h, w = arr.shape
     m = np.abs(offsets).max(axis=0) if len(offsets) else np.zeros(2, int)
-    r0, r1, c0, c1 = _crop_box((h - 2 * int(m[1]), w - 2 * int(m[0])), n)
+    r0, r1, c0, c1 = _crop_box((h - 2 * int(m[1]), w - 2 * int(m[0])), n, side)
     r0, r1, c0, c1 = r0 + int(m[1]), r1 + int(m[1]), c0 + int(m[0]), c1 + int(m[0])
     if min(r1 - r0, c1 - c0) < 16:
         raise TenfoldInputError(f"frames: the drift ({int(m[0])} px in x, {int(m[1])} px in y) leaves less than 16 px "
                                 "common to all frames; align a shorter range of frames")
     crops = np.empty((n, r1 - r0, c1 - c0), dtype=np.float32)
     for k in range(n):
-        f, _ = _frame(arr, k, valid)
         ox, oy = int(offsets[k][0]), int(offsets[k][1])
-        crops[k] = f[r0 + oy:r1 + oy, c0 + ox:c1 + ox]
+        crops[k], _ = _frame(arr, k, valid, (slice(r0 + oy, r1 + oy), slice(c0 + ox, c1 + ox)), np.float32)
     return crops
 
 
@@ -472,12 +472,13 @@ def _shift_sd(n0: float, signal: np.ndarray, grid: _Grid) -> float:
 # ----------------------------------------------------------------------------------------------------------------
 
 
-def _frame(stack, k: int, fill_valid) -> tuple[np.ndarray, np.ndarray]:
-    """Frame k as float64 with non-finite pixels replaced by the frame's median, and its validity mask."""
-    f = np.asarray(stack[k], dtype=np.float64)
+def _frame(stack, k: int, fill_valid, box=(slice(None), slice(None)), dtype=np.float64
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Frame k (or its ``box``) as ``dtype`` with non-finite pixels replaced by the median, and its validity mask."""
+    f = np.asarray(stack[k][box], dtype=dtype)
     ok = np.isfinite(f)
     if fill_valid is not None:
-        ok &= np.asarray(fill_valid[k], dtype=bool)
+        ok &= np.asarray(fill_valid[k][box], dtype=bool)
     if not ok.all():
         f = np.where(ok, f, np.median(f[ok]) if ok.any() else 0.0)
     return f, ok
@@ -728,7 +729,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     usable = np.ones(n, dtype=bool)
     reasons = [""] * n
     for k in range(n):
-        f, ok = _frame(arr, k, valid)
+        f, ok = _frame(arr, k, valid, dtype=np.float32)
         if ok.mean() < 0.5 or float(np.ptp(f[ok])) == 0.0:
             usable[k] = False
             reasons[k] = "blank or mostly invalid frame"
@@ -736,7 +737,8 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
         raise TenfoldInputError("frames: fewer than 2 frames hold data (the others are constant or invalid); "
                                 "check the frame range")
     offsets = np.zeros((n, 2), dtype=np.int64)
-    crops = _registration_crops(arr, valid, offsets)
+    # the first guess needs whole pixels only: a smaller central crop is enough
+    crops = _registration_crops(arr, valid, offsets, GUESS_PX)
     grid = _Grid(*crops.shape[1:])
     spectra = _spectra(crops, np.zeros((n, 2)))
     n0, signal = _power(spectra[usable], grid)
@@ -763,7 +765,8 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
         reg = _register(crops, spectra, band, n0, usable.copy(), guess - offsets,
                         sub_progress(progress, 0.1 + 0.15 * attempt, 0.25 + 0.15 * attempt))
         guess = reg["shifts"] + offsets
-        if np.all(np.abs(reg["shifts"][reg["used"]]) <= 0.75):
+        rest = reg["shifts"][reg["used"]]
+        if np.all(np.abs(rest - np.median(rest, axis=0)) <= 0.75):  # every crop within a pixel of its content
             break
     box = crops.shape[1:]
     del crops
