@@ -46,7 +46,11 @@ def __getattr__(name: str):
         from .io import read_micrograph
 
         return read_micrograph
-    if name in ("run_pipeline", "rerun_from_columns", "Parameters"):
+    if name == "Parameters":
+        from .parameters import Parameters
+
+        return Parameters
+    if name in ("run_pipeline", "rerun_from_columns"):
         from . import pipeline
 
         return getattr(pipeline, name)

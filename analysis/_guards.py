@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ._errors import TenfoldInputError
+from ._lengths import length_px
 
 __all__ = ["check_regions", "check_positions", "check_lengths", "empty_result_notes", "with_file", "name_the_file",
            "small_image_hint"]
@@ -93,7 +94,7 @@ def check_lengths(params, shape, pixel_size_nm=None) -> None:
                     continue
                 if unit == "nm" and not pixel_size_nm:
                     continue
-                px = float(value) / (float(pixel_size_nm) if unit == "nm" else 1.0)
+                px = length_px(base, **{unit: value}, pixel_size_nm=pixel_size_nm).value_px
                 if not px <= limit:
                     raise TenfoldInputError(
                         f"{base}_{unit}={float(value):g} {unit}{f' ({px:.4g} px)' if unit == 'nm' else ''} is larger than the image's {what} "

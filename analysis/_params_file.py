@@ -4,7 +4,7 @@ A run writes ``DIR/parameters.toml``; ``tenfold analyze IMAGE --out DIR2 --param
 napari dock) repeats it. The file holds the parameters as the user set them, not the values the automatic choices
 resolved to, so a re-run on the same image makes the same choices again and the tables come out byte-identical.
 
-Format: one flat TOML table, one key per field of :class:`~tenfold.analysis.pipeline.Parameters`; an automatic
+Format: one flat TOML table, one key per field of :class:`~tenfold.analysis.parameters.Parameters`; an automatic
 value is written as the string ``"auto"`` (TOML has no null). Reading uses the standard library's ``tomllib``
 (a data format: nothing in the file is ever executed) and checks every key: unknown keys, wrong types and values
 out of range are rejected with the key named. Missing keys keep their defaults, so a hand-written file may list
@@ -20,6 +20,7 @@ import tomllib
 from pathlib import Path
 
 from ._errors import TenfoldInputError
+from .parameters import Parameters
 
 __all__ = ["load_parameters", "save_parameters", "parameters_from_toml", "parameters_to_toml", "AUTO",
            "PARAMETERS_FILE"]
@@ -35,8 +36,6 @@ _VERSION_KEY = "tenfold_parameters"
 
 def _field_kinds() -> dict[str, tuple[type, bool]]:
     """name -> (base type, None allowed), from the annotations of ``Parameters`` (strings under PEP 563)."""
-    from .pipeline import Parameters
-
     kinds = {}
     for f in dataclasses.fields(Parameters):
         ann = str(f.type).replace(" ", "")
@@ -99,8 +98,6 @@ def parameters_from_toml(text: str, *, source: str = "parameters file"):
     >>> p.ring_order, p.pixel_size_nm
     (10, None)
     """
-    from .pipeline import Parameters
-
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -142,8 +139,6 @@ def parameters_to_toml(params) -> str:
     Every key is written, automatic ones as ``"auto"``; floats with the shortest round-tripping text, so
     ``parameters_from_toml(parameters_to_toml(p)) == p``.
     """
-    from .pipeline import Parameters
-
     d = params.to_dict() if isinstance(params, Parameters) else dict(params)
     kinds = _field_kinds()
     unknown = sorted(set(d) - set(kinds))
@@ -207,8 +202,6 @@ def save_parameters(params, path, *, overwrite: bool = False) -> Path:
     Path
         The file written.
     """
-    from .pipeline import Parameters
-
     p = Path(path)
     if p.exists() and not overwrite:
         raise TenfoldInputError(f"{p}: exists; choose another file name or pass overwrite=True")

@@ -20,6 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from ._lengths import LENGTHS
+
 __all__ = [
     "Field",
     "COLUMNS",
@@ -301,6 +303,11 @@ SUMMARY_KEYS: dict[str, tuple[tuple[str, str], ...]] = {
         ("shift_sd_px", "median shift standard deviation"),
         ("covered_fraction", "share of the field every used frame covers (the rest is masked)"),
     ),
+    # how each user length was resolved to px before the stages ran (_lengths.lengths_record)
+    "lengths_px": tuple(
+        (name, f"{what}: value_px (the user's length in px, else the stage's choice; null when none), given "
+               "('0.45 nm', '11.25 px'; null when automatic), source ('user' or 'automatic'), how (automatic only)")
+        for name, what in LENGTHS.items()),
 }
 
 

@@ -290,7 +290,7 @@ def run_batch(
         parameters and ``rerun`` is False.
     """
     from ._params_file import parameters_to_toml
-    from .pipeline import Parameters
+    from .parameters import Parameters
 
     params = (params or Parameters()).validate()
     out = Path(out_dir).expanduser()

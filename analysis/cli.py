@@ -58,7 +58,7 @@ def _pixel_size(text: str) -> float:
 
 #: Python names in messages -> the option a command-line user typed
 _FLAGS = {
-    "pixel_size_nm": "--pixel-size", "frame_range": "--frames", "frame": "--frame", "n_species": "--species",
+    "pixel_size_nm": "--pixel-size", "frame_range": "--frames", "n_species": "--species",
     "ring_order": "--ring-order", "radius_tolerance": "--radius-tolerance", "min_mass": "--min-intensity",
     "dark_columns": "--dark-columns", "rng": "--seed", "overwrite=True": "--overwrite", "out_dir": "--out",
     **{f"{base}_{unit}": flag for base, flag in (
@@ -66,6 +66,8 @@ _FLAGS = {
         ("ring_radius", "--ring-radius"), ("ladder_r_max", "--ladder-range"), ("d0", "--ladder-base"),
         ("tiling_edge", "--tiling-edge")) for unit in ("nm", "px")},
 }
+#: the bare word "frame" is ordinary English ("the corrected frame"); only ``frame=K`` or ``frame/`` names the option
+_FRAME_RE = re.compile(r"(?<![\w.-])frame(?=[=/])")
 _FLAG_RE = re.compile(r"(?<![\w.-])(?:parameter )?(" + "|".join(re.escape(k) for k in sorted(_FLAGS, key=len, reverse=True))
                       + r")(?![\w])")
 
@@ -78,7 +80,7 @@ def _flag_names(message: str) -> str:
     """
     if message.startswith("--params "):
         return message
-    return _FLAG_RE.sub(_flag_or_path, message)
+    return _FRAME_RE.sub("--frame", _FLAG_RE.sub(_flag_or_path, message))
 
 
 def _flag_or_path(m: re.Match) -> str:

@@ -38,6 +38,7 @@ from scipy.spatial import cKDTree
 
 from . import _sanitize, _schema
 from ._errors import TenfoldInputError, TenfoldWarning
+from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
 from .refine import FREE_WIDTH_SNR as FREE_WIDTH_Z, joint_position_errors, refine_columns, warm_up
 from .region import label_points
@@ -54,9 +55,6 @@ FALSE_ALARMS = 0.05
 FALSE_SHARE = 0.001
 #: Lowest significance ever accepted (common practice: below ~3.5 sigma a single detection is not evidence).
 Z_FLOOR = 3.5
-#: A column's diameter (the detection window, the user's "column diameter") is this many Gaussian sigmas: the disk
-#: of that diameter holds 1 - exp(-2.25^2 / 2) = 92 % of a 2-D Gaussian's light (common practice)
-DIAMETER_PER_SIGMA = 4.5
 #: Accepted column widths relative to the median fitted width.
 WIDTH_RANGE = (0.5, 2.0)
 
@@ -1164,7 +1162,7 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
 
     The untiled run of an image larger than the sample is one window: the whole image.
     """
-    from .parallel import map_tasks, tile_grid, Execution
+    from ._tasks import map_tasks, tile_grid, Execution
 
     h, w = img.shape
     if tile_size is None:
@@ -1358,21 +1356,12 @@ def _check_inputs(image, valid, pixel_size_nm, diameter_nm, spacing_nm, diameter
         ok &= v
     if ok.sum() < 16:
         raise TenfoldInputError("find_columns: fewer than 16 valid pixels; nothing to analyse")
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"pixel_size_nm={pixel_size_nm!r} must be a positive number or None")
+    check_pixel_size(pixel_size_nm, plausible=False)
     lengths = {}
     for what, nm, px in (("diameter", diameter_nm, diameter_px), ("spacing", spacing_nm, spacing_px)):
-        if nm is not None and px is not None:
-            raise TenfoldInputError(f"column_{what}: give it in nm or in px, not both")
-        val, unit = (nm, "nm") if nm is not None else (px, "px")
-        if val is None:
-            continue
-        if not (np.isfinite(val) and val > 0):
-            raise TenfoldInputError(f"column_{what}_{unit}={val!r} must be a positive number")
-        if unit == "nm" and pixel_size_nm is None:
-            raise TenfoldInputError(f"column_{what}_nm={val} is in nm but the image has no pixel size; give the pixel "
-                                    f"size, or column_{what}_px instead")
-        lengths[what] = (float(val) / pixel_size_nm if unit == "nm" else float(val), f"given (column_{what}_{unit})")
+        length = length_px(f"column_{what}", nm=nm, px=px, pixel_size_nm=pixel_size_nm)  # the one nm -> px
+        if length.value_px is not None:
+            lengths[what] = (length.value_px, f"given (column_{what}_{'nm' if nm is not None else 'px'})")
     return img, ok, lengths
 
 

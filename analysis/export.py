@@ -834,7 +834,7 @@ def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:
     import dataclasses
 
     from ._params_file import PARAMETERS_FILE, parameters_to_toml
-    from .pipeline import Parameters
+    from .parameters import Parameters
 
     if set(result.parameters or {}) != {f.name for f in dataclasses.fields(Parameters)}:
         return []

@@ -29,8 +29,9 @@ import pandas as pd
 from scipy import ndimage
 
 from ._errors import TenfoldInputError
-from .phason import strain_summary
+from ._lengths import check_pixel_size
 from ._schema import SPOTS, conform, empty_table
+from ._strain import strain_summary
 
 __all__ = ["power_spectrum", "find_spots", "analyze_fourier", "index_decagonal", "correct_columns", "fourier_stage",
            "electron_wavelength_nm", "bragg_angle_mrad", "spectrum_figure", "column_diffraction",
@@ -139,8 +140,7 @@ def power_spectrum(
     >>> int(np.argmax(s[32])) - 32 in (-8, 8), dk
     (True, 0.015625)
     """
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"power spectrum: pixel_size_nm must be a positive number, got {pixel_size_nm}")
+    check_pixel_size(pixel_size_nm, plausible=False)
     p = _power(image, valid, window)
     med = np.median(p)
     scale = med if med > 0 else max(p.max(), 1e-300)
@@ -928,7 +928,7 @@ def index_decagonal(
         ``distortion_matrix_se``, ``scale_x_over_y``, ``shear``, ``phason`` (``strain_matrix``,
         ``strain_matrix_se``, ``singular_values`` (noise bias removed), ``singular_values_plain``,
         ``singular_values_se``, ``zero_chi2``, ``zero_p``, ``significant``, ``n_used``; see
-        :func:`.phason.strain_summary`), ``rms_index_error``, ``notes``.
+        :func:`._strain.strain_summary`), ``rms_index_error``, ``notes``.
 
     Notes
     -----
@@ -1116,14 +1116,15 @@ def _distortion_significant(info: dict) -> tuple[bool, float]:
     return bool(np.any(np.abs(d) > 3 * np.maximum(se, 1e-12))), dev
 
 
-def correct_columns(result, micrograph, *, window: str = "hann") -> dict:
+def correct_columns(result, micrograph, *, fourier_window: str = "hann") -> dict:
     """Measure the scan distortion from the spectrum and apply it to the column positions of ``result``.
 
     Positions are mapped about the image centre ``c`` as ``r' = D (r - c) + c`` with ``D`` the unit-determinant
     ``distortion_matrix`` of :func:`analyze_fourier`; the measured positions stay in ``x_raw_px``, ``y_raw_px``
     and ``x_nm``, ``y_nm`` follow the corrected ones. ``result.summary['distortion_correction']`` records what
     was done (matrix, its uncertainty, source, centre, largest shift, whether it was significant) and a note says
-    when the correction is uncertain.
+    when the correction is uncertain. ``fourier_window`` is ``Parameters.fourier_window`` (the ``window`` of
+    :func:`analyze_fourier`).
 
     Returns
     -------
@@ -1131,7 +1132,7 @@ def correct_columns(result, micrograph, *, window: str = "hann") -> dict:
         The ``distortion_correction`` record.
     """
     ps = micrograph.meta.pixel_size_nm
-    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, window=window)
+    spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, window=fourier_window)
     result.tables["spots"] = spots
     result.summary["fourier"] = info
     notes = result.summary.setdefault("notes", [])
@@ -1175,8 +1176,9 @@ def correct_columns(result, micrograph, *, window: str = "hann") -> dict:
     return rec
 
 
-def fourier_stage(result, micrograph, *, window: str = "hann") -> None:
-    """Run :func:`analyze_fourier` for the pipeline, with the real-space tiling edge and orientation when known.
+def fourier_stage(result, micrograph, *, fourier_window: str = "hann") -> None:
+    """Run :func:`analyze_fourier` for the pipeline, with the real-space tiling edge and orientation when known
+    (``fourier_window``: ``Parameters.fourier_window``, the ``window`` of :func:`analyze_fourier`).
 
     Fills ``tables['spots']``, ``summary['fourier']`` and ``summary['phason']['fourier']``; records the applied
     correction (``summary['distortion_correction']``) inside ``summary['fourier']`` too.
@@ -1186,7 +1188,7 @@ def fourier_stage(result, micrograph, *, window: str = "hann") -> None:
     real = (result.summary.get("phason") or {}).get("real_space") or {}
     edge = tiling.get("edge_px") if tiling.get("n_edges") else None
     spots, info = analyze_fourier(micrograph.data, valid=micrograph.valid, pixel_size_nm=ps, edge_px=edge,
-                                  orientation_deg=real.get("orientation_deg"), window=window)
+                                  orientation_deg=real.get("orientation_deg"), window=fourier_window)
     corr = result.summary.get("distortion_correction")
     if corr is not None:
         info["correction_applied"] = corr

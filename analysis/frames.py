@@ -66,6 +66,8 @@ __all__ = ["FrameAlignment", "align_frames", "FRAME_COLUMNS", "plain_mean"]
 
 #: largest side of the central crop used to measure shifts (a rigid shift is the same everywhere)
 REGISTER_PX = 1024
+#: side of the central crop for the first guess (whole pixels only)
+GUESS_PX = 512
 #: registration crops of all frames together stay below this many pixels (memory: 8 bytes per pixel)
 REGISTER_BUDGET_PX = 48_000_000
 #: Tukey taper of the registration crops: fraction of each side that is tapered
@@ -84,6 +86,8 @@ REJECT_FRACTION = 0.8
 #: below this share of the frames' power in structure (noise alone gives < 0.005 on 64-512 px frames, a decagonal
 #: frame with 2.5 counts per column peak 0.14; measured in tests/test_frames.py) the frames cannot be registered
 MIN_SIGNAL_SHARE = 0.02
+#: consecutive frames whose second correlation peak reaches this share of the first show a repeating structure
+PERIODIC_RATIO = 0.8
 #: non-rigid step: rows per strip (at least), and strips per frame (at most)
 STRIP_ROWS = 32
 MAX_STRIPS = 32
@@ -248,11 +252,15 @@ class _Band:
         return ey[:, self.row] * ex[:, self.col]
 
 
-def _integer_peaks(cross: np.ndarray, band: _Band) -> np.ndarray:
-    """(n, 2) (dx, dy) of the highest point of each weighted cross-correlation map (whole map searched).
+def _integer_peaks(cross: np.ndarray, band: _Band) -> tuple[np.ndarray, np.ndarray]:
+    """(n, 2) (dx, dy) of the highest point of each weighted cross-correlation map (whole map searched), and for
+    each map the ratio of its second-highest separate peak to the highest.
 
     The band holds no frequency above its largest |qx|, |qy|, so the map is computed on a coarser grid that still
-    samples it (spectrum cropped to the band), in steps of ``h / sh``, ``w / sw`` px; Newton steps refine it.
+    samples it (spectrum cropped to the band), in steps of ``h / sh``, ``w / sw`` px; Newton steps refine it. A
+    periodic structure gives every lattice translation (nearly) the same height, so among the points within
+    ``1 - PERIODIC_RATIO`` of the highest the smallest shift is taken (for an aperiodic structure that is the
+    highest point itself). A ratio near 1 says the structure repeats.
     """
     h, w = band.grid.shape
     sh, sw, keep = band.map_grid()
@@ -260,11 +268,22 @@ def _integer_peaks(cross: np.ndarray, band: _Band) -> np.ndarray:
     small = np.zeros((len(cross), sh, sw // 2 + 1), dtype=np.complex64)
     small[:, rows, band.col[keep]] = cross[:, keep]
     maps = sfft.irfft2(small, s=(sh, sw), workers=_WORKERS)
-    flat = maps.reshape(len(maps), -1).argmax(axis=1)
+    flat_maps = maps.reshape(len(maps), -1)
+    top = flat_maps.max(axis=1)
+    lag2 = ((np.fft.fftfreq(sh) * h)[:, None] ** 2 + (np.fft.fftfreq(sw) * w)[None, :] ** 2).ravel()
+    flat = np.where(flat_maps >= (PERIODIC_RATIO * top)[:, None], lag2[None, :], np.inf).argmin(axis=1)
     iy, ix = np.divmod(flat, sw)
+    best = flat_maps.argmax(axis=1)
+    by, bx = np.divmod(best, sw)
+    # the second peak: the highest point more than a few grid steps (about a column width) from the first
+    yy = np.abs(((np.arange(sh)[None, :] - by[:, None]) + sh // 2) % sh - sh // 2)
+    xx = np.abs(((np.arange(sw)[None, :] - bx[:, None]) + sw // 2) % sw - sw // 2)
+    near = (yy[:, :, None] <= 3) & (xx[:, None, :] <= 3)
+    second = np.where(near, -np.inf, maps).reshape(len(maps), -1).max(axis=1)
+    ratio = np.where(top > 0, second / np.maximum(top, 1e-30), 1.0)
     iy = np.where(iy > sh // 2, iy - sh, iy) * (h / sh)
     ix = np.where(ix > sw // 2, ix - sw, ix) * (w / sw)
-    return np.stack([ix, iy], axis=1).astype(np.float64)
+    return np.stack([ix, iy], axis=1).astype(np.float64), ratio
 
 
 def _coarse(band: _Band) -> float:
@@ -321,9 +340,8 @@ def _newton(cross: np.ndarray, band: _Band, start: np.ndarray, steps: int = NEWT
 # ----------------------------------------------------------------------------------------------------------------
 
 
-def _crop_box(shape: tuple[int, int], n_frames: int) -> tuple[int, int, int, int]:
+def _crop_box(shape: tuple[int, int], n_frames: int, side: int = REGISTER_PX) -> tuple[int, int, int, int]:
     h, w = shape
-    side = REGISTER_PX
     while side > 128 and n_frames * side * side > REGISTER_BUDGET_PX:
         side //= 2
     ch, cw = min(h, side), min(w, side)
@@ -331,15 +349,23 @@ def _crop_box(shape: tuple[int, int], n_frames: int) -> tuple[int, int, int, int
     return r0, r0 + ch, c0, c0 + cw
 
 
-def _first_guess(spectra: np.ndarray, band: _Band, n0: float) -> np.ndarray:
-    """Shifts from consecutive frames registered to each other (whole map searched), summed (module step 3)."""
+def _first_guess(spectra: np.ndarray, band: _Band, n0: float, usable: np.ndarray) -> tuple[np.ndarray, float]:
+    """Shifts from consecutive usable frames registered to each other (whole map searched), summed (module step 3),
+    and the median second-to-first peak ratio of their correlation maps. Unusable frames get the shift of the
+    usable frame before them."""
     shifts = np.zeros((len(spectra), 2))
-    if len(spectra) > 1:
-        sel = band.take(spectra)
-        cross = np.conj(sel[:-1]) * sel[1:] * band.weight(n0, 1.0)
-        step, _ = _newton(cross, band, _integer_peaks(cross, band), steps=2 * NEWTON_STEPS, reach=_coarse(band))
-        shifts[1:] = np.cumsum(step, axis=0)
-    return shifts
+    ks = np.flatnonzero(usable)
+    if len(ks) < 2:
+        return shifts, 0.0
+    sel = band.take(spectra[ks])
+    cross = np.conj(sel[:-1]) * sel[1:] * band.weight(n0, 1.0)
+    peaks, ratio = _integer_peaks(cross, band)
+    step, _ = _newton(cross, band, peaks, steps=2 * NEWTON_STEPS, reach=_coarse(band))
+    at = np.zeros((len(ks), 2))
+    at[1:] = np.cumsum(step, axis=0)
+    # every frame takes the shift of the last usable frame at or before it (the first usable one for leading ones)
+    idx = np.clip(np.searchsorted(ks, np.arange(len(spectra)), side="right") - 1, 0, None)
+    return at[idx], float(np.median(ratio))
 
 
 def _register(crops: np.ndarray, spectra: np.ndarray, band: _Band, n0: float, used: np.ndarray, shifts: np.ndarray,
@@ -371,7 +397,7 @@ def _register(crops: np.ndarray, spectra: np.ndarray, band: _Band, n0: float, us
         reach = 0.5
         start = shifts
         if rnd == 0:  # keep the guess where the whole-map peak agrees with it to within the map's grid step
-            peaks = _integer_peaks(cross, band)
+            peaks, _ = _integer_peaks(cross, band)
             reach = _coarse(band)
             far = np.any(np.abs(peaks - shifts) > reach + 0.5, axis=1)
             start = np.where(far[:, None], peaks, shifts)
@@ -407,21 +433,20 @@ def _outliers(corr: np.ndarray, used: np.ndarray) -> np.ndarray:
     return used & ((corr - med) / scale < REJECT_Z) & (corr < REJECT_FRACTION * med)
 
 
-def _registration_crops(arr, valid, offsets: np.ndarray) -> np.ndarray:
-    """Each frame's crop (float32), moved by its whole-pixel offset: the central box of at most ``REGISTER_PX`` on a
+def _registration_crops(arr, valid, offsets: np.ndarray, side: int = REGISTER_PX) -> np.ndarray:
+    """Each frame's crop (float32), moved by its whole-pixel offset: the central box of at most ``side`` px on a
     side that fits inside every frame at its offset."""
     n, h, w = arr.shape
     m = np.abs(offsets).max(axis=0) if len(offsets) else np.zeros(2, int)
-    r0, r1, c0, c1 = _crop_box((h - 2 * int(m[1]), w - 2 * int(m[0])), n)
+    r0, r1, c0, c1 = _crop_box((h - 2 * int(m[1]), w - 2 * int(m[0])), n, side)
     r0, r1, c0, c1 = r0 + int(m[1]), r1 + int(m[1]), c0 + int(m[0]), c1 + int(m[0])
     if min(r1 - r0, c1 - c0) < 16:
         raise TenfoldInputError(f"frames: the drift ({int(m[0])} px in x, {int(m[1])} px in y) leaves less than 16 px "
                                 "common to all frames; align a shorter range of frames")
     crops = np.empty((n, r1 - r0, c1 - c0), dtype=np.float32)
     for k in range(n):
-        f, _ = _frame(arr, k, valid)
         ox, oy = int(offsets[k][0]), int(offsets[k][1])
-        crops[k] = f[r0 + oy:r1 + oy, c0 + ox:c1 + ox]
+        crops[k], _ = _frame(arr, k, valid, (slice(r0 + oy, r1 + oy), slice(c0 + ox, c1 + ox)), np.float32)
     return crops
 
 
@@ -431,7 +456,8 @@ def _check_structure(n0: float, signal: np.ndarray, grid: _Grid) -> float:
     sd = _shift_sd(n0, signal, grid)
     if not math.isfinite(sd) or share < MIN_SIGNAL_SHARE or sd > 1.0:
         raise TenfoldInputError("frames: the frames hold no common structure above their noise, so they cannot be "
-                                "registered; average them without alignment (--no-align) or check the frame range")
+                                "registered; average them without alignment (--no-align; align=False in Python) "
+                                "or check the frame range")
     return sd
 
 
@@ -446,12 +472,13 @@ def _shift_sd(n0: float, signal: np.ndarray, grid: _Grid) -> float:
 # ----------------------------------------------------------------------------------------------------------------
 
 
-def _frame(stack, k: int, fill_valid) -> tuple[np.ndarray, np.ndarray]:
-    """Frame k as float64 with non-finite pixels replaced by the frame's median, and its validity mask."""
-    f = np.asarray(stack[k], dtype=np.float64)
+def _frame(stack, k: int, fill_valid, box=(slice(None), slice(None)), dtype=np.float64
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Frame k (or its ``box``) as ``dtype`` with non-finite pixels replaced by the median, and its validity mask."""
+    f = np.asarray(stack[k][box], dtype=dtype)
     ok = np.isfinite(f)
     if fill_valid is not None:
-        ok &= np.asarray(fill_valid[k], dtype=bool)
+        ok &= np.asarray(fill_valid[k][box], dtype=bool)
     if not ok.all():
         f = np.where(ok, f, np.median(f[ok]) if ok.any() else 0.0)
     return f, ok
@@ -514,7 +541,7 @@ def _mean_of(stack, ks, shifts, fill_valid, progress, label, resample=None
         raise TenfoldInputError("frames: no pixel is covered by every used frame (the drift is larger than the "
                                 "image); align a shorter range of frames")
     var = np.where(full, (squares - len(ks) * mean * mean) / max(len(ks) - 1, 1), np.nan)
-    mean[~full] = np.median(mean[full])
+    mean[count == 0] = np.median(mean[full])  # partly covered pixels keep the mean of the frames that cover them
     return mean.astype(np.float32), full, var
 
 
@@ -620,7 +647,7 @@ def _row_fields(stack, ks, shifts, mean, valid, fill_valid, progress) -> dict[in
         for a in range(2):
             lam = None if n_strips > 4 else 1e6
             spl = make_smoothing_spline(centres, d[:, a], lam=lam)
-            field_k[:, a] = spl(rows)
+            field_k[:, a] = spl(np.clip(rows, centres[0], centres[-1]))  # held, not extrapolated, at the ends
         fields[k] = field_k
         report(progress, (i + 1) / len(ks), f"frames: non-rigid rows, frame {i + 1} of {len(ks)}")
     return fields
@@ -702,7 +729,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     usable = np.ones(n, dtype=bool)
     reasons = [""] * n
     for k in range(n):
-        f, ok = _frame(arr, k, valid)
+        f, ok = _frame(arr, k, valid, dtype=np.float32)
         if ok.mean() < 0.5 or float(np.ptp(f[ok])) == 0.0:
             usable[k] = False
             reasons[k] = "blank or mostly invalid frame"
@@ -710,12 +737,17 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
         raise TenfoldInputError("frames: fewer than 2 frames hold data (the others are constant or invalid); "
                                 "check the frame range")
     offsets = np.zeros((n, 2), dtype=np.int64)
-    crops = _registration_crops(arr, valid, offsets)
+    # the first guess needs whole pixels only: a smaller central crop is enough
+    crops = _registration_crops(arr, valid, offsets, GUESS_PX)
     grid = _Grid(*crops.shape[1:])
     spectra = _spectra(crops, np.zeros((n, 2)))
     n0, signal = _power(spectra[usable], grid)
     _check_structure(n0, signal, grid)
-    guess = _first_guess(spectra, _Band(grid, signal), n0)
+    guess, repeat = _first_guess(spectra, _Band(grid, signal), n0, usable)
+    if repeat > PERIODIC_RATIO:
+        notes.append(f"frames: the structure repeats (the second correlation peak is {100 * repeat:.0f} % of the "
+                     "first), so a shift is known only up to a lattice translation; the smallest shift that fits is "
+                     "taken, and a jump of more than half a lattice spacing between frames would be missed")
     del spectra
     report(progress, 0.1, "frames: first guess from consecutive frames")
     for attempt in range(3):
@@ -733,7 +765,8 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
         reg = _register(crops, spectra, band, n0, usable.copy(), guess - offsets,
                         sub_progress(progress, 0.1 + 0.15 * attempt, 0.25 + 0.15 * attempt))
         guess = reg["shifts"] + offsets
-        if np.all(np.abs(reg["shifts"][reg["used"]]) <= 0.75):
+        rest = reg["shifts"][reg["used"]]
+        if np.all(np.abs(rest - np.median(rest, axis=0)) <= 0.75):  # every crop within a pixel of its content
             break
     box = crops.shape[1:]
     del crops

@@ -18,6 +18,7 @@ import numpy as np
 
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
+from ._lengths import PLAUSIBLE_PIXEL_NM, check_pixel_size as _check_pixel_size  # the one calibration check
 from ._sanitize import check_memory, to_float32
 
 _log = logging.getLogger("tenfold")
@@ -26,33 +27,6 @@ __all__ = ["write_tiff", "read_micrograph", "micrograph_from_array", "supported_
 
 # dtypes ImageJ TIFFs hold as they are; anything else is written as float32.
 _IMAGEJ_DTYPES = (np.uint8, np.uint16, np.float32)
-
-
-#: pixel sizes of atomic-resolution images lie well inside this range (nm per pixel); outside it a value is a
-#: unit mistake or a broken tag (common practice: 0.005-0.5 nm for HAADF-STEM/HRTEM lattice images)
-PLAUSIBLE_PIXEL_NM = (1e-4, 10.0)
-
-
-def _check_pixel_size(pixel_size_nm, what: str = "pixel_size_nm", *, plausible: bool = True) -> float | None:
-    if pixel_size_nm is None:
-        return None
-    try:
-        value = float(pixel_size_nm)
-    except (TypeError, ValueError):
-        raise TenfoldInputError(
-            f"{what}={pixel_size_nm!r} is not a number; give the pixel size in nm, e.g. 0.015"
-        ) from None
-    if not math.isfinite(value) or value <= 0:
-        raise TenfoldInputError(
-            f"{what}={pixel_size_nm!r} must be a positive finite number of nm per pixel, e.g. 0.015"
-        )
-    lo, hi = PLAUSIBLE_PIXEL_NM
-    if plausible and not lo <= value <= hi:
-        raise TenfoldInputError(
-            f"{what}={pixel_size_nm!r} nm per pixel is outside {lo:g} - {hi:g} nm, the range of atomic-resolution "
-            "images; give the pixel size in nm, e.g. 0.015 (check the unit: 1 A = 0.1 nm, 1 um = 1000 nm)"
-        )
-    return value
 
 
 def write_tiff(

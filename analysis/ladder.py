@@ -42,6 +42,8 @@ import pandas as pd
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
+from ._lengths import check_pixel_size
+from ._renamed import renamed_keywords
 from ._schema import LADDER, PEAKS, conform, empty_table
 
 __all__ = ["TAU", "KNOWN_RATIOS", "pair_distribution", "locate_peaks", "fit_ladder", "ladder_agreement",
@@ -580,13 +582,14 @@ def _match(p, sig_rel, d0, rungs, half_step):
     return on, rung, label.astype(object)
 
 
+@renamed_keywords(r_max_px="ladder_r_max_px")
 def fit_ladder(
     x_px,
     y_px,
     *,
     point_set: str = "columns",
     d0_px: float | None = None,
-    r_max_px: float | None = None,
+    ladder_r_max_px: float | None = None,
     half_step: bool = False,
     pixel_size_nm: float | None = None,
     n_boot: int = 200,
@@ -603,8 +606,9 @@ def fit_ladder(
     d0_px : float, optional
         Base distance in px; default: the strongest short-range peak (highest g among the peaks closer than twice
         the first peak).
-    r_max_px : float, optional
-        Largest pair distance; default max(8 x median nearest-neighbour distance, 1.1 d0 tau^4).
+    ladder_r_max_px : float, optional
+        Largest pair distance; default max(8 x median nearest-neighbour distance, 1.1 d0 tau^4). ``r_max_px`` is a
+        deprecated alias.
     half_step : bool
         Also allow half-integer rungs tau^(n/2).
     pixel_size_nm : float, optional
@@ -633,11 +637,11 @@ def fit_ladder(
     """
     if point_set not in ("columns", "centres"):
         raise TenfoldInputError(f"fit_ladder: point_set={point_set!r} must be 'columns' or 'centres'")
-    for name, v in (("d0_px", d0_px), ("r_max_px", r_max_px)):
+    r_max_px = ladder_r_max_px
+    for name, v in (("d0_px", d0_px), ("ladder_r_max_px", r_max_px)):
         if v is not None and not (np.isfinite(v) and v > 0):
             raise TenfoldInputError(f"fit_ladder: {name}={v!r} must be a positive number of pixels (or None)")
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"fit_ladder: pixel_size_nm={pixel_size_nm!r} must be positive or None")
+    check_pixel_size(pixel_size_nm, plausible=False)
     if n_boot < 0:
         raise TenfoldInputError(f"fit_ladder: n_boot={n_boot!r} must be >= 0")
     xy = _clean_xy(x_px, y_px, "fit_ladder")

@@ -46,7 +46,9 @@ import pandas as pd
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
+from ._lengths import check_pixel_size
 from ._progress import ProgressCallback, report
+from ._renamed import renamed_keywords
 from ._schema import MOTIFS, conform, empty_table
 
 __all__ = ["TAU", "SHELL_RULE", "find_motifs", "ring_search"]
@@ -693,11 +695,12 @@ def ring_shape(xy, cx, cy, slots, *, warn_above=0.005, n_boot=200, rng=0):
     return info, per_ring
 
 
+@renamed_keywords(order="ring_order", radius_px="ring_radius_px")
 def find_motifs(
     columns: pd.DataFrame,
     *,
-    order: int = 10,
-    radius_px: float | None = None,
+    ring_order: int = 10,
+    ring_radius_px: float | None = None,
     radius_tolerance: float = 0.12,
     min_members: int | None = None,
     pentagons: bool = True,
@@ -716,10 +719,11 @@ def find_motifs(
     columns : DataFrame
         Columns table (``_schema.COLUMNS``); needs ``id``, ``x_px``, ``y_px``; ``species`` and ``region`` are used
         when present. Rows with non-finite positions are ignored (and counted in the info).
-    order : int
-        Ring order n: 5, 6, 8, 10 (default) or 12.
-    radius_px : float, optional
-        Ring radius r in px. Default: automatic ring-shell scan (see Notes); the info says which.
+    ring_order : int
+        Ring order n: 5, 6, 8, 10 (default) or 12. ``order`` is a deprecated alias.
+    ring_radius_px : float, optional
+        Ring radius r in px. Default: automatic ring-shell scan (see Notes); the info says which. ``radius_px`` is
+        a deprecated alias.
     radius_tolerance : float
         Relative half width of the shell r (1 +- tolerance) in which members are looked for (0 < tol < 0.5).
     min_members : int, optional
@@ -775,7 +779,7 @@ def find_motifs(
     >>> import pandas as pd, numpy as np
     >>> a = np.deg2rad(np.arange(10) * 36.0)
     >>> cols = pd.DataFrame({"id": np.arange(10), "x_px": 50 + 10 * np.cos(a), "y_px": 50 + 10 * np.sin(a)})
-    >>> m, info = find_motifs(cols, radius_px=10.0, pentagons=False)
+    >>> m, info = find_motifs(cols, ring_radius_px=10.0, pentagons=False)
     >>> int(m["n_members"].iloc[0])
     10
     """
@@ -784,18 +788,18 @@ def find_motifs(
     missing = [c for c in ("id", "x_px", "y_px") if c not in columns.columns]
     if missing:
         raise TenfoldInputError(f"find_motifs: columns table lacks {missing}; pass the columns table from refine/species")
+    order, radius_px = ring_order, ring_radius_px
     if order not in _ORDERS:
-        raise TenfoldInputError(f"find_motifs: order={order!r} is not supported; use one of {_ORDERS}")
+        raise TenfoldInputError(f"find_motifs: ring_order={order!r} is not supported; use one of {_ORDERS}")
     if radius_px is not None and not (np.isfinite(radius_px) and radius_px > 0):
-        raise TenfoldInputError(f"find_motifs: radius_px={radius_px!r} must be a positive number of pixels (or None for automatic)")
+        raise TenfoldInputError(f"find_motifs: ring_radius_px={radius_px!r} must be a positive number of pixels (or None for automatic)")
     if not (0 < radius_tolerance < 0.5):
         raise TenfoldInputError(f"find_motifs: radius_tolerance={radius_tolerance!r} must lie in (0, 0.5)")
     if min_members is None:
         min_members = order - 2
     if not (3 <= int(min_members) <= order):
-        raise TenfoldInputError(f"find_motifs: min_members={min_members!r} must lie between 3 and order={order}")
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"find_motifs: pixel_size_nm={pixel_size_nm!r} must be positive or None")
+        raise TenfoldInputError(f"find_motifs: min_members={min_members!r} must lie between 3 and ring_order={order}")
+    check_pixel_size(pixel_size_nm, plausible=False)
     min_members = int(min_members)
     gen = np.random.default_rng(rng)
     info: dict = {"order": int(order), "kind": f"ring{order}", "radius_tolerance": float(radius_tolerance),

@@ -38,6 +38,8 @@ import pandas as pd
 from ._errors import TenfoldInputError
 from ._pentagrid import E_PERP, TAU
 from ._schema import PHASON_MAP, conform, empty_table
+from ._strain import strain_summary
+from .fourier import _compare_phason, fourier_phason_summary
 
 __all__ = ["lift_tiling", "phason_from_network", "window_contains", "phason_map_figure", "phason_stage",
            "strain_summary"]
@@ -308,56 +310,6 @@ def _bootstrap(xpar: np.ndarray, xperp: np.ndarray, n_boot: int, gen: np.random.
     return np.transpose(sol[:, :2, :], (0, 2, 1))
 
 
-def strain_summary(w, se) -> dict:
-    """Singular values of a measured 2x2 strain with the noise bias removed, and a test of 'no strain'.
-
-    The singular values of ``W_hat = W + E`` are biased by the noise ``E``: the largest up, and a zero strain
-    reads ``s1 ~ 1.9 se`` on average. Both invariants they come from are corrected by their expected noise
-    contributions (element variances ``v = se^2``, errors independent and zero-mean):
-    ``E |W_hat|_F^2 = |W|_F^2 + sum v`` and ``E det(W_hat)^2 = det(W)^2 + M + D`` with
-    ``M = w11^2 v22 + w22^2 v11 + w12^2 v21 + w21^2 v12`` (whose estimate from ``W_hat`` is itself high by ``2 D``)
-    and ``D = v11 v22 + v12 v21``; the singular values are the roots of ``s^4 - |W|_F^2 s^2 + det(W)^2``, the
-    invariants clipped to their admissible range (``|W|_F^2 >= 0``, ``0 <= det^2 <= |W|_F^4 / 4``).
-
-    Parameters
-    ----------
-    w, se : (2, 2) array_like
-        The strain matrix and the standard errors of its elements.
-
-    Returns
-    -------
-    dict
-        ``singular_values`` (bias-corrected, descending), ``singular_values_plain`` (of ``w`` itself),
-        ``zero_chi2`` (``sum (w / se)^2``, chi-square with 4 degrees of freedom when there is no strain),
-        ``zero_p`` (its tail probability) and ``significant`` (``zero_p < 0.003``, i.e. 3 sigma).
-
-    Examples
-    --------
-    >>> out = strain_summary([[0.01, 0.0], [0.0, 0.0]], [[0.01, 0.01], [0.01, 0.01]])
-    >>> [round(v, 4) for v in out["singular_values"]], out["significant"]
-    ([0.0, 0.0], False)
-    """
-    from scipy.stats import chi2
-
-    w = np.asarray(w, dtype=float).reshape(2, 2)
-    v = np.asarray(se, dtype=float).reshape(2, 2) ** 2
-    plain = np.linalg.svd(w, compute_uv=False)
-    out = {"singular_values_plain": plain.tolist()}
-    if not np.all(np.isfinite(v)):
-        out.update(singular_values=plain.tolist(), zero_chi2=None, zero_p=None, significant=None)
-        return out
-    d = v[0, 0] * v[1, 1] + v[0, 1] * v[1, 0]
-    m = w[0, 0] ** 2 * v[1, 1] + w[1, 1] ** 2 * v[0, 0] + w[0, 1] ** 2 * v[1, 0] + w[1, 0] ** 2 * v[0, 1]
-    f = max(float(np.sum(w**2) - np.sum(v)), 0.0)
-    det2 = float(np.clip(np.linalg.det(w) ** 2 - m + d, 0.0, f * f / 4.0))
-    root = np.sqrt(max(f * f - 4.0 * det2, 0.0))
-    sv = np.sqrt(np.maximum([(f + root) / 2.0, (f - root) / 2.0], 0.0))
-    z2 = float(np.sum(w**2 / np.maximum(v, 1e-30)))
-    p = float(chi2.sf(z2, 4))
-    out.update(singular_values=sv.tolist(), zero_chi2=z2, zero_p=p, significant=bool(p < 0.003))
-    return out
-
-
 def _fit(xpar: np.ndarray, xperp: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a = np.hstack([xpar, np.ones((len(xpar), 1))])
     sol, *_ = np.linalg.lstsq(a, xperp, rcond=None)
@@ -586,8 +538,6 @@ def phason_stage(result, *, rng=0) -> None:
     ph["real_space"] = info
     f_info = result.summary.get("fourier")
     if f_info:  # a re-run from edited columns keeps the Fourier side of the earlier run
-        from .fourier import _compare_phason, fourier_phason_summary
-
         ph["fourier"] = fourier_phason_summary(f_info)
         _compare_phason(ph)
     else:

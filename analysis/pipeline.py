@@ -12,7 +12,6 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -20,150 +19,13 @@ import pandas as pd
 from . import __version__, _guards, _timing
 from ._errors import Cancelled, TenfoldInputError, TenfoldWarning
 from ._image import ImageMeta, Micrograph
+from ._lengths import DIAMETER_PER_SIGMA, ResolvedLengths, lengths_record, resolve_lengths
 from ._progress import ProgressCallback, report, sub_progress
 from ._result import AnalysisResult
 from ._schema import COLUMNS, LADDER, MOTIFS, NETWORK, PEAKS, SPOTS, TILES, conform, empty_table
+from .parameters import Parameters  # its own low module; kept importable from here
 
 __all__ = ["Parameters", "run_pipeline", "rerun_from_columns", "estimate_defaults", "Cancelled"]
-
-
-@dataclass
-class Parameters:
-    """Every user-settable parameter of one analysis. ``None`` means "choose automatically and report".
-
-    Attributes
-    ----------
-    pixel_size_nm : float or None
-        Override the file's calibration (nm per pixel).
-    dark_columns : bool
-        Columns darker than the background (HRTEM-like contrast) instead of bright (HAADF).
-    column_diameter_nm, column_spacing_nm : float or None
-        Override the automatic column width (full diameter, about 4.5 sigma) and nearest-column spacing.
-    column_diameter_px, column_spacing_px, ring_radius_px, ladder_r_max_px, d0_px, tiling_edge_px : float or None
-        The same lengths in pixels, for uncalibrated images (each length in one unit only).
-    n_species : int or None
-        Number of intensity classes; None chooses by BIC, 0 skips classification.
-    flatten : bool
-        Subtract a large-scale background (uneven illumination) before detection.
-    min_mass : float or None
-        Minimum integrated intensity of a column (image units x px^2); default none (the significance cut decides).
-    ring_order : int
-        Number of columns in a ring motif (5, 6, 8, 10 or 12).
-    ring_radius_nm : float or None
-        Ring radius; None finds it from the pair distances.
-    radius_tolerance : float
-        Relative tolerance on the ring radius.
-    pentagons : bool
-        Also search for pentagon motifs.
-    ladder_r_max_nm : float or None
-        Largest pair distance in the ladder analysis (default: automatic).
-    half_step : bool
-        Also try the half-step ladder tau^(n/2).
-    d0_nm : float or None
-        Ladder base distance (default: the strongest short-range pair peak).
-    tiling_edge_nm : float or None
-        Cluster-network edge length (default: from the centre pair distances).
-    fourier : bool
-        Run the Fourier stage.
-    correct_distortion : bool
-        Apply the scan-distortion correction measured from the Fourier spots to the column positions before the
-        structure stages (default False): every downstream table is then in the corrected frame, and
-        ``columns`` keeps the measured positions as ``x_raw_px``, ``y_raw_px``.
-    phason : bool
-        Lift the cluster tiling to perpendicular space and fit the linear phason strain (default True).
-    fourier_window : str
-        'hann' (default) or 'periodic_smooth' (periodic-plus-smooth decomposition, no window: about half the
-        finite-field uncertainty of the phason strain from the spots; see docs/fourier.md).
-    rng : int
-        Seed for bootstraps and mixture initialisation.
-    """
-
-    pixel_size_nm: float | None = None
-    dark_columns: bool = False
-    column_diameter_nm: float | None = None
-    column_spacing_nm: float | None = None
-    n_species: int | None = None
-    flatten: bool = False
-    min_mass: float | None = None
-    ring_order: int = 10
-    ring_radius_nm: float | None = None
-    radius_tolerance: float = 0.12
-    pentagons: bool = True
-    ladder_r_max_nm: float | None = None
-    half_step: bool = False
-    d0_nm: float | None = None
-    tiling_edge_nm: float | None = None
-    fourier: bool = True
-    correct_distortion: bool = False
-    phason: bool = True
-    fourier_window: str = "hann"
-    rng: int = 0
-    column_diameter_px: float | None = None
-    column_spacing_px: float | None = None
-    ring_radius_px: float | None = None
-    ladder_r_max_px: float | None = None
-    d0_px: float | None = None
-    tiling_edge_px: float | None = None
-
-    def to_dict(self) -> dict:
-        return dataclasses.asdict(self)
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "Parameters":
-        names = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise TenfoldInputError(f"unknown parameter(s) {unknown}; known: {sorted(names)}")
-        return cls(**d)
-
-    def validate(self) -> "Parameters":
-        """Check every value; raise :class:`TenfoldInputError` naming the first bad parameter."""
-        for name in ("pixel_size_nm", "column_diameter_nm", "column_spacing_nm", "ring_radius_nm",
-                     "ladder_r_max_nm", "d0_nm", "tiling_edge_nm", "min_mass", *(f"{b}_px" for b in _LENGTHS)):
-            v = getattr(self, name)
-            if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v) and v > 0):
-                raise TenfoldInputError(f"parameter {name} must be a positive number (or empty for automatic), got {v!r}")
-        if self.pixel_size_nm is not None:
-            from .io import _check_pixel_size
-
-            _check_pixel_size(self.pixel_size_nm, "parameter pixel_size_nm")
-        if not isinstance(self.rng, np.random.Generator) and (
-                isinstance(self.rng, bool) or not (isinstance(self.rng, (int, np.integer)) and self.rng >= 0)):
-            raise TenfoldInputError(f"parameter rng must be a whole number 0 or larger (the seed), got {self.rng!r}")
-        for base in _LENGTHS:
-            if getattr(self, f"{base}_nm") is not None and getattr(self, f"{base}_px") is not None:
-                raise TenfoldInputError(f"parameters {base}_nm and {base}_px both given; give the length in one unit")
-        if self.n_species is not None and not (isinstance(self.n_species, (int, np.integer)) and 0 <= self.n_species <= 8):
-            raise TenfoldInputError(f"parameter n_species must be empty (automatic), 0 (skip) or 1-8, got {self.n_species!r}")
-        if self.ring_order not in (5, 6, 8, 10, 12):
-            raise TenfoldInputError(f"parameter ring_order must be one of 5, 6, 8, 10, 12, got {self.ring_order!r}")
-        if self.fourier_window not in ("hann", "periodic_smooth"):
-            raise TenfoldInputError(
-                f"parameter fourier_window must be 'hann' or 'periodic_smooth', got {self.fourier_window!r}")
-        if not (0 < self.radius_tolerance < 0.5):
-            raise TenfoldInputError(f"parameter radius_tolerance must be between 0 and 0.5, got {self.radius_tolerance!r}")
-        if not (isinstance(self.rng, (int, np.integer)) and 0 <= self.rng < 2**63):
-            raise TenfoldInputError(f"parameter rng must be a whole number >= 0 (a seed), got {self.rng!r}")
-        return self
-
-
-_LENGTHS = ("column_diameter", "column_spacing", "ring_radius", "ladder_r_max", "d0", "tiling_edge")
-
-
-def _length_px(params: "Parameters", base: str, pixel_size_nm: float | None) -> float | None:
-    """A length parameter in px, from its ``_px`` or ``_nm`` field (None when automatic)."""
-    px = getattr(params, f"{base}_px")
-    if px is not None:
-        return float(px)
-    nm = getattr(params, f"{base}_nm")
-    if nm is None:
-        return None
-    if pixel_size_nm is None:
-        raise TenfoldInputError(
-            f"parameter {base}_nm is given in nm but the image is uncalibrated; give the pixel size too, "
-            f"or the length in pixels ({base}_px), or leave it empty for automatic"
-        )
-    return float(nm) / float(pixel_size_nm)
 
 
 def _with_nm(df: pd.DataFrame, ps: float | None, pairs: dict[str, str]) -> pd.DataFrame:
@@ -202,7 +64,7 @@ def estimate_defaults(micrograph: Micrograph, *, dark_columns: bool = False) -> 
     except TenfoldInputError as exc:
         raise _guards.with_file(exc, micrograph.meta.path) from None
     ps = micrograph.meta.pixel_size_nm
-    diameter_px = 4.5 * est.sigma_px
+    diameter_px = DIAMETER_PER_SIGMA * est.sigma_px
     return {
         "column_spacing_px": float(est.spacing_px),
         "column_diameter_px": float(diameter_px),
@@ -235,8 +97,10 @@ def _region_summaries(result: AnalysisResult, regions) -> list[dict]:
     return out
 
 
-def _structure(result: AnalysisResult, params: Parameters, regions, progress: ProgressCallback | None) -> None:
-    """Motifs, ladders and tiling from the columns table in ``result`` (fills tables, curves and summary)."""
+def _structure(result: AnalysisResult, params: Parameters, lengths: ResolvedLengths, regions,
+               progress: ProgressCallback | None) -> None:
+    """Motifs, ladders and tiling from the columns table in ``result`` (fills tables, curves and summary); the
+    stages take the lengths in px as ``resolve_lengths`` resolved them."""
     from . import ladder as _ladder
     from . import motifs as _motifs
     from . import tiling as _tiling
@@ -247,8 +111,8 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     report(progress, 0.0, "searching ring and pentagon motifs")
     motifs, m_info = _motifs.find_motifs(
         ok,
-        order=params.ring_order,
-        radius_px=_length_px(params, "ring_radius", ps),
+        ring_order=params.ring_order,
+        ring_radius_px=lengths.px("ring_radius"),
         radius_tolerance=params.radius_tolerance,
         pentagons=params.pentagons,
         pixel_size_nm=ps,
@@ -273,8 +137,8 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     _timing.lap("motifs")
 
     report(progress, 0.5, "pair distances and golden-ratio ladder")
-    rmax = _length_px(params, "ladder_r_max", ps)
-    d0 = _length_px(params, "d0", ps)
+    rmax = lengths.px("ladder_r_max")
+    d0 = lengths.px("d0")
     ladders, peaks, l_info = [], [], {}
     # one shell per cluster: the primary one (motifs.SHELL_RULE); other shells share its centres
     rings = motifs[motifs["kind"].str.startswith("ring") & motifs["primary"]] if len(motifs) else motifs
@@ -290,7 +154,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
         sets.append(("centres", rings["centre_x_px"].to_numpy(), rings["centre_y_px"].to_numpy(), None))
     for name, x, y, base in sets:
         lt, pk, info = _ladder.fit_ladder(
-            x, y, point_set=name, d0_px=base, r_max_px=rmax, half_step=params.half_step, pixel_size_nm=ps,
+            x, y, point_set=name, d0_px=base, ladder_r_max_px=rmax, half_step=params.half_step, pixel_size_nm=ps,
             rng=params.rng,
         )
         ladders.append(lt)
@@ -312,7 +176,7 @@ def _structure(result: AnalysisResult, params: Parameters, regions, progress: Pr
     _timing.lap("ladder")
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
-        motifs, edge_px=_length_px(params, "tiling_edge", ps), pixel_size_nm=ps,
+        motifs, tiling_edge_px=lengths.px("tiling_edge"), pixel_size_nm=ps,
         progress=sub_progress(progress, 0.75, 1.0), vertex_kind=vertex_kind,
     )
     result.tables["network"] = network
@@ -414,12 +278,14 @@ def run_pipeline(
     micrograph = _calibrated(micrograph, params)
     _guards.check_lengths(params, micrograph.data.shape, micrograph.meta.pixel_size_nm)
     try:
-        return _run_regions(micrograph, params, regions, progress, execution)
+        lengths = resolve_lengths(params, micrograph.meta.pixel_size_nm)  # once, before any stage runs
+        return _run_regions(micrograph, params, lengths, regions, progress, execution)
     except TenfoldInputError as exc:  # the one line names the file, whichever stage raised
         raise _guards.with_file(exc, micrograph.meta.path) from None
 
 
-def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress, execution=None) -> AnalysisResult:
+def _run_regions(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, regions, progress,
+                 execution=None) -> AnalysisResult:
     _guards.check_regions(regions, micrograph.data.shape)
     if regions:
         # small regions of a large image: analyse their bounding box (with a margin) and shift the tables back
@@ -428,11 +294,11 @@ def _run_regions(micrograph: Micrograph, params: Parameters, regions, progress, 
         work, work_regions, offset = crop_to_regions(micrograph, regions)
         if work is not micrograph:
             with _guards.small_image_hint(work.data.shape):
-                result = _run(work, params, work_regions, progress, execution)
+                result = _run(work, params, lengths, work_regions, progress, execution)
             shift_result(result, micrograph, offset)
             return result
     with _guards.small_image_hint(micrograph.data.shape):
-        return _run(micrograph, params, regions, progress, execution)
+        return _run(micrograph, params, lengths, regions, progress, execution)
 
 
 def _column_finder(micrograph: Micrograph, params: Parameters, execution):
@@ -473,7 +339,8 @@ def _fourier_input(micrograph: Micrograph, tiled: bool):
     return data, valid, note
 
 
-def _run(micrograph: Micrograph, params: Parameters, regions, progress, execution=None) -> AnalysisResult:
+def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, regions, progress,
+         execution=None) -> AnalysisResult:
     meta = micrograph.meta
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
@@ -492,10 +359,8 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
             pixel_size_nm=ps,
             regions=regions,
             dark_columns=params.dark_columns,
-            column_diameter_nm=params.column_diameter_nm,
-            column_spacing_nm=params.column_spacing_nm,
-            column_diameter_px=params.column_diameter_px,
-            column_spacing_px=params.column_spacing_px,
+            column_diameter_px=lengths.px("column_diameter"),
+            column_spacing_px=lengths.px("column_spacing"),
             min_mass=params.min_mass,
             flatten=params.flatten,
             n_species=params.n_species,
@@ -515,17 +380,17 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
             from .fourier import correct_columns
 
             report(progress, 0.55, "power spectrum and scan-distortion correction")
-            correct_columns(result, f_micrograph, window=params.fourier_window)
+            correct_columns(result, f_micrograph, fourier_window=params.fourier_window)
             _timing.lap("distortion_correction")
         elif params.correct_distortion:
             result.summary.setdefault("notes", []).append(
                 "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
-        _structure(result, params, regions, sub_progress(progress, 0.55, 0.9))
+        _structure(result, params, lengths, regions, sub_progress(progress, 0.55, 0.9))
         if params.fourier:
             report(progress, 0.9, "power spectrum")
             from .fourier import fourier_stage
 
-            fourier_stage(result, f_micrograph, window=params.fourier_window)
+            fourier_stage(result, f_micrograph, fourier_window=params.fourier_window)
             _timing.lap("fourier")
             if f_note:
                 f_info = result.summary["fourier"]
@@ -534,6 +399,7 @@ def _run(micrograph: Micrograph, params: Parameters, regions, progress, executio
         report(progress, 1.0, "analysis done")
     result.summary["timings_s"] = clock.as_dict()  # wall seconds per stage of this run
     _timing.stop(clock)
+    result.summary["lengths_px"] = lengths_record(lengths, result.summary)
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     for w in caught:
         if w not in kept:
@@ -654,6 +520,7 @@ def rerun_from_columns(
     if not {"x_px", "y_px"} <= set(columns.columns):
         raise TenfoldInputError("re-run from columns: the edited table needs x_px and y_px columns")
     params = (params or Parameters.from_dict(result.parameters)).validate()
+    lengths = resolve_lengths(params, result.meta.pixel_size_nm)
     shape = result.image.shape if result.image is not None else result.meta.shape
     _guards.check_positions(pd.to_numeric(columns["x_px"], errors="coerce"),
                             pd.to_numeric(columns["y_px"], errors="coerce"), shape)
@@ -733,10 +600,11 @@ def rerun_from_columns(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", TenfoldWarning)
         tmp = AnalysisResult(meta=result.meta, tables={"columns": struct_cols}, summary=new.summary, image=result.image)
-        _structure(tmp, params, regions, progress)
+        _structure(tmp, params, lengths, regions, progress)
     for key in ("motifs", "ladder", "pair_peaks", "tiles", "network", "phason_map"):
         if key in tmp.tables:
             new.tables[key] = tmp.tables[key]
     new.curves = tmp.curves
+    new.summary["lengths_px"] = lengths_record(lengths, new.summary)
     kept = [w for w in caught if issubclass(w.category, TenfoldWarning)]
     return _finish(new, regions, kept)

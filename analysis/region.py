@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._errors import TenfoldInputError
+from ._lengths import check_pixel_size, uncalibrated
 
 __all__ = ["Region", "parse_region", "label_points", "region_mask"]
 
@@ -114,10 +115,10 @@ def parse_region(text: str, *, pixel_size_nm=None, unit: str = "nm", label: int 
     if len(vals) != 4 or not all(np.isfinite(vals)):
         raise TenfoldInputError(f"--region {text!r}: expected four numbers x0,y0,x1,y1 separated by commas")
     if unit == "nm":
-        if pixel_size_nm is None or not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-            raise TenfoldInputError(f"--region {text!r} is in nm but the image has no pixel size; give --pixel-size "
-                                    "or the region in px")
-        vals = [v / float(pixel_size_nm) for v in vals]
+        ps = check_pixel_size(pixel_size_nm, plausible=False)
+        if ps is None:
+            raise uncalibrated(f"--region {text!r}", "the region in pixels (--region-unit px)", pixel_size="--pixel-size")
+        vals = [v / ps for v in vals]
     x0, y0, x1, y1 = vals
     if x0 == x1 or y0 == y1:
         raise TenfoldInputError(f"--region {text!r}: the rectangle has zero width or height")

@@ -29,7 +29,9 @@ import pandas as pd
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
+from ._lengths import check_pixel_size
 from ._progress import ProgressCallback, report
+from ._renamed import renamed_keywords
 from ._schema import NETWORK, TILES, conform, empty_table
 
 __all__ = ["TAU", "TILE_TYPES", "TILE_COLOURS", "build_network", "edge_phase", "orientation_domains", "faces",
@@ -266,10 +268,11 @@ def edge_phase(xy: np.ndarray, *, tol: float = 0.1) -> tuple[float | None, str]:
 
 
 # --------------------------------------------------------------------------------------------- public
+@renamed_keywords(edge_px="tiling_edge_px")
 def build_network(
     motifs: pd.DataFrame,
     *,
-    edge_px: float | None = None,
+    tiling_edge_px: float | None = None,
     edge_tolerance: float = 0.1,
     pixel_size_nm: float | None = None,
     progress: ProgressCallback | None = None,
@@ -282,8 +285,9 @@ def build_network(
     motifs : DataFrame
         Motifs table (``_schema.MOTIFS``); rows whose ``kind`` starts with ``vertex_kind`` ('ring' by default;
         'pentagon' for free-standing pentagonal clusters) are the vertices.
-    edge_px : float, optional
+    tiling_edge_px : float, optional
         Tiling edge length in px; default automatic (see the module notes; the info says which peak and why).
+        ``edge_px`` is a deprecated alias.
     edge_tolerance : float
         Relative tolerance on the edge length for a link (0 < tol < 0.5).
     pixel_size_nm : float, optional
@@ -309,12 +313,12 @@ def build_network(
     """
     if not isinstance(motifs, pd.DataFrame):
         raise TenfoldInputError(f"build_network: motifs must be a pandas DataFrame, got {type(motifs).__name__}")
+    edge_px = tiling_edge_px
     if edge_px is not None and not (np.isfinite(edge_px) and edge_px > 0):
-        raise TenfoldInputError(f"build_network: edge_px={edge_px!r} must be a positive number of pixels (or None)")
+        raise TenfoldInputError(f"build_network: tiling_edge_px={edge_px!r} must be a positive number of pixels (or None)")
     if not (0 < edge_tolerance < 0.5):
         raise TenfoldInputError(f"build_network: edge_tolerance={edge_tolerance!r} must lie in (0, 0.5)")
-    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
-        raise TenfoldInputError(f"build_network: pixel_size_nm={pixel_size_nm!r} must be positive or None")
+    check_pixel_size(pixel_size_nm, plausible=False)
     info: dict = {"calibrated": pixel_size_nm is not None, "edge_tolerance": float(edge_tolerance),
                   "tile_counts": {t: 0 for t in TILE_TYPES}, "thick_thin_ratio": None}
     need = [c for c in ("motif_id", "kind", "centre_x_px", "centre_y_px") if c not in motifs.columns]

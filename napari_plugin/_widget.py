@@ -35,6 +35,8 @@ from qtpy.QtWidgets import (
     QWidget,
 )
 
+from tenfold.analysis._lengths import DIAMETER_PER_SIGMA
+
 from ._layers import (
     HIGHLIGHT_COLOUR,
     RESULT_KINDS,
@@ -499,8 +501,8 @@ class PipelineWidget(QWidget):
                            "(HRTEM, ABF).",
             self.nm_fields["column_spacing_nm"]: "Nearest-neighbour distance between columns, in nm. Empty: "
                                                  "measured from the image (Estimate shows the value).",
-            self.nm_fields["column_diameter_nm"]: "Full column diameter in nm (about 4.5 Gaussian sigma). Empty: "
-                                                  "measured from the image (Estimate shows the value).",
+            self.nm_fields["column_diameter_nm"]: f"Full column diameter in nm (about {DIAMETER_PER_SIGMA:g} Gaussian "
+                                                  "sigma). Empty: measured from the image (Estimate shows the value).",
             self.min_intensity: "Drop columns whose integrated intensity (image units x px\u00b2) is below this. "
                                 "Empty: no cut (the significance test decides).",
             self.nm_fields["ring_radius_nm"]: "Radius of the ring motifs in nm. Empty: the pair-distance peak that "

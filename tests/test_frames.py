@@ -238,3 +238,16 @@ def test_batch_aligns_stacks(tmp_path, low_dose):
     expect = shifts.loc[4:7, "shift_x_px"].to_numpy() - shifts.loc[4, "shift_x_px"]
     assert np.allclose(b["shift_x_px"], expect, atol=0.05)
     assert (tmp_path / "out" / "a" / "aligned_mean.tif").exists()
+
+
+def test_periodic_lattice_smallest_shift_and_note():
+    """A square lattice repeats every 12.5 px: every lattice translation correlates as well as the true shift, so
+    the smallest one is taken (right while jumps stay below half a spacing) and a note says the shift is known
+    only up to a lattice translation."""
+    cond = replace(STRESS_CELLS["square"], size_px=256)
+    stack, _, shifts, _ = drifting_stack(cond, n_frames=8, jump_px=1.5, jump_chance=0.3, rng=3)
+    out = F.align_frames(stack)
+    assert float(np.sqrt(np.mean(_errors(out, shifts) ** 2))) < 0.05
+    assert any("structure repeats" in n for n in out.info["notes"])
+    # an aperiodic decagonal structure gets no such note
+    assert not any("repeats" in n for n in F.align_frames(drifting_stack(CELL, n_frames=3, rng=1)[0]).info["notes"])

@@ -212,7 +212,7 @@ def test_signal_inside_a_weakref_callback_ends_like_ctrl_c(monkeypatch, capsys):
 # 3. batch: the batch level's files are protected like a single run's; resume compares checksums
 
 
-def _fake_analyse(path, folder, params, frame, frame_range, figures, overwrite, execution):
+def _fake_analyse(path, folder, params, frame, frame_range, figures, overwrite, execution, align=True, nonrigid=False):
     """Stand-in for one image's analysis: a finished folder as write_results leaves it (summary, parameters)."""
     from tenfold.analysis._params_file import parameters_to_toml
     from tenfold.analysis.pipeline import Parameters
@@ -512,9 +512,10 @@ def test_file_system_errors_are_one_named_line(tmp_path, capsys, monkeypatch):
     ("out_dir /data/res: results folder exists", "--out /data/res: results folder exists"),
     ("/data/out_dir/frame.tif: is a directory", "/data/out_dir/frame.tif: is a directory"),
     ("frame=3 out of range", "--frame=3 out of range"),
+    ("scan distortion in the corrected frame", "scan distortion in the corrected frame"),
     ("a single 2-D image; drop frame/frame_range", "a single 2-D image; drop --frame/--frames"),
     ("/data/frame_range: no such file", "/data/frame_range: no such file"),
-], ids=["option", "path_kept", "frame", "alternatives", "path_end"])
+], ids=["option", "path_kept", "frame", "frame_as_a_word", "alternatives", "path_end"])
 def test_option_names_replace_parameters_not_paths(message, expected):
     from tenfold.analysis.cli import _flag_names
 

@@ -234,9 +234,12 @@ def test_stack_frame(tmp_path):
 
 def test_stack_frame_range_is_mean(tmp_path):
     path, stack = _stack_file(tmp_path)
-    mg = read_micrograph(path, frame_range=(1, 4))
+    mg = read_micrograph(path, frame_range=(1, 4), align=False)
     np.testing.assert_allclose(mg.data, stack[1:4].astype(np.float64).mean(axis=0), rtol=1e-6)
-    assert mg.meta.frames == "mean of frames 1-3"
+    assert mg.meta.frames == "mean of frames 1-3" and mg.meta.frames_averaged == 3 and mg.alignment is None
+    assert any("without alignment" in n for n in mg.meta.notes)
+    # aligned by default: these frames are noise without structure, which is refused with a way out
+    _raises(["stack.tif", "no common structure", "--no-align"], read_micrograph, path, frame_range=(1, 4))
     _raises(["stack.tif", "frame_range=(3, 3)"], read_micrograph, path, frame_range=(3, 3))
     _raises(["stack.tif", "not both"], read_micrograph, path, frame=1, frame_range=(0, 2))
 

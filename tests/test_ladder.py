@@ -124,7 +124,7 @@ def decorated():
 def test_ring_ladder_in_the_columns(decorated):
     cols, _ = decorated
     r = RING_NM / PX_NM
-    lad, pk, info = fit_ladder(cols["x_px"], cols["y_px"], r_max_px=2.1 * r, pixel_size_nm=PX_NM)
+    lad, pk, info = fit_ladder(cols["x_px"], cols["y_px"], ladder_r_max_px=2.1 * r, pixel_size_nm=PX_NM)
     # within one ring: edge e, radius R = tau e, chord 2 R sin 54 = tau^2 e (regular decagon, Euclid XIII.9)
     assert set(lad["rung"]) >= {0.0, 1.0, 2.0}
     assert np.abs(lad["deviation_pct"]).max() < 0.5
@@ -156,7 +156,7 @@ def test_half_step_ladder_finds_no_half_rungs_in_a_decagonal_set(decorated):
     # tau^(1/2) = 1.272 is not a chord ratio of the regular decagon (2 sin(k pi / 10) x tau^m: 0.618, 1.176,
     # 1.618, 1.902, 2; Euclid XIII), so on a decagonal point set the half-step ladder must match whole rungs only.
     cols, _ = decorated
-    lad, _, info = fit_ladder(cols["x_px"], cols["y_px"], half_step=True, r_max_px=25.0)
+    lad, _, info = fit_ladder(cols["x_px"], cols["y_px"], half_step=True, ladder_r_max_px=25.0)
     assert info["half_step"] is True and len(lad) >= 2
     assert np.all(lad["rung"].to_numpy() % 1.0 == 0.0)
 
@@ -213,7 +213,7 @@ def test_collinear_points():
     _assert_empty(*fit_ladder(x, 2 * x + 1))
 
 
-@pytest.mark.parametrize("kw", [{"d0_px": 0.0}, {"d0_px": -3.0}, {"r_max_px": 0.0}, {"point_set": "atoms"},
+@pytest.mark.parametrize("kw", [{"d0_px": 0.0}, {"d0_px": -3.0}, {"ladder_r_max_px": 0.0}, {"point_set": "atoms"},
                                 {"pixel_size_nm": -1.0}])
 def test_bad_parameters_raise(kw):
     with pytest.raises(TenfoldInputError):
@@ -230,15 +230,15 @@ def test_pair_distribution_bad_input():
 
 def test_reproducible_with_seed(decorated):
     cols, _ = decorated
-    a = fit_ladder(cols["x_px"], cols["y_px"], r_max_px=25.0, rng=4)[0]
-    b = fit_ladder(cols["x_px"], cols["y_px"], r_max_px=25.0, rng=4)[0]
+    a = fit_ladder(cols["x_px"], cols["y_px"], ladder_r_max_px=25.0, rng=4)[0]
+    b = fit_ladder(cols["x_px"], cols["y_px"], ladder_r_max_px=25.0, rng=4)[0]
     pd.testing.assert_frame_equal(a, b)
 
 
 # --------------------------------------------------------------------------------------------- figure
 def test_ladder_figure(decorated):
     cols, _ = decorated
-    lad, pk, info = fit_ladder(cols["x_px"], cols["y_px"], r_max_px=25.0)
+    lad, pk, info = fit_ladder(cols["x_px"], cols["y_px"], ladder_r_max_px=25.0)
     curve = info.pop("curve")
     res = SimpleNamespace(curves={"pair_distribution_columns": curve}, tables={"ladder": lad, "pair_peaks": pk},
                           meta=SimpleNamespace(pixel_size_nm=None))

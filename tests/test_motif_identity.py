@@ -163,7 +163,7 @@ def test_mixed_species_free_pentagons_only_when_asked():
 def test_free_pentagons_explained_by_rings_are_dropped():
     # ring order 5 at the bright radius: the same five columns are then a ring5 row, not also a free pentagon
     cols, truth = S.fivefold(6.0, rng=7)
-    motifs, info = find_motifs(cols, order=5, radius_px=0.48 / S.PX_NM, pixel_size_nm=S.PX_NM)
+    motifs, info = find_motifs(cols, ring_order=5, ring_radius_px=0.48 / S.PX_NM, pixel_size_nm=S.PX_NM)
     assert (motifs["kind"] == "ring5").sum() >= 0.98 * len(truth["centres"])
     free = motifs[motifs["kind"] == "pentagon"]
     assert (free["radius_nm"] < 0.4).all()  # only the inner shell is left as free pentagons
@@ -242,7 +242,7 @@ def test_unresolved_peak_gets_a_larger_uncertainty():
 def test_ladders_of_one_structure_agree(decagonal):
     cols, _, motifs, _ = decagonal
     rings = motifs[(motifs["kind"] == "ring10") & motifs["primary"]]
-    lc, pc, _ = fit_ladder(cols["x_px"], cols["y_px"], r_max_px=90.0)
+    lc, pc, _ = fit_ladder(cols["x_px"], cols["y_px"], ladder_r_max_px=90.0)
     lr, pr, _ = fit_ladder(rings["centre_x_px"], rings["centre_y_px"], point_set="centres")
     ag = ladder_agreement(pd.concat([lc, lr]), pd.concat([pc, pr]))
     assert ag["compared"] >= 1 and ag["agree"] and ag["note"] == ""

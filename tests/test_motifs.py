@@ -164,7 +164,7 @@ def test_vacancies_give_incomplete_rings():
 
 def test_given_radius_agrees_with_automatic(centred):
     cols, _, motifs, info = centred
-    m2, info2 = find_motifs(cols, radius_px=RING_NM / PX_NM, pentagons=False)
+    m2, info2 = find_motifs(cols, ring_radius_px=RING_NM / PX_NM, pentagons=False)
     assert info2["radius_source"] == "given"
     assert len(m2) == (motifs["kind"] == "ring10").sum()
 
@@ -241,7 +241,7 @@ def test_collinear_columns():
 
 def test_radius_that_finds_nothing(centred):
     cols = centred[0]
-    motifs, info = find_motifs(cols, radius_px=3.0)
+    motifs, info = find_motifs(cols, ring_radius_px=3.0)
     _assert_empty(motifs, info)
     assert "3" in info["message"]
 
@@ -249,14 +249,14 @@ def test_radius_that_finds_nothing(centred):
 @pytest.mark.parametrize("bad", [0.0, -4.0, np.nan])
 def test_bad_radius_raises(bad):
     cols, _ = decorated_pentagrid(3.0)
-    with pytest.raises(TenfoldInputError, match="radius_px"):
-        find_motifs(cols, radius_px=bad)
+    with pytest.raises(TenfoldInputError, match="ring_radius_px"):
+        find_motifs(cols, ring_radius_px=bad)
 
 
 def test_bad_options_raise():
     cols, _ = decorated_pentagrid(3.0)
-    with pytest.raises(TenfoldInputError, match="order"):
-        find_motifs(cols, order=7)
+    with pytest.raises(TenfoldInputError, match="ring_order"):
+        find_motifs(cols, ring_order=7)
     with pytest.raises(TenfoldInputError, match="radius_tolerance"):
         find_motifs(cols, radius_tolerance=0.0)
     with pytest.raises(TenfoldInputError, match="lacks"):
@@ -287,7 +287,7 @@ def test_overlapping_rings_are_reported():
     pts = np.concatenate([ring1, ring2[d > 1e-6]])
     assert len(pts) == 18
     cols = pd.DataFrame({"id": np.arange(len(pts)), "x_px": pts[:, 0] + 50, "y_px": pts[:, 1] + 50})
-    motifs, _ = find_motifs(cols, radius_px=r, pentagons=False)
+    motifs, _ = find_motifs(cols, ring_radius_px=r, pentagons=False)
     assert len(motifs) == 2 and (motifs["overlaps"] == 1).all()
 
 

@@ -82,7 +82,7 @@ def test_decorated_rings_to_tiling():
 
 def test_given_edge(penrose):
     t = penrose[0]
-    _, _, info = build_network(_as_motifs(t.vertices), edge_px=30.0)
+    _, _, info = build_network(_as_motifs(t.vertices), tiling_edge_px=30.0)
     assert info["edge_source"] == "given" and info["tile_counts"]["thick_rhombus"] == int(t.thick.sum())
 
 
@@ -153,10 +153,10 @@ def test_too_few_and_collinear_centres():
 
 
 def test_edge_that_links_nothing(penrose):
-    _assert_empty(*build_network(_as_motifs(penrose[0].vertices), edge_px=3.0))
+    _assert_empty(*build_network(_as_motifs(penrose[0].vertices), tiling_edge_px=3.0))
 
 
-@pytest.mark.parametrize("kw", [{"edge_px": 0.0}, {"edge_px": -2.0}, {"edge_tolerance": 0.7}])
+@pytest.mark.parametrize("kw", [{"tiling_edge_px": 0.0}, {"tiling_edge_px": -2.0}, {"edge_tolerance": 0.7}])
 def test_bad_parameters_raise(kw):
     with pytest.raises(TenfoldInputError):
         build_network(_as_motifs(np.random.default_rng(0).random((10, 2))), **kw)
