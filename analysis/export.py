@@ -350,6 +350,16 @@ def summary_table(result: AnalysisResult) -> pd.DataFrame:
     add("image", "pixel size", ps, None, "nm", f"source: {s.get('calibration_source', 'none')}")
     add("image", "columns", s.get("n_columns"))
     add("image", "motifs", s.get("n_motifs"))
+    frames = s.get("frames") or {}
+    if frames:
+        add("frames", "frames used", frames.get("n_used"), None, "",
+            f"of {frames.get('n_frames')}; {frames.get('method')} alignment to frame {frames.get('reference')}")
+        drift = frames.get("drift_px_per_frame") or [None, None]
+        for axis, v in zip("xy", drift):
+            add("frames", f"drift per frame, {axis}", v * f if _num(v) is not None else None, None, f"{unit}/frame")
+        add("frames", "shift uncertainty", frames.get("shift_sd_px") * f if _num(frames.get("shift_sd_px")) is not None
+            else None, None, unit, "per shift, relative to the reference frame")
+        add("frames", "residual drift (last round)", frames.get("residual_drift_px"), None, "px", "convergence")
     ladder = s.get("ladder") or {}
     for name in ("columns", "centres"):
         info = ladder.get(name)
