@@ -502,7 +502,7 @@ def _model_image(shape, fit, good):
     inside = (px >= 0) & (px < w) & (py >= 0) & (py < h)
     g = a[:, None, None] * np.exp(-0.5 * ((px - xs[:, None, None]) ** 2 + (py - ys[:, None, None]) ** 2)
                                   / sg[:, None, None] ** 2)
-    np.add.at(model, (py[inside], px[inside]), g[inside].astype(np.float32))
+    model += np.bincount((py[inside] * w + px[inside]).ravel(), weights=g[inside], minlength=h * w).reshape(h, w)
     return model
 
 
@@ -1410,8 +1410,12 @@ def _initial_noise_model(data, ok, dark_columns):
     whose variance does not equal its mean (a contrast-stretched 8-bit export, counts x 1000) is converted to
     equivalent counts or treated as white noise there.
     """
-    v = data[ok]
-    counts = bool(np.all(v >= 0) and np.all(np.mod(v, 1.0) == 0)) and not dark_columns
+    counts = False
+    if not dark_columns:
+        v = data[ok]
+        head = v[:1 << 14]  # most non-integer images show it in their first pixels: the full test is then skipped
+        counts = bool(np.all(head >= 0) and np.array_equal(np.rint(head), head) and np.all(v >= 0)
+                      and np.array_equal(np.rint(v), v))
     return {"model": "counts" if counts else "white", "gain": 1.0, "offset": 0.0,
             "how": "integer non-negative values: assumed raw counts (checked after the first round)" if counts else
                    "not raw counts by their values: white noise (checked after the first round)",
