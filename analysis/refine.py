@@ -25,7 +25,8 @@ import time
 
 import numpy as np
 import pandas as pd
-from numba import njit, prange
+import numba
+from numba import get_thread_id, njit, prange
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
@@ -62,10 +63,11 @@ def _profile(u0, n, x, s, g, dg, ds):
 
 
 @njit(cache=True)
-def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j):
-    """Objective at parameters p (and J^T W J, J^T W r when want_j).
+def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j, want_obj=True):
+    """Objective at parameters p (and J^T W J, J^T W r when want_j); leaves the profiles of p in gx .. dsy.
 
-    Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)).
+    Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
+    objective (a logarithm per pixel) only when ``want_obj``, else NaN.
     """
     x, y, s, a, b = p[0], p[1], p[2], p[3], p[4]
     _profile(u0, nx, x, s, gx, dgx, dsx)
@@ -99,8 +101,9 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
             wp = 1.0 / (m if m > 1.0 else 1.0)
             chi2 += res * res * wp
             if counts:
-                mm = m if m > 1e-9 else 1e-9
-                obj += mm - d[k] * math.log(mm)
+                if want_obj:
+                    mm = m if m > 1e-9 else 1e-9
+                    obj += mm - d[k] * math.log(mm)
                 w = wp
             else:
                 obj += res * res
@@ -139,13 +142,33 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
         for i in range(5):
             for j in range(i):
                 jtj[i, j] = jtj[j, i]
+    if counts and not want_obj:
+        obj = np.nan
     return obj, rss, npx, chi2
 
 
 @njit(cache=True)
-def _solve5(a, rhs, out):
-    """Solve a 5x5 symmetric positive system by Gaussian elimination with partial pivoting; False if singular."""
-    m = np.empty((5, 6))
+def _poisson_objective(d, msk, off, nx, ny, p, gx, gy):
+    """The Poisson objective of ``_evaluate`` at p, from the profiles of p it left in gx, gy."""
+    a, b = p[3], p[4]
+    obj = 0.0
+    for r in range(ny):
+        gyr = gy[r]
+        for c in range(nx):
+            k = r * nx + c
+            if not msk[k]:
+                continue
+            gg = gx[c] * gyr
+            m = b + a * gg + off[k]
+            mm = m if m > 1e-9 else 1e-9
+            obj += mm - d[k] * math.log(mm)
+    return obj
+
+
+@njit(cache=True)
+def _solve5(a, rhs, out, m):
+    """Solve a 5x5 symmetric positive system by Gaussian elimination with partial pivoting (``m``: a 5 x 6
+    scratch matrix); False if singular."""
     for i in range(5):
         for j in range(5):
             m[i, j] = a[i, j]
@@ -185,11 +208,38 @@ STEP_TOL = 1e-4
 
 @njit(cache=True, nogil=True)
 def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-             nb_par, start, out):
+             nb_par, start, out, fbuf, msk):
     """Fit column k; writes ``out[k, :_NOUT]`` (see ``_columns_out``). ``start[k]`` (x, y, s, A, B), when finite, is
-    a warm start (a previous pass)."""
+    a warm start (a previous pass). ``fbuf`` (``_scratch_size(rad)`` floats) and ``msk`` ((2 rad + 1)^2 bools) are
+    the calling thread's scratch: no allocation per column."""
     h, w = img.shape
     side = 2 * rad + 1
+    s2 = side * side
+    d = fbuf[0:s2]
+    off = fbuf[s2:2 * s2]
+    o = 2 * s2
+    gx = fbuf[o:o + side]
+    dgx = fbuf[o + side:o + 2 * side]
+    dsx = fbuf[o + 2 * side:o + 3 * side]
+    gy = fbuf[o + 3 * side:o + 4 * side]
+    dgy = fbuf[o + 4 * side:o + 5 * side]
+    dsy = fbuf[o + 5 * side:o + 6 * side]
+    o += 6 * side
+    p = fbuf[o:o + 5]
+    trial = fbuf[o + 5:o + 10]
+    delta = fbuf[o + 10:o + 15]
+    jtr = fbuf[o + 15:o + 20]
+    tr = fbuf[o + 20:o + 25]
+    rhs = fbuf[o + 25:o + 30]
+    e0 = fbuf[o + 30:o + 35]
+    col = fbuf[o + 35:o + 40]
+    o += 40
+    jtj = fbuf[o:o + 25].reshape((5, 5))
+    tj = fbuf[o + 25:o + 50].reshape((5, 5))
+    damp = fbuf[o + 50:o + 75].reshape((5, 5))
+    sm = fbuf[o + 75:o + 105].reshape((5, 6))
+    for i in range(s2):
+        off[i] = 0.0
     for q in range(_NOUT):
         out[k, q] = np.nan
     xi = x0[k]
@@ -207,9 +257,6 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
     v1 = min(cy + rad, h - 1)
     nx = u1 - u0 + 1
     ny = v1 - v0 + 1
-    d = np.empty(side * side)
-    msk = np.empty(side * side, dtype=np.bool_)
-    off = np.zeros(side * side)
     touched = False
     dsum = 0.0
     dmin = np.inf
@@ -237,12 +284,6 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
     if touched:
         out[k, 8] = _MASKED
         return
-    gx = np.empty(side)
-    dgx = np.empty(side)
-    dsx = np.empty(side)
-    gy = np.empty(side)
-    dgy = np.empty(side)
-    dsy = np.empty(side)
     # neighbours' current model: fixed during this column's fit; each only over its box within the patch
     for t in range(nb_ptr[k], nb_ptr[k + 1]):
         j = nb_idx[t]
@@ -263,14 +304,6 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             base = (r - v0) * nx - u0
             for c in range(ua, ub + 1):
                 off[base + c] += ayr * gx[c - ua]
-    p = np.empty(5)
-    trial = np.empty(5)
-    delta = np.empty(5)
-    jtj = np.empty((5, 5))
-    jtr = np.empty(5)
-    tj = np.empty((5, 5))
-    tr = np.empty(5)
-    damp = np.empty((5, 5))
     if nvalid < 8:
         out[k, 8] = _DIVERGED
         return
@@ -311,11 +344,13 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         if not p[3] > 0:
             p[3] = max(dmax - dmin, 1e-6)
             p[4] = dmin
+    # the objective (a logarithm per pixel) is only needed to judge a trial step: a warm start that has already
+    # converged takes its small step without one
     obj, rss, npx, chi2 = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
-                                    True)
+                                    True, False)
+    obj_known = not counts
     lam = 1e-3
     it = 0
-    rhs = np.empty(5)
     for it in range(n_iter):
         for i in range(5):
             for j in range(5):
@@ -328,7 +363,7 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
                 damp[i, 2] = 0.0
             damp[2, 2] = 1.0
             rhs[2] = 0.0
-        if not _solve5(damp, rhs, delta):
+        if not _solve5(damp, rhs, delta, sm):
             lam *= 10.0
             continue
         if lam < 1e-2 and abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL \
@@ -343,6 +378,9 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         if not (trial[2] > 0.05 and trial[3] > 0.0):
             lam *= 10.0
             continue
+        if not obj_known:  # gx, gy still hold the profiles of p: no trial has been evaluated yet
+            obj = _poisson_objective(d, msk, off, nx, ny, p, gx, gy)
+            obj_known = True
         tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
                                             tj, tr, True)
         if tobj <= obj:
@@ -372,18 +410,18 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             jtj[2, i] = 0.0
             jtj[i, 2] = 0.0
         jtj[2, 2] = 1.0
-    e0 = np.zeros(5)
-    col = np.empty(5)
+    for i in range(5):
+        e0[i] = 0.0
     e0[0] = 1.0
-    okx = _solve5(jtj, e0, col)
+    okx = _solve5(jtj, e0, col, sm)
     vx = col[0]
     e0[0] = 0.0
     e0[1] = 1.0
-    oky = _solve5(jtj, e0, col)
+    oky = _solve5(jtj, e0, col, sm)
     vy = col[1]
     e0[1] = 0.0
     e0[3] = 1.0
-    oka = _solve5(jtj, e0, col)
+    oka = _solve5(jtj, e0, col, sm)
     va = col[3]
     for i in range(5):
         out[k, i] = p[i]
@@ -416,23 +454,37 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
     out[k, 8] = status
 
 
+@njit(cache=True, inline="always")
+def _scratch_size(rad):
+    """Floats of scratch one ``_fit_one`` call needs."""
+    side = 2 * rad + 1
+    return 2 * side * side + 6 * side + 145
+
+
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
 def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, out):
-    """Fit every column in parallel (prange over columns), see ``_fit_one``."""
+             start, out, n_threads):
+    """Fit every column in parallel (prange over columns), see ``_fit_one``; one scratch row per thread."""
+    side = 2 * rad + 1
+    fbuf = np.empty((n_threads, _scratch_size(rad)))
+    mbuf = np.empty((n_threads, side * side), dtype=np.bool_)
     for k in prange(x0.shape[0]):
+        tid = get_thread_id()
         _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                 nb_par, start, out)
+                 nb_par, start, out, fbuf[tid], mbuf[tid])
 
 
 @njit(cache=True, nogil=True)
 def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                nb_par, start, out):
+                nb_par, start, out, n_threads):
     """``_fit_all`` in the calling thread: for a few columns, waking the worker threads costs more than the fits
     (milliseconds per call on a busy machine)."""
+    side = 2 * rad + 1
+    fbuf = np.empty(_scratch_size(rad))
+    mbuf = np.empty(side * side, dtype=np.bool_)
     for k in range(x0.shape[0]):
         _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                 nb_par, start, out)
+                 nb_par, start, out, fbuf, mbuf)
 
 
 #: touching neighbours: centres closer than this many widths share enough light to correlate the fits
@@ -632,7 +684,7 @@ def warm_up() -> float:
         for kernel in (_fit_all, _fit_serial):
             kernel(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), np.array([1.5]),
                    np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, np.zeros(2, np.int64), np.zeros(0, np.int64),
-                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)))
+                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
                np.ones(1), True, 4,
                np.zeros(2, np.int64), np.zeros(0, np.int64), np.empty((1, 2)))
@@ -654,7 +706,8 @@ def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_
         start = np.full((max(n, 1), 5), np.nan)
     kernel = _fit_all if n >= SERIAL_BELOW else _fit_serial
     kernel(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
-           float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out)
+           float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out,
+           int(numba.config.NUMBA_NUM_THREADS))
     return out
 
 
