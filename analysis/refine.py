@@ -64,7 +64,7 @@ def _profile(u0, n, x, s, g, dg, ds):
 
 @njit(cache=True)
 def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j, want_obj=True):
-    """Objective at parameters p (and J^T W J, J^T W r when want_j); leaves the profiles of p in gx .. dsy.
+    """Objective at parameters p (and J^T W J, J^T W r when want_j).
 
     Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
     objective (a logarithm per pixel) only when ``want_obj``, else NaN.
@@ -145,24 +145,6 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
     if counts and not want_obj:
         obj = np.nan
     return obj, rss, npx, chi2
-
-
-@njit(cache=True)
-def _poisson_objective(d, msk, off, nx, ny, p, gx, gy):
-    """The Poisson objective of ``_evaluate`` at p, from the profiles of p it left in gx, gy."""
-    a, b = p[3], p[4]
-    obj = 0.0
-    for r in range(ny):
-        gyr = gy[r]
-        for c in range(nx):
-            k = r * nx + c
-            if not msk[k]:
-                continue
-            gg = gx[c] * gyr
-            m = b + a * gg + off[k]
-            mm = m if m > 1e-9 else 1e-9
-            obj += mm - d[k] * math.log(mm)
-    return obj
 
 
 @njit(cache=True)
@@ -378,8 +360,8 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         if not (trial[2] > 0.05 and trial[3] > 0.0):
             lam *= 10.0
             continue
-        if not obj_known:  # gx, gy still hold the profiles of p: no trial has been evaluated yet
-            obj = _poisson_objective(d, msk, off, nx, ny, p, gx, gy)
+        if not obj_known:
+            obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tj, tr, False)[0]
             obj_known = True
         tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
                                             tj, tr, True)
