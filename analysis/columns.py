@@ -1053,7 +1053,9 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     # position errors of the joint model, on the pruned table (duplicates and failed fits would make the groups'
     # Fisher matrices near-singular)
     if len(fit):
-        err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=s.fit_counts)
+        # only the core's columns are kept: a tile's halo columns enter the groups but need no errors of their own
+        err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=s.fit_counts,
+                                    rows=fit["_core"].to_numpy())
         fit["x_err_px"], fit["y_err_px"] = err[:, 0], err[:, 1]
         fit["pos_err_px"] = 0.5 * (fit["x_err_px"] + fit["y_err_px"])
     if s.noise["model"] == "scaled counts":

@@ -476,18 +476,20 @@ JOINT_MAX_NEIGHBOURS = 6
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, out):
+def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, wanted, out):
     """Per-axis position variance of column k from the Fisher matrix of its local joint model.
 
     The group is column k and its touching neighbours (CSR ``ptr``/``idx``); parameters are (x, y, s, A) of
     every member and one background; pixels are the union of the members' fit patches. ``out[k] = (var_x,
-    var_y)``; NaN where the matrix is singular.
+    var_y)``; NaN where the matrix is singular or ``wanted[k]`` is False.
     """
     n = par.shape[0]
     side = 2 * rad + 1
     for k in prange(n):
         out[k, 0] = np.nan
         out[k, 1] = np.nan
+        if not wanted[k]:
+            continue
         m = 1 + ptr[k + 1] - ptr[k]
         mem = np.empty(m, np.int64)
         mem[0] = k
@@ -602,7 +604,7 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
 
 
 def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, counts=True,
-                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS):
+                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS, rows=None):
     """Per-axis 1-sigma position errors of fitted columns from the Fisher information of their local joint model.
 
     A column fitted with its neighbours' models subtracted inherits the uncertainty of those models: the
@@ -621,6 +623,9 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     valid : (H, W) bool array, optional
     counts : bool
         Poisson weights 1 / model (raw counts); else white noise of variance (residual x amplitude)^2 per column.
+    rows : (N,) bool array, optional
+        The rows whose errors are wanted (default all); the others still enter their neighbours' groups (a tile's
+        halo columns, which the tile does not keep), and get NaN.
 
     Returns
     -------
@@ -652,8 +657,9 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     vm = np.ones((h, w), dtype=bool) if valid is None else np.ascontiguousarray(np.asarray(valid, dtype=bool))
     out = np.empty((good.size, 2))
     free_s = np.ascontiguousarray((table["fit_status"].to_numpy() == "ok")[good])
+    wanted = np.ones(good.size, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)[good]
     _joint_var(h, w, vm, gp, free_s, np.ascontiguousarray(np.maximum(noise_var[good], 1e-300)), bool(counts),
-               int(patch_radius_px), ptr, idx, out)
+               int(patch_radius_px), ptr, idx, np.ascontiguousarray(wanted), out)
     res[good] = np.sqrt(np.where(out > 0, out, np.nan))
     return res
 
@@ -669,7 +675,7 @@ def warm_up() -> float:
                    np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
                np.ones(1), True, 4,
-               np.zeros(2, np.int64), np.zeros(0, np.int64), np.empty((1, 2)))
+               np.zeros(2, np.int64), np.zeros(0, np.int64), np.ones(1, np.bool_), np.empty((1, 2)))
     return time.perf_counter() - t0
 
 
