@@ -469,6 +469,40 @@ def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
                  nb_par, start, out, fbuf, mbuf)
 
 
+@njit(cache=True)
+def _inverse_xx_yy(f):
+    """Elements (0, 0) and (1, 1) of the inverse of the symmetric positive definite matrix ``f`` (overwritten).
+
+    Cholesky f = L L^T in place; (f^-1)_ii = |L^-1 e_i|^2. NaN when f is not positive definite.
+    """
+    n = f.shape[0]
+    for j in range(n):
+        acc = f[j, j]
+        for q in range(j):
+            acc -= f[j, q] * f[j, q]
+        if not (acc > 0.0 and math.isfinite(acc)):
+            return np.nan, np.nan
+        ljj = math.sqrt(acc)
+        f[j, j] = ljj
+        for i in range(j + 1, n):
+            acc = f[i, j]
+            for q in range(j):
+                acc -= f[i, q] * f[j, q]
+            f[i, j] = acc / ljj
+    res = np.empty(2)
+    z = np.empty(n)
+    for e in range(2):
+        tot = 0.0
+        for i in range(n):  # forward substitution L z = e_e
+            acc = 1.0 if i == e else 0.0
+            for q in range(i):
+                acc -= f[i, q] * z[q]
+            z[i] = acc / f[i, i]
+            tot += z[i] * z[i]
+        res[e] = tot
+    return res[0], res[1]
+
+
 #: touching neighbours: centres closer than this many widths share enough light to correlate the fits
 JOINT_REACH_SIGMA = 5.0
 #: at most this many nearest touching neighbours enter a column's joint Fisher matrix
@@ -539,7 +573,6 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
             bu1[i] = int(math.floor(par[j, 0] + reach)) - u0
             bv0[i] = int(math.ceil(par[j, 1] - reach)) - v0
             bv1[i] = int(math.floor(par[j, 1] + reach)) - v0
-        pidx = np.empty(npar, np.int64)
         jac = np.empty(npar)
         bk = par[k, 4]
         for r in range(ny):
@@ -554,7 +587,8 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
                 if not inside:
                     continue
                 mu = bk
-                na = 0
+                for i in range(npar):
+                    jac[i] = 0.0
                 for i in range(m):
                     if c < bu0[i] or c > bu1[i] or r < bv0[i] or r > bv1[i]:
                         continue
@@ -562,45 +596,32 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
                     gxc = gx[i, c]
                     gyr = gy[i, r]
                     mu += a * gxc * gyr
-                    pidx[na] = 4 * i
-                    jac[na] = a * dgx[i, c] * gyr
-                    pidx[na + 1] = 4 * i + 1
-                    jac[na + 1] = a * gxc * dgy[i, r]
-                    na += 2
+                    jac[4 * i] = a * dgx[i, c] * gyr
+                    jac[4 * i + 1] = a * gxc * dgy[i, r]
                     if free_s[mem[i]]:
-                        pidx[na] = 4 * i + 2
-                        jac[na] = a * (dsx[i, c] * gyr + gxc * dsy[i, r])
-                        na += 1
-                    pidx[na] = 4 * i + 3
-                    jac[na] = gxc * gyr
-                    na += 1
-                pidx[na] = 4 * m
-                jac[na] = 1.0
-                na += 1
+                        jac[4 * i + 2] = a * (dsx[i, c] * gyr + gxc * dsy[i, r])
+                    jac[4 * i + 3] = gxc * gyr
+                jac[4 * m] = 1.0
                 w = 1.0 / max(mu, 1.0) if counts else 1.0 / noise_var[k]
-                for a_ in range(na):  # parameter indices increase along the list: the upper triangle
+                for a_ in range(npar):  # the upper triangle, a contiguous row at a time (vectorised)
                     ja = jac[a_] * w
-                    ia = pidx[a_]
-                    for b_ in range(a_, na):
-                        fis[ia, pidx[b_]] += ja * jac[b_]
+                    if ja == 0.0:
+                        continue
+                    for b_ in range(a_, npar):
+                        fis[a_, b_] += ja * jac[b_]
         for a_ in range(npar):
             for b_ in range(a_):
                 fis[a_, b_] = fis[b_, a_]
         for i in range(m):  # a width held fixed is no parameter: its empty row and column are decoupled
             if not free_s[mem[i]]:
                 fis[4 * i + 2, 4 * i + 2] = 1.0
-        rhs = np.zeros((npar, 2))
-        rhs[0, 0] = 1.0
-        rhs[1, 1] = 1.0
         ok = True
         for a_ in range(npar):
             if not fis[a_, a_] > 0.0:
                 ok = False
         if not ok:
             continue
-        sol = np.linalg.solve(fis, rhs)
-        out[k, 0] = sol[0, 0]
-        out[k, 1] = sol[1, 1]
+        out[k, 0], out[k, 1] = _inverse_xx_yy(fis)
 
 
 def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, counts=True,
