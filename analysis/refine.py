@@ -25,7 +25,8 @@ import time
 
 import numpy as np
 import pandas as pd
-from numba import njit, prange
+import numba
+from numba import get_thread_id, njit, prange
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
@@ -62,8 +63,12 @@ def _profile(u0, n, x, s, g, dg, ds):
 
 
 @njit(cache=True)
-def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j):
-    """Objective at parameters p (and J^T W J, J^T W r when want_j). Returns (objective, rss, n_pixels)."""
+def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j, want_obj=True):
+    """Objective at parameters p (and J^T W J, J^T W r when want_j).
+
+    Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
+    objective (a logarithm per pixel) only when ``want_obj``, else NaN.
+    """
     x, y, s, a, b = p[0], p[1], p[2], p[3], p[4]
     _profile(u0, nx, x, s, gx, dgx, dsx)
     _profile(v0, ny, y, s, gy, dgy, dsy)
@@ -74,6 +79,7 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
                 jtj[i, j] = 0.0
     obj = 0.0
     rss = 0.0
+    chi2 = 0.0
     npx = 0
     j0 = 0.0
     j1 = 0.0
@@ -92,10 +98,13 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
             res = d[k] - m
             rss += res * res
             npx += 1
+            wp = 1.0 / (m if m > 1.0 else 1.0)
+            chi2 += res * res * wp
             if counts:
-                mm = m if m > 1e-9 else 1e-9
-                obj += mm - d[k] * math.log(mm)
-                w = 1.0 / (m if m > 1.0 else 1.0)
+                if want_obj:
+                    mm = m if m > 1e-9 else 1e-9
+                    obj += mm - d[k] * math.log(mm)
+                w = wp
             else:
                 obj += res * res
                 w = 1.0
@@ -133,13 +142,15 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
         for i in range(5):
             for j in range(i):
                 jtj[i, j] = jtj[j, i]
-    return obj, rss, npx
+    if counts and not want_obj:
+        obj = np.nan
+    return obj, rss, npx, chi2
 
 
 @njit(cache=True)
-def _solve5(a, rhs, out):
-    """Solve a 5x5 symmetric positive system by Gaussian elimination with partial pivoting; False if singular."""
-    m = np.empty((5, 6))
+def _solve5(a, rhs, out, m):
+    """Solve a 5x5 symmetric positive system by Gaussian elimination with partial pivoting (``m``: a 5 x 6
+    scratch matrix); False if singular."""
     for i in range(5):
         for j in range(5):
             m[i, j] = a[i, j]
@@ -170,87 +181,120 @@ def _solve5(a, rhs, out):
     return True
 
 
-@njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
-def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, out):
-    """Fit every column in parallel (prange over columns). Writes ``out[k, :_NOUT]``; see ``_columns_out``.
+#: a neighbour's model is added to a patch only within this many of its widths of its centre (per axis): beyond,
+#: its light is below exp(-12.5) = 4e-6 of its peak (the neighbour lists already leave out columns 4 widths away)
+NEIGHBOUR_BOX_SIGMA = 5.0
+#: a step smaller than this (px; relative for the width) ends a column's fit
+STEP_TOL = 1e-4
 
-    ``start[k]`` (x, y, s, A, B), when finite, is a warm start (a previous pass).
-    """
-    n = x0.shape[0]
+
+@njit(cache=True, nogil=True)
+def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
+             nb_par, start, out, fbuf, msk):
+    """Fit column k; writes ``out[k, :_NOUT]`` (see ``_columns_out``). ``start[k]`` (x, y, s, A, B), when finite, is
+    a warm start (a previous pass). ``fbuf`` (``_scratch_size(rad)`` floats) and ``msk`` ((2 rad + 1)^2 bools) are
+    the calling thread's scratch: no allocation per column."""
     h, w = img.shape
     side = 2 * rad + 1
-    for k in prange(n):
-        for q in range(_NOUT):
-            out[k, q] = np.nan
-        xi = x0[k]
-        yi = y0[k]
-        sk = s0[k]
-        fix_s = fixw[k] or s_hi <= s_lo  # fixed-width fit: sigma held at sk, four free parameters
-        cx = int(math.floor(xi + 0.5))
-        cy = int(math.floor(yi + 0.5))
-        if not (xi >= -0.5 and xi < w - 0.5 and yi >= -0.5 and yi < h - 0.5):
-            out[k, 8] = _EDGE
+    s2 = side * side
+    d = fbuf[0:s2]
+    off = fbuf[s2:2 * s2]
+    o = 2 * s2
+    gx = fbuf[o:o + side]
+    dgx = fbuf[o + side:o + 2 * side]
+    dsx = fbuf[o + 2 * side:o + 3 * side]
+    gy = fbuf[o + 3 * side:o + 4 * side]
+    dgy = fbuf[o + 4 * side:o + 5 * side]
+    dsy = fbuf[o + 5 * side:o + 6 * side]
+    o += 6 * side
+    p = fbuf[o:o + 5]
+    trial = fbuf[o + 5:o + 10]
+    delta = fbuf[o + 10:o + 15]
+    jtr = fbuf[o + 15:o + 20]
+    tr = fbuf[o + 20:o + 25]
+    rhs = fbuf[o + 25:o + 30]
+    e0 = fbuf[o + 30:o + 35]
+    col = fbuf[o + 35:o + 40]
+    o += 40
+    jtj = fbuf[o:o + 25].reshape((5, 5))
+    tj = fbuf[o + 25:o + 50].reshape((5, 5))
+    damp = fbuf[o + 50:o + 75].reshape((5, 5))
+    sm = fbuf[o + 75:o + 105].reshape((5, 6))
+    for i in range(s2):
+        off[i] = 0.0
+    for q in range(_NOUT):
+        out[k, q] = np.nan
+    xi = x0[k]
+    yi = y0[k]
+    sk = s0[k]
+    fix_s = fixw[k] or s_hi <= s_lo  # fixed-width fit: sigma held at sk, four free parameters
+    cx = int(math.floor(xi + 0.5))
+    cy = int(math.floor(yi + 0.5))
+    if not (xi >= -0.5 and xi < w - 0.5 and yi >= -0.5 and yi < h - 0.5):
+        out[k, 8] = _EDGE
+        return
+    u0 = max(cx - rad, 0)
+    u1 = min(cx + rad, w - 1)
+    v0 = max(cy - rad, 0)
+    v1 = min(cy + rad, h - 1)
+    nx = u1 - u0 + 1
+    ny = v1 - v0 + 1
+    touched = False
+    dsum = 0.0
+    dmin = np.inf
+    dmax = -np.inf
+    nvalid = 0
+    for r in range(ny):
+        for c in range(nx):
+            kk = r * nx + c
+            val = img[v0 + r, u0 + c]
+            ok = valid[v0 + r, u0 + c] and math.isfinite(val)
+            msk[kk] = ok
+            d[kk] = val if ok else 0.0
+            if not ok:
+                ddx = u0 + c - xi
+                ddy = v0 + r - yi
+                if ddx * ddx + ddy * ddy <= touch2:
+                    touched = True
+            else:
+                nvalid += 1
+                dsum += val
+                if val < dmin:
+                    dmin = val
+                if val > dmax:
+                    dmax = val
+    if touched:
+        out[k, 8] = _MASKED
+        return
+    # neighbours' current model: fixed during this column's fit; each only over its box within the patch
+    for t in range(nb_ptr[k], nb_ptr[k + 1]):
+        j = nb_idx[t]
+        if not (nb_par[j, 3] != 0.0 and nb_par[j, 2] > 0.0):
+            continue  # a failed fit: no model, no light
+        reach = NEIGHBOUR_BOX_SIGMA * nb_par[j, 2]
+        ua = max(u0, int(math.ceil(nb_par[j, 0] - reach)))
+        ub = min(u1, int(math.floor(nb_par[j, 0] + reach)))
+        va = max(v0, int(math.ceil(nb_par[j, 1] - reach)))
+        vb = min(v1, int(math.floor(nb_par[j, 1] + reach)))
+        if ua > ub or va > vb:
             continue
-        u0 = max(cx - rad, 0)
-        u1 = min(cx + rad, w - 1)
-        v0 = max(cy - rad, 0)
-        v1 = min(cy + rad, h - 1)
-        nx = u1 - u0 + 1
-        ny = v1 - v0 + 1
-        d = np.empty(side * side)
-        msk = np.empty(side * side, dtype=np.bool_)
-        off = np.zeros(side * side)
-        touched = False
-        dsum = 0.0
-        dmin = np.inf
-        dmax = -np.inf
-        for r in range(ny):
-            for c in range(nx):
-                kk = r * nx + c
-                val = img[v0 + r, u0 + c]
-                ok = valid[v0 + r, u0 + c] and math.isfinite(val)
-                msk[kk] = ok
-                d[kk] = val if ok else 0.0
-                if not ok:
-                    ddx = u0 + c - xi
-                    ddy = v0 + r - yi
-                    if ddx * ddx + ddy * ddy <= touch2:
-                        touched = True
-                else:
-                    dsum += val
-                    if val < dmin:
-                        dmin = val
-                    if val > dmax:
-                        dmax = val
-        if touched:
-            out[k, 8] = _MASKED
-            continue
-        gx = np.empty(side)
-        dgx = np.empty(side)
-        dsx = np.empty(side)
-        gy = np.empty(side)
-        dgy = np.empty(side)
-        dsy = np.empty(side)
-        # neighbours' current model (second pass): fixed during this column's fit
-        for t in range(nb_ptr[k], nb_ptr[k + 1]):
-            j = nb_idx[t]
-            if not (nb_par[j, 3] != 0.0 and nb_par[j, 2] > 0.0):
-                continue  # a failed fit: no model, no light
-            _profile(u0, nx, nb_par[j, 0], nb_par[j, 2], gx, dgx, dsx)
-            _profile(v0, ny, nb_par[j, 1], nb_par[j, 2], gy, dgy, dsy)
-            aj = nb_par[j, 3]
-            for r in range(ny):
-                for c in range(nx):
-                    off[r * nx + c] += aj * gx[c] * gy[r]
-        p = np.empty(5)
-        trial = np.empty(5)
-        delta = np.empty(5)
-        jtj = np.empty((5, 5))
-        jtr = np.empty(5)
-        tj = np.empty((5, 5))
-        tr = np.empty(5)
-        damp = np.empty((5, 5))
+        _profile(ua, ub - ua + 1, nb_par[j, 0], nb_par[j, 2], gx, dgx, dsx)
+        _profile(va, vb - va + 1, nb_par[j, 1], nb_par[j, 2], gy, dgy, dsy)
+        aj = nb_par[j, 3]
+        for r in range(va, vb + 1):
+            ayr = aj * gy[r - va]
+            base = (r - v0) * nx - u0
+            for c in range(ua, ub + 1):
+                off[base + c] += ayr * gx[c - ua]
+    if nvalid < 8:
+        out[k, 8] = _DIVERGED
+        return
+    if math.isfinite(start[k, 0]) and math.isfinite(start[k, 3]) and start[k, 3] > 0 and start[k, 2] > 0.05:
+        for i in range(5):
+            p[i] = start[k, i]
+        if fix_s:
+            p[2] = sk
+    else:
         p[0] = xi
         p[1] = yi
         p[2] = sk
@@ -274,124 +318,189 @@ def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo,
                     sgd += gg * dd
                     sd += dd
         det = sgg * s1 - sg * sg
-        if s1 < 8 or not det > 0:
+        if not det > 0:
             out[k, 8] = _DIVERGED
-            continue
+            return
         p[3] = (s1 * sgd - sg * sd) / det
         p[4] = (sgg * sd - sg * sgd) / det
         if not p[3] > 0:
             p[3] = max(dmax - dmin, 1e-6)
             p[4] = dmin
-        if math.isfinite(start[k, 0]) and math.isfinite(start[k, 3]) and start[k, 3] > 0 and start[k, 2] > 0.05:
-            for i in range(5):
-                p[i] = start[k, i]
-            if fix_s:
-                p[2] = sk
-        obj, rss, npx = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
-                                  True)
-        lam = 1e-3
-        it = 0
-        rhs = np.empty(5)
-        for it in range(n_iter):
-            for i in range(5):
-                for j in range(5):
-                    damp[i, j] = jtj[i, j]
-                damp[i, i] = jtj[i, i] * (1.0 + lam)
-                rhs[i] = jtr[i]
-            if fix_s:
-                for i in range(5):
-                    damp[2, i] = 0.0
-                    damp[i, 2] = 0.0
-                damp[2, 2] = 1.0
-                rhs[2] = 0.0
-            if not _solve5(damp, rhs, delta):
-                lam *= 10.0
-                continue
-            for i in range(5):
-                trial[i] = p[i] + delta[i]
-            if not (trial[2] > 0.05 and trial[3] > 0.0):
-                lam *= 10.0
-                continue
-            tobj, trss, tnpx = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
-                                         tj, tr, True)
-            if tobj <= obj:
-                small = abs(delta[0]) < 1e-4 and abs(delta[1]) < 1e-4 and abs(delta[2]) < 1e-4 * trial[2]
-                for i in range(5):
-                    p[i] = trial[i]
-                    jtr[i] = tr[i]
-                    for j in range(5):
-                        jtj[i, j] = tj[i, j]
-                obj = tobj
-                rss = trss
-                npx = tnpx
-                lam = max(lam * 0.3, 1e-7)
-                if small:
-                    break
-            else:
-                lam *= 10.0
-                if lam > 1e8:
-                    break
-        # covariance: inverse Fisher information (counts) or scaled (J^T J)^-1 (least squares)
-        scale = 1.0
-        if not counts:
-            scale = rss / max(npx - 5, 1)
-        if fix_s:  # covariance of the four free parameters
-            for i in range(5):
-                jtj[2, i] = 0.0
-                jtj[i, 2] = 0.0
-            jtj[2, 2] = 1.0
-        e0 = np.zeros(5)
-        col = np.empty(5)
-        e0[0] = 1.0
-        okx = _solve5(jtj, e0, col)
-        vx = col[0]
-        e0[0] = 0.0
-        e0[1] = 1.0
-        oky = _solve5(jtj, e0, col)
-        vy = col[1]
-        e0[1] = 0.0
-        e0[3] = 1.0
-        oka = _solve5(jtj, e0, col)
-        va = col[3]
+    # the objective (a logarithm per pixel) is only needed to judge a trial step: a warm start that has already
+    # converged takes its small step without one
+    obj, rss, npx, chi2 = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
+                                    True, False)
+    obj_known = not counts
+    lam = 1e-3
+    it = 0
+    for it in range(n_iter):
         for i in range(5):
-            out[k, i] = p[i]
-        out[k, 5] = math.sqrt(vx * scale) if okx and vx > 0 else np.nan
-        out[k, 6] = math.sqrt(vy * scale) if oky and vy > 0 else np.nan
-        out[k, 7] = math.sqrt(rss / max(npx, 1)) / p[3]
-        out[k, 9] = npx
-        out[k, 10] = it + 1
-        out[k, 11] = obj
-        out[k, 12] = xi
-        out[k, 13] = yi
-        out[k, 14] = math.sqrt(va * scale) if oka and va > 0 else np.nan
-        out[k, 15] = dsum / max(npx, 1)
-        # Pearson chi-square of the final model (Poisson weights): with the level it checks the noise model
-        _profile(u0, nx, p[0], p[2], gx, dgx, dsx)
-        _profile(v0, ny, p[1], p[2], gy, dgy, dsy)
-        chi2 = 0.0
-        for r in range(ny):
-            for c in range(nx):
-                kk = r * nx + c
-                if msk[kk]:
-                    m = p[4] + p[3] * gx[c] * gy[r] + off[kk]
-                    res = d[kk] - m
-                    chi2 += res * res / (m if m > 1.0 else 1.0)
-        out[k, 16] = chi2
-        status = _OK
-        if not (math.isfinite(p[0]) and math.isfinite(p[1]) and math.isfinite(p[2]) and math.isfinite(p[3])):
-            status = _DIVERGED
-        elif not (p[3] > out[k, 14]):
-            # amplitude within one standard error of zero (e.g. a constant patch): no column was fitted
-            status = _DIVERGED
-        elif abs(p[0] - xi) > max_shift or abs(p[1] - yi) > max_shift:
-            status = _DIVERGED
-        elif (not fix_s and (p[2] < s_lo or p[2] > s_hi)) or not p[3] > 0:
-            status = _DIVERGED
-        elif p[0] < sk - 0.5 or p[0] > w - 0.5 - sk or p[1] < sk - 0.5 or p[1] > h - 0.5 - sk:
-            status = _EDGE
-        elif fixw[k]:
-            status = _FIXED
-        out[k, 8] = status
+            for j in range(5):
+                damp[i, j] = jtj[i, j]
+            damp[i, i] = jtj[i, i] * (1.0 + lam)
+            rhs[i] = jtr[i]
+        if fix_s:
+            for i in range(5):
+                damp[2, i] = 0.0
+                damp[i, 2] = 0.0
+            damp[2, 2] = 1.0
+            rhs[2] = 0.0
+        if not _solve5(damp, rhs, delta, sm):
+            lam *= 10.0
+            continue
+        if lam < 1e-2 and abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL \
+                and abs(delta[2]) < STEP_TOL * p[2] and p[2] + delta[2] > 0.05 and p[3] + delta[3] > 0.0:
+            # converged: an undamped Fisher-scoring step this small is taken without another evaluation (an
+            # evaluation would only confirm it; steps made small by damping after rejected ones are still checked)
+            for i in range(5):
+                p[i] += delta[i]
+            break
+        for i in range(5):
+            trial[i] = p[i] + delta[i]
+        if not (trial[2] > 0.05 and trial[3] > 0.0):
+            lam *= 10.0
+            continue
+        if not obj_known:
+            obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tj, tr, False)[0]
+            obj_known = True
+        tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
+                                            tj, tr, True)
+        if tobj <= obj:
+            small = abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL and abs(delta[2]) < STEP_TOL * trial[2]
+            for i in range(5):
+                p[i] = trial[i]
+                jtr[i] = tr[i]
+                for j in range(5):
+                    jtj[i, j] = tj[i, j]
+            obj = tobj
+            rss = trss
+            npx = tnpx
+            chi2 = tchi2
+            lam = max(lam * 0.3, 1e-7)
+            if small:
+                break
+        else:
+            lam *= 10.0
+            if lam > 1e8:
+                break
+    # covariance: inverse Fisher information (counts) or scaled (J^T J)^-1 (least squares)
+    scale = 1.0
+    if not counts:
+        scale = rss / max(npx - 5, 1)
+    if fix_s:  # covariance of the four free parameters
+        for i in range(5):
+            jtj[2, i] = 0.0
+            jtj[i, 2] = 0.0
+        jtj[2, 2] = 1.0
+    for i in range(5):
+        e0[i] = 0.0
+    e0[0] = 1.0
+    okx = _solve5(jtj, e0, col, sm)
+    vx = col[0]
+    e0[0] = 0.0
+    e0[1] = 1.0
+    oky = _solve5(jtj, e0, col, sm)
+    vy = col[1]
+    e0[1] = 0.0
+    e0[3] = 1.0
+    oka = _solve5(jtj, e0, col, sm)
+    va = col[3]
+    for i in range(5):
+        out[k, i] = p[i]
+    out[k, 5] = math.sqrt(vx * scale) if okx and vx > 0 else np.nan
+    out[k, 6] = math.sqrt(vy * scale) if oky and vy > 0 else np.nan
+    out[k, 7] = math.sqrt(rss / max(npx, 1)) / p[3]
+    out[k, 9] = npx
+    out[k, 10] = it + 1
+    out[k, 11] = obj
+    out[k, 12] = xi
+    out[k, 13] = yi
+    out[k, 14] = math.sqrt(va * scale) if oka and va > 0 else np.nan
+    out[k, 15] = dsum / max(npx, 1)
+    # Pearson chi-square of the final model (Poisson weights): with the level it checks the noise model
+    out[k, 16] = chi2
+    status = _OK
+    if not (math.isfinite(p[0]) and math.isfinite(p[1]) and math.isfinite(p[2]) and math.isfinite(p[3])):
+        status = _DIVERGED
+    elif not (p[3] > out[k, 14]):
+        # amplitude within one standard error of zero (e.g. a constant patch): no column was fitted
+        status = _DIVERGED
+    elif abs(p[0] - xi) > max_shift or abs(p[1] - yi) > max_shift:
+        status = _DIVERGED
+    elif (not fix_s and (p[2] < s_lo or p[2] > s_hi)) or not p[3] > 0:
+        status = _DIVERGED
+    elif p[0] < sk - 0.5 or p[0] > w - 0.5 - sk or p[1] < sk - 0.5 or p[1] > h - 0.5 - sk:
+        status = _EDGE
+    elif fixw[k]:
+        status = _FIXED
+    out[k, 8] = status
+
+
+@njit(cache=True, inline="always")
+def _scratch_size(rad):
+    """Floats of scratch one ``_fit_one`` call needs."""
+    side = 2 * rad + 1
+    return 2 * side * side + 6 * side + 145
+
+
+@njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
+def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
+             start, out, n_threads):
+    """Fit every column in parallel (prange over columns), see ``_fit_one``; one scratch row per thread."""
+    side = 2 * rad + 1
+    fbuf = np.empty((n_threads, _scratch_size(rad)))
+    mbuf = np.empty((n_threads, side * side), dtype=np.bool_)
+    for k in prange(x0.shape[0]):
+        tid = get_thread_id()
+        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
+                 nb_par, start, out, fbuf[tid], mbuf[tid])
+
+
+@njit(cache=True, nogil=True)
+def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
+                nb_par, start, out, n_threads):
+    """``_fit_all`` in the calling thread: for a few columns, waking the worker threads costs more than the fits
+    (milliseconds per call on a busy machine)."""
+    side = 2 * rad + 1
+    fbuf = np.empty(_scratch_size(rad))
+    mbuf = np.empty(side * side, dtype=np.bool_)
+    for k in range(x0.shape[0]):
+        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
+                 nb_par, start, out, fbuf, mbuf)
+
+
+@njit(cache=True)
+def _inverse_xx_yy(f):
+    """Elements (0, 0) and (1, 1) of the inverse of the symmetric positive definite matrix ``f`` (overwritten).
+
+    Cholesky f = L L^T in place; (f^-1)_ii = |L^-1 e_i|^2. NaN when f is not positive definite.
+    """
+    n = f.shape[0]
+    for j in range(n):
+        acc = f[j, j]
+        for q in range(j):
+            acc -= f[j, q] * f[j, q]
+        if not (acc > 0.0 and math.isfinite(acc)):
+            return np.nan, np.nan
+        ljj = math.sqrt(acc)
+        f[j, j] = ljj
+        for i in range(j + 1, n):
+            acc = f[i, j]
+            for q in range(j):
+                acc -= f[i, q] * f[j, q]
+            f[i, j] = acc / ljj
+    res = np.empty(2)
+    z = np.empty(n)
+    for e in range(2):
+        tot = 0.0
+        for i in range(n):  # forward substitution L z = e_e
+            acc = 1.0 if i == e else 0.0
+            for q in range(i):
+                acc -= f[i, q] * z[q]
+            z[i] = acc / f[i, i]
+            tot += z[i] * z[i]
+        res[e] = tot
+    return res[0], res[1]
 
 
 #: touching neighbours: centres closer than this many widths share enough light to correlate the fits
@@ -401,18 +510,20 @@ JOINT_MAX_NEIGHBOURS = 6
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, out):
+def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, wanted, out):
     """Per-axis position variance of column k from the Fisher matrix of its local joint model.
 
     The group is column k and its touching neighbours (CSR ``ptr``/``idx``); parameters are (x, y, s, A) of
     every member and one background; pixels are the union of the members' fit patches. ``out[k] = (var_x,
-    var_y)``; NaN where the matrix is singular.
+    var_y)``; NaN where the matrix is singular or ``wanted[k]`` is False.
     """
     n = par.shape[0]
     side = 2 * rad + 1
     for k in prange(n):
         out[k, 0] = np.nan
         out[k, 1] = np.nan
+        if not wanted[k]:
+            continue
         m = 1 + ptr[k + 1] - ptr[k]
         mem = np.empty(m, np.int64)
         mem[0] = k
@@ -449,6 +560,19 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
             _profile(v0, ny, par[j, 1], par[j, 2], gy[i], dgy[i], dsy[i])
         npar = 4 * m + 1
         fis = np.zeros((npar, npar))
+        # each member only where its light counts (within NEIGHBOUR_BOX_SIGMA widths per axis, the reach of the
+        # fits' neighbour models): a pixel's Fisher term then couples the few members that reach it
+        bu0 = np.empty(m, np.int64)
+        bu1 = np.empty(m, np.int64)
+        bv0 = np.empty(m, np.int64)
+        bv1 = np.empty(m, np.int64)
+        for i in range(m):
+            j = mem[i]
+            reach = NEIGHBOUR_BOX_SIGMA * par[j, 2]
+            bu0[i] = int(math.ceil(par[j, 0] - reach)) - u0
+            bu1[i] = int(math.floor(par[j, 0] + reach)) - u0
+            bv0[i] = int(math.ceil(par[j, 1] - reach)) - v0
+            bv1[i] = int(math.floor(par[j, 1] + reach)) - v0
         jac = np.empty(npar)
         bk = par[k, 4]
         for r in range(ny):
@@ -463,16 +587,23 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
                 if not inside:
                     continue
                 mu = bk
+                for i in range(npar):
+                    jac[i] = 0.0
                 for i in range(m):
+                    if c < bu0[i] or c > bu1[i] or r < bv0[i] or r > bv1[i]:
+                        continue
                     a = par[mem[i], 3]
-                    mu += a * gx[i, c] * gy[i, r]
-                    jac[4 * i] = a * dgx[i, c] * gy[i, r]
-                    jac[4 * i + 1] = a * gx[i, c] * dgy[i, r]
-                    jac[4 * i + 2] = a * (dsx[i, c] * gy[i, r] + gx[i, c] * dsy[i, r]) if free_s[mem[i]] else 0.0
-                    jac[4 * i + 3] = gx[i, c] * gy[i, r]
+                    gxc = gx[i, c]
+                    gyr = gy[i, r]
+                    mu += a * gxc * gyr
+                    jac[4 * i] = a * dgx[i, c] * gyr
+                    jac[4 * i + 1] = a * gxc * dgy[i, r]
+                    if free_s[mem[i]]:
+                        jac[4 * i + 2] = a * (dsx[i, c] * gyr + gxc * dsy[i, r])
+                    jac[4 * i + 3] = gxc * gyr
                 jac[4 * m] = 1.0
                 w = 1.0 / max(mu, 1.0) if counts else 1.0 / noise_var[k]
-                for a_ in range(npar):
+                for a_ in range(npar):  # the upper triangle, a contiguous row at a time (vectorised)
                     ja = jac[a_] * w
                     if ja == 0.0:
                         continue
@@ -484,22 +615,17 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
         for i in range(m):  # a width held fixed is no parameter: its empty row and column are decoupled
             if not free_s[mem[i]]:
                 fis[4 * i + 2, 4 * i + 2] = 1.0
-        rhs = np.zeros((npar, 2))
-        rhs[0, 0] = 1.0
-        rhs[1, 1] = 1.0
         ok = True
         for a_ in range(npar):
             if not fis[a_, a_] > 0.0:
                 ok = False
         if not ok:
             continue
-        sol = np.linalg.solve(fis, rhs)
-        out[k, 0] = sol[0, 0]
-        out[k, 1] = sol[1, 1]
+        out[k, 0], out[k, 1] = _inverse_xx_yy(fis)
 
 
 def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, counts=True,
-                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS):
+                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS, rows=None):
     """Per-axis 1-sigma position errors of fitted columns from the Fisher information of their local joint model.
 
     A column fitted with its neighbours' models subtracted inherits the uncertainty of those models: the
@@ -518,6 +644,9 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     valid : (H, W) bool array, optional
     counts : bool
         Poisson weights 1 / model (raw counts); else white noise of variance (residual x amplitude)^2 per column.
+    rows : (N,) bool array, optional
+        The rows whose errors are wanted (default all); the others still enter their neighbours' groups (a tile's
+        halo columns, which the tile does not keep), and get NaN.
 
     Returns
     -------
@@ -549,8 +678,9 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     vm = np.ones((h, w), dtype=bool) if valid is None else np.ascontiguousarray(np.asarray(valid, dtype=bool))
     out = np.empty((good.size, 2))
     free_s = np.ascontiguousarray((table["fit_status"].to_numpy() == "ok")[good])
+    wanted = np.ones(good.size, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)[good]
     _joint_var(h, w, vm, gp, free_s, np.ascontiguousarray(np.maximum(noise_var[good], 1e-300)), bool(counts),
-               int(patch_radius_px), ptr, idx, out)
+               int(patch_radius_px), ptr, idx, np.ascontiguousarray(wanted), out)
     res[good] = np.sqrt(np.where(out > 0, out, np.nan))
     return res
 
@@ -558,13 +688,20 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
 def warm_up() -> float:
     """Compile (or load from the on-disk cache) the numba kernels; return the seconds it took."""
     t0 = time.perf_counter()
-    img = np.random.default_rng(0).poisson(10.0, (16, 16)).astype(np.float32)
-    _run(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), 1.5, 4, True, 3, 4.0, 0.3, 6.0,
-         np.zeros(2, np.int64), np.zeros(0, np.int64), np.zeros((1, 4)))
+    for dtype in (np.float64, np.float32):  # the finder fits float64 windows; callers may pass float32 images
+        img = np.random.default_rng(0).poisson(10.0, (16, 16)).astype(dtype)
+        for kernel in (_fit_all, _fit_serial):
+            kernel(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), np.array([1.5]),
+                   np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, np.zeros(2, np.int64), np.zeros(0, np.int64),
+                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
                np.ones(1), True, 4,
-               np.zeros(2, np.int64), np.zeros(0, np.int64), np.empty((1, 2)))
+               np.zeros(2, np.int64), np.zeros(0, np.int64), np.ones(1, np.bool_), np.empty((1, 2)))
     return time.perf_counter() - t0
+
+
+#: fewer columns than this are fitted in the calling thread (same results; no wake-up of the worker threads)
+SERIAL_BELOW = 256
 
 
 def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
@@ -576,8 +713,10 @@ def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_
     touch2 = (2.0 * float(np.median(s_arr)) + 0.5) ** 2 if n else 1.0
     if start is None:
         start = np.full((max(n, 1), 5), np.nan)
-    _fit_all(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
-             float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out)
+    kernel = _fit_all if n >= SERIAL_BELOW else _fit_serial
+    kernel(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
+           float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out,
+           int(numba.config.NUMBA_NUM_THREADS))
     return out
 
 

@@ -109,3 +109,57 @@ def test_constant_patch_is_not_a_column():
     df = refine_columns(flat, [[20.0, 20.0]], sigma_px=1.5)
     assert df["fit_status"].iloc[0] == "diverged"
     assert df[["x_px", "y_px", "sigma_px", "amplitude", "intensity"]].isna().all().all()
+
+
+def _crowded_pair_image(rng):
+    """Pairs of columns 4 widths apart (their fits are coupled) on a grid: a small crowded test image."""
+    base = np.arange(20.0, 300.0, 24.0)
+    gx, gy = np.meshgrid(base, base)
+    x = np.r_[gx.ravel(), gx.ravel() + 6.0] + rng.uniform(-0.3, 0.3, 2 * gx.size)
+    y = np.r_[gy.ravel(), gy.ravel() + 1.0] + rng.uniform(-0.3, 0.3, 2 * gx.size)
+    counts = np.r_[np.full(gx.size, 3000.0), np.full(gx.size, 1200.0)]
+    img = render_image(x, y, counts, shape=(320, 320), sigma_px=1.5, background=10.0, rng=rng)
+    return img, np.c_[x, y] + rng.normal(0, 0.2, (x.size, 2))
+
+
+def test_serial_and_parallel_kernels_give_identical_fits(monkeypatch):
+    # a few columns are fitted in the calling thread (no wake-up of the workers): the answer must not depend on it
+    import tenfold.analysis.refine as refine
+
+    img, start = _crowded_pair_image(np.random.default_rng(5))
+    assert start.shape[0] > 256  # the default splits: parallel first passes, serial last ones
+    tables = []
+    for below in (0, 10**9):  # every call parallel; every call serial
+        monkeypatch.setattr(refine, "SERIAL_BELOW", below)
+        tables.append(refine.refine_columns(img, start, sigma_px=1.5, neighbour_passes=10, converge_px=2e-4,
+                                            joint_errors=True))
+    for c in ("x_px", "y_px", "sigma_px", "amplitude", "x_err_px", "pearson_chi2"):
+        np.testing.assert_array_equal(tables[0][c].to_numpy(), tables[1][c].to_numpy(), err_msg=c)
+    assert (tables[0]["fit_status"] == tables[1]["fit_status"]).all()
+
+
+def test_joint_errors_of_selected_rows_equal_the_full_computation():
+    from tenfold.analysis.refine import joint_position_errors
+
+    img, start = _crowded_pair_image(np.random.default_rng(6))
+    fit = refine_columns(img, start, sigma_px=1.5, neighbour_passes=10, converge_px=2e-4)
+    full = joint_position_errors(img.shape, fit, patch_radius_px=5)
+    rows = np.zeros(len(fit), bool)
+    rows[::3] = True
+    part = joint_position_errors(img.shape, fit, patch_radius_px=5, rows=rows)
+    np.testing.assert_array_equal(part[rows], full[rows])
+    assert np.isnan(part[~rows]).all() and np.isfinite(full[~rows]).mean() > 0.9
+
+
+def test_cholesky_inverse_diagonal_matches_numpy():
+    from tenfold.analysis.refine import _inverse_xx_yy
+
+    rng = np.random.default_rng(7)
+    for n in (5, 13, 29):  # one column; up to a column with six neighbours (4 parameters each) and a background
+        a = rng.normal(size=(n, n))
+        f = a @ a.T + n * np.eye(n)
+        ref = np.linalg.inv(f)  # reference library: numpy's LAPACK inverse
+        got = _inverse_xx_yy(f.copy())
+        assert got == pytest.approx((ref[0, 0], ref[1, 1]), rel=1e-10)
+    indefinite = np.diag([1.0, -1.0, 2.0])
+    assert np.isnan(_inverse_xx_yy(indefinite)).all()
