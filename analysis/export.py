@@ -73,6 +73,7 @@ STAGE_FIGURES = {
     "power_spectrum": ("fourier", "spectrum_figure"),
     "column_diffraction": ("fourier", "diffraction_figure"),
     "phason_map": ("phason", "phason_map_figure"),
+    "frame_shifts": ("frames", "shifts_figure"),
 }
 
 #: the versions recorded in the provenance (distribution names)

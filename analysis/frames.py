@@ -62,7 +62,7 @@ from ._errors import TenfoldInputError
 from ._progress import ProgressCallback, report, sub_progress
 from ._schema import FRAMES, conform
 
-__all__ = ["FrameAlignment", "align_frames", "FRAME_COLUMNS", "plain_mean"]
+__all__ = ["FrameAlignment", "align_frames", "FRAME_COLUMNS", "plain_mean", "shifts_figure"]
 
 #: largest side of the central crop used to measure shifts (a rigid shift is the same everywhere)
 REGISTER_PX = 1024
@@ -834,3 +834,44 @@ def _summary(table: pd.DataFrame, ref_frame: int, reg: dict, method: str, full: 
         "shift_sd_px": float(np.nanmedian(table["shift_sd_px"])) if table["shift_sd_px"].notna().any() else None,
         "covered_fraction": covered, "register_crop_px": [int(crop[0]), int(crop[1])], "notes": list(notes),
     }
+
+
+def shifts_figure(result):
+    """The shift of every frame of an aligned frame series (``figures/frame_shifts``), frames left out marked.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+        Reads ``tables['frames']`` and ``summary['frames']``; ``meta.pixel_size_nm`` adds a nm axis.
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None when the image is not an aligned frame series.
+    """
+    table = getattr(result, "tables", {}).get("frames")
+    if table is None or not len(table):
+        return None
+    from matplotlib.figure import Figure
+
+    info = (getattr(result, "summary", None) or {}).get("frames") or {}
+    fig = Figure(figsize=(7.0, 3.4), dpi=120, layout="constrained")
+    ax = fig.add_subplot(1, 1, 1)
+    used = table["used"].to_numpy(dtype=bool)
+    for col, colour, marker, label in (("shift_x_px", "#0072B2", "o", "x"), ("shift_y_px", "#D55E00", "s", "y")):
+        ax.errorbar(table["frame"][used], table[col][used], yerr=table["shift_sd_px"][used], color=colour,
+                    marker=marker, ms=4, lw=1.0, capsize=2, label=f"shift {label}")
+        if (~used).any():
+            ax.plot(table["frame"][~used], table[col][~used], ls="none", marker="x", ms=7, color=colour,
+                    label=f"shift {label}, left out")
+    ax.axvline(info.get("reference", table["frame"].iloc[0]), color="#777777", lw=0.8, ls=":",
+               label="reference frame")
+    ax.set(xlabel="frame", ylabel="shift (px)",
+           title=f"{info.get('method', 'rigid')} alignment: {info.get('n_used', int(used.sum()))} of {len(table)} "
+                 "frames used")
+    ps = getattr(getattr(result, "meta", None), "pixel_size_nm", None)
+    if ps:
+        sec = ax.secondary_yaxis("right", functions=(lambda v: v * ps, lambda v: v / ps))
+        sec.set_ylabel("shift (nm)")
+    ax.legend(fontsize=7, loc="best")
+    return fig

@@ -251,3 +251,17 @@ def test_periodic_lattice_smallest_shift_and_note():
     assert any("structure repeats" in n for n in out.info["notes"])
     # an aperiodic decagonal structure gets no such note
     assert not any("repeats" in n for n in F.align_frames(drifting_stack(CELL, n_frames=3, rng=1)[0]).info["notes"])
+
+
+def test_shifts_figure(low_dose):
+    from tenfold.analysis._image import ImageMeta
+    from tenfold.analysis._result import AnalysisResult
+
+    stack, _, _, _ = low_dose
+    out = F.align_frames(stack[:5])
+    result = AnalysisResult(meta=ImageMeta(pixel_size_nm=0.028), tables={"frames": out.table},
+                            summary={"frames": out.info})
+    fig = F.shifts_figure(result)
+    ax = fig.axes[0]
+    assert ax.get_xlabel() == "frame" and "5 of 5 frames used" in ax.get_title()
+    assert F.shifts_figure(AnalysisResult(meta=ImageMeta())) is None  # not a frame series: no figure
