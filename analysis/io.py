@@ -23,7 +23,7 @@ from ._sanitize import check_memory, to_float32
 
 _log = logging.getLogger("tenfold")
 
-__all__ = ["write_tiff", "read_micrograph", "micrograph_from_array", "supported_suffixes"]
+__all__ = ["write_tiff", "read_micrograph", "read_stack", "micrograph_from_array", "supported_suffixes"]
 
 # dtypes ImageJ TIFFs hold as they are; anything else is written as float32.
 _IMAGEJ_DTYPES = (np.uint8, np.uint16, np.float32)
@@ -767,9 +767,18 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None, a
     >>> mg = read_micrograph("scan.tif")                      # doctest: +SKIP
     >>> mg = read_micrograph("movie.mrc", frame_range=(0, 10))  # doctest: +SKIP
     """
-    p = check_image_file(path)
     override = _check_pixel_size(pixel_size_nm)
-    suffix = p.suffix.lower()
+    p, raw, cal, sha = _read_raw(path)
+    return _build(
+        raw, label=str(p), cal=cal, override=override, frame=frame, frame_range=frame_range,
+        path=str(p.resolve()), sha256=sha, align=align, nonrigid=nonrigid, align_reference=align_reference,
+        progress=progress,
+    )
+
+
+def _read_raw(path):
+    """(path, the file's data as its reader returns it, calibration, checksum), after the file checks."""
+    p = check_image_file(path)
     try:
         sha = _sha256(p)
     except OSError as exc:
@@ -777,12 +786,28 @@ def read_micrograph(path, *, pixel_size_nm=None, frame=None, frame_range=None, a
     if p.stat().st_size == 0:
         raise TenfoldInputError(f"{p}: file is empty (0 bytes)")
     cal = _Calib()
-    raw = _READERS[_SUFFIXES[suffix]](p, cal)
-    return _build(
-        raw, label=str(p), cal=cal, override=override, frame=frame, frame_range=frame_range,
-        path=str(p.resolve()), sha256=sha, align=align, nonrigid=nonrigid, align_reference=align_reference,
-        progress=progress,
-    )
+    return p, _READERS[_SUFFIXES[p.suffix.lower()]](p, cal), cal, sha
+
+
+def read_stack(path) -> tuple[np.ndarray | None, Micrograph]:
+    """Read a file once for a viewer: ``(stack, micrograph)``.
+
+    A frame series (3-D, frames first, not RGB) comes back as it is stored, with ``micrograph`` its first frame
+    (for the calibration and provenance record); anything else comes back as :func:`read_micrograph` reads it,
+    with ``stack`` None. Same readers and checks as :func:`read_micrograph`.
+
+    Raises
+    ------
+    TenfoldInputError
+        As :func:`read_micrograph`.
+    """
+    p, raw, cal, sha = _read_raw(path)
+    arr = np.asarray(raw)
+    arr = arr.reshape([n for n in arr.shape if n != 1] or [1]) if arr.ndim > 2 else arr
+    stack = arr.ndim == 3 and not _is_rgb(arr) and not _is_grey_alpha(arr)
+    micrograph = _build(arr, label=str(p), cal=cal, override=None, frame=0 if stack else None, frame_range=None,
+                        path=str(p.resolve()), sha256=sha)
+    return (arr if stack else None), micrograph
 
 
 def micrograph_from_array(

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import os
 
-import numpy as np
-
 from ._layers import image_layer_tuple
 
 __all__ = ["napari_get_reader", "read_layers"]
@@ -72,20 +70,6 @@ def _read(path: str):
     """(stack, micrograph): a frame series opens as a stack (frames first, as stored; ``micrograph`` is its first
     frame, for the calibration and provenance record), anything else as ``io.read_micrograph`` reads it (stack
     None). The file is read once, by the same readers and checks as ``read_micrograph``."""
-    from tenfold.analysis import io
-    from tenfold.analysis._errors import TenfoldInputError
+    from tenfold.analysis.io import read_stack
 
-    # io's readers and record builder, which read_micrograph strings together; a frame series is refused there
-    # without a frame choice, so the stack is taken here before that choice (one read of the file)
-    p = io.check_image_file(path)
-    sha = io._sha256(p)
-    if p.stat().st_size == 0:
-        raise TenfoldInputError(f"{p}: file is empty (0 bytes)")
-    cal = io._Calib()
-    raw = io._READERS[io._SUFFIXES[p.suffix.lower()]](p, cal)
-    arr = np.asarray(raw)
-    arr = arr.reshape([n for n in arr.shape if n != 1] or [1]) if arr.ndim > 2 else arr
-    stack = arr.ndim == 3 and not io._is_rgb(arr) and not io._is_grey_alpha(arr)
-    micrograph = io._build(arr, label=str(p), cal=cal, override=None, frame=0 if stack else None, frame_range=None,
-                           path=str(p.resolve()), sha256=sha)
-    return (arr if stack else None), micrograph
+    return read_stack(path)

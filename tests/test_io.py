@@ -456,3 +456,14 @@ def test_warnings_point_at_caller():
         warnings.simplefilter("always")
         micrograph_from_array(img)
     assert rec and rec[0].filename == __file__
+
+
+def test_read_stack_returns_the_frames_as_stored(tmp_path):
+    from tenfold.analysis.io import read_stack
+
+    path, stack = _stack_file(tmp_path)
+    frames, first = read_stack(path)
+    assert np.array_equal(frames, stack) and first.meta.frames == "frame 0"
+    single = write_tiff(tmp_path / "one.tif", _image(), pixel_size_nm=0.05)
+    none, mg = read_stack(single)
+    assert none is None and mg.meta.pixel_size_nm == pytest.approx(0.05)
