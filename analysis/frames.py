@@ -53,6 +53,7 @@ from __future__ import annotations
 import math
 import os
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 import pandas as pd
@@ -116,7 +117,7 @@ class FrameAlignment:
         from the frames' own noise; 0 for the reference), ``wobble_rms_px`` (non-rigid step: RMS of the
         per-row displacement beyond the rigid shift; NaN without it).
     info : dict
-        ``method`` ('rigid', 'rigid + non-rigid rows', 'plain mean'), ``reference`` (frame index),
+        ``method`` ('rigid' or 'rigid + non-rigid rows'), ``reference`` (frame index),
         ``n_frames``, ``n_used``, ``rejected`` (frame indices), ``rounds``, ``residual_drift_px`` (largest shift
         change in the last round), ``drift_px_per_frame`` (straight-line fit through the shifts, x and y),
         ``path_px`` (total length of the drift path), ``covered_fraction``, ``register_crop_px``, ``notes``.
@@ -229,6 +230,7 @@ class _Band:
         """Wiener-like weight ``S / (S + n0 / averaged)`` against a template that averages ``averaged`` frames."""
         return (self.signal / (self.signal + n0 / max(averaged, 1.0))).astype(np.float32)
 
+    @cached_property
     def map_grid(self) -> tuple[int, int, np.ndarray]:
         """Rows and columns of a correlation map that samples the band (the frequencies holding all but
         ``1e-3`` of its signal; scattered noise frequencies would otherwise force the full size), and which band
@@ -263,7 +265,7 @@ def _integer_peaks(cross: np.ndarray, band: _Band) -> tuple[np.ndarray, np.ndarr
     highest point itself). A ratio near 1 says the structure repeats.
     """
     h, w = band.grid.shape
-    sh, sw, keep = band.map_grid()
+    sh, sw, keep = band.map_grid
     rows = np.where(band.row > h // 2, band.row - h + sh, band.row)[keep]
     small = np.zeros((len(cross), sh, sw // 2 + 1), dtype=np.complex64)
     small[:, rows, band.col[keep]] = cross[:, keep]
@@ -289,7 +291,7 @@ def _integer_peaks(cross: np.ndarray, band: _Band) -> tuple[np.ndarray, np.ndarr
 def _coarse(band: _Band) -> float:
     """Grid step (px) of the cropped correlation maps of :func:`_integer_peaks` (at least 0.5)."""
     h, w = band.grid.shape
-    sh, sw, _ = band.map_grid()
+    sh, sw, _ = band.map_grid
     return max(0.5, h / sh, w / sw)
 
 
@@ -582,7 +584,8 @@ def _shift_precision(mean: np.ndarray, var: np.ndarray, band: _Band, n_used: int
 
 
 def plain_mean(stack, *, valid=None) -> tuple[np.ndarray, np.ndarray]:
-    """The unaligned mean of a stack (frames first) and where every frame was valid, one frame at a time.
+    """The unaligned mean of a stack (frames first), float64, summed one frame at a time (a NaN in any frame stays
+    NaN in the mean), and where every frame is finite and ``valid``.
 
     Examples
     --------
@@ -594,10 +597,10 @@ def plain_mean(stack, *, valid=None) -> tuple[np.ndarray, np.ndarray]:
     total = np.zeros(stack.shape[1:])
     ok_all = np.ones(stack.shape[1:], dtype=bool)
     for k in range(len(stack)):
-        f, ok = _frame(stack, k, valid)
+        f = np.asarray(stack[k], dtype=np.float64)
         total += f
-        ok_all &= ok
-    return (total / len(stack)).astype(np.float32), ok_all
+        ok_all &= np.isfinite(f) if valid is None else np.isfinite(f) & np.asarray(valid[k], dtype=bool)
+    return total / len(stack), ok_all
 
 
 def _check_stack(stack):
@@ -606,9 +609,6 @@ def _check_stack(stack):
         raise TenfoldInputError(f"frames: need a stack of 2-D frames (frames first), got shape {tuple(arr.shape)}")
     if not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool) or np.issubdtype(arr.dtype, np.complexfloating):
         raise TenfoldInputError(f"frames: data type {arr.dtype} is not a real grey level; give grey-level frames")
-    if min(arr.shape[1:]) < 16:
-        raise TenfoldInputError(f"frames: frames of {arr.shape[1]} x {arr.shape[2]} px are too small to register "
-                                "(need at least 16 px on a side)")
     return arr
 
 
@@ -617,7 +617,7 @@ def _check_stack(stack):
 # ----------------------------------------------------------------------------------------------------------------
 
 
-def _row_fields(stack, ks, shifts, mean, valid, fill_valid, progress) -> dict[int, np.ndarray]:
+def _row_fields(stack, ks, shifts, mean, fill_valid, progress) -> dict[int, np.ndarray]:
     """Per frame, the displacement (H, 2) of every row beyond its rigid shift, from strips registered to the mean."""
     from scipy.interpolate import make_smoothing_spline
 
@@ -717,6 +717,9 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     """
     arr = _check_stack(stack)
     n, h, w = (int(s) for s in arr.shape)
+    if min(h, w) < 16:
+        raise TenfoldInputError(f"frames: frames of {h} x {w} px are too small to register (need at least 16 px on a "
+                                "side)")
     if n < 2:
         raise TenfoldInputError("frames: alignment needs at least 2 frames; give a longer frame range or a single "
                                 "frame")
@@ -790,7 +793,7 @@ def align_frames(stack, *, reference: int = 0, nonrigid: bool = False, valid=Non
     method = "rigid"
     row_shift = None
     if nonrigid:
-        fields = _row_fields(arr, ks, shifts, mean, full, valid, sub_progress(progress, 0.75, 0.9))
+        fields = _row_fields(arr, ks, shifts, mean, valid, sub_progress(progress, 0.75, 0.9))
         row_shift = np.full((n, h, 2), np.nan)
         for k, fk in fields.items():
             wobble[k] = float(np.sqrt(np.mean(np.sum(fk ** 2, axis=1))))

@@ -574,7 +574,9 @@ def _build(raw, *, label: str, cal: _Calib, override, frame, frame_range, path: 
                 frames = f"aligned mean of frames {a}-{b - 1} (reference {alignment.info['reference']})"
                 notes.extend(f"{label}: {t}" for t in alignment.info["notes"])
             else:
-                data = arr[a:b].astype(np.float64).mean(axis=0)
+                from .frames import plain_mean
+
+                data, _ = plain_mean(arr[a:b])  # one frame at a time; to_float32 below masks what is not finite
                 frames = f"mean of frames {a}-{b - 1}"
                 if b - a >= 2:
                     notes.append(f"{label}: frames {a}-{b - 1} averaged without alignment; any drift between them "
