@@ -27,6 +27,7 @@ import numpy as np
 import pandas as pd
 import numba
 from numba import get_thread_id, njit, prange
+from scipy.sparse import coo_matrix
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
@@ -443,30 +444,72 @@ def _scratch_size(rad):
     return 2 * side * side + 6 * side + 145
 
 
+@njit(cache=True, inline="always")
+def _publish(k, out, nb_par, gidx):
+    """Column k's fitted model becomes its neighbours' view of it (zeros, no light, for a failed fit)."""
+    g = gidx[k]
+    if g < 0:
+        return
+    st = out[k, 8]
+    good = st == _OK or st == _FIXED
+    for i in range(4):
+        nb_par[g, i] = out[k, i] if good else 0.0
+
+
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
 def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, out, n_threads):
-    """Fit every column in parallel (prange over columns), see ``_fit_one``; one scratch row per thread."""
+             start, out, n_threads, order, cptr, gidx):
+    """Fit every column, one colour class after the other (see ``_colour_classes``), the columns of a class in
+    parallel (prange); see ``_fit_one``. After a class is fitted its models replace the old ones in ``nb_par``
+    (row ``gidx[k]``, none when negative), so the next classes see them: a Gauss-Seidel sweep of the coupled fits.
+    A class holds no two neighbours, so its fits read no model that is being written. One scratch row per
+    thread."""
     side = 2 * rad + 1
     fbuf = np.empty((n_threads, _scratch_size(rad)))
     mbuf = np.empty((n_threads, side * side), dtype=np.bool_)
-    for k in prange(x0.shape[0]):
-        tid = get_thread_id()
-        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                 nb_par, start, out, fbuf[tid], mbuf[tid])
+    for c in range(cptr.shape[0] - 1):
+        for t in prange(cptr[c], cptr[c + 1]):
+            k = order[t]
+            tid = get_thread_id()
+            _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr,
+                     nb_idx, nb_par, start, out, fbuf[tid], mbuf[tid])
+            _publish(k, out, nb_par, gidx)
 
 
 @njit(cache=True, nogil=True)
 def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                nb_par, start, out, n_threads):
+                nb_par, start, out, n_threads, order, cptr, gidx):
     """``_fit_all`` in the calling thread: for a few columns, waking the worker threads costs more than the fits
     (milliseconds per call on a busy machine)."""
     side = 2 * rad + 1
     fbuf = np.empty(_scratch_size(rad))
     mbuf = np.empty(side * side, dtype=np.bool_)
-    for k in range(x0.shape[0]):
+    for t in range(order.shape[0]):
+        k = order[t]
         _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
                  nb_par, start, out, fbuf, mbuf)
+        _publish(k, out, nb_par, gidx)
+
+
+@njit(cache=True)
+def _greedy_colours(ptr, idx):
+    """Greedy colouring of a symmetric neighbour graph (CSR): no two neighbours share a colour."""
+    n = ptr.shape[0] - 1
+    colour = np.full(n, -1, np.int64)
+    deg = 0
+    for i in range(n):
+        deg = max(deg, ptr[i + 1] - ptr[i])
+    seen = np.full(deg + 2, -1, np.int64)
+    for i in range(n):
+        for t in range(ptr[i], ptr[i + 1]):
+            c = colour[idx[t]]
+            if c >= 0:
+                seen[c] = i
+        c = 0
+        while seen[c] == i:
+            c += 1
+        colour[i] = c
+    return colour
 
 
 @njit(cache=True)
@@ -693,7 +736,9 @@ def warm_up() -> float:
         for kernel in (_fit_all, _fit_serial):
             kernel(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), np.array([1.5]),
                    np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, np.zeros(2, np.int64), np.zeros(0, np.int64),
-                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS))
+                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS),
+                   np.zeros(1, np.int64), np.array([0, 1], np.int64), np.zeros(1, np.int64))
+    _greedy_colours(np.array([0, 1, 2], np.int64), np.array([1, 0], np.int64))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
                np.ones(1), True, 4,
                np.zeros(2, np.int64), np.zeros(0, np.int64), np.ones(1, np.bool_), np.empty((1, 2)))
@@ -704,9 +749,20 @@ def warm_up() -> float:
 SERIAL_BELOW = 256
 
 
+
 def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
-         fixw=None):
+         fixw=None, colour=None, gidx=None):
+    """Fit the columns (x0, y0); with ``colour`` (one class per column) class after class, each class's models
+    written into ``nb_par`` rows ``gidx`` as it is done (a Gauss-Seidel sweep; ``nb_par`` is updated in place)."""
     n = x0.shape[0]
+    if colour is None or n == 0:
+        order, cptr = np.arange(n, dtype=np.int64), np.array([0, n], np.int64)
+    else:
+        colour = np.asarray(colour, dtype=np.int64)
+        order = np.argsort(colour, kind="stable").astype(np.int64)
+        cptr = np.zeros(int(colour.max()) + 2, np.int64)
+        cptr[1:] = np.cumsum(np.bincount(colour))
+    gidx = np.full(n, -1, np.int64) if gidx is None else np.ascontiguousarray(gidx, dtype=np.int64)
     out = np.empty((n, _NOUT))
     s_arr = np.ascontiguousarray(np.broadcast_to(np.asarray(s0, dtype=np.float64), (n,)))
     fix_arr = np.zeros(n, dtype=np.bool_) if fixw is None else np.ascontiguousarray(fixw, dtype=np.bool_)
@@ -716,7 +772,7 @@ def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_
     kernel = _fit_all if n >= SERIAL_BELOW else _fit_serial
     kernel(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
            float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out,
-           int(numba.config.NUMBA_NUM_THREADS))
+           int(numba.config.NUMBA_NUM_THREADS), order, cptr, gidx)
     return out
 
 
@@ -760,6 +816,18 @@ def _neighbour_lists(xy, reach, k_max=NEIGHBOUR_LIST_MAX):
     return ptr, idx_fin[j[has]].astype(np.int64)
 
 
+def _colour_classes(ptr, idx):
+    """One class per column such that no column shares its class with a neighbour (either list names the
+    other): the order of a Gauss-Seidel sweep whose classes are fitted in parallel."""
+    n = ptr.shape[0] - 1
+    if n == 0:
+        return np.zeros(0, np.int64)
+    src = np.repeat(np.arange(n), ptr[1:] - ptr[:-1])
+    adj = coo_matrix((np.ones(idx.size, np.int8), (src, idx)), shape=(n, n)).tocsr()
+    sym = (adj + adj.T).tocsr()
+    return _greedy_colours(sym.indptr.astype(np.int64), sym.indices.astype(np.int64))
+
+
 def _neighbour_params(out):
     """(x, y, s, A) of every fitted column; zeros (no light) for failed fits, so a list may hold any column."""
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
@@ -768,6 +836,8 @@ def _neighbour_params(out):
     return par
 
 
+#: after this many neighbour passes a column's class (own free width or the common width) no longer changes
+CLASSES_SETTLE_PASSES = 2
 #: columns closer than this many widths share the common width in the neighbour passes
 TOUCH_SIGMA = 4.5
 
@@ -848,8 +918,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         Maximum Levenberg-Marquardt iterations per column and pass.
     neighbour_passes : int
         Largest number of extra passes in which each column is refitted with its neighbours' current model (found
-        by one KD-tree query) subtracted: a Jacobi iteration of the coupled fits, which converges to the joint fit
-        of touching columns. 0 fits every column alone.
+        by one KD-tree query) subtracted: a Gauss-Seidel iteration of the coupled fits (colour classes of the
+        neighbour graph in turn, each class in parallel, every class subtracting the models already updated), which
+        converges to the joint fit of touching columns. 0 fits every column alone.
     converge_px : float
         The passes stop when no column moved by more than this (px); a pass refits only the columns whose own or
         a neighbour's model changed by more than this.
@@ -938,6 +1009,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     # a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away; 1 px of margin for the fits' moves
     if int(neighbour_passes) > 0:
         ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+        colour = _colour_classes(ptr, idx)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
         par = _neighbour_params(out)
@@ -957,15 +1029,26 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
             if not shared:
                 crowded[:] = False
         bright &= ~crowded
+        if p >= CLASSES_SETTLE_PASSES:
+            # the classes are kept from here on: a column near the line can otherwise flip every pass (a free
+            # width's larger amplitude error puts it under the line, the fixed width's smaller one back over it)
+            bright = ~fixw
         if not given_width:
             s_common = _common_width(out[votes], s0)
         newly = (bright == fixw) | (fixw & (np.abs(s_cols - s_common) > 1e-3 * s0))
         fixw = ~bright
         s_cols[fixw] = s_common
-        # Jacobi iteration of the coupled fits: refit only the columns whose own or any neighbour's model changed
-        # since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
-        active = np.union1d(_active_columns(out, prev_par, ptr, idx, converge_px),
-                            np.flatnonzero(newly | ~fitted))
+        # Gauss-Seidel iteration of the coupled fits: refit only the columns whose own or any neighbour's model
+        # changed since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
+        # The first pass is a Jacobi pass (every column sees the lone fits): the classes settled on its result
+        # then do not depend on the order of the columns (nor on a tile's cut), only the converged values would.
+        # a failed fit is tried again in the first passes only: one that still fails (no light, then its
+        # neighbours' light, then none again) would keep the passes from converging; the last fixed-width try
+        # below takes it up
+        retry = ~fitted if p < CLASSES_SETTLE_PASSES else np.zeros(n, dtype=bool)
+        active = _active_columns(out, prev_par, ptr, idx, converge_px)
+        active = np.union1d(active[fitted[active]] if p >= CLASSES_SETTLE_PASSES else active,
+                            np.flatnonzero(newly | retry))
         if active.size == 0:
             break
         prev_par = out[:, :5].copy()
@@ -973,7 +1056,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         fitted = (out[active, 8] == _OK) | (out[active, 8] == _FIXED)
         start = np.where(fitted[:, None], out[active, :5], np.nan)
         again = _run(img, vmask, x0[active], y0[active], s_cols[active], rad, counts, n_iter if p == 0 else 6,
-                     max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active])
+                     max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active],
+                     colour=colour[active] if p > 0 else None, gidx=active if p > 0 else None)
         again[:, 10] += out[active, 10]
         out[active] = again
         passes_done = p + 1
@@ -987,10 +1071,11 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     if fixed_width_fallback and redo.size and (given_width or good.sum() >= 5):
         if int(neighbour_passes) == 0:
             ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+            colour = _colour_classes(ptr, idx)
         par = _neighbour_params(out)
         sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
         again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
-                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool))
+                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool), colour=colour[redo], gidx=redo)
         fixed = again[:, 8] == _FIXED
         out[redo[fixed]] = again[fixed]
     table = _columns_out(out, x0, y0)
