@@ -671,6 +671,11 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             "image_is_counts": settings.noise["model"] != "white",
             "noise_model": settings.noise["model"],
             "neighbour_passes": detail["neighbour_passes"],
+            "columns_still_moving": detail["still_moving"],
+            "columns_still_moving_how": f"candidates whose fit still moved by more than {CONVERGE_PX:g} px in the "
+                                        f"last of at most {NEIGHBOUR_PASSES} neighbour passes (0: converged); "
+                                        "typically faint candidates sliding beside bright columns, most of them "
+                                        "pruned afterwards",
             "common_width_px": settings.common_width,
             "position_error": "inverse Fisher information of the local joint model (column + touching "
                               "neighbours, all their parameters), see refine.joint_position_errors",
@@ -1077,6 +1082,7 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
         top = s.invert_at
         fit["background"] = top - fit["background"]
     detail = {"auto": auto, "neighbour_passes": passes, "detect_s": det["detect_s"], "refine_s": t_refine,
+              "still_moving": int(fit.attrs.get("columns_still_moving", 0)),
               "levels": det["levels"], "noise_sd": det["noise_sd"], "common_width": common, "share_widths": shared,
               "width_median": width_median, "z_cut": float(z_cut), "tail_profile": s.tail_profile}
     return fit, counts_tab, detail
@@ -1214,6 +1220,7 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
     detail["auto"] = dict(detail["auto"])
     detail["auto"]["significance"] = dict(detail["auto"]["significance"], **cut_info)
     detail["neighbour_passes"] = max(p[2]["neighbour_passes"] for p in parts)
+    detail["still_moving"] = sum(p[2]["still_moving"] for p in parts)
     detail["detect_s"] = sum(d["detect_s"] for d in dets)
     detail["refine_s"] = sum(p[2]["refine_s"] for p in parts)
     tiling = {"windows": len(grid), "n_tiles": len(grid) if tile_size is not None else 0,

@@ -947,7 +947,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     Returns
     -------
     DataFrame
-        One row per input position, in input order: ``x_px, y_px, sigma_px, amplitude, background, intensity,
+        One row per input position, in input order (``attrs``: ``neighbour_passes_done``,
+        ``columns_still_moving`` (fits that still moved by more than ``converge_px`` in the last pass: 0 when the
+        passes converged), ``common_width_px``, ``share_widths``): ``x_px, y_px, sigma_px, amplitude, background, intensity,
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
         ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``,
         ``n_pixels``, ``n_iter``, ``patch_mean`` (mean data value over the fit patch: with ``residual`` it gives
@@ -999,6 +1001,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
                np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), fixw=fixw)
     passes_done = 0
+    moving = 0
     prev_par = None
     s_cols = np.full(n, s0)
     given_width = common_width_px is not None
@@ -1062,7 +1065,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         out[active] = again
         passes_done = p + 1
         step = np.hypot(out[active, 0] - prev_par[active, 0], out[active, 1] - prev_par[active, 1])
-        if not np.nanmax(step, initial=0.0) > converge_px and not newly.any() and p > 0:
+        moving = int(np.count_nonzero(np.nan_to_num(step, nan=0.0) > converge_px))
+        if not moving and not newly.any() and p > 0:
             break
     # Columns whose fit still failed get one last fixed-width try with everything else subtracted; they are marked
     # 'fixed_width' so the user can tell (low-signal columns).
@@ -1087,6 +1091,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         table.loc[fitted, "y_err_px"] = err[fitted, 1]
         table["pos_err_px"] = 0.5 * (table["x_err_px"] + table["y_err_px"])
     table.attrs["neighbour_passes_done"] = passes_done
+    table.attrs["columns_still_moving"] = moving
     table.attrs["common_width_px"] = float(s_common)
     table.attrs["share_widths"] = bool(shared) if shared is not None else True
     report(progress, 1.0, "refinement done")

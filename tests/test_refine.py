@@ -188,6 +188,9 @@ def test_neighbour_passes_reach_the_same_fixed_point_in_any_column_order():
     a = refine_columns(img, start, sigma_px=1.5, neighbour_passes=10, converge_px=2e-4)
     b = refine_columns(img, start[perm], sigma_px=1.5, neighbour_passes=10, converge_px=2e-4)
     assert a.attrs["neighbour_passes_done"] < 10  # converged, not stopped by the cap
+    assert a.attrs["columns_still_moving"] == 0
+    capped = refine_columns(img, start, sigma_px=1.5, neighbour_passes=2, converge_px=2e-4)
+    assert capped.attrs["columns_still_moving"] > 0  # two passes are not enough: the table says so
     ok = a["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
     assert ok.mean() > 0.95
     for c in ("x_px", "y_px"):
