@@ -68,24 +68,22 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
     """Objective at parameters p (and J^T W J, J^T W r when want_j).
 
     Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
-    objective (a logarithm per pixel) only when ``want_obj``, else NaN.
+    objective (a logarithm per pixel) only when ``want_obj``, else NaN. The sums run in local scalars (the scratch
+    arrays are views of one buffer, so sums kept in them would be stored and reloaded at every pixel).
     """
     x, y, s, a, b = p[0], p[1], p[2], p[3], p[4]
     _profile(u0, nx, x, s, gx, dgx, dsx)
     _profile(v0, ny, y, s, gy, dgy, dsy)
-    if want_j:
-        for i in range(5):
-            jtr[i] = 0.0
-            for j in range(5):
-                jtj[i, j] = 0.0
     obj = 0.0
     rss = 0.0
     chi2 = 0.0
     npx = 0
-    j0 = 0.0
-    j1 = 0.0
-    j2 = 0.0
-    j3 = 0.0
+    r0 = r1 = r2 = r3 = r4 = 0.0
+    h00 = h01 = h02 = h03 = h04 = 0.0
+    h11 = h12 = h13 = h14 = 0.0
+    h22 = h23 = h24 = 0.0
+    h33 = h34 = 0.0
+    h44 = 0.0
     for r in range(ny):
         gyr = gy[r]
         dgyr = dgy[r]
@@ -115,34 +113,51 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
                 j2 = a * (dsx[c] * gyr + gx[c] * dsyr)
                 j3 = gg
                 wr = w * res
-                jtr[0] += j0 * wr
-                jtr[1] += j1 * wr
-                jtr[2] += j2 * wr
-                jtr[3] += j3 * wr
-                jtr[4] += wr
+                r0 += j0 * wr
+                r1 += j1 * wr
+                r2 += j2 * wr
+                r3 += j3 * wr
+                r4 += wr
                 w0 = w * j0
                 w1 = w * j1
                 w2 = w * j2
                 w3 = w * j3
-                jtj[0, 0] += w0 * j0
-                jtj[0, 1] += w0 * j1
-                jtj[0, 2] += w0 * j2
-                jtj[0, 3] += w0 * j3
-                jtj[0, 4] += w0
-                jtj[1, 1] += w1 * j1
-                jtj[1, 2] += w1 * j2
-                jtj[1, 3] += w1 * j3
-                jtj[1, 4] += w1
-                jtj[2, 2] += w2 * j2
-                jtj[2, 3] += w2 * j3
-                jtj[2, 4] += w2
-                jtj[3, 3] += w3 * j3
-                jtj[3, 4] += w3
-                jtj[4, 4] += w
+                h00 += w0 * j0
+                h01 += w0 * j1
+                h02 += w0 * j2
+                h03 += w0 * j3
+                h04 += w0
+                h11 += w1 * j1
+                h12 += w1 * j2
+                h13 += w1 * j3
+                h14 += w1
+                h22 += w2 * j2
+                h23 += w2 * j3
+                h24 += w2
+                h33 += w3 * j3
+                h34 += w3
+                h44 += w
     if want_j:
-        for i in range(5):
-            for j in range(i):
-                jtj[i, j] = jtj[j, i]
+        jtr[0] = r0
+        jtr[1] = r1
+        jtr[2] = r2
+        jtr[3] = r3
+        jtr[4] = r4
+        jtj[0, 0] = h00
+        jtj[0, 1] = jtj[1, 0] = h01
+        jtj[0, 2] = jtj[2, 0] = h02
+        jtj[0, 3] = jtj[3, 0] = h03
+        jtj[0, 4] = jtj[4, 0] = h04
+        jtj[1, 1] = h11
+        jtj[1, 2] = jtj[2, 1] = h12
+        jtj[1, 3] = jtj[3, 1] = h13
+        jtj[1, 4] = jtj[4, 1] = h14
+        jtj[2, 2] = h22
+        jtj[2, 3] = jtj[3, 2] = h23
+        jtj[2, 4] = jtj[4, 2] = h24
+        jtj[3, 3] = h33
+        jtj[3, 4] = jtj[4, 3] = h34
+        jtj[4, 4] = h44
     if counts and not want_obj:
         obj = np.nan
     return obj, rss, npx, chi2
