@@ -379,30 +379,17 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         if not (trial[2] > 0.05 and trial[3] > 0.0):
             lam *= 10.0
             continue
-        if counts and lam < 1e-2 and abs(delta[0]) < TRUST_PX and abs(delta[1]) < TRUST_PX \
-                and abs(delta[2]) < TRUST_REL * p[2] and abs(delta[3]) < TRUST_REL * p[3] \
-                and abs(delta[4]) < TRUST_REL * p[3]:
-            # a small, undamped Fisher-scoring step near the optimum is taken without judging it by the Poisson
-            # objective (a logarithm per pixel); only the derivatives for the next step are evaluated there
-            _, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
-                                             tj, tr, True, False)
-            for i in range(5):
-                p[i] = trial[i]
-                jtr[i] = tr[i]
-                for j in range(5):
-                    jtj[i, j] = tj[i, j]
-            obj_known = False
-            rss = trss
-            npx = tnpx
-            chi2 = tchi2
-            lam = max(lam * 0.3, 1e-7)
-            continue
-        if not obj_known:
+        # a small, undamped Fisher-scoring step near the optimum is taken without judging it by the Poisson
+        # objective (a logarithm per pixel); only the derivatives for the next step are evaluated there
+        trusted = counts and lam < 1e-2 and abs(delta[0]) < TRUST_PX and abs(delta[1]) < TRUST_PX \
+            and abs(delta[2]) < TRUST_REL * p[2] and abs(delta[3]) < TRUST_REL * p[3] \
+            and abs(delta[4]) < TRUST_REL * p[3]
+        if not trusted and not obj_known:
             obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tj, tr, False)[0]
             obj_known = True
         tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
-                                            tj, tr, True)
-        if tobj <= obj:
+                                            tj, tr, True, not trusted)
+        if trusted or tobj <= obj:
             small = abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL and abs(delta[2]) < STEP_TOL * trial[2]
             for i in range(5):
                 p[i] = trial[i]
@@ -410,6 +397,7 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
                 for j in range(5):
                     jtj[i, j] = tj[i, j]
             obj = tobj
+            obj_known = not trusted
             rss = trss
             npx = tnpx
             chi2 = tchi2
