@@ -11,7 +11,7 @@ Steps of ``find_columns`` (every automatic choice is recorded in the returned in
    measured width, spacing or noise model disagree with the ones used (at most ``MAX_SCALE_ROUNDS``).
 3. Windows (``_run_windows``): the whole image, or tiles with a halo of ``TILE_HALO_SPACINGS`` spacings + 8 sigma.
    Each window detects candidates (``_detect_window``): matched-filter significance over a locally linear
-   background (``significance_map``), trackpy's maxima finder on the scale-normalised LoG, mirrored minima for the
+   background (``significance_map``), trackpy's maxima rule on the scale-normalised LoG, mirrored minima for the
    noise estimate. One significance cut for all windows (``mirror_threshold``, bounded by 3.5 sigma and the
    random-field threshold of the image area). Each window fits its significant candidates
    (``refine.refine_columns``: pixel-integrated Gaussians, Poisson-weighted for counts, Jacobi neighbour passes
@@ -37,6 +37,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from . import _sanitize, _schema
+from ._filters import laplacian, window_max, window_min
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
@@ -191,9 +192,9 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     >>> bool(field.z([30.0], [20.0])[0] > 20), bool(abs(field.z([10.0], [10.0])[0]) < 4)
     (True, True)
     """
-    smooth = ndimage.gaussian_filter(work.astype(np.float32), sigma_px)
+    smooth = ndimage.gaussian_filter(np.asarray(work, dtype=np.float32), sigma_px)
     size = max(3, int(round(spacing_px * 0.5)) | 1)
-    maxima = (smooth == ndimage.maximum_filter(smooth, size=size)) & valid
+    maxima = (smooth == window_max(smooth, size)) & valid
     reach = int(math.ceil(4.0 * sigma_px))  # a bright column's tail still adds ~1 % of its peak at 3 sigma
     k2 = 1.0 / (4.0 * math.pi * sigma_px**2)
     white_sd = None if counts else np.float32(math.sqrt(k2) * float(noise_sd))
@@ -208,18 +209,21 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     sources = maxima & (smooth > levels["source_level"])
     my, mx = np.nonzero(maxima)
     field = None
+    gaps = None
     crowded = list(levels.get("crowded", []))
     for rnd in range(2):
-        keep = valid & ~ndimage.maximum_filter(sources, size=2 * reach + 1)
+        keep = valid & ~window_max(sources, 2 * reach + 1)
         if len(crowded) <= rnd:
             # in a crowded image (a crystal, columns closer than ~8 sigma) almost nothing is far from a column;
             # decided per pass (the second pass masks the dim columns too)
-            crowded.append(bool(keep.sum() < 0.25 * valid.sum()))
+            crowded.append(bool(np.count_nonzero(keep) < 0.25 * np.count_nonzero(valid)))
             levels["crowded"] = crowded
         if crowded[rnd]:
             # the background is then the level of the gaps between columns: smoothed pixels below their local
             # mean; pixels far from every source (an empty border, a hole in the crystal) all count
-            keep |= valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
+            if gaps is None:
+                gaps = valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
+            keep |= gaps
         bg, f = _local_background(work, keep, BG_SCALE_SPACINGS * spacing_px, origin)
         field = SignificanceField(smooth, bg, valid, k2, white_sd, count_offset, count_sign, f, tuple(origin), levels)
         sources = np.zeros_like(maxima)
@@ -304,30 +308,31 @@ def _local_background(work, keep, scale_px, origin):
     r0, c0 = int(origin[0]), int(origin[1])
     pr, pc = r0 % f, c0 % f  # rows / columns of the first block that lie before the window
     nb_r, nb_c = -(-(h + pr) // f), -(-(w + pc) // f)
-    m = np.zeros((nb_r * f, nb_c * f), np.float32)
-    v = np.zeros_like(m)
+    m = np.zeros((nb_r * f, nb_c * f), np.uint8)
+    v = np.zeros(m.shape, np.float32)
     m[pr:pr + h, pc:pc + w] = keep
-    v[pr:pr + h, pc:pc + w] = np.where(keep, work, 0.0)
-    m_c = m.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
-    i_c = v.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
+    np.copyto(v[pr:pr + h, pc:pc + w], work, where=keep, casting="same_kind")
+    m_c = _block_sums(m, f) / (f * f)
+    i_c = _block_sums(v, f) / (f * f)
     del m, v
     if not (m_c > 0).any():
         return np.full((1, 1), float(np.median(work))), f
     s = scale_px / f
-    yy, xx = np.mgrid[0:nb_r, 0:nb_c].astype(np.float64)
+    # the weighted moments about each block centre: separable correlations with u^k G(u), u the offset in blocks
+    # (G the unit-sum Gaussian that scipy's gaussian_filter uses, truncated at 3 widths)
+    u = np.arange(-int(3.0 * s + 0.5), int(3.0 * s + 0.5) + 1, dtype=np.float64)
+    g0 = np.exp(-0.5 * u * u / (s * s))
+    g0 /= g0.sum()
+    g1, g2 = u * g0, u * u * g0
 
-    def g(a):
-        return ndimage.gaussian_filter(a, s, mode="constant", cval=0.0, truncate=3.0)
+    def corr(a, k, axis):
+        return ndimage.correlate1d(a, k, axis=axis, mode="constant", cval=0.0)
 
-    s0, sx, sy = g(m_c), g(m_c * xx), g(m_c * yy)
-    sxx, syy, sxy = g(m_c * xx * xx), g(m_c * yy * yy), g(m_c * xx * yy)
-    b0, bx, by = g(i_c), g(i_c * xx), g(i_c * yy)
-    # moments about each block centre (x0, y0)
-    mxx = sxx - 2 * xx * sx + xx * xx * s0
-    myy = syy - 2 * yy * sy + yy * yy * s0
-    mxy = sxy - xx * sy - yy * sx + xx * yy * s0
-    mx, my = sx - xx * s0, sy - yy * s0
-    cx, cy = bx - xx * b0, by - yy * b0
+    m_y0, m_y1, m_y2 = corr(m_c, g0, 0), corr(m_c, g1, 0), corr(m_c, g2, 0)
+    s0, mx, mxx = corr(m_y0, g0, 1), corr(m_y0, g1, 1), corr(m_y0, g2, 1)
+    my, mxy, myy = corr(m_y1, g0, 1), corr(m_y1, g1, 1), corr(m_y2, g0, 1)
+    i_y0 = corr(i_c, g0, 0)
+    b0, cx, cy = corr(i_y0, g0, 1), corr(i_y0, g1, 1), corr(corr(i_c, g1, 0), g0, 1)
     ridge = _BG_RIDGE * s0 * s * s
     a11, a22 = mxx + ridge, myy + ridge
     # solve [[s0, mx, my], [mx, a11, mxy], [my, mxy, a22]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule)
@@ -344,6 +349,17 @@ def _local_background(work, keep, scale_px, origin):
         idx = ndimage.distance_transform_edt(fill, return_distances=False, return_indices=True)
         bg = bg[tuple(idx)]
     return bg, f
+
+
+def _block_sums(a, f):
+    """Sums over the ``f`` x ``f`` blocks of ``a`` (its sides multiples of ``f``), float64: ``2 f`` strided adds."""
+    rows = np.zeros((a.shape[0] // f, a.shape[1]))
+    for i in range(f):
+        rows += a[i::f]
+    out = np.zeros((rows.shape[0], a.shape[1] // f))
+    for j in range(f):
+        out += rows[:, j::f]
+    return out
 
 
 def _smooth_surface(work, keep, scale_px, *, coarse=False):
@@ -896,11 +912,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     smoothed image: the same operator, a third of the work. The mirrored minima of the same detector in the
     window's core estimate the noise detections (``mirror_threshold``).
     """
-    from ._lazy import import_trackpy
-
-    grey_dilation = import_trackpy().find.grey_dilation
-
-    report(progress, 0.05, "detecting columns (trackpy)")
+    report(progress, 0.05, "detecting columns")
     t0 = time.perf_counter()
     s = settings
     work, offset, sign = _work_image(data, s)
@@ -920,25 +932,26 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     field = significance_map(detect, ok, sigma_px=s.sigma, spacing_px=s.spacing, counts=s.counts_like,
                              noise_sd=noise_sd, count_offset=offset, count_sign=sign, origin=origin, levels=s.levels)
     levels = field.levels
-    blob = -ndimage.laplace(field.smooth) * np.float32(s.sigma**2)
+    blob = laplacian(field.smooth)
+    blob *= np.float32(-s.sigma**2)
     if "log_range" not in levels:
         v = blob[ok]
         lo, hi = (float(v.min()), float(v.max())) if v.size else (0.0, 1.0)
         span = max(hi - lo, 1e-30)
         levels["log_range"] = [lo - _LOG_MARGIN * span, hi + _LOG_MARGIN * span]
     lo, hi = levels["log_range"]
-    q = np.where(ok, np.clip((blob - lo) * (65535.0 / (hi - lo)), 0, 65535), 0).astype(np.uint16)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # "no maxima" / "all in the margins": an empty window says so by itself
-        pos = grey_dilation(q, s.separation, percentile=0, margin=0, precise=False)
+    q = blob - lo
+    q *= 65535.0 / (hi - lo)
+    np.clip(q, 0, 65535, out=q)
+    q[~ok] = 0
+    pos = _grey_maxima(q.astype(np.uint16), s.separation)
     del q
-    pos = np.asarray(pos, dtype=np.int64).reshape(-1, 2)
     n_raw_all = pos.shape[0]
     ys, xs = _subpixel_and_distinct(blob, pos, s, origin, image_shape)
     # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
     # noise minima come at about the density of noise maxima
     side = 2 * max(int(round(s.separation * math.sqrt(math.pi) / 2.0)), 1) + 1
-    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
+    mins = (blob == window_min(blob, side)) & ok
     del blob
     mr, mc = np.nonzero(_core_mask(mins, core))
     z = field.z(ys, xs)
@@ -947,7 +960,8 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     auto["trackpy"] = {"diameter_px": s.diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
                        "separation_px": s.separation,
                        "separation_how": f"min(0.5 x spacing, {SEPARATION_SIGMA} sigma), at least 1.5 px",
-                       "percentile": 0, "function": "trackpy.find.grey_dilation on the 16-bit LoG",
+                       "percentile": 0, "function": "trackpy.find.grey_dilation's rule on the 16-bit LoG "
+                                                    "(_grey_maxima: the same maxima, computed with array shifts)",
                        "subpixel": "parabola through the LoG maximum and its 4 neighbours (a start for the fits)"}
     auto["significance"] = {
         "noise": "Poisson variance of the smoothed counts" if s.counts_like else
@@ -962,6 +976,25 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
             "background": (field.bg_coarse, field.factor, tuple(field.origin))}
+
+
+def _grey_maxima(q, separation):
+    """(row, col) of the maxima that ``trackpy.find.grey_dilation(q, separation, percentile=0, margin=0,
+    precise=False)`` finds in the uint16 image ``q``, in its order, without its warnings (an empty result says so).
+
+    trackpy's rule: a pixel equal to the largest value in the box of side ``int(2 separation / sqrt(2))`` (the
+    largest square inside the disk; an even side reaches one pixel further after the pixel than before it, as
+    ``scipy.ndimage.grey_dilation`` places it) and brighter than the dimmest non-zero pixel. The box maximum is
+    ``_filters.window_max`` (exact, several times faster than scipy's filter); ``tests/test_filters.py`` checks
+    the equality against trackpy itself.
+    """
+    side = max(int(2 * separation / math.sqrt(2)), 1)
+    lit = q > 0
+    if not lit.any():
+        return np.zeros((0, 2), np.int64)
+    dimmest = q.min(where=lit, initial=np.iinfo(q.dtype).max)
+    peak = (q == window_max(q, side, before=side // 2 - (1 - side % 2))) & (q > dimmest)
+    return np.argwhere(peak).astype(np.int64)
 
 
 def _subpixel_and_distinct(blob, pos, s, origin, image_shape):

@@ -1,0 +1,76 @@
+"""The detection's own filters against the reference libraries they replace (scipy.ndimage, trackpy)."""
+
+import warnings
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from tenfold.analysis._filters import laplacian, window_max, window_min
+from tenfold.analysis.columns import _grey_maxima
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16, np.uint8], ids=str)
+@pytest.mark.parametrize("size", [1, 2, 3, 4, 5, 8, 9, 21, 40])
+@pytest.mark.parametrize("mode", ["reflect", "nearest"])
+def test_window_extrema_equal_scipy(dtype, size, mode):
+    rng = np.random.default_rng(size)
+    a = (rng.random((37, 29)) * 200).astype(dtype)
+    for before in {size // 2, size // 2 - (1 - size % 2)}:
+        origin = before - size // 2
+        assert np.array_equal(window_max(a, size, before=before),
+                              ndimage.maximum_filter(a, size=size, mode=mode, origin=origin))
+        assert np.array_equal(window_min(a, size, before=before),
+                              ndimage.minimum_filter(a, size=size, mode=mode, origin=origin))
+
+
+def test_window_max_of_bool_is_the_square_dilation():
+    rng = np.random.default_rng(0)
+    b = rng.random((50, 61)) < 0.01
+    assert np.array_equal(window_max(b, 7), ndimage.binary_dilation(b, structure=np.ones((7, 7), bool)))
+    assert np.array_equal(window_min(~b, 7), ~ndimage.binary_dilation(b, structure=np.ones((7, 7), bool)))
+
+
+def test_window_filter_leaves_input_alone_and_handles_tiny_arrays():
+    a = np.arange(6.0).reshape(2, 3)
+    before = a.copy()
+    assert np.array_equal(window_max(a, 9), np.full((2, 3), 5.0))  # window larger than the array
+    assert np.array_equal(window_min(a, 9), np.zeros((2, 3)))
+    assert np.array_equal(a, before)
+
+
+@pytest.mark.parametrize("bad", [dict(size=0), dict(size=5, before=0), dict(size=4, before=3)],
+                         ids=["size 0", "window not about the pixel", "even window off by two"])
+def test_window_filter_rejects_bad_windows(bad):
+    with pytest.raises(ValueError, match="window filter"):
+        window_max(np.zeros((4, 4)), **bad)
+
+
+def test_laplacian_matches_scipy_within_float32_rounding():
+    rng = np.random.default_rng(1)
+    a = ndimage.gaussian_filter(rng.poisson(300.0, (64, 80)).astype(np.float32), 1.5)
+    ref = ndimage.laplace(a)
+    got = laplacian(a)
+    assert got.dtype == np.float32
+    # scipy sums each axis in float64 and rounds once per axis; ours rounds after each of the 5 terms
+    assert np.max(np.abs(got - ref)) <= 8 * np.finfo(np.float32).eps * np.max(np.abs(a))
+
+
+@pytest.mark.parametrize("trial", range(40))
+def test_grey_maxima_equal_trackpy(trial):
+    import trackpy
+
+    rng = np.random.default_rng(trial)
+    h, w = rng.integers(3, 70, 2)
+    q = rng.integers(0, [3, 60, 65535][trial % 3], (h, w)).astype(np.uint16)
+    if trial % 4 == 0:
+        q[rng.random((h, w)) < 0.3] = 0
+    separation = float(rng.uniform(1.5, 9.0))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # trackpy warns on an image without maxima
+        ref = trackpy.find.grey_dilation(q, separation, percentile=0, margin=0, precise=False)
+    assert np.array_equal(_grey_maxima(q, separation), np.asarray(ref, dtype=np.int64).reshape(-1, 2))
+
+
+def test_grey_maxima_of_a_black_image_is_empty():
+    assert _grey_maxima(np.zeros((8, 8), np.uint16), 3.0).shape == (0, 2)
