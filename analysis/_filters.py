@@ -1,21 +1,23 @@
 """Exact, cheaper replacements for a few scipy.ndimage filters on the detection's hot path.
 
-``window_max`` / ``window_min``: the largest / smallest value over the odd square window about every pixel, the
-window clipped at the array border. That is exactly ``scipy.ndimage.maximum_filter`` / ``minimum_filter`` with an
-``size`` in the modes 'reflect' and 'nearest' (their border pixels all lie inside the clipped window; 'mirror'
-too for odd sizes), computed with a handful of whole-array ``np.maximum`` / ``np.minimum`` calls per axis (windows of 1, 2, 4,
-... pixels, then two overlapping ones: van Herk's and Gil & Werman's idea, done with array shifts): 3-4 times
-faster than scipy's line-by-line filter at the sizes the finder uses, and equal to it value for value (a maximum
-involves no rounding).
+``window_max`` / ``window_min``: the largest / smallest value over the square window about every pixel, the
+window clipped at the array border. That is exactly ``scipy.ndimage.maximum_filter`` / ``minimum_filter`` in the
+modes 'reflect' and 'nearest' (their border pixels all lie inside the clipped window; 'mirror' too for odd sizes),
+computed with a handful of whole-array ``np.maximum`` / ``np.minimum`` calls per axis (runs doubled in length, 1,
+2, 4, ... pixels, then two overlapping runs cover the window: a sparse-table scheme done with array shifts): 3-20
+times faster than scipy's line-by-line filter at the sizes the finder uses, and equal to it value for value (a
+maximum involves no rounding).
 
 ``laplacian``: the 5-point discrete Laplacian with mirrored borders, ``scipy.ndimage.laplace`` in float32 sums.
+
+``gaussian_fft``: ``scipy.ndimage.gaussian_filter`` for wide kernels, by one FFT convolution.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["window_max", "window_min", "laplacian"]
+__all__ = ["window_max", "window_min", "laplacian", "gaussian_fft"]
 
 
 def _pad_value(dtype: np.dtype, largest: bool):
@@ -94,3 +96,30 @@ def laplacian(a: np.ndarray) -> np.ndarray:
     out += p[1:-1, :-2]
     out += p[1:-1, 2:]
     return out
+
+
+def gaussian_fft(a: np.ndarray, sigma: float) -> np.ndarray:
+    """``scipy.ndimage.gaussian_filter(a, sigma)`` (float64, mode 'reflect', truncated at 4 sigma) by one FFT
+    convolution of the mirror-padded image: the same kernel and border, equal to ~1e-15 of the image's range, and
+    several times faster for the wide kernels of a polarity or background estimate (cost independent of sigma).
+    """
+    from scipy import fft as sfft
+
+    a = np.asarray(a, dtype=np.float64)
+    radius = int(4.0 * float(sigma) + 0.5)
+    u = np.arange(-radius, radius + 1, dtype=np.float64)
+    k = np.exp(-0.5 * u * u / float(sigma) ** 2)
+    k /= k.sum()
+    p = np.pad(a, radius, mode="symmetric")
+    shape = [sfft.next_fast_len(n, real=True) for n in p.shape]
+    # the kernel centred on index 0 (negative offsets wrap to the end): a circular convolution of the padded
+    # image whose wrap-around never reaches the pixels kept
+    kr = np.zeros(shape[0])
+    kc = np.zeros(shape[1])
+    kr[u.astype(np.int64)] = k
+    kc[u.astype(np.int64)] = k
+    spec = sfft.rfft2(p, s=shape, workers=-1)
+    spec *= sfft.fft(kr)[:, None] * sfft.rfft(kc)[None, :]
+    out = sfft.irfft2(spec, s=shape, workers=-1)
+    return out[radius:radius + a.shape[0], radius:radius + a.shape[1]]
+

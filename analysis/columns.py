@@ -37,7 +37,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from . import _sanitize, _schema
-from ._filters import laplacian, window_max, window_min
+from ._filters import gaussian_fft, laplacian, window_max, window_min
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
@@ -76,13 +76,13 @@ def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
         rows, cols = slice((h - min(h, 512)) // 2, None), slice((w - min(w, 512)) // 2, None)
     img = img[rows, cols][:512, :512]
     valid = None if valid is None else valid[:512, :512]
-    hp = img - ndimage.gaussian_filter(img, 2.0 * spacing_px)
+    hp = img - gaussian_fft(img, 2.0 * spacing_px)  # scipy's gaussian_filter, by FFT: its kernel is wide
     v = hp[valid] if valid is not None else hp.ravel()
     if v.size < 16:
         return 0.0
     v = v - v.mean()
     sd = v.std()
-    return float(np.mean(v**3) / sd**3) if sd > 0 else 0.0
+    return float(np.mean(v * v * v) / sd**3) if sd > 0 else 0.0  # (v**3 is a slow float power)
 
 
 def false_alarm_threshold(area_px: float, sigma_px: float, expected_false: float = FALSE_ALARMS) -> float:
@@ -472,7 +472,8 @@ def _tail_profile(work, fit, good, settings, background):
 
     Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
     fitted column are subtracted from the image; the smoothed residual around the bright columns, less the
-    detection's background (``background``: its coarse grid, block size and window origin), median over
+    detection's background (``background``: its coarse grid, block size, window origin and the detection's
+    smoothed image of ``work``, or None to smooth it here), median over
     ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the columns, is the tail a
     Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
     The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
@@ -483,7 +484,11 @@ def _tail_profile(work, fit, good, settings, background):
     if idx.size < TAIL_MIN_COLUMNS:
         return None
     k = settings.sigma
-    smooth = ndimage.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
+    bg_coarse, factor, origin, smooth = background
+    # the smoothing is linear: the detection's smoothed image less the smoothed model (one filter, not two)
+    if smooth is None:
+        smooth = ndimage.gaussian_filter(work.astype(np.float32), k)
+    smooth = smooth - ndimage.gaussian_filter(_model_image(work.shape, fit, good), k)
     idx = idx[np.argsort(amp[idx])[::-1][:400]]
     r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
     th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
@@ -494,7 +499,7 @@ def _tail_profile(work, fit, good, settings, background):
     peak = amp[idx] * s2 / (s2 + k * k)
     # the residual above the detection's background (estimated away from the columns): a fit's own constant
     # background would have absorbed the tail
-    bg = _coarse_background(*background, y.ravel(), x.ravel()).reshape(x.shape)
+    bg = _coarse_background(bg_coarse, factor, origin, y.ravel(), x.ravel()).reshape(x.shape)
     extra = np.median(np.median(vals - bg, axis=2) / peak[:, None], axis=0)
     # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
     extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
@@ -509,16 +514,22 @@ def _model_image(shape, fit, good):
     a, sg = fit["amplitude"].to_numpy()[good], fit["sigma_px"].to_numpy()[good]
     if not xs.size:
         return model
-    off = np.arange(-int(math.ceil(4.0 * np.nanmax(sg))), int(math.ceil(4.0 * np.nanmax(sg))) + 1)
-    px = np.rint(xs).astype(np.int64)[:, None, None] + off[None, None, :]
-    py = np.rint(ys).astype(np.int64)[:, None, None] + off[None, :, None]
+    r = int(math.ceil(4.0 * np.nanmax(sg)))
+    cx, cy = np.rint(xs), np.rint(ys)
+    # a footprint whose centre lies more than r px outside the image misses it; every other one fits a canvas with a
+    # margin of 2 r + 1 px, drawn without masking and then cropped
+    near = (cx >= -r - 1) & (cx <= w + r) & (cy >= -r - 1) & (cy <= h + r)
+    xs, ys, a, sg = xs[near], ys[near], a[near], sg[near]
+    off = np.arange(-r, r + 1)
+    px = cx[near].astype(np.int64)[:, None, None] + off[None, None, :]
+    py = cy[near].astype(np.int64)[:, None, None] + off[None, :, None]
     # separable: two rows of exponentials per column instead of a square of them
     gx = np.exp(-0.5 * (px - xs[:, None, None]) ** 2 / sg[:, None, None] ** 2)
     gy = a[:, None, None] * np.exp(-0.5 * (py - ys[:, None, None]) ** 2 / sg[:, None, None] ** 2)
-    g = gy * gx
-    px, py = np.broadcast_arrays(px, py)
-    inside = (px >= 0) & (px < w) & (py >= 0) & (py < h)
-    model += np.bincount((py[inside] * w + px[inside]).ravel(), weights=g[inside], minlength=h * w).reshape(h, w)
+    m = 2 * r + 1
+    wc = w + 2 * m
+    canvas = np.bincount(((py + m) * wc + (px + m)).ravel(), weights=(gy * gx).ravel(), minlength=(h + 2 * m) * wc)
+    model += canvas.reshape(h + 2 * m, wc)[m:m + h, m:m + w]
     return model
 
 
@@ -975,7 +986,8 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
-            "background": (field.bg_coarse, field.factor, tuple(field.origin))}
+            "background": (field.bg_coarse, field.factor, tuple(field.origin),
+                           field.smooth if s.tail_profile is None else None)}
 
 
 def _grey_maxima(q, separation):

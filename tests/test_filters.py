@@ -74,3 +74,38 @@ def test_grey_maxima_equal_trackpy(trial):
 
 def test_grey_maxima_of_a_black_image_is_empty():
     assert _grey_maxima(np.zeros((8, 8), np.uint16), 3.0).shape == (0, 2)
+
+
+@pytest.mark.parametrize("shape,sigma", [((64, 80), 6.0), ((40, 33), 1.2), ((9, 12), 5.0), ((3, 4), 2.5)],
+                         ids=["wide kernel", "narrow kernel", "kernel beyond the image", "tiny image"])
+def test_gaussian_fft_equals_scipy(shape, sigma):
+    from tenfold.analysis._filters import gaussian_fft
+
+    rng = np.random.default_rng(2)
+    a = rng.poisson(500.0, shape).astype(np.float64)
+    ref = ndimage.gaussian_filter(a, sigma)
+    assert np.max(np.abs(gaussian_fft(a, sigma) - ref)) <= 1e-12 * np.ptp(a)
+
+
+def test_model_image_equals_a_column_by_column_sum():
+    # the canvas-and-crop drawing against the obvious oracle: each column's sampled Gaussian added where it falls
+    import pandas as pd
+
+    from tenfold.analysis.columns import _model_image
+
+    rng = np.random.default_rng(3)
+    n = 60
+    fit = pd.DataFrame({"x_px": rng.uniform(-12, 52, n), "y_px": rng.uniform(-12, 42, n),
+                        "amplitude": rng.uniform(10, 100, n), "sigma_px": rng.uniform(0.8, 2.2, n)})
+    good = rng.random(n) > 0.2
+    h, w = 30, 40
+    ref = np.zeros((h, w))
+    r = int(np.ceil(4.0 * fit["sigma_px"][good].max()))
+    yy, xx = np.mgrid[0:h, 0:w]
+    for _, c in fit[good].iterrows():
+        near = (np.abs(xx - np.rint(c.x_px)) <= r) & (np.abs(yy - np.rint(c.y_px)) <= r)
+        ref += near * c.amplitude * np.exp(-0.5 * ((xx - c.x_px) ** 2 + (yy - c.y_px) ** 2) / c.sigma_px ** 2)
+    got = _model_image((h, w), fit, good)
+    assert got.dtype == np.float32
+    assert np.allclose(got, ref, rtol=1e-6, atol=1e-4)
+    assert np.count_nonzero(got) > 0.5 * got.size  # the test draws columns across the whole image
