@@ -109,3 +109,18 @@ def test_model_image_equals_a_column_by_column_sum():
     assert got.dtype == np.float32
     assert np.allclose(got, ref, rtol=1e-6, atol=1e-4)
     assert np.count_nonzero(got) > 0.5 * got.size  # the test draws columns across the whole image
+
+
+@pytest.mark.parametrize("radius", [1.0, 1.5, 3.96, 4.0, 6.3])
+def test_close_pairs_equal_kdtree_pairs(radius):
+    from scipy.spatial import cKDTree
+
+    from tenfold.analysis.columns import _close_pairs
+
+    rng = np.random.default_rng(int(radius * 10))
+    flat = rng.choice(50 * 70, 400, replace=False)
+    pos = np.c_[flat // 70, flat % 70].astype(np.int64)
+    got = {tuple(p) for p in _close_pairs(pos, (50, 70), radius)}
+    ref = {tuple(p) for p in cKDTree(pos).query_pairs(radius, output_type="ndarray")}
+    assert got == ref and len(ref) > 0
+    assert all(i < j for i, j in got)
