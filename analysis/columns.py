@@ -227,7 +227,7 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
         bg, f = _local_background(work, keep, BG_SCALE_SPACINGS * spacing_px, origin)
         field = SignificanceField(smooth, bg, valid, k2, white_sd, count_offset, count_sign, f, tuple(origin), levels)
         sources = np.zeros_like(maxima)
-        zm = field.z(my.astype(np.float64), mx.astype(np.float64))
+        zm = field.z_pixels(my, mx)
         sources[my[zm >= Z_FLOOR], mx[zm >= Z_FLOOR]] = True
     return field
 
@@ -276,6 +276,16 @@ class SignificanceField:
         ri = np.clip(np.rint(rows).astype(np.int64), 0, h - 1)
         ci = np.clip(np.rint(cols).astype(np.int64), 0, w - 1)
         return np.where(self.valid[ri, ci], z, 0.0)
+
+    def z_pixels(self, rows, cols):
+        """``z`` at whole pixels (integer arrays inside the window): the smoothed image read, not interpolated."""
+        rows, cols = np.asarray(rows), np.asarray(cols)
+        if rows.size == 0:
+            return np.zeros(0)
+        fr, fc = rows.astype(np.float64), cols.astype(np.float64)
+        bg = self.background(fr, fc)
+        z = (self.smooth[rows, cols] - bg) / self.sd(fr, fc, bg)
+        return np.where(self.valid[rows, cols], z, 0.0)
 
 
 #: scale of the background's Gaussian, in column spacings
@@ -982,7 +992,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
                "between 3.5 sigma and the random-field threshold for the image area",
     }
     return {"xs": xs, "ys": ys, "z": z, "sd": sd, "in_core": in_core, "z_core": z[in_core],
-            "z_mirror_core": -field.z(mr.astype(np.float64), mc.astype(np.float64)),
+            "z_mirror_core": -field.z_pixels(mr, mc),
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
