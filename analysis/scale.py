@@ -14,10 +14,11 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import fft as sfft, ndimage
+from scipy import fft as sfft
 from scipy.spatial import cKDTree
 
 from . import _sanitize
+from ._correlate import gaussian_filter
 from ._filters import window_max, window_min
 from ._errors import TenfoldInputError
 
@@ -42,7 +43,7 @@ def nearest_maxima_spacing(image, valid, sigma_px: float):
     ``2 floor(0.35 d) + 1`` px with the first spacing d (noise maxima on the flank of a column no longer count);
     the smoothed image, the noise and the local minima are shared. Returns ``(spacing_px or None, n_maxima)``.
     """
-    g = ndimage.gaussian_filter(np.where(valid, image, image[valid].mean()), sigma_px)
+    g = gaussian_filter(np.where(valid, image, image[valid].mean()), sigma_px)  # scipy's, in numba
     dif = np.diff(image, axis=1)[valid[:, 1:] & valid[:, :-1]]
     sd_pix = 1.4826 * np.median(np.abs(dif - np.median(dif))) / math.sqrt(2.0)
     sd_g = sd_pix / (2.0 * math.sqrt(math.pi) * sigma_px)

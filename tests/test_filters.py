@@ -124,3 +124,38 @@ def test_close_pairs_equal_kdtree_pairs(radius):
     ref = {tuple(p) for p in cKDTree(pos).query_pairs(radius, output_type="ndarray")}
     assert got == ref and len(ref) > 0
     assert all(i < j for i, j in got)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64], ids=str)
+@pytest.mark.parametrize("shape", [(1, 1), (3, 2), (7, 5), (40, 33)], ids=str)
+def test_numba_correlation_is_bit_identical_to_scipy(dtype, shape):
+    from tenfold.analysis._correlate import correlate1d, gaussian_filter
+
+    rng = np.random.default_rng(shape[0])
+    a = (rng.normal(size=shape) * 100 + 300).astype(dtype)
+    before = a.copy()
+    for n in (1, 3, 7, 25):
+        u = np.arange(n) - n // 2
+        g = np.exp(-0.5 * u**2 / (n / 5 + 0.3) ** 2)
+        g /= g.sum()
+        # symmetric, antisymmetric (the background's moment kernels) and a general one (handed to scipy)
+        for w in (g, u * g, u * u * g, rng.normal(size=n)):
+            for axis in (0, 1):
+                for mode in ("reflect", "constant"):
+                    ref = ndimage.correlate1d(a, w, axis=axis, mode=mode, cval=0.0)
+                    got = correlate1d(a, w, axis, mode=mode)
+                    assert got.dtype == ref.dtype and np.array_equal(got, ref), (n, axis, mode)
+    for sigma in (0.7, 1.68, 3.0, 12.0):
+        assert np.array_equal(gaussian_filter(a, sigma), ndimage.gaussian_filter(a, sigma))
+    assert np.array_equal(a, before)
+
+
+def test_numba_correlation_rejects_what_it_does_not_do():
+    from tenfold.analysis._correlate import correlate1d
+
+    with pytest.raises(ValueError, match="correlate1d takes"):
+        correlate1d(np.zeros((4, 4), np.int32), np.ones(3), 0)
+    with pytest.raises(ValueError, match="correlate1d takes"):
+        correlate1d(np.zeros((4, 4)), np.ones(4), 0)
+    with pytest.raises(ValueError, match="correlate1d takes"):
+        correlate1d(np.zeros((4, 4)), np.ones(3), 0, mode="wrap")
