@@ -159,3 +159,21 @@ def test_numba_correlation_rejects_what_it_does_not_do():
         correlate1d(np.zeros((4, 4)), np.ones(4), 0)
     with pytest.raises(ValueError, match="correlate1d takes"):
         correlate1d(np.zeros((4, 4)), np.ones(3), 0, mode="wrap")
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64], ids=str)
+@pytest.mark.parametrize("shape", [(1, 1), (1, 7), (3, 2), (60, 45)], ids=str)
+def test_numba_bilinear_is_bit_identical_to_map_coordinates(dtype, shape):
+    from tenfold.analysis._correlate import bilinear
+
+    rng = np.random.default_rng(5)
+    a = (rng.normal(size=shape) * 100 + 300).astype(dtype)
+    rows = rng.uniform(-3, shape[0] + 2, (40, 50))
+    cols = rng.uniform(-3, shape[1] + 2, (40, 50))
+    rows[0, :10] = np.rint(rows[0, :10])  # whole pixels, on and beyond the border
+    cols[1, :10] = np.rint(cols[1, :10])
+    rows[2, 0], cols[2, 1] = np.nan, np.inf
+    ref = ndimage.map_coordinates(a, [rows, cols], order=1, mode="nearest")
+    got = bilinear(a, rows, cols)
+    assert got.dtype == ref.dtype and got.shape == ref.shape
+    assert np.array_equal(got, ref, equal_nan=True)
