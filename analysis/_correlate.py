@@ -9,6 +9,8 @@ rounding to the output dtype after each axis), but sweep whole rows at a time, w
 the results are bit-identical to scipy's (``tests/test_filters.py`` checks that) at 2-5 times the speed. The
 kernels are serial and release the GIL, so windows detected in threads run them side by side.
 
+``add_patches`` draws the fitted columns' model image (the sums ``np.bincount`` forms, term for term).
+
 Only what the finder needs: float32 / float64 2-D arrays, odd-length symmetric or antisymmetric weights no longer
 than the lines, modes 'reflect' (scipy's default) and 'constant' with cval 0; anything else goes to scipy itself.
 """
@@ -19,7 +21,7 @@ import numpy as np
 from numba import njit
 from scipy import ndimage
 
-__all__ = ["correlate1d", "gaussian_filter", "bilinear"]
+__all__ = ["correlate1d", "gaussian_filter", "bilinear", "add_patches"]
 
 _SYMMETRIC, _ANTISYMMETRIC, _GENERAL = 1, -1, 0
 _MODES = {"reflect": True, "constant": False}
@@ -166,3 +168,22 @@ def bilinear(a, rows, cols) -> np.ndarray:
     _bilinear(np.ascontiguousarray(a), np.ascontiguousarray(rows).ravel(), np.ascontiguousarray(cols).ravel(),
               out.reshape(-1))
     return out
+
+
+@njit(cache=True, nogil=True)
+def _add_patches(canvas, top, left, gy, gx):
+    """``canvas[top[c] + i, left[c] + j] += gy[c, i] * gx[c, j]`` for every patch c in order: the sums
+    ``np.bincount`` forms from the same terms in the same order."""
+    for c in range(top.size):
+        for i in range(gy.shape[1]):
+            row = canvas[top[c] + i]
+            for j in range(gx.shape[1]):
+                row[left[c] + j] += gy[c, i] * gx[c, j]
+
+
+def add_patches(canvas, top, left, gy, gx) -> None:
+    """Add the separable patches ``gy[c] (x) gx[c]`` (rows x columns) into the float64 ``canvas`` at
+    (``top[c]``, ``left[c]``), each inside it; as a ``np.bincount`` over every term would, without its index
+    arrays."""
+    _add_patches(canvas, np.ascontiguousarray(top, dtype=np.int64), np.ascontiguousarray(left, dtype=np.int64),
+                 np.ascontiguousarray(gy, dtype=np.float64), np.ascontiguousarray(gx, dtype=np.float64))

@@ -531,15 +531,15 @@ def _model_image(shape, fit, good):
     near = (cx >= -r - 1) & (cx <= w + r) & (cy >= -r - 1) & (cy <= h + r)
     xs, ys, a, sg = xs[near], ys[near], a[near], sg[near]
     off = np.arange(-r, r + 1)
-    px = cx[near].astype(np.int64)[:, None, None] + off[None, None, :]
-    py = cy[near].astype(np.int64)[:, None, None] + off[None, :, None]
+    px = cx[near].astype(np.int64)[:, None] + off[None, :]
+    py = cy[near].astype(np.int64)[:, None] + off[None, :]
     # separable: two rows of exponentials per column instead of a square of them
-    gx = np.exp(-0.5 * (px - xs[:, None, None]) ** 2 / sg[:, None, None] ** 2)
-    gy = a[:, None, None] * np.exp(-0.5 * (py - ys[:, None, None]) ** 2 / sg[:, None, None] ** 2)
+    gx = np.exp(-0.5 * (px - xs[:, None]) ** 2 / sg[:, None] ** 2)
+    gy = a[:, None] * np.exp(-0.5 * (py - ys[:, None]) ** 2 / sg[:, None] ** 2)
     m = 2 * r + 1
-    wc = w + 2 * m
-    canvas = np.bincount(((py + m) * wc + (px + m)).ravel(), weights=(gy * gx).ravel(), minlength=(h + 2 * m) * wc)
-    model += canvas.reshape(h + 2 * m, wc)[m:m + h, m:m + w]
+    canvas = np.zeros((h + 2 * m, w + 2 * m))
+    _correlate.add_patches(canvas, py[:, 0] + m, px[:, 0] + m, gy, gx)
+    model += canvas[m:m + h, m:m + w]
     return model
 
 
