@@ -9,7 +9,9 @@ rounding to the output dtype after each axis), but sweep whole rows at a time, w
 the results are bit-identical to scipy's (``tests/test_filters.py`` checks that) at 2-5 times the speed. The
 kernels are serial and release the GIL, so windows detected in threads run them side by side.
 
-``add_patches`` draws the fitted columns' model image (the sums ``np.bincount`` forms, term for term).
+``add_patches`` draws the fitted columns' model image (the sums ``np.bincount`` forms, term for term);
+``block_sums`` and ``linear_fit_level`` are the two elementwise steps of the significance map's background
+(``columns._local_background``), the same operations in the same order in one pass each.
 
 Only what the finder needs: float32 / float64 2-D arrays, odd-length symmetric or antisymmetric weights no longer
 than the lines, modes 'reflect' (scipy's default) and 'constant' with cval 0; anything else goes to scipy itself.
@@ -187,3 +189,76 @@ def add_patches(canvas, top, left, gy, gx) -> None:
     arrays."""
     _add_patches(canvas, np.ascontiguousarray(top, dtype=np.int64), np.ascontiguousarray(left, dtype=np.int64),
                  np.ascontiguousarray(gy, dtype=np.float64), np.ascontiguousarray(gx, dtype=np.float64))
+
+
+@njit(cache=True, nogil=True)
+def _block_sums(work, keep, f, pr, pc, nb_r, nb_c, counts, sums):
+    """Per block of f x f px of the padded grid (the window starts ``pr`` rows and ``pc`` columns into its
+    first block): the kept pixels' number and the sum of their float32 values, in float64 (each padded column
+    summed down the block, then the block's columns from the left)."""
+    h, w = work.shape
+    acc_c = np.zeros(nb_c * f)
+    acc_s = np.zeros(nb_c * f)
+    for bi in range(nb_r):
+        acc_c[:] = 0.0
+        acc_s[:] = 0.0
+        for i in range(f):
+            r = bi * f + i - pr
+            if r < 0 or r >= h:
+                continue  # padding adds zeros, which change no sum
+            for c in range(w):
+                if keep[r, c]:
+                    acc_c[c + pc] += 1.0
+                    acc_s[c + pc] += np.float64(np.float32(work[r, c]))
+        for bj in range(nb_c):
+            tc = 0.0
+            ts = 0.0
+            for j in range(f):
+                tc += acc_c[bj * f + j]
+                ts += acc_s[bj * f + j]
+            counts[bi, bj] = tc
+            sums[bi, bj] = ts
+
+
+def block_sums(work, keep, f: int, pr: int, pc: int) -> tuple[np.ndarray, np.ndarray]:
+    """(kept pixels, sum of their float32 values) per ``f`` x ``f`` block of a grid whose first block starts
+    ``pr`` rows and ``pc`` columns before ``work``; float64, in one pass without padded copies of the window."""
+    h, w = work.shape
+    nb_r, nb_c = -(-(h + pr) // f), -(-(w + pc) // f)
+    counts = np.empty((nb_r, nb_c))
+    sums = np.empty((nb_r, nb_c))
+    _block_sums(np.ascontiguousarray(work), np.ascontiguousarray(keep, dtype=np.bool_), int(f), int(pr), int(pc),
+                nb_r, nb_c, counts, sums)
+    return counts, sums
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge_scale, tiny_below, out):
+    """The level of the ridge-regularised locally linear fit per block (Cramer's rule), NaN where nothing is in
+    reach: the expressions of columns._local_background, evaluated in the same order."""
+    n, m = s0.shape
+    for i in range(n):
+        for j in range(m):
+            ridge = ridge_scale[0] * s0[i, j] * ridge_scale[1] * ridge_scale[1]
+            a11 = mxx[i, j] + ridge
+            a22 = myy[i, j] + ridge
+            s, x, y, xy = s0[i, j], mx[i, j], my[i, j], mxy[i, j]
+            det = s * (a11 * a22 - xy * xy) - x * (x * a22 - xy * y) + y * (x * xy - a11 * y)
+            num = b0[i, j] * (a11 * a22 - xy * xy) - x * (cx[i, j] * a22 - xy * cy[i, j]) \
+                + y * (cx[i, j] * xy - a11 * cy[i, j])
+            bound = s * a11 * a22
+            if not bound >= 1e-300:  # np.maximum(bound, 1e-300), NaN kept
+                bound = bound if np.isnan(bound) else 1e-300
+            level = num / det if abs(det) > 1e-12 * bound else b0[i, j] / s
+            out[i, j] = np.nan if (s < tiny_below or not np.isfinite(level)) else level
+
+
+def linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, *, ridge: float, scale: float,
+                     tiny_below: float) -> np.ndarray:
+    """Per block, the level ``a`` of ``[[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]] [a, bx, by] =
+    [b0, cx, cy]`` with ``q = ridge s0 scale^2`` (the locally linear background), NaN where ``s0 < tiny_below``
+    or the level is not finite."""
+    out = np.empty_like(s0)
+    arrays = [np.ascontiguousarray(a, dtype=np.float64) for a in (s0, mx, my, mxx, myy, mxy, b0, cx, cy)]
+    _linear_fit_level(*arrays, np.array([ridge, scale]), float(tiny_below), out)
+    return out

@@ -317,14 +317,8 @@ def _local_background(work, keep, scale_px, origin):
     h, w = work.shape
     r0, c0 = int(origin[0]), int(origin[1])
     pr, pc = r0 % f, c0 % f  # rows / columns of the first block that lie before the window
-    nb_r, nb_c = -(-(h + pr) // f), -(-(w + pc) // f)
-    m = np.zeros((nb_r * f, nb_c * f), np.uint8)
-    v = np.zeros(m.shape, np.float32)
-    m[pr:pr + h, pc:pc + w] = keep
-    np.copyto(v[pr:pr + h, pc:pc + w], work, where=keep, casting="same_kind")
-    m_c = _block_sums(m, f) / (f * f)
-    i_c = _block_sums(v, f) / (f * f)
-    del m, v
+    counts, sums = _correlate.block_sums(work, keep, f, pr, pc)  # the kept pixels' float32 values, per block
+    m_c, i_c = counts / (f * f), sums / (f * f)
     if not (m_c > 0).any():
         return np.full((1, 1), float(np.median(work))), f
     s = scale_px / f
@@ -343,15 +337,10 @@ def _local_background(work, keep, scale_px, origin):
     my, mxy, myy = corr(m_y1, g0, 1), corr(m_y1, g1, 1), corr(m_y2, g0, 1)
     i_y0 = corr(i_c, g0, 0)
     b0, cx, cy = corr(i_y0, g0, 1), corr(i_y0, g1, 1), corr(corr(i_c, g1, 0), g0, 1)
-    ridge = _BG_RIDGE * s0 * s * s
-    a11, a22 = mxx + ridge, myy + ridge
-    # solve [[s0, mx, my], [mx, a11, mxy], [my, mxy, a22]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule)
-    det = s0 * (a11 * a22 - mxy * mxy) - mx * (mx * a22 - mxy * my) + my * (mx * mxy - a11 * my)
-    num = b0 * (a11 * a22 - mxy * mxy) - mx * (cx * a22 - mxy * cy) + my * (cx * mxy - a11 * cy)
-    tiny = s0 < 1e-6 * max(float(s0.max()), 1e-300)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        bg = np.where(np.abs(det) > 1e-12 * np.maximum(s0 * a11 * a22, 1e-300), num / det, b0 / s0)
-    bg = np.where(tiny | ~np.isfinite(bg), np.nan, bg)
+    # solve [[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule;
+    # the ridge q = _BG_RIDGE s0 s^2); NaN where no kept pixel is in reach
+    bg = _correlate.linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge=_BG_RIDGE, scale=s,
+                                     tiny_below=1e-6 * max(float(s0.max()), 1e-300))
     if np.isnan(bg).any():  # blocks with nothing in reach: the nearest supported value
         fill = np.isnan(bg)
         if fill.all():
@@ -359,17 +348,6 @@ def _local_background(work, keep, scale_px, origin):
         idx = ndimage.distance_transform_edt(fill, return_distances=False, return_indices=True)
         bg = bg[tuple(idx)]
     return bg, f
-
-
-def _block_sums(a, f):
-    """Sums over the ``f`` x ``f`` blocks of ``a`` (its sides multiples of ``f``), float64: ``2 f`` strided adds."""
-    rows = np.zeros((a.shape[0] // f, a.shape[1]))
-    for i in range(f):
-        rows += a[i::f]
-    out = np.zeros((rows.shape[0], a.shape[1] // f))
-    for j in range(f):
-        out += rows[:, j::f]
-    return out
 
 
 def _smooth_surface(work, keep, scale_px, *, coarse=False):

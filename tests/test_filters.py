@@ -177,3 +177,43 @@ def test_numba_bilinear_is_bit_identical_to_map_coordinates(dtype, shape):
     got = bilinear(a, rows, cols)
     assert got.dtype == ref.dtype and got.shape == ref.shape
     assert np.array_equal(got, ref, equal_nan=True)
+
+
+@pytest.mark.parametrize("f,pr,pc", [(1, 0, 0), (3, 0, 0), (4, 1, 3), (5, 4, 2)])
+def test_block_sums_equal_padded_block_means(f, pr, pc):
+    from tenfold.analysis._correlate import block_sums
+
+    rng = np.random.default_rng(f)
+    work = rng.normal(300.0, 50.0, (23, 31))
+    keep = rng.random(work.shape) > 0.3
+    counts, sums = block_sums(work, keep, f, pr, pc)
+    nb_r, nb_c = -(-(23 + pr) // f), -(-(31 + pc) // f)
+    grid_k = np.zeros((nb_r * f, nb_c * f))
+    grid_v = np.zeros((nb_r * f, nb_c * f))
+    grid_k[pr:pr + 23, pc:pc + 31] = keep
+    grid_v[pr:pr + 23, pc:pc + 31] = np.where(keep, work.astype(np.float32), 0.0)
+    assert np.array_equal(counts, grid_k.reshape(nb_r, f, nb_c, f).sum(axis=(1, 3)))
+    assert np.allclose(sums, grid_v.reshape(nb_r, f, nb_c, f).sum(axis=(1, 3)), rtol=1e-12, atol=1e-9)
+
+
+def test_linear_fit_level_solves_each_block_system():
+    # the vectorised Cramer's rule against numpy's solver, block by block
+    from tenfold.analysis._correlate import linear_fit_level
+
+    rng = np.random.default_rng(7)
+    shape = (6, 5)
+    s0 = rng.uniform(0.5, 1.0, shape)
+    mx, my, mxy = (rng.uniform(-0.2, 0.2, shape) for _ in range(3))
+    mxx, myy = rng.uniform(1.0, 2.0, shape), rng.uniform(1.0, 2.0, shape)
+    b0, cx, cy = rng.uniform(100, 200, shape), rng.uniform(-5, 5, shape), rng.uniform(-5, 5, shape)
+    s0[0, 0] = 0.0  # nothing in reach: NaN
+    ridge, scale = 0.3, 2.5
+    got = linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge=ridge, scale=scale, tiny_below=1e-6)
+    assert np.isnan(got[0, 0])
+    for i, j in np.ndindex(shape):
+        if (i, j) == (0, 0):
+            continue
+        q = ridge * s0[i, j] * scale**2
+        a = np.array([[s0[i, j], mx[i, j], my[i, j]], [mx[i, j], mxx[i, j] + q, mxy[i, j]],
+                      [my[i, j], mxy[i, j], myy[i, j] + q]])
+        assert got[i, j] == pytest.approx(np.linalg.solve(a, [b0[i, j], cx[i, j], cy[i, j]])[0], rel=1e-10)
