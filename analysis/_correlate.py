@@ -11,7 +11,8 @@ kernels are serial and release the GIL, so windows detected in threads run them 
 
 ``add_patches`` draws the fitted columns' model image (the sums ``np.bincount`` forms, term for term);
 ``block_sums`` and ``linear_fit_level`` are the two elementwise steps of the significance map's background
-(``columns._local_background``), the same operations in the same order in one pass each.
+(``columns._local_background``), the same operations in the same order in one pass each; ``close_pairs`` is
+the KD-tree's ``query_pairs`` for pixels sorted row-major (the candidates trackpy's rule leaves too close).
 
 Only what the finder needs: float32 / float64 2-D arrays, odd-length symmetric or antisymmetric weights no longer
 than the lines, modes 'reflect' (scipy's default) and 'constant' with cval 0; anything else goes to scipy itself.
@@ -23,7 +24,8 @@ import numpy as np
 from numba import njit
 from scipy import ndimage
 
-__all__ = ["correlate1d", "gaussian_filter", "bilinear", "add_patches"]
+__all__ = ["correlate1d", "gaussian_filter", "bilinear", "add_patches", "block_sums", "linear_fit_level",
+           "close_pairs"]
 
 _SYMMETRIC, _ANTISYMMETRIC, _GENERAL = 1, -1, 0
 _MODES = {"reflect": True, "constant": False}
@@ -262,3 +264,55 @@ def linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, *, ridge: float, sca
     arrays = [np.ascontiguousarray(a, dtype=np.float64) for a in (s0, mx, my, mxx, myy, mxy, b0, cx, cy)]
     _linear_fit_level(*arrays, np.array([ridge, scale]), float(tiny_below), out)
     return out
+
+
+@njit(cache=True, nogil=True)
+def _close_pairs(rows, cols, row_start, r, radius2, out):
+    """Pairs (i < j) of pixels sorted row-major at most sqrt(radius2) apart: per pixel, the pixels of its own
+    row to its right and of the next ``r`` rows within ``r`` columns (found by bisection in each row)."""
+    n = rows.size
+    k = 0
+    for i in range(n):
+        y, x = rows[i], cols[i]
+        for dy in range(r + 1):
+            yy = y + dy
+            if yy >= row_start.size - 1:
+                break
+            lo, hi = row_start[yy], row_start[yy + 1]
+            if dy == 0:
+                lo = i + 1
+            else:
+                while lo < hi:  # the first pixel of row yy with col >= x - r
+                    mid = (lo + hi) // 2
+                    if cols[mid] < x - r:
+                        lo = mid + 1
+                    else:
+                        hi = mid
+                hi = row_start[yy + 1]
+            for j in range(lo, hi):
+                dx = cols[j] - x
+                if dx > r:
+                    break
+                if dy * dy + dx * dx <= radius2:
+                    if k < out.shape[0]:
+                        out[k, 0] = i
+                        out[k, 1] = j
+                    k += 1
+    return k
+
+
+def close_pairs(pos, shape, radius: float) -> np.ndarray:
+    """Pairs (i < j) of the distinct pixels ``pos`` (n, 2), sorted row-major as ``np.argwhere`` gives them, at
+    most ``radius`` apart: the pairs ``cKDTree(pos).query_pairs(radius)`` finds, in a numba sweep."""
+    pos = np.asarray(pos, dtype=np.int64)
+    if pos.shape[0] < 2:
+        return np.zeros((0, 2), np.int64)
+    rows, cols = np.ascontiguousarray(pos[:, 0]), np.ascontiguousarray(pos[:, 1])
+    row_start = np.searchsorted(rows, np.arange(int(shape[0]) + 1)).astype(np.int64)
+    r = int(np.floor(radius))
+    out = np.empty((4 * pos.shape[0], 2), np.int64)
+    k = _close_pairs(rows, cols, row_start, r, float(radius) * float(radius), out)
+    if k > out.shape[0]:  # (more pairs than room: count once more into an array of the right size)
+        out = np.empty((k, 2), np.int64)
+        _close_pairs(rows, cols, row_start, r, float(radius) * float(radius), out)
+    return out[:k]

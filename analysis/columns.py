@@ -1007,7 +1007,7 @@ def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
     pos = pos[keep]
     val = blob[pos[:, 0], pos[:, 1]] if pos.size else np.zeros(0, np.float32)
     if pos.shape[0] > 1:
-        pairs = _close_pairs(pos, blob.shape, s.separation)
+        pairs = _correlate.close_pairs(pos, blob.shape, s.separation)  # (pos is row-major, as argwhere gives)
         if pairs.size:
             lose = np.where(val[pairs[:, 0]] < val[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
             keep = np.ones(pos.shape[0], bool)
@@ -1024,25 +1024,6 @@ def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
             d = np.where(den < 0, 0.5 * (a - b) / den, 0.0)
         off.append(np.clip(np.nan_to_num(d), -0.5, 0.5))
     return r + off[0], c + off[1]
-
-
-def _close_pairs(pos, shape, radius):
-    """Pairs (i < j) of the distinct pixels ``pos`` (n, 2) of an image of ``shape`` at most ``radius`` apart: the
-    pairs ``cKDTree(pos).query_pairs(radius)`` gives, from an image of their indices looked up at each integer
-    offset within the radius (a loop over the ~radius^2 offsets, each vectorised over all pixels)."""
-    r = int(math.floor(radius))
-    rr, cc = pos[:, 0] + r, pos[:, 1] + r
-    index = np.full((shape[0] + 2 * r, shape[1] + 2 * r), -1, np.int32)
-    index[rr, cc] = np.arange(pos.shape[0], dtype=np.int32)
-    found = []
-    for dy in range(r + 1):
-        for dx in range(-r, r + 1):
-            if (dy == 0 and dx <= 0) or dy * dy + dx * dx > radius * radius:
-                continue
-            j = index[rr + dy, cc + dx].astype(np.int64)
-            i = np.flatnonzero(j >= 0)
-            found.append(np.c_[np.minimum(i, j[i]), np.maximum(i, j[i])])
-    return np.concatenate(found) if found else np.zeros((0, 2), np.int64)
 
 
 def _inner_box(origin, image_shape, margin, shape):

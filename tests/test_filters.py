@@ -115,12 +115,13 @@ def test_model_image_equals_a_column_by_column_sum():
 def test_close_pairs_equal_kdtree_pairs(radius):
     from scipy.spatial import cKDTree
 
-    from tenfold.analysis.columns import _close_pairs
+    from tenfold.analysis._correlate import close_pairs
 
     rng = np.random.default_rng(int(radius * 10))
-    flat = rng.choice(50 * 70, 400, replace=False)
+    flat = np.sort(rng.choice(50 * 70, 400, replace=False))  # row-major, as np.argwhere gives pixels
     pos = np.c_[flat // 70, flat % 70].astype(np.int64)
-    got = {tuple(p) for p in _close_pairs(pos, (50, 70), radius)}
+    got = {tuple(p) for p in close_pairs(pos, (50, 70), radius)}
+    assert len(got) == len(close_pairs(pos, (50, 70), radius))  # each pair once
     ref = {tuple(p) for p in cKDTree(pos).query_pairs(radius, output_type="ndarray")}
     assert got == ref and len(ref) > 0
     assert all(i < j for i, j in got)
