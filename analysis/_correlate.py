@@ -1,5 +1,5 @@
-"""``scipy.ndimage``'s 1-D correlation, Gaussian filter and linear interpolation for 2-D float images, value for
-value, in numba.
+"""``scipy.ndimage``'s 1-D correlation, Gaussian and uniform filters and linear interpolation for 2-D float images,
+value for value, in numba; and the detection's other elementwise steps.
 
 scipy filters a 2-D image line by line through a double-precision line buffer; along the first axis every line
 is a strided gather, which makes the Gaussian of the column finder's significance map its most expensive filter.
@@ -24,8 +24,8 @@ import numpy as np
 from numba import njit
 from scipy import ndimage
 
-__all__ = ["correlate1d", "gaussian_filter", "bilinear", "add_patches", "block_sums", "linear_fit_level",
-           "close_pairs"]
+__all__ = ["correlate1d", "gaussian_filter", "uniform_filter", "bilinear", "add_patches", "block_sums",
+           "linear_fit_level", "close_pairs"]
 
 _SYMMETRIC, _ANTISYMMETRIC, _GENERAL = 1, -1, 0
 _MODES = {"reflect": True, "constant": False}
@@ -316,3 +316,68 @@ def close_pairs(pos, shape, radius: float) -> np.ndarray:
         out = np.empty((k, 2), np.int64)
         _close_pairs(rows, cols, row_start, r, float(radius) * float(radius), out)
     return out[:k]
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _mirror(p, n):
+    """scipy's 'reflect' extension of a line of n (edge pixel repeated), for |overhang| < n."""
+    if p < 0:
+        return -p - 1
+    if p >= n:
+        return 2 * n - p - 1
+    return p
+
+
+@njit(cache=True, nogil=True)
+def _uniform_rows(a, size, out):
+    """scipy's running mean along axis 0 (mode 'reflect'): the first window summed, then per step
+    ``sum += entering - leaving``, each output ``sum / size``, in double, a row of running sums at a time."""
+    n, m = a.shape
+    r = size // 2
+    tmp = np.zeros(m)
+    for p in range(-r, size - r):
+        row = a[_mirror(p, n)]
+        for k in range(m):
+            tmp[k] += row[k]
+    for k in range(m):
+        out[0, k] = tmp[k] / size
+    for ll in range(1, n):
+        enter = a[_mirror(ll - 1 + size - r, n)]
+        leave = a[_mirror(ll - 1 - r, n)]
+        row = out[ll]
+        for k in range(m):
+            tmp[k] += np.float64(enter[k]) - np.float64(leave[k])
+            row[k] = tmp[k] / size
+
+
+@njit(cache=True, nogil=True)
+def _uniform_cols(a, size, out):
+    """The same running mean along axis 1, through an extended double line buffer."""
+    n, m = a.shape
+    r = size // 2
+    line = np.empty(m + size - 1)
+    for i in range(n):
+        for p in range(m + size - 1):
+            line[p] = a[i, _mirror(p - r, m)]
+        tmp = 0.0
+        for p in range(size):
+            tmp += line[p]
+        out[i, 0] = tmp / size
+        for ll in range(1, m):
+            tmp += line[ll - 1 + size] - line[ll - 1]
+            out[i, ll] = tmp / size
+
+
+def uniform_filter(a, size: int) -> np.ndarray:
+    """``scipy.ndimage.uniform_filter(a, size)`` (mode 'reflect') for a 2-D float32 / float64 array and an odd
+    size shorter than its sides (else scipy itself): the same running sums in the same order, per axis."""
+    a = np.ascontiguousarray(a)
+    if a.ndim != 2 or a.dtype not in (np.float32, np.float64) or size % 2 == 0 or size // 2 >= min(a.shape):
+        return ndimage.uniform_filter(a, size=size)
+    if size == 1:  # (scipy copies; a running sum would round)
+        return a.copy()
+    t = np.empty_like(a)
+    _uniform_rows(a, int(size), t)
+    out = np.empty_like(a)
+    _uniform_cols(t, int(size), out)
+    return out

@@ -222,7 +222,7 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
             # the background is then the level of the gaps between columns: smoothed pixels below their local
             # mean; pixels far from every source (an empty border, a hole in the crystal) all count
             if gaps is None:
-                gaps = valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
+                gaps = valid & (smooth <= _correlate.uniform_filter(smooth, max(3, int(2 * spacing_px) | 1)))
             keep |= gaps
         bg, f = _local_background(work, keep, BG_SCALE_SPACINGS * spacing_px, origin)
         field = SignificanceField(smooth, bg, valid, k2, white_sd, count_offset, count_sign, f, tuple(origin), levels)

@@ -130,7 +130,7 @@ def test_close_pairs_equal_kdtree_pairs(radius):
 @pytest.mark.parametrize("dtype", [np.float32, np.float64], ids=str)
 @pytest.mark.parametrize("shape", [(1, 1), (3, 2), (7, 5), (40, 33)], ids=str)
 def test_numba_correlation_is_bit_identical_to_scipy(dtype, shape):
-    from tenfold.analysis._correlate import correlate1d, gaussian_filter
+    from tenfold.analysis._correlate import correlate1d, gaussian_filter, uniform_filter
 
     rng = np.random.default_rng(shape[0])
     a = (rng.normal(size=shape) * 100 + 300).astype(dtype)
@@ -148,6 +148,9 @@ def test_numba_correlation_is_bit_identical_to_scipy(dtype, shape):
                     assert got.dtype == ref.dtype and np.array_equal(got, ref), (n, axis, mode)
     for sigma in (0.7, 1.68, 3.0, 12.0):
         assert np.array_equal(gaussian_filter(a, sigma), ndimage.gaussian_filter(a, sigma))
+    for size in (1, 3, 5, 9, 23):
+        ref = ndimage.uniform_filter(a, size=size)
+        assert np.array_equal(uniform_filter(a, size), ref) and uniform_filter(a, size).dtype == ref.dtype
     assert np.array_equal(a, before)
 
 
