@@ -1,5 +1,5 @@
-"""``scipy.ndimage``'s 1-D correlation, Gaussian and uniform filters and linear interpolation for 2-D float images,
-value for value, in numba; and the detection's other elementwise steps.
+"""``scipy.ndimage``'s 1-D correlation, Gaussian and uniform filters, Laplacian and linear interpolation for 2-D float
+images, value for value, in numba; and the detection's other elementwise steps.
 
 scipy filters a 2-D image line by line through a double-precision line buffer; along the first axis every line
 is a strided gather, which makes the Gaussian of the column finder's significance map its most expensive filter.
@@ -24,7 +24,7 @@ import numpy as np
 from numba import njit
 from scipy import ndimage
 
-__all__ = ["correlate1d", "gaussian_filter", "uniform_filter", "bilinear", "add_patches", "block_sums",
+__all__ = ["correlate1d", "gaussian_filter", "uniform_filter", "laplace", "bilinear", "add_patches", "block_sums",
            "linear_fit_level", "close_pairs"]
 
 _SYMMETRIC, _ANTISYMMETRIC, _GENERAL = 1, -1, 0
@@ -380,4 +380,13 @@ def uniform_filter(a, size: int) -> np.ndarray:
     _uniform_rows(a, int(size), t)
     out = np.empty_like(a)
     _uniform_cols(t, int(size), out)
+    return out
+
+
+def laplace(a) -> np.ndarray:
+    """``scipy.ndimage.laplace(a)`` (mode 'reflect') for a 2-D float32 / float64 array: the second differences
+    along axis 0, then along axis 1 added to them in the array's dtype, as scipy's ``generic_laplace`` does."""
+    second = np.array([1.0, -2.0, 1.0])
+    out = correlate1d(a, second, 0)
+    out += correlate1d(a, second, 1)
     return out

@@ -8,8 +8,6 @@ computed with a handful of whole-array ``np.maximum`` / ``np.minimum`` calls per
 times faster than scipy's line-by-line filter at the sizes the finder uses, and equal to it value for value (a
 maximum involves no rounding).
 
-``laplacian``: the 5-point discrete Laplacian with mirrored borders, ``scipy.ndimage.laplace`` in float32 sums.
-
 ``gaussian_fft``: ``scipy.ndimage.gaussian_filter`` for wide kernels, by one FFT convolution.
 """
 
@@ -17,7 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["window_max", "window_min", "laplacian", "gaussian_fft"]
+__all__ = ["window_max", "window_min", "gaussian_fft"]
 
 
 def _pad_value(dtype: np.dtype, largest: bool):
@@ -82,20 +80,6 @@ def window_min(a, size: int, *, before: int | None = None) -> np.ndarray:
     """Smallest value over the ``size`` x ``size`` window about every pixel, clipped at the border (as
     ``window_max``; equal to ``scipy.ndimage.minimum_filter(a, size=size)``)."""
     return _window(a, size, before, False)
-
-
-def laplacian(a: np.ndarray) -> np.ndarray:
-    """The 5-point Laplacian of a float32 image with mirrored borders (``scipy.ndimage.laplace``'s stencil and
-    border), summed in float32: within a few float32 rounding steps of scipy's, which sums each axis in float64.
-    """
-    a = np.asarray(a, dtype=np.float32)
-    p = np.pad(a, 1, mode="symmetric")
-    out = p[1:-1, 1:-1] * np.float32(-4.0)
-    out += p[:-2, 1:-1]
-    out += p[2:, 1:-1]
-    out += p[1:-1, :-2]
-    out += p[1:-1, 2:]
-    return out
 
 
 def gaussian_fft(a: np.ndarray, sigma: float) -> np.ndarray:

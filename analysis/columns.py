@@ -37,7 +37,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from . import _correlate, _sanitize, _schema
-from ._filters import gaussian_fft, laplacian, window_max, window_min
+from ._filters import gaussian_fft, window_max, window_min
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
@@ -460,8 +460,7 @@ def _tail_profile(work, fit, good, settings, background):
 
     Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
     fitted column are subtracted from the image; the smoothed residual around the bright columns, less the
-    detection's background (``background``: its coarse grid, block size, window origin and the detection's
-    smoothed image of ``work``, or None to smooth it here), median over
+    detection's background (``background``: its coarse grid, block size and window origin), median over
     ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the columns, is the tail a
     Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
     The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
@@ -472,11 +471,7 @@ def _tail_profile(work, fit, good, settings, background):
     if idx.size < TAIL_MIN_COLUMNS:
         return None
     k = settings.sigma
-    bg_coarse, factor, origin, smooth = background
-    # the smoothing is linear: the detection's smoothed image less the smoothed model (one filter, not two)
-    if smooth is None:
-        smooth = _correlate.gaussian_filter(work.astype(np.float32), k)
-    smooth = smooth - _correlate.gaussian_filter(_model_image(work.shape, fit, good), k)
+    smooth = _correlate.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
     idx = idx[np.argsort(amp[idx])[::-1][:400]]
     r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
     th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
@@ -487,7 +482,7 @@ def _tail_profile(work, fit, good, settings, background):
     peak = amp[idx] * s2 / (s2 + k * k)
     # the residual above the detection's background (estimated away from the columns): a fit's own constant
     # background would have absorbed the tail
-    bg = _coarse_background(bg_coarse, factor, origin, y.ravel(), x.ravel()).reshape(x.shape)
+    bg = _coarse_background(*background, y.ravel(), x.ravel()).reshape(x.shape)
     extra = np.median(np.median(vals - bg, axis=2) / peak[:, None], axis=0)
     # never negative, and never rising outwards: the envelope of what lies farther out (a conservative tail)
     extra = np.maximum.accumulate(np.clip(extra, 0.0, None)[::-1])[::-1]
@@ -931,8 +926,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     field = significance_map(detect, ok, sigma_px=s.sigma, spacing_px=s.spacing, counts=s.counts_like,
                              noise_sd=noise_sd, count_offset=offset, count_sign=sign, origin=origin, levels=s.levels)
     levels = field.levels
-    blob = laplacian(field.smooth)
-    blob *= np.float32(-s.sigma**2)
+    blob = -_correlate.laplace(field.smooth) * np.float32(s.sigma**2)
     if "log_range" not in levels:
         v = blob[ok]
         lo, hi = (float(v.min()), float(v.max())) if v.size else (0.0, 1.0)
@@ -974,8 +968,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
-            "background": (field.bg_coarse, field.factor, tuple(field.origin),
-                           field.smooth if s.tail_profile is None else None)}
+            "background": (field.bg_coarse, field.factor, tuple(field.origin))}
 
 
 def _grey_maxima(q, separation):
