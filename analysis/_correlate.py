@@ -125,15 +125,15 @@ def correlate1d(a, weights, axis: int, *, mode: str = "reflect") -> np.ndarray:
     return out
 
 
-def gaussian_filter(a, sigma: float, *, truncate: float = 4.0) -> np.ndarray:
-    """``scipy.ndimage.gaussian_filter(a, sigma, truncate=truncate)`` (mode 'reflect') for a 2-D float32 /
+def gaussian_filter(a, sigma: float, *, truncate: float = 4.0, mode: str = "reflect") -> np.ndarray:
+    """``scipy.ndimage.gaussian_filter(a, sigma, mode=mode, cval=0.0, truncate=truncate)`` for a 2-D float32 /
     float64 array: scipy's kernel (radius ``int(truncate sigma + 0.5)``, unit sum), axis 0 then axis 1."""
     sd = float(sigma)
     radius = int(truncate * sd + 0.5)
     x = np.arange(-radius, radius + 1)
     phi = np.exp(-0.5 / (sd * sd) * x**2)
     phi = phi / phi.sum()
-    return correlate1d(correlate1d(a, phi, 0), phi, 1)
+    return correlate1d(correlate1d(a, phi, 0, mode=mode), phi, 1, mode=mode)
 
 
 @njit(cache=True, nogil=True)

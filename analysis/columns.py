@@ -322,21 +322,20 @@ def _local_background(work, keep, scale_px, origin):
     if not (m_c > 0).any():
         return np.full((1, 1), float(np.median(work))), f
     s = scale_px / f
-    # the weighted moments about each block centre: separable correlations with u^k G(u), u the offset in blocks
-    # (G the unit-sum Gaussian that scipy's gaussian_filter uses, truncated at 3 widths)
-    u = np.arange(-int(3.0 * s + 0.5), int(3.0 * s + 0.5) + 1, dtype=np.float64)
-    g0 = np.exp(-0.5 * u * u / (s * s))
-    g0 /= g0.sum()
-    g1, g2 = u * g0, u * u * g0
+    yy, xx = np.mgrid[0:m_c.shape[0], 0:m_c.shape[1]].astype(np.float64)
 
-    def corr(a, k, axis):
-        return _correlate.correlate1d(a, k, axis, mode="constant")
+    def g(a):  # scipy's gaussian_filter(a, s, mode="constant", cval=0.0, truncate=3.0), in numba
+        return _correlate.gaussian_filter(a, s, truncate=3.0, mode="constant")
 
-    m_y0, m_y1, m_y2 = corr(m_c, g0, 0), corr(m_c, g1, 0), corr(m_c, g2, 0)
-    s0, mx, mxx = corr(m_y0, g0, 1), corr(m_y0, g1, 1), corr(m_y0, g2, 1)
-    my, mxy, myy = corr(m_y1, g0, 1), corr(m_y1, g1, 1), corr(m_y2, g0, 1)
-    i_y0 = corr(i_c, g0, 0)
-    b0, cx, cy = corr(i_y0, g0, 1), corr(i_y0, g1, 1), corr(corr(i_c, g1, 0), g0, 1)
+    s0, sx, sy = g(m_c), g(m_c * xx), g(m_c * yy)
+    sxx, syy, sxy = g(m_c * xx * xx), g(m_c * yy * yy), g(m_c * xx * yy)
+    b0, bx, by = g(i_c), g(i_c * xx), g(i_c * yy)
+    # moments about each block centre (x0, y0)
+    mxx = sxx - 2 * xx * sx + xx * xx * s0
+    myy = syy - 2 * yy * sy + yy * yy * s0
+    mxy = sxy - xx * sy - yy * sx + xx * yy * s0
+    mx, my = sx - xx * s0, sy - yy * s0
+    cx, cy = bx - xx * b0, by - yy * b0
     # solve [[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule;
     # the ridge q = _BG_RIDGE s0 s^2); NaN where no kept pixel is in reach
     bg = _correlate.linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge=_BG_RIDGE, scale=s,

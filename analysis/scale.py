@@ -120,27 +120,26 @@ def radial_autocorrelation(image, valid, *, highpass_px: float, r_max_px: float)
     Returns (r_px, acf, acf0, n_used): bin centres, mean autocorrelation per bin (pixel pairs only where both
     pixels are valid), the zero-lag value and the number of valid pixels.
 
-    The high-pass runs on a grid padded to twice the image (its Gaussian's wrap-around is then negligible); the
-    autocorrelation needs only lags up to ``r_max_px``, so it runs on a grid padded by that much (exact for those
-    lags) and is transformed back on those lags' rows only.
+    Both transforms run on a grid padded to twice the image (the high-pass Gaussian's wrap-around is then
+    negligible). Only lags up to ``r_max_px`` are used, so the autocorrelation is transformed back on those lags'
+    rows only and binned on those lags only: the same 1-D transforms and sums as the whole grid's, far fewer of
+    them.
     """
     w = valid.astype(np.float64)
     nvalid = float(w.sum())
     fill = image[valid].mean()
     f = np.where(valid, image - fill, 0.0)
     h, wd = f.shape
+    ph, pw = 2 * h, 2 * wd
     if highpass_px > 0:
         # Gaussian high-pass in Fourier space (masked pixels were set to the mean, i.e. 0 here)
-        ph, pw = 2 * h, 2 * wd
         ky = np.fft.fftfreq(ph)[:, None]
         kx = np.fft.rfftfreq(pw)[None, :]
         ff = _padded_rfft2(f, ph, pw)
         ff *= 1.0 - np.exp(-2.0 * (math.pi * highpass_px) ** 2 * (kx * kx + ky * ky))
         f = _cropped_irfft2(ff, pw, slice(0, h), wd)
         f = np.where(valid, f - f[valid].mean(), 0.0)
-    lag = int(math.floor(r_max_px))
-    # a grid of at least h + lag rows holds every lag up to r_max without wrap-around: exact, and smaller
-    ph, pw = (sfft.next_fast_len(n + lag + 1, real=True) for n in (h, wd))
+    lag = min(int(math.floor(r_max_px)), h - 1, wd - 1)
     rows = np.r_[0:lag + 1, ph - lag:ph]
     cols = np.r_[0:lag + 1, pw - lag:pw]
     ff = _padded_rfft2(f, ph, pw)
@@ -171,8 +170,15 @@ def _padded_rfft2(a, ph, pw):
 
 
 def _cropped_irfft2(spec, pw, rows, n_cols):
-    """``irfft2(spec, s=(ph, pw))[rows, :n_cols]``, the last axis transformed on the wanted rows only."""
-    return sfft.irfft(sfft.ifft(spec, axis=0, workers=-1)[rows], n=pw, axis=1, workers=-1)[:, :n_cols]
+    """``irfft2(spec, s=(ph, pw))[rows, :n_cols]``, the last axis transformed on the wanted rows only.
+
+    As pocketfft does for the 2-D transform: the first axis unscaled, the last one unscaled too, then every value
+    times 1 / (ph pw) rounded from extended precision (so the values equal ``irfft2``'s bit for bit).
+    """
+    out = sfft.irfft(sfft.ifft(spec, axis=0, norm="forward", workers=-1)[rows], n=pw, axis=1, norm="forward",
+                     workers=-1)[:, :n_cols]
+    out *= np.float64(np.longdouble(1) / np.longdouble(spec.shape[0] * pw))
+    return out
 
 
 def _parabolic(x, y, i):

@@ -138,6 +138,8 @@ def test_numba_correlation_is_bit_identical_to_scipy(dtype, shape):
                     assert got.dtype == ref.dtype and np.array_equal(got, ref), (n, axis, mode)
     for sigma in (0.7, 1.68, 3.0, 12.0):
         assert np.array_equal(gaussian_filter(a, sigma), ndimage.gaussian_filter(a, sigma))
+        assert np.array_equal(gaussian_filter(a, sigma, truncate=3.0, mode="constant"),
+                              ndimage.gaussian_filter(a, sigma, truncate=3.0, mode="constant", cval=0.0))
     for size in (1, 3, 5, 9, 23):
         ref = ndimage.uniform_filter(a, size=size)
         assert np.array_equal(uniform_filter(a, size), ref) and uniform_filter(a, size).dtype == ref.dtype
