@@ -235,19 +235,27 @@ def block_sums(work, keep, f: int, pr: int, pc: int) -> tuple[np.ndarray, np.nda
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def _linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge_scale, tiny_below, out):
+def _linear_fit_level(s0, sx, sy, sxx, syy, sxy, b0, bx, by, ridge_scale, tiny_below, out):
     """The level of the ridge-regularised locally linear fit per block (Cramer's rule), NaN where nothing is in
-    reach: the expressions of columns._local_background, evaluated in the same order."""
+    reach: the expressions of columns._local_background (moments about each block, then the solve), evaluated
+    in the same order."""
     n, m = s0.shape
     for i in range(n):
+        yy = np.float64(i)
         for j in range(m):
-            ridge = ridge_scale[0] * s0[i, j] * ridge_scale[1] * ridge_scale[1]
-            a11 = mxx[i, j] + ridge
-            a22 = myy[i, j] + ridge
-            s, x, y, xy = s0[i, j], mx[i, j], my[i, j], mxy[i, j]
+            xx = np.float64(j)
+            s = s0[i, j]
+            # moments about the block centre (xx, yy)
+            mxx = sxx[i, j] - 2.0 * xx * sx[i, j] + xx * xx * s
+            myy = syy[i, j] - 2.0 * yy * sy[i, j] + yy * yy * s
+            xy = sxy[i, j] - xx * sy[i, j] - yy * sx[i, j] + xx * yy * s
+            x, y = sx[i, j] - xx * s, sy[i, j] - yy * s
+            cx, cy = bx[i, j] - xx * b0[i, j], by[i, j] - yy * b0[i, j]
+            ridge = ridge_scale[0] * s * ridge_scale[1] * ridge_scale[1]
+            a11 = mxx + ridge
+            a22 = myy + ridge
             det = s * (a11 * a22 - xy * xy) - x * (x * a22 - xy * y) + y * (x * xy - a11 * y)
-            num = b0[i, j] * (a11 * a22 - xy * xy) - x * (cx[i, j] * a22 - xy * cy[i, j]) \
-                + y * (cx[i, j] * xy - a11 * cy[i, j])
+            num = b0[i, j] * (a11 * a22 - xy * xy) - x * (cx * a22 - xy * cy) + y * (cx * xy - a11 * cy)
             bound = s * a11 * a22
             if not bound >= 1e-300:  # np.maximum(bound, 1e-300), NaN kept
                 bound = bound if np.isnan(bound) else 1e-300
@@ -255,13 +263,15 @@ def _linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge_scale, tiny_b
             out[i, j] = np.nan if (s < tiny_below or not np.isfinite(level)) else level
 
 
-def linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, *, ridge: float, scale: float,
+def linear_fit_level(s0, sx, sy, sxx, syy, sxy, b0, bx, by, *, ridge: float, scale: float,
                      tiny_below: float) -> np.ndarray:
-    """Per block, the level ``a`` of ``[[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]] [a, bx, by] =
-    [b0, cx, cy]`` with ``q = ridge s0 scale^2`` (the locally linear background), NaN where ``s0 < tiny_below``
-    or the level is not finite."""
+    """Per block (i, j), the level ``a`` of the weighted least-squares plane about the block, from the weighted
+    moments about the grid origin (``s0 = sum w``, ``sx = sum w x``, ..., ``b0 = sum w v``, ``bx = sum w v x``, x
+    the column and y the row index of the block): ``[[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]]
+    [a, bx', by'] = [b0, cx, cy]`` with the moments taken about (j, i) and the ridge ``q = ridge s0 scale^2``;
+    NaN where ``s0 < tiny_below`` or the level is not finite."""
     out = np.empty_like(s0)
-    arrays = [np.ascontiguousarray(a, dtype=np.float64) for a in (s0, mx, my, mxx, myy, mxy, b0, cx, cy)]
+    arrays = [np.ascontiguousarray(a, dtype=np.float64) for a in (s0, sx, sy, sxx, syy, sxy, b0, bx, by)]
     _linear_fit_level(*arrays, np.array([ridge, scale]), float(tiny_below), out)
     return out
 

@@ -330,15 +330,10 @@ def _local_background(work, keep, scale_px, origin):
     s0, sx, sy = g(m_c), g(m_c * xx), g(m_c * yy)
     sxx, syy, sxy = g(m_c * xx * xx), g(m_c * yy * yy), g(m_c * xx * yy)
     b0, bx, by = g(i_c), g(i_c * xx), g(i_c * yy)
-    # moments about each block centre (x0, y0)
-    mxx = sxx - 2 * xx * sx + xx * xx * s0
-    myy = syy - 2 * yy * sy + yy * yy * s0
-    mxy = sxy - xx * sy - yy * sx + xx * yy * s0
-    mx, my = sx - xx * s0, sy - yy * s0
-    cx, cy = bx - xx * b0, by - yy * b0
-    # solve [[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule;
-    # the ridge q = _BG_RIDGE s0 s^2); NaN where no kept pixel is in reach
-    bg = _correlate.linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge=_BG_RIDGE, scale=s,
+    # per block: the moments about its centre, then [[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]]
+    # [a, bx, by] = [b0, cx, cy] solved for a (Cramer's rule; the ridge q = _BG_RIDGE s0 s^2); NaN where no kept
+    # pixel is in reach
+    bg = _correlate.linear_fit_level(s0, sx, sy, sxx, syy, sxy, b0, bx, by, ridge=_BG_RIDGE, scale=s,
                                      tiny_below=1e-6 * max(float(s0.max()), 1e-300))
     if np.isnan(bg).any():  # blocks with nothing in reach: the nearest supported value
         fill = np.isnan(bg)

@@ -195,18 +195,25 @@ def test_block_sums_equal_padded_block_means(f, pr, pc):
 
 
 def test_linear_fit_level_solves_each_block_system():
-    # the vectorised Cramer's rule against numpy's solver, block by block
+    # the vectorised moments and Cramer's rule against numpy's solver, block by block
     from tenfold.analysis._correlate import linear_fit_level
 
     rng = np.random.default_rng(7)
     shape = (6, 5)
+    # central moments per block, turned into the raw moments about the grid origin the kernel takes
     s0 = rng.uniform(0.5, 1.0, shape)
     mx, my, mxy = (rng.uniform(-0.2, 0.2, shape) for _ in range(3))
     mxx, myy = rng.uniform(1.0, 2.0, shape), rng.uniform(1.0, 2.0, shape)
     b0, cx, cy = rng.uniform(100, 200, shape), rng.uniform(-5, 5, shape), rng.uniform(-5, 5, shape)
     s0[0, 0] = 0.0  # nothing in reach: NaN
+    yy, xx = np.mgrid[0:shape[0], 0:shape[1]].astype(float)
+    sx, sy = mx + xx * s0, my + yy * s0
+    sxx = mxx + 2 * xx * sx - xx * xx * s0
+    syy = myy + 2 * yy * sy - yy * yy * s0
+    sxy = mxy + xx * sy + yy * sx - xx * yy * s0
+    bx, by = cx + xx * b0, cy + yy * b0
     ridge, scale = 0.3, 2.5
-    got = linear_fit_level(s0, mx, my, mxx, myy, mxy, b0, cx, cy, ridge=ridge, scale=scale, tiny_below=1e-6)
+    got = linear_fit_level(s0, sx, sy, sxx, syy, sxy, b0, bx, by, ridge=ridge, scale=scale, tiny_below=1e-6)
     assert np.isnan(got[0, 0])
     for i, j in np.ndindex(shape):
         if (i, j) == (0, 0):
@@ -214,4 +221,4 @@ def test_linear_fit_level_solves_each_block_system():
         q = ridge * s0[i, j] * scale**2
         a = np.array([[s0[i, j], mx[i, j], my[i, j]], [mx[i, j], mxx[i, j] + q, mxy[i, j]],
                       [my[i, j], mxy[i, j], myy[i, j] + q]])
-        assert got[i, j] == pytest.approx(np.linalg.solve(a, [b0[i, j], cx[i, j], cy[i, j]])[0], rel=1e-10)
+        assert got[i, j] == pytest.approx(np.linalg.solve(a, [b0[i, j], cx[i, j], cy[i, j]])[0], rel=1e-9)
