@@ -7,14 +7,14 @@ Steps of ``find_columns`` (every automatic choice is recorded in the returned in
 2. Settle the image-wide choices on the sample (``_settle``): the ``SETTLE_PX`` window with the most valid pixels.
    Scale (``estimate_scale``, or the overrides), polarity check, noise model (raw counts, scaled counts or white,
    checked on the fit residuals), the detection levels of ``significance_map`` and the 16-bit range of the LoG,
-   and the fits' common width (``_learn_common_width``). Detection and fits of the sample repeat while the
+   and the fits' common width (``_width_votes``). Detection and fits of the sample repeat while the
    measured width, spacing or noise model disagree with the ones used (at most ``MAX_SCALE_ROUNDS``).
 3. Windows (``_run_windows``): the whole image, or tiles with a halo of ``TILE_HALO_SPACINGS`` spacings + 8 sigma.
    Each window detects candidates (``_detect_window``): matched-filter significance over a locally linear
    background (``significance_map``), trackpy's maxima rule on the scale-normalised LoG, mirrored minima for the
    noise estimate. One significance cut for all windows (``mirror_threshold``, bounded by 3.5 sigma and the
    random-field threshold of the image area). Each window fits its significant candidates
-   (``refine.refine_columns``: pixel-integrated Gaussians, Poisson-weighted for counts, Jacobi neighbour passes
+   (``refine.refine_columns``: pixel-integrated Gaussians, Poisson-weighted for counts, Gauss-Seidel neighbour passes
    with the settled common width) and prunes them (``_prune``: failed, slid, border, insignificant given the
    neighbours' light, width outliers, duplicates); joint-model position errors
    (``refine.joint_position_errors``). Each column is kept by the window whose core holds its candidate pixel.
@@ -675,6 +675,11 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
             "image_is_counts": settings.noise["model"] != "white",
             "noise_model": settings.noise["model"],
             "neighbour_passes": detail["neighbour_passes"],
+            "columns_still_moving": detail["still_moving"],
+            "columns_still_moving_how": f"candidates whose fit still moved by more than {CONVERGE_PX:g} px in the "
+                                        f"last of at most {NEIGHBOUR_PASSES} neighbour passes (0: converged); "
+                                        "typically faint candidates sliding beside bright columns, most of them "
+                                        "pruned afterwards",
             "common_width_px": settings.common_width,
             "position_error": "inverse Fisher information of the local joint model (column + touching "
                               "neighbours, all their parameters), see refine.joint_position_errors",
@@ -713,7 +718,7 @@ SEPARATION_SIGMA = 2.5
 #: noise-model check (see noise_model): slope significance, smallest relative rise, and the gain range that
 #: confirms raw counts (the residual variance of crowded fits reads 10-20 % under the level; common practice)
 NOISE_SLOPE_T, NOISE_RISE, GAIN_CONFIRM = 3.0, 0.15, (0.7, 1.4)
-#: Jacobi passes of the neighbour-subtracted refinement (it stops earlier when no column moves by CONVERGE_PX)
+#: Gauss-Seidel passes of the neighbour-subtracted refinement (it stops earlier when no column moves by CONVERGE_PX)
 NEIGHBOUR_PASSES = 10
 #: the neighbour passes have converged when no column moves by more than this, px: tight enough that a window of
 #: the image (a tile) reaches the same fixed point as the whole image to well under 1e-3 px
@@ -1052,11 +1057,14 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     auto["patch_radius_px"] = {"value": rad, "how": "0.6 x spacing, clipped to [ceil(2.5 sigma), ceil(3 sigma)]"}
     report(progress, 0.3, f"refining {xs.size} columns")
     t0 = time.perf_counter()
-    if s.common_width is None:
-        s = _learn_common_width(work, ok, xs, ys, s)
+    # the sample (no common width yet) learns it while it is fitted, from its central columns' votes
+    votes = _width_votes(work.shape, xs, ys, s.spacing) if s.common_width is None else None
     fit = refine_columns(work, np.c_[xs, ys], sigma_px=s.sigma, valid=ok, counts=s.fit_counts, patch_radius_px=rad,
                          neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, common_width_px=s.common_width,
-                         share_widths=s.share_widths, progress=sub_progress(progress, 0.3, 0.95))
+                         share_widths=s.share_widths, width_votes=votes,
+                         progress=sub_progress(progress, 0.3, 0.95))
+    if votes is not None:
+        s = _learned_width(fit, votes, s)
     passes = int(fit.attrs.get("neighbour_passes_done", 0))
     common, shared = s.common_width, s.share_widths
     t_refine = time.perf_counter() - t0
@@ -1094,6 +1102,7 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
         top = s.invert_at
         fit["background"] = top - fit["background"]
     detail = {"auto": auto, "neighbour_passes": passes, "detect_s": det["detect_s"], "refine_s": t_refine,
+              "still_moving": int(fit.attrs.get("columns_still_moving", 0)),
               "levels": det["levels"], "noise_sd": det["noise_sd"], "common_width": common, "share_widths": shared,
               "width_median": width_median, "z_cut": float(z_cut), "tail_profile": s.tail_profile}
     return fit, counts_tab, detail
@@ -1106,30 +1115,29 @@ COMMON_WIDTH_PX = 384
 COMMON_WIDTH_MARGIN_SPACINGS = 3.0
 
 
-def _learn_common_width(work, ok, xs, ys, settings):
-    """The fits' common width, the crowding rule and the median width, learned on the central part of the sample.
+def _width_votes(shape, xs, ys, spacing):
+    """The columns whose fits decide the common width: those in the central part of the sample.
 
-    ``refine_columns`` measures the common width (the median width of the bright free fits) while it iterates;
-    learned once here and then held fixed, every window (and the sample itself) is fitted with the same width,
-    so a tiled run reaches the same fixed point as an untiled one.
+    ``refine_columns`` measures the common width (the median width of the bright free fits among the voters) while
+    it iterates; learned once on the sample and then held fixed, every window is fitted with the same width, so a
+    tiled run reaches the same fixed point as an untiled one. Only columns at least the margin inside the central
+    part vote, so the sample's own edges (columns missing neighbours) never do.
     """
-    h, w = work.shape
-    m = COMMON_WIDTH_MARGIN_SPACINGS * settings.spacing
+    h, w = shape
+    m = COMMON_WIDTH_MARGIN_SPACINGS * spacing
     side = min(max(h, w), COMMON_WIDTH_PX + int(2 * m))
     r0, c0 = max(0, (h - side) // 2), max(0, (w - side) // 2)
     r1, c1 = min(h, r0 + side), min(w, c0 + side)
-    inside = (ys >= r0) & (ys < r1) & (xs >= c0) & (xs < c1)
-    # only columns at least the margin away from a cut edge of the part vote (an edge column misses neighbours)
-    xi, yi = xs[inside], ys[inside]
-    votes = (((yi >= r0 + m) | (r0 == 0)) & ((yi < r1 - m) | (r1 == h)) & ((xi >= c0 + m) | (c0 == 0))
-             & ((xi < c1 - m) | (c1 == w)))
-    sub = refine_columns(work[r0:r1, c0:c1], np.c_[xi - c0, yi - r0], sigma_px=settings.sigma,
-                         valid=ok[r0:r1, c0:c1], counts=settings.fit_counts, patch_radius_px=settings.patch_radius,
-                         neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, width_votes=votes)
-    good = sub["fit_status"].isin(["ok", "fixed_width"]).to_numpy() & votes
-    return replace(settings, common_width=float(sub.attrs["common_width_px"]),
-                   share_widths=bool(sub.attrs["share_widths"]),
-                   width_median=float(np.nanmedian(sub["sigma_px"].to_numpy()[good])) if good.sum() >= 5 else None)
+    return ((ys >= r0 + m) | (r0 == 0)) & ((ys < r1 - m) | (r1 == h)) & ((xs >= c0 + m) | (c0 == 0)) \
+        & ((xs < c1 - m) | (c1 == w)) & (ys >= r0) & (ys < r1) & (xs >= c0) & (xs < c1)
+
+
+def _learned_width(fit, votes, settings):
+    """The settings with the common width, the crowding rule and the voters' median width of a fitted sample."""
+    good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy() & votes
+    return replace(settings, common_width=float(fit.attrs["common_width_px"]),
+                   share_widths=bool(fit.attrs["share_widths"]),
+                   width_median=float(np.nanmedian(fit["sigma_px"].to_numpy()[good])) if good.sum() >= 5 else None)
 
 
 def _prune(fit, xs, ys, z_cand, sd_cand, settings, z_cut, counts_tab, auto, inner):
@@ -1232,6 +1240,7 @@ def _run_windows(img, ok, settings, tile_size, overlap_px, execution, progress):
     detail["auto"] = dict(detail["auto"])
     detail["auto"]["significance"] = dict(detail["auto"]["significance"], **cut_info)
     detail["neighbour_passes"] = max(p[2]["neighbour_passes"] for p in parts)
+    detail["still_moving"] = sum(p[2]["still_moving"] for p in parts)
     detail["detect_s"] = sum(d["detect_s"] for d in dets)
     detail["refine_s"] = sum(p[2]["refine_s"] for p in parts)
     tiling = {"windows": len(grid), "n_tiles": len(grid) if tile_size is not None else 0,

@@ -27,6 +27,7 @@ import numpy as np
 import pandas as pd
 import numba
 from numba import get_thread_id, njit, prange
+from scipy.sparse import coo_matrix
 from scipy.spatial import cKDTree
 
 from ._errors import TenfoldInputError
@@ -67,24 +68,22 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
     """Objective at parameters p (and J^T W J, J^T W r when want_j).
 
     Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
-    objective (a logarithm per pixel) only when ``want_obj``, else NaN.
+    objective (a logarithm per pixel) only when ``want_obj``, else NaN. The sums run in local scalars (the scratch
+    arrays are views of one buffer, so sums kept in them would be stored and reloaded at every pixel).
     """
     x, y, s, a, b = p[0], p[1], p[2], p[3], p[4]
     _profile(u0, nx, x, s, gx, dgx, dsx)
     _profile(v0, ny, y, s, gy, dgy, dsy)
-    if want_j:
-        for i in range(5):
-            jtr[i] = 0.0
-            for j in range(5):
-                jtj[i, j] = 0.0
     obj = 0.0
     rss = 0.0
     chi2 = 0.0
     npx = 0
-    j0 = 0.0
-    j1 = 0.0
-    j2 = 0.0
-    j3 = 0.0
+    r0 = r1 = r2 = r3 = r4 = 0.0
+    h00 = h01 = h02 = h03 = h04 = 0.0
+    h11 = h12 = h13 = h14 = 0.0
+    h22 = h23 = h24 = 0.0
+    h33 = h34 = 0.0
+    h44 = 0.0
     for r in range(ny):
         gyr = gy[r]
         dgyr = dgy[r]
@@ -114,34 +113,51 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
                 j2 = a * (dsx[c] * gyr + gx[c] * dsyr)
                 j3 = gg
                 wr = w * res
-                jtr[0] += j0 * wr
-                jtr[1] += j1 * wr
-                jtr[2] += j2 * wr
-                jtr[3] += j3 * wr
-                jtr[4] += wr
+                r0 += j0 * wr
+                r1 += j1 * wr
+                r2 += j2 * wr
+                r3 += j3 * wr
+                r4 += wr
                 w0 = w * j0
                 w1 = w * j1
                 w2 = w * j2
                 w3 = w * j3
-                jtj[0, 0] += w0 * j0
-                jtj[0, 1] += w0 * j1
-                jtj[0, 2] += w0 * j2
-                jtj[0, 3] += w0 * j3
-                jtj[0, 4] += w0
-                jtj[1, 1] += w1 * j1
-                jtj[1, 2] += w1 * j2
-                jtj[1, 3] += w1 * j3
-                jtj[1, 4] += w1
-                jtj[2, 2] += w2 * j2
-                jtj[2, 3] += w2 * j3
-                jtj[2, 4] += w2
-                jtj[3, 3] += w3 * j3
-                jtj[3, 4] += w3
-                jtj[4, 4] += w
+                h00 += w0 * j0
+                h01 += w0 * j1
+                h02 += w0 * j2
+                h03 += w0 * j3
+                h04 += w0
+                h11 += w1 * j1
+                h12 += w1 * j2
+                h13 += w1 * j3
+                h14 += w1
+                h22 += w2 * j2
+                h23 += w2 * j3
+                h24 += w2
+                h33 += w3 * j3
+                h34 += w3
+                h44 += w
     if want_j:
-        for i in range(5):
-            for j in range(i):
-                jtj[i, j] = jtj[j, i]
+        jtr[0] = r0
+        jtr[1] = r1
+        jtr[2] = r2
+        jtr[3] = r3
+        jtr[4] = r4
+        jtj[0, 0] = h00
+        jtj[0, 1] = jtj[1, 0] = h01
+        jtj[0, 2] = jtj[2, 0] = h02
+        jtj[0, 3] = jtj[3, 0] = h03
+        jtj[0, 4] = jtj[4, 0] = h04
+        jtj[1, 1] = h11
+        jtj[1, 2] = jtj[2, 1] = h12
+        jtj[1, 3] = jtj[3, 1] = h13
+        jtj[1, 4] = jtj[4, 1] = h14
+        jtj[2, 2] = h22
+        jtj[2, 3] = jtj[3, 2] = h23
+        jtj[2, 4] = jtj[4, 2] = h24
+        jtj[3, 3] = h33
+        jtj[3, 4] = jtj[4, 3] = h34
+        jtj[4, 4] = h44
     if counts and not want_obj:
         obj = np.nan
     return obj, rss, npx, chi2
@@ -186,6 +202,9 @@ def _solve5(a, rhs, out, m):
 NEIGHBOUR_BOX_SIGMA = 5.0
 #: a step smaller than this (px; relative for the width) ends a column's fit
 STEP_TOL = 1e-4
+#: an undamped step smaller than this (px for the position; relative to the width, and to the amplitude for the
+#: amplitude and the background) is near enough the optimum to be taken without evaluating the Poisson objective
+TRUST_PX, TRUST_REL = 0.05, 0.02
 
 
 @njit(cache=True, nogil=True)
@@ -360,12 +379,17 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         if not (trial[2] > 0.05 and trial[3] > 0.0):
             lam *= 10.0
             continue
-        if not obj_known:
+        # a small, undamped Fisher-scoring step near the optimum is taken without judging it by the Poisson
+        # objective (a logarithm per pixel); only the derivatives for the next step are evaluated there
+        trusted = counts and lam < 1e-2 and abs(delta[0]) < TRUST_PX and abs(delta[1]) < TRUST_PX \
+            and abs(delta[2]) < TRUST_REL * p[2] and abs(delta[3]) < TRUST_REL * p[3] \
+            and abs(delta[4]) < TRUST_REL * p[3]
+        if not trusted and not obj_known:
             obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tj, tr, False)[0]
             obj_known = True
         tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
-                                            tj, tr, True)
-        if tobj <= obj:
+                                            tj, tr, True, not trusted)
+        if trusted or tobj <= obj:
             small = abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL and abs(delta[2]) < STEP_TOL * trial[2]
             for i in range(5):
                 p[i] = trial[i]
@@ -373,6 +397,7 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
                 for j in range(5):
                     jtj[i, j] = tj[i, j]
             obj = tobj
+            obj_known = not trusted
             rss = trss
             npx = tnpx
             chi2 = tchi2
@@ -443,30 +468,72 @@ def _scratch_size(rad):
     return 2 * side * side + 6 * side + 145
 
 
+@njit(cache=True, inline="always")
+def _publish(k, out, nb_par, gidx):
+    """Column k's fitted model becomes its neighbours' view of it (zeros, no light, for a failed fit)."""
+    g = gidx[k]
+    if g < 0:
+        return
+    st = out[k, 8]
+    good = st == _OK or st == _FIXED
+    for i in range(4):
+        nb_par[g, i] = out[k, i] if good else 0.0
+
+
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
 def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, out, n_threads):
-    """Fit every column in parallel (prange over columns), see ``_fit_one``; one scratch row per thread."""
+             start, out, n_threads, order, cptr, gidx):
+    """Fit every column, one colour class after the other (see ``_colour_classes``), the columns of a class in
+    parallel (prange); see ``_fit_one``. After a class is fitted its models replace the old ones in ``nb_par``
+    (row ``gidx[k]``, none when negative), so the next classes see them: a Gauss-Seidel sweep of the coupled fits.
+    A class holds no two neighbours, so its fits read no model that is being written. One scratch row per
+    thread."""
     side = 2 * rad + 1
     fbuf = np.empty((n_threads, _scratch_size(rad)))
     mbuf = np.empty((n_threads, side * side), dtype=np.bool_)
-    for k in prange(x0.shape[0]):
-        tid = get_thread_id()
-        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                 nb_par, start, out, fbuf[tid], mbuf[tid])
+    for c in range(cptr.shape[0] - 1):
+        for t in prange(cptr[c], cptr[c + 1]):
+            k = order[t]
+            tid = get_thread_id()
+            _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr,
+                     nb_idx, nb_par, start, out, fbuf[tid], mbuf[tid])
+            _publish(k, out, nb_par, gidx)
 
 
 @njit(cache=True, nogil=True)
 def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                nb_par, start, out, n_threads):
+                nb_par, start, out, n_threads, order, cptr, gidx):
     """``_fit_all`` in the calling thread: for a few columns, waking the worker threads costs more than the fits
     (milliseconds per call on a busy machine)."""
     side = 2 * rad + 1
     fbuf = np.empty(_scratch_size(rad))
     mbuf = np.empty(side * side, dtype=np.bool_)
-    for k in range(x0.shape[0]):
+    for t in range(order.shape[0]):
+        k = order[t]
         _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
                  nb_par, start, out, fbuf, mbuf)
+        _publish(k, out, nb_par, gidx)
+
+
+@njit(cache=True)
+def _greedy_colours(ptr, idx):
+    """Greedy colouring of a symmetric neighbour graph (CSR): no two neighbours share a colour."""
+    n = ptr.shape[0] - 1
+    colour = np.full(n, -1, np.int64)
+    deg = 0
+    for i in range(n):
+        deg = max(deg, ptr[i + 1] - ptr[i])
+    seen = np.full(deg + 2, -1, np.int64)
+    for i in range(n):
+        for t in range(ptr[i], ptr[i + 1]):
+            c = colour[idx[t]]
+            if c >= 0:
+                seen[c] = i
+        c = 0
+        while seen[c] == i:
+            c += 1
+        colour[i] = c
+    return colour
 
 
 @njit(cache=True)
@@ -693,7 +760,9 @@ def warm_up() -> float:
         for kernel in (_fit_all, _fit_serial):
             kernel(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), np.array([1.5]),
                    np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, np.zeros(2, np.int64), np.zeros(0, np.int64),
-                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS))
+                   np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS),
+                   np.zeros(1, np.int64), np.array([0, 1], np.int64), np.zeros(1, np.int64))
+    _greedy_colours(np.array([0, 1, 2], np.int64), np.array([1, 0], np.int64))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
                np.ones(1), True, 4,
                np.zeros(2, np.int64), np.zeros(0, np.int64), np.ones(1, np.bool_), np.empty((1, 2)))
@@ -704,9 +773,20 @@ def warm_up() -> float:
 SERIAL_BELOW = 256
 
 
+
 def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
-         fixw=None):
+         fixw=None, colour=None, gidx=None):
+    """Fit the columns (x0, y0); with ``colour`` (one class per column) class after class, each class's models
+    written into ``nb_par`` rows ``gidx`` as it is done (a Gauss-Seidel sweep; ``nb_par`` is updated in place)."""
     n = x0.shape[0]
+    if colour is None or n == 0:
+        order, cptr = np.arange(n, dtype=np.int64), np.array([0, n], np.int64)
+    else:
+        colour = np.asarray(colour, dtype=np.int64)
+        order = np.argsort(colour, kind="stable").astype(np.int64)
+        cptr = np.zeros(int(colour.max()) + 2, np.int64)
+        cptr[1:] = np.cumsum(np.bincount(colour))
+    gidx = np.full(n, -1, np.int64) if gidx is None else np.ascontiguousarray(gidx, dtype=np.int64)
     out = np.empty((n, _NOUT))
     s_arr = np.ascontiguousarray(np.broadcast_to(np.asarray(s0, dtype=np.float64), (n,)))
     fix_arr = np.zeros(n, dtype=np.bool_) if fixw is None else np.ascontiguousarray(fixw, dtype=np.bool_)
@@ -716,7 +796,7 @@ def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_
     kernel = _fit_all if n >= SERIAL_BELOW else _fit_serial
     kernel(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
            float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out,
-           int(numba.config.NUMBA_NUM_THREADS))
+           int(numba.config.NUMBA_NUM_THREADS), order, cptr, gidx)
     return out
 
 
@@ -760,6 +840,18 @@ def _neighbour_lists(xy, reach, k_max=NEIGHBOUR_LIST_MAX):
     return ptr, idx_fin[j[has]].astype(np.int64)
 
 
+def _colour_classes(ptr, idx):
+    """One class per column such that no column shares its class with a neighbour (either list names the
+    other): the order of a Gauss-Seidel sweep whose classes are fitted in parallel."""
+    n = ptr.shape[0] - 1
+    if n == 0:
+        return np.zeros(0, np.int64)
+    src = np.repeat(np.arange(n), ptr[1:] - ptr[:-1])
+    adj = coo_matrix((np.ones(idx.size, np.int8), (src, idx)), shape=(n, n)).tocsr()
+    sym = (adj + adj.T).tocsr()
+    return _greedy_colours(sym.indptr.astype(np.int64), sym.indices.astype(np.int64))
+
+
 def _neighbour_params(out):
     """(x, y, s, A) of every fitted column; zeros (no light) for failed fits, so a list may hold any column."""
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
@@ -768,6 +860,8 @@ def _neighbour_params(out):
     return par
 
 
+#: after this many neighbour passes a column's class (own free width or the common width) no longer changes
+CLASSES_SETTLE_PASSES = 2
 #: columns closer than this many widths share the common width in the neighbour passes
 TOUCH_SIGMA = 4.5
 
@@ -848,8 +942,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         Maximum Levenberg-Marquardt iterations per column and pass.
     neighbour_passes : int
         Largest number of extra passes in which each column is refitted with its neighbours' current model (found
-        by one KD-tree query) subtracted: a Jacobi iteration of the coupled fits, which converges to the joint fit
-        of touching columns. 0 fits every column alone.
+        by one KD-tree query) subtracted: a Gauss-Seidel iteration of the coupled fits (colour classes of the
+        neighbour graph in turn, each class in parallel, every class subtracting the models already updated), which
+        converges to the joint fit of touching columns. 0 fits every column alone.
     converge_px : float
         The passes stop when no column moved by more than this (px); a pass refits only the columns whose own or
         a neighbour's model changed by more than this.
@@ -876,7 +971,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     Returns
     -------
     DataFrame
-        One row per input position, in input order: ``x_px, y_px, sigma_px, amplitude, background, intensity,
+        One row per input position, in input order (``attrs``: ``neighbour_passes_done``,
+        ``columns_still_moving`` (fits that still moved by more than ``converge_px`` in the last pass: 0 when the
+        passes converged), ``common_width_px``, ``share_widths``): ``x_px, y_px, sigma_px, amplitude, background, intensity,
         residual, pos_err_px, fit_status`` (schema names and units, see ``_schema.COLUMNS``) plus extras
         ``amplitude_err`` (1-sigma), ``x_err_px, y_err_px`` (1-sigma per axis), ``x_init_px, y_init_px``,
         ``n_pixels``, ``n_iter``, ``patch_mean`` (mean data value over the fit patch: with ``residual`` it gives
@@ -928,6 +1025,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
                np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), fixw=fixw)
     passes_done = 0
+    moving = 0
     prev_par = None
     s_cols = np.full(n, s0)
     given_width = common_width_px is not None
@@ -938,6 +1036,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     # a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away; 1 px of margin for the fits' moves
     if int(neighbour_passes) > 0:
         ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+        colour = _colour_classes(ptr, idx)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
         par = _neighbour_params(out)
@@ -957,15 +1056,26 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
             if not shared:
                 crowded[:] = False
         bright &= ~crowded
+        if p >= CLASSES_SETTLE_PASSES:
+            # the classes are kept from here on: a column near the line can otherwise flip every pass (a free
+            # width's larger amplitude error puts it under the line, the fixed width's smaller one back over it)
+            bright = ~fixw
         if not given_width:
             s_common = _common_width(out[votes], s0)
         newly = (bright == fixw) | (fixw & (np.abs(s_cols - s_common) > 1e-3 * s0))
         fixw = ~bright
         s_cols[fixw] = s_common
-        # Jacobi iteration of the coupled fits: refit only the columns whose own or any neighbour's model changed
-        # since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
-        active = np.union1d(_active_columns(out, prev_par, ptr, idx, converge_px),
-                            np.flatnonzero(newly | ~fitted))
+        # Gauss-Seidel iteration of the coupled fits: refit only the columns whose own or any neighbour's model
+        # changed since the last pass (all of them in the first pass), warm-started, so later passes are cheap.
+        # The first pass is a Jacobi pass (every column sees the lone fits): the classes settled on its result
+        # then do not depend on the order of the columns (nor on a tile's cut), only the converged values would.
+        # a failed fit is tried again in the first passes only: one that still fails (no light, then its
+        # neighbours' light, then none again) would keep the passes from converging; the last fixed-width try
+        # below takes it up
+        retry = ~fitted if p < CLASSES_SETTLE_PASSES else np.zeros(n, dtype=bool)
+        active = _active_columns(out, prev_par, ptr, idx, converge_px)
+        active = np.union1d(active[fitted[active]] if p >= CLASSES_SETTLE_PASSES else active,
+                            np.flatnonzero(newly | retry))
         if active.size == 0:
             break
         prev_par = out[:, :5].copy()
@@ -973,12 +1083,14 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         fitted = (out[active, 8] == _OK) | (out[active, 8] == _FIXED)
         start = np.where(fitted[:, None], out[active, :5], np.nan)
         again = _run(img, vmask, x0[active], y0[active], s_cols[active], rad, counts, n_iter if p == 0 else 6,
-                     max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active])
+                     max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active],
+                     colour=colour[active] if p > 0 else None, gidx=active if p > 0 else None)
         again[:, 10] += out[active, 10]
         out[active] = again
         passes_done = p + 1
         step = np.hypot(out[active, 0] - prev_par[active, 0], out[active, 1] - prev_par[active, 1])
-        if not np.nanmax(step, initial=0.0) > converge_px and not newly.any() and p > 0:
+        moving = int(np.count_nonzero(np.nan_to_num(step, nan=0.0) > converge_px))
+        if not moving and not newly.any() and p > 0:
             break
     # Columns whose fit still failed get one last fixed-width try with everything else subtracted; they are marked
     # 'fixed_width' so the user can tell (low-signal columns).
@@ -987,10 +1099,11 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     if fixed_width_fallback and redo.size and (given_width or good.sum() >= 5):
         if int(neighbour_passes) == 0:
             ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+            colour = _colour_classes(ptr, idx)
         par = _neighbour_params(out)
         sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
         again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
-                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool))
+                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool), colour=colour[redo], gidx=redo)
         fixed = again[:, 8] == _FIXED
         out[redo[fixed]] = again[fixed]
     table = _columns_out(out, x0, y0)
@@ -1002,6 +1115,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         table.loc[fitted, "y_err_px"] = err[fitted, 1]
         table["pos_err_px"] = 0.5 * (table["x_err_px"] + table["y_err_px"])
     table.attrs["neighbour_passes_done"] = passes_done
+    table.attrs["columns_still_moving"] = moving
     table.attrs["common_width_px"] = float(s_common)
     table.attrs["share_widths"] = bool(shared) if shared is not None else True
     report(progress, 1.0, "refinement done")

@@ -163,3 +163,35 @@ def test_cholesky_inverse_diagonal_matches_numpy():
         assert got == pytest.approx((ref[0, 0], ref[1, 1]), rel=1e-10)
     indefinite = np.diag([1.0, -1.0, 2.0])
     assert np.isnan(_inverse_xx_yy(indefinite)).all()
+
+
+def test_colour_classes_never_put_two_neighbours_together():
+    # the classes of a Gauss-Seidel sweep are fitted in parallel: a column must never read a model being written
+    from tenfold.analysis.refine import _colour_classes, _neighbour_lists
+
+    xy = np.random.default_rng(8).uniform(0, 200, (1500, 2))
+    ptr, idx = _neighbour_lists(xy, 14.0)
+    colour = _colour_classes(ptr, idx)
+    src = np.repeat(np.arange(xy.shape[0]), np.diff(ptr))
+    assert idx.size > 10 * xy.shape[0]  # a dense graph, so the check means something
+    assert not np.any(colour[src] == colour[idx])
+    # greedy colouring needs at most (largest degree of the symmetrised graph) + 1 classes
+    deg = np.bincount(np.r_[src, idx], minlength=xy.shape[0])
+    assert colour.max() + 1 <= deg.max() + 1
+
+
+def test_neighbour_passes_reach_the_same_fixed_point_in_any_column_order():
+    # the coupled fits converge to one joint solution; the order of the sweep (the input order of the columns,
+    # which sets the colour classes) must not change it beyond the convergence tolerance
+    img, start = _crowded_pair_image(np.random.default_rng(9))
+    perm = np.random.default_rng(10).permutation(start.shape[0])
+    a = refine_columns(img, start, sigma_px=1.5, neighbour_passes=10, converge_px=2e-4)
+    b = refine_columns(img, start[perm], sigma_px=1.5, neighbour_passes=10, converge_px=2e-4)
+    assert a.attrs["neighbour_passes_done"] < 10  # converged, not stopped by the cap
+    assert a.attrs["columns_still_moving"] == 0
+    capped = refine_columns(img, start, sigma_px=1.5, neighbour_passes=2, converge_px=2e-4)
+    assert capped.attrs["columns_still_moving"] > 0  # two passes are not enough: the table says so
+    ok = a["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
+    assert ok.mean() > 0.95
+    for c in ("x_px", "y_px"):
+        np.testing.assert_allclose(b[c].to_numpy()[np.argsort(perm)][ok], a[c].to_numpy()[ok], atol=1e-3)
