@@ -378,13 +378,18 @@ def float32_plan(values, dtype=None, *, label: str = "image") -> Float32Plan:
     plan = Float32Plan()
     if v.size == 0 or np.iscomplexobj(v) or dtype.kind not in "iuf":
         return plan
-    v = v.astype(np.float64).ravel()
-    v = v[np.isfinite(v)]
+    v = v.ravel()
+    if v.dtype.kind == "f":
+        finite = np.isfinite(v)
+        if not finite.all():
+            v = v[finite]
     if v.size == 0:
         return plan
-    p = _bulk(v)
-    bulk_peak = float(max(abs(p[0]), abs(p[-1])))
-    peak = float(np.max(np.abs(v)))
+    peak = max(float(v.max()), -float(v.min()))
+    wide = dtype.kind in "iu" and dtype.itemsize >= 4 or dtype.kind == "f" and dtype.itemsize > 4
+    # the percentiles (a partial sort of every value) only where a decision below needs them
+    p = _bulk(v.astype(np.float64, copy=False)) if wide or peak > FLOAT32_SAFE else None
+    bulk_peak = float(max(abs(p[0]), abs(p[-1]))) if p is not None else 0.0
     if peak > FLOAT32_SAFE and 0 < bulk_peak <= FLOAT32_SAFE:
         n = int(np.count_nonzero(np.abs(v) > FLOAT32_SAFE))
         plan.wild_above, plan.fill = FLOAT32_SAFE, float(p[2])
@@ -394,13 +399,12 @@ def float32_plan(values, dtype=None, *, label: str = "image") -> Float32Plan:
         peak = float(np.max(np.abs(v[np.abs(v) <= FLOAT32_SAFE]), initial=0.0))
     if peak > FLOAT32_SAFE or 0 < peak < FLOAT32_TINY:
         e = plan.exponent = _power_of_ten(peak)
-        p = p / 10.0 ** e
+        p = None if p is None else p / 10.0 ** e
         what = "exceed the float32 range" if e > 0 else "are too small for the float32 precision"
         plan.notes.append(f"{label}: values up to {peak:.3g} {what} of the analysis; "
                           f"{'divided by' if e > 0 else 'multiplied by'} 1e{abs(e)} (intensities are in units of "
                           f"1e{e}, positions are unaffected)")
-    iqr = float(p[3] - p[1]) or float(p[4] - p[0])
-    wide = dtype.kind in "iu" and dtype.itemsize >= 4 or dtype.kind == "f" and dtype.itemsize > 4
+    iqr = (float(p[3] - p[1]) or float(p[4] - p[0])) if wide else 0.0
     if wide and iqr > 0 and _coarse(p[2], iqr):
         offset = math.floor(p[0])
         if _coarse(p[2] - offset, iqr):
@@ -442,7 +446,7 @@ def to_float32(image, valid=None, *, label: str = "image") -> tuple[np.ndarray, 
         ok = np.isfinite(img)
     if valid is not None:
         ok &= np.asarray(valid, dtype=bool)
-    plan = float32_plan(img[ok], img.dtype, label=label)
+    plan = float32_plan(img if ok.all() else img[ok], img.dtype, label=label)
     data, ok = plan.apply(img, ok)
     return data, ok, plan.notes
 

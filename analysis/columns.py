@@ -11,7 +11,7 @@ Steps of ``find_columns`` (every automatic choice is recorded in the returned in
    measured width, spacing or noise model disagree with the ones used (at most ``MAX_SCALE_ROUNDS``).
 3. Windows (``_run_windows``): the whole image, or tiles with a halo of ``TILE_HALO_SPACINGS`` spacings + 8 sigma.
    Each window detects candidates (``_detect_window``): matched-filter significance over a locally linear
-   background (``significance_map``), trackpy's maxima finder on the scale-normalised LoG, mirrored minima for the
+   background (``significance_map``), trackpy's maxima rule on the scale-normalised LoG, mirrored minima for the
    noise estimate. One significance cut for all windows (``mirror_threshold``, bounded by 3.5 sigma and the
    random-field threshold of the image area). Each window fits its significant candidates
    (``refine.refine_columns``: pixel-integrated Gaussians, Poisson-weighted for counts, Gauss-Seidel neighbour passes
@@ -36,7 +36,8 @@ import pandas as pd
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from . import _sanitize, _schema
+from . import _correlate, _sanitize, _schema
+from ._filters import gaussian_fft, window_max, window_min
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
@@ -75,13 +76,13 @@ def polarity_skewness(image, valid=None, *, spacing_px: float) -> float:
         rows, cols = slice((h - min(h, 512)) // 2, None), slice((w - min(w, 512)) // 2, None)
     img = img[rows, cols][:512, :512]
     valid = None if valid is None else valid[:512, :512]
-    hp = img - ndimage.gaussian_filter(img, 2.0 * spacing_px)
+    hp = img - gaussian_fft(img, 2.0 * spacing_px)  # scipy's gaussian_filter, by FFT: its kernel is wide
     v = hp[valid] if valid is not None else hp.ravel()
     if v.size < 16:
         return 0.0
     v = v - v.mean()
     sd = v.std()
-    return float(np.mean(v**3) / sd**3) if sd > 0 else 0.0
+    return float(np.mean(v * v * v) / sd**3) if sd > 0 else 0.0  # (v**3 is a slow float power)
 
 
 def false_alarm_threshold(area_px: float, sigma_px: float, expected_false: float = FALSE_ALARMS) -> float:
@@ -191,9 +192,9 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     >>> bool(field.z([30.0], [20.0])[0] > 20), bool(abs(field.z([10.0], [10.0])[0]) < 4)
     (True, True)
     """
-    smooth = ndimage.gaussian_filter(work.astype(np.float32), sigma_px)
+    smooth = _correlate.gaussian_filter(np.asarray(work, dtype=np.float32), sigma_px)  # = scipy's, faster
     size = max(3, int(round(spacing_px * 0.5)) | 1)
-    maxima = (smooth == ndimage.maximum_filter(smooth, size=size)) & valid
+    maxima = (smooth == window_max(smooth, size)) & valid
     reach = int(math.ceil(4.0 * sigma_px))  # a bright column's tail still adds ~1 % of its peak at 3 sigma
     k2 = 1.0 / (4.0 * math.pi * sigma_px**2)
     white_sd = None if counts else np.float32(math.sqrt(k2) * float(noise_sd))
@@ -208,22 +209,25 @@ def significance_map(work, valid, *, sigma_px, spacing_px, counts, noise_sd=None
     sources = maxima & (smooth > levels["source_level"])
     my, mx = np.nonzero(maxima)
     field = None
+    gaps = None
     crowded = list(levels.get("crowded", []))
     for rnd in range(2):
-        keep = valid & ~ndimage.maximum_filter(sources, size=2 * reach + 1)
+        keep = valid & ~window_max(sources, 2 * reach + 1)
         if len(crowded) <= rnd:
             # in a crowded image (a crystal, columns closer than ~8 sigma) almost nothing is far from a column;
             # decided per pass (the second pass masks the dim columns too)
-            crowded.append(bool(keep.sum() < 0.25 * valid.sum()))
+            crowded.append(bool(np.count_nonzero(keep) < 0.25 * np.count_nonzero(valid)))
             levels["crowded"] = crowded
         if crowded[rnd]:
             # the background is then the level of the gaps between columns: smoothed pixels below their local
             # mean; pixels far from every source (an empty border, a hole in the crystal) all count
-            keep |= valid & (smooth <= ndimage.uniform_filter(smooth, size=max(3, int(2 * spacing_px) | 1)))
+            if gaps is None:
+                gaps = valid & (smooth <= _correlate.uniform_filter(smooth, max(3, int(2 * spacing_px) | 1)))
+            keep |= gaps
         bg, f = _local_background(work, keep, BG_SCALE_SPACINGS * spacing_px, origin)
         field = SignificanceField(smooth, bg, valid, k2, white_sd, count_offset, count_sign, f, tuple(origin), levels)
         sources = np.zeros_like(maxima)
-        zm = field.z(my.astype(np.float64), mx.astype(np.float64))
+        zm = field.z_pixels(my, mx)
         sources[my[zm >= Z_FLOOR], mx[zm >= Z_FLOOR]] = True
     return field
 
@@ -256,7 +260,7 @@ class SignificanceField:
         bg = self.background(rows, cols) if bg is None else bg
         off = self.count_offset
         if np.ndim(off):
-            off = ndimage.map_coordinates(off, [rows, cols], order=1, mode="nearest")
+            off = _correlate.bilinear(off, rows, cols)
         return np.sqrt(self.k2 * np.maximum(off + self.count_sign * bg, 1.0))
 
     def z(self, rows, cols):
@@ -266,12 +270,22 @@ class SignificanceField:
         if rows.size == 0:
             return np.zeros(0)
         bg = self.background(rows, cols)
-        sm = ndimage.map_coordinates(self.smooth, [rows, cols], order=1, mode="nearest")
+        sm = _correlate.bilinear(self.smooth, rows, cols)
         z = (sm - bg) / self.sd(rows, cols, bg)
         h, w = self.smooth.shape
         ri = np.clip(np.rint(rows).astype(np.int64), 0, h - 1)
         ci = np.clip(np.rint(cols).astype(np.int64), 0, w - 1)
         return np.where(self.valid[ri, ci], z, 0.0)
+
+    def z_pixels(self, rows, cols):
+        """``z`` at whole pixels (integer arrays inside the window): the smoothed image read, not interpolated."""
+        rows, cols = np.asarray(rows), np.asarray(cols)
+        if rows.size == 0:
+            return np.zeros(0)
+        fr, fc = rows.astype(np.float64), cols.astype(np.float64)
+        bg = self.background(fr, fc)
+        z = (self.smooth[rows, cols] - bg) / self.sd(fr, fc, bg)
+        return np.where(self.valid[rows, cols], z, 0.0)
 
 
 #: scale of the background's Gaussian, in column spacings
@@ -282,7 +296,7 @@ def _coarse_background(bg_coarse, factor, origin, rows, cols):
     # block k of the window covers whole-image rows [(g0 + k) f, (g0 + k + 1) f), g0 = floor(r0 / f)
     gr = (np.asarray(rows) + r0 + 0.5) / factor - 0.5 - (r0 // factor)
     gc = (np.asarray(cols) + c0 + 0.5) / factor - 0.5 - (c0 // factor)
-    return ndimage.map_coordinates(bg_coarse, [gr, gc], order=1, mode="nearest")
+    return _correlate.bilinear(bg_coarse, gr, gc)  # scipy's map_coordinates, order 1, 'nearest'; faster
 
 
 #: ridge of the locally linear background fit, relative to a fully supported window's second moment: keeps the
@@ -303,40 +317,24 @@ def _local_background(work, keep, scale_px, origin):
     h, w = work.shape
     r0, c0 = int(origin[0]), int(origin[1])
     pr, pc = r0 % f, c0 % f  # rows / columns of the first block that lie before the window
-    nb_r, nb_c = -(-(h + pr) // f), -(-(w + pc) // f)
-    m = np.zeros((nb_r * f, nb_c * f), np.float32)
-    v = np.zeros_like(m)
-    m[pr:pr + h, pc:pc + w] = keep
-    v[pr:pr + h, pc:pc + w] = np.where(keep, work, 0.0)
-    m_c = m.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
-    i_c = v.reshape(nb_r, f, nb_c, f).mean(axis=(1, 3), dtype=np.float64)
-    del m, v
+    counts, sums = _correlate.block_sums(work, keep, f, pr, pc)  # the kept pixels' float32 values, per block
+    m_c, i_c = counts / (f * f), sums / (f * f)
     if not (m_c > 0).any():
         return np.full((1, 1), float(np.median(work))), f
     s = scale_px / f
-    yy, xx = np.mgrid[0:nb_r, 0:nb_c].astype(np.float64)
+    yy, xx = np.mgrid[0:m_c.shape[0], 0:m_c.shape[1]].astype(np.float64)
 
-    def g(a):
-        return ndimage.gaussian_filter(a, s, mode="constant", cval=0.0, truncate=3.0)
+    def g(a):  # scipy's gaussian_filter(a, s, mode="constant", cval=0.0, truncate=3.0), in numba
+        return _correlate.gaussian_filter(a, s, truncate=3.0, mode="constant")
 
     s0, sx, sy = g(m_c), g(m_c * xx), g(m_c * yy)
     sxx, syy, sxy = g(m_c * xx * xx), g(m_c * yy * yy), g(m_c * xx * yy)
     b0, bx, by = g(i_c), g(i_c * xx), g(i_c * yy)
-    # moments about each block centre (x0, y0)
-    mxx = sxx - 2 * xx * sx + xx * xx * s0
-    myy = syy - 2 * yy * sy + yy * yy * s0
-    mxy = sxy - xx * sy - yy * sx + xx * yy * s0
-    mx, my = sx - xx * s0, sy - yy * s0
-    cx, cy = bx - xx * b0, by - yy * b0
-    ridge = _BG_RIDGE * s0 * s * s
-    a11, a22 = mxx + ridge, myy + ridge
-    # solve [[s0, mx, my], [mx, a11, mxy], [my, mxy, a22]] [a, bx, by] = [b0, cx, cy] for a (Cramer's rule)
-    det = s0 * (a11 * a22 - mxy * mxy) - mx * (mx * a22 - mxy * my) + my * (mx * mxy - a11 * my)
-    num = b0 * (a11 * a22 - mxy * mxy) - mx * (cx * a22 - mxy * cy) + my * (cx * mxy - a11 * cy)
-    tiny = s0 < 1e-6 * max(float(s0.max()), 1e-300)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        bg = np.where(np.abs(det) > 1e-12 * np.maximum(s0 * a11 * a22, 1e-300), num / det, b0 / s0)
-    bg = np.where(tiny | ~np.isfinite(bg), np.nan, bg)
+    # per block: the moments about its centre, then [[s0, mx, my], [mx, mxx + q, mxy], [my, mxy, myy + q]]
+    # [a, bx, by] = [b0, cx, cy] solved for a (Cramer's rule; the ridge q = _BG_RIDGE s0 s^2); NaN where no kept
+    # pixel is in reach
+    bg = _correlate.linear_fit_level(s0, sx, sy, sxx, syy, sxy, b0, bx, by, ridge=_BG_RIDGE, scale=s,
+                                     tiny_below=1e-6 * max(float(s0.max()), 1e-300))
     if np.isnan(bg).any():  # blocks with nothing in reach: the nearest supported value
         fill = np.isnan(bg)
         if fill.all():
@@ -467,13 +465,13 @@ def _tail_profile(work, fit, good, settings, background):
     if idx.size < TAIL_MIN_COLUMNS:
         return None
     k = settings.sigma
-    smooth = ndimage.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
+    smooth = _correlate.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
     idx = idx[np.argsort(amp[idx])[::-1][:400]]
     r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
     th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
     x = fit["x_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.cos(th)[None, None, :]
     y = fit["y_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.sin(th)[None, None, :]
-    vals = ndimage.map_coordinates(smooth, [y.ravel(), x.ravel()], order=1, mode="nearest").reshape(x.shape)
+    vals = _correlate.bilinear(smooth, y, x)
     s2 = fit["sigma_px"].to_numpy()[idx] ** 2
     peak = amp[idx] * s2 / (s2 + k * k)
     # the residual above the detection's background (estimated away from the columns): a fit's own constant
@@ -493,16 +491,22 @@ def _model_image(shape, fit, good):
     a, sg = fit["amplitude"].to_numpy()[good], fit["sigma_px"].to_numpy()[good]
     if not xs.size:
         return model
-    off = np.arange(-int(math.ceil(4.0 * np.nanmax(sg))), int(math.ceil(4.0 * np.nanmax(sg))) + 1)
-    px = np.rint(xs).astype(np.int64)[:, None, None] + off[None, None, :]
-    py = np.rint(ys).astype(np.int64)[:, None, None] + off[None, :, None]
+    r = int(math.ceil(4.0 * np.nanmax(sg)))
+    cx, cy = np.rint(xs), np.rint(ys)
+    # a footprint whose centre lies more than r px outside the image misses it; every other one fits a canvas with a
+    # margin of 2 r + 1 px, drawn without masking and then cropped
+    near = (cx >= -r - 1) & (cx <= w + r) & (cy >= -r - 1) & (cy <= h + r)
+    xs, ys, a, sg = xs[near], ys[near], a[near], sg[near]
+    off = np.arange(-r, r + 1)
+    px = cx[near].astype(np.int64)[:, None] + off[None, :]
+    py = cy[near].astype(np.int64)[:, None] + off[None, :]
     # separable: two rows of exponentials per column instead of a square of them
-    gx = np.exp(-0.5 * (px - xs[:, None, None]) ** 2 / sg[:, None, None] ** 2)
-    gy = a[:, None, None] * np.exp(-0.5 * (py - ys[:, None, None]) ** 2 / sg[:, None, None] ** 2)
-    g = gy * gx
-    px, py = np.broadcast_arrays(px, py)
-    inside = (px >= 0) & (px < w) & (py >= 0) & (py < h)
-    model += np.bincount((py[inside] * w + px[inside]).ravel(), weights=g[inside], minlength=h * w).reshape(h, w)
+    gx = np.exp(-0.5 * (px - xs[:, None]) ** 2 / sg[:, None] ** 2)
+    gy = a[:, None] * np.exp(-0.5 * (py - ys[:, None]) ** 2 / sg[:, None] ** 2)
+    m = 2 * r + 1
+    canvas = np.zeros((h + 2 * m, w + 2 * m))
+    _correlate.add_patches(canvas, py[:, 0] + m, px[:, 0] + m, gy, gx)
+    model += canvas[m:m + h, m:m + w]
     return model
 
 
@@ -901,11 +905,7 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     smoothed image: the same operator, a third of the work. The mirrored minima of the same detector in the
     window's core estimate the noise detections (``mirror_threshold``).
     """
-    from ._lazy import import_trackpy
-
-    grey_dilation = import_trackpy().find.grey_dilation
-
-    report(progress, 0.05, "detecting columns (trackpy)")
+    report(progress, 0.05, "detecting columns")
     t0 = time.perf_counter()
     s = settings
     work, offset, sign = _work_image(data, s)
@@ -925,25 +925,25 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     field = significance_map(detect, ok, sigma_px=s.sigma, spacing_px=s.spacing, counts=s.counts_like,
                              noise_sd=noise_sd, count_offset=offset, count_sign=sign, origin=origin, levels=s.levels)
     levels = field.levels
-    blob = -ndimage.laplace(field.smooth) * np.float32(s.sigma**2)
+    blob = -_correlate.laplace(field.smooth) * np.float32(s.sigma**2)
     if "log_range" not in levels:
         v = blob[ok]
         lo, hi = (float(v.min()), float(v.max())) if v.size else (0.0, 1.0)
         span = max(hi - lo, 1e-30)
         levels["log_range"] = [lo - _LOG_MARGIN * span, hi + _LOG_MARGIN * span]
     lo, hi = levels["log_range"]
-    q = np.where(ok, np.clip((blob - lo) * (65535.0 / (hi - lo)), 0, 65535), 0).astype(np.uint16)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # "no maxima" / "all in the margins": an empty window says so by itself
-        pos = grey_dilation(q, s.separation, percentile=0, margin=0, precise=False)
+    q = blob - lo
+    q *= 65535.0 / (hi - lo)
+    np.clip(q, 0, 65535, out=q)
+    q[~ok] = 0
+    pos = _grey_maxima(q.astype(np.uint16), s.separation)
     del q
-    pos = np.asarray(pos, dtype=np.int64).reshape(-1, 2)
     n_raw_all = pos.shape[0]
     ys, xs = _subpixel_and_distinct(blob, pos, s, origin, image_shape)
     # minima over a square of about the area of trackpy's disk (radius = separation): separable, so cheap, and
     # noise minima come at about the density of noise maxima
     side = 2 * max(int(round(s.separation * math.sqrt(math.pi) / 2.0)), 1) + 1
-    mins = (blob == ndimage.minimum_filter(blob, size=side)) & ok
+    mins = (blob == window_min(blob, side)) & ok
     del blob
     mr, mc = np.nonzero(_core_mask(mins, core))
     z = field.z(ys, xs)
@@ -952,7 +952,8 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
     auto["trackpy"] = {"diameter_px": s.diameter, "diameter_how": "smallest odd integer >= 4.5 sigma",
                        "separation_px": s.separation,
                        "separation_how": f"min(0.5 x spacing, {SEPARATION_SIGMA} sigma), at least 1.5 px",
-                       "percentile": 0, "function": "trackpy.find.grey_dilation on the 16-bit LoG",
+                       "percentile": 0, "function": "trackpy.find.grey_dilation's rule on the 16-bit LoG "
+                                                    "(_grey_maxima: the same maxima, computed with array shifts)",
                        "subpixel": "parabola through the LoG maximum and its 4 neighbours (a start for the fits)"}
     auto["significance"] = {
         "noise": "Poisson variance of the smoothed counts" if s.counts_like else
@@ -962,11 +963,30 @@ def _detect_window(data, ok, settings, *, origin, core, image_shape, progress=No
                "between 3.5 sigma and the random-field threshold for the image area",
     }
     return {"xs": xs, "ys": ys, "z": z, "sd": sd, "in_core": in_core, "z_core": z[in_core],
-            "z_mirror_core": -field.z(mr.astype(np.float64), mc.astype(np.float64)),
+            "z_mirror_core": -field.z_pixels(mr, mc),
             "n_raw_core": int(in_core.sum()), "n_raw_window": int(n_raw_all), "levels": levels,
             "noise_sd": noise_sd, "auto": auto, "detect_s": time.perf_counter() - t0,
             "inner": _inner_box(origin, image_shape, s.border_margin, data.shape),
             "background": (field.bg_coarse, field.factor, tuple(field.origin))}
+
+
+def _grey_maxima(q, separation):
+    """(row, col) of the maxima that ``trackpy.find.grey_dilation(q, separation, percentile=0, margin=0,
+    precise=False)`` finds in the uint16 image ``q``, in its order, without its warnings (an empty result says so).
+
+    trackpy's rule: a pixel equal to the largest value in the box of side ``int(2 separation / sqrt(2))`` (the
+    largest square inside the disk; an even side reaches one pixel further after the pixel than before it, as
+    ``scipy.ndimage.grey_dilation`` places it) and brighter than the dimmest non-zero pixel. The box maximum is
+    ``_filters.window_max`` (exact, several times faster than scipy's filter); ``tests/test_filters.py`` checks
+    the equality against trackpy itself.
+    """
+    side = max(int(2 * separation / math.sqrt(2)), 1)
+    lit = q > 0
+    if not lit.any():
+        return np.zeros((0, 2), np.int64)
+    dimmest = q.min(where=lit, initial=np.iinfo(q.dtype).max)
+    peak = (q == window_max(q, side, before=side // 2 - (1 - side % 2))) & (q > dimmest)
+    return np.argwhere(peak).astype(np.int64)
 
 
 def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
@@ -979,7 +999,7 @@ def _subpixel_and_distinct(blob, pos, s, origin, image_shape):
     pos = pos[keep]
     val = blob[pos[:, 0], pos[:, 1]] if pos.size else np.zeros(0, np.float32)
     if pos.shape[0] > 1:
-        pairs = cKDTree(pos).query_pairs(s.separation, output_type="ndarray")
+        pairs = _correlate.close_pairs(pos, blob.shape, s.separation)  # (pos is row-major, as argwhere gives)
         if pairs.size:
             lose = np.where(val[pairs[:, 0]] < val[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
             keep = np.ones(pos.shape[0], bool)

@@ -14,10 +14,12 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import ndimage
+from scipy import fft as sfft
 from scipy.spatial import cKDTree
 
 from . import _sanitize
+from ._correlate import gaussian_filter
+from ._filters import window_max, window_min
 from ._errors import TenfoldInputError
 
 __all__ = ["ScaleEstimate", "estimate_scale", "radial_autocorrelation"]
@@ -34,35 +36,31 @@ MAXIMA_Z = 5.0
 def nearest_maxima_spacing(image, valid, sigma_px: float):
     """Median nearest-neighbour distance of the significant local maxima of the Gaussian-smoothed image.
 
-    Two rounds: the maxima search window is ``2 ceil(sigma) + 1`` px, then ``2 floor(0.35 d) + 1`` px with the
-    first spacing d (noise maxima on the flank of a column no longer count). Returns ``(spacing_px or None,
-    n_maxima)``.
+    The image is filtered with the column width (matched filter); local maxima that stand ``MAXIMA_Z`` noise
+    standard deviations above the lowest smoothed value within ``3 sigma`` count. The noise of the smoothed image
+    is the per-pixel noise (MAD of neighbour differences / sqrt 2) times ``1 / (2 sqrt(pi) sigma)``, the norm of the
+    unit-sum Gaussian kernel. Two rounds: the maxima search window is ``2 ceil(sigma) + 1`` px, then
+    ``2 floor(0.35 d) + 1`` px with the first spacing d (noise maxima on the flank of a column no longer count);
+    the smoothed image, the noise and the local minima are shared. Returns ``(spacing_px or None, n_maxima)``.
     """
-    d, n = _maxima_spacing(image, valid, sigma_px, 2 * math.ceil(sigma_px) + 1)
+    g = gaussian_filter(np.where(valid, image, image[valid].mean()), sigma_px)  # scipy's, in numba
+    dif = np.diff(image, axis=1)[valid[:, 1:] & valid[:, :-1]]
+    sd_pix = 1.4826 * np.median(np.abs(dif - np.median(dif))) / math.sqrt(2.0)
+    sd_g = sd_pix / (2.0 * math.sqrt(math.pi) * sigma_px)
+    clear = valid & (g - window_min(g, 2 * math.ceil(3.0 * sigma_px) + 1) > MAXIMA_Z * max(sd_g, 1e-12))
+    clear[0, :] = clear[-1, :] = clear[:, 0] = clear[:, -1] = False
+    d, n = _maxima_spacing(g, clear, 2 * math.ceil(sigma_px) + 1)
     if d is not None and 2 * math.floor(0.35 * d) + 1 > 2 * math.ceil(sigma_px) + 1:
-        d2, n2 = _maxima_spacing(image, valid, sigma_px, 2 * math.floor(0.35 * d) + 1)
+        d2, n2 = _maxima_spacing(g, clear, 2 * math.floor(0.35 * d) + 1)
         if d2 is not None:
             return d2, n2
     return d, n
 
 
-def _maxima_spacing(image, valid, sigma_px, size):
-    """Median nearest-neighbour distance of the significant local maxima of the Gaussian-smoothed image.
-
-    The image is filtered with the column width (matched filter); local maxima within ``size`` px
-    squares that stand ``MAXIMA_Z`` noise standard deviations above the lowest smoothed value within
-    ``3 sigma`` count. The noise of the smoothed image is the per-pixel noise (MAD of neighbour differences /
-    sqrt 2) times ``1 / (2 sqrt(pi) sigma)``, the norm of the unit-sum Gaussian kernel. Returns
-    ``(spacing_px or None, n_maxima)``.
-    """
-    g = ndimage.gaussian_filter(np.where(valid, image, image[valid].mean()), sigma_px)
-    dif = np.diff(image, axis=1)[valid[:, 1:] & valid[:, :-1]]
-    sd_pix = 1.4826 * np.median(np.abs(dif - np.median(dif))) / math.sqrt(2.0)
-    sd_g = sd_pix / (2.0 * math.sqrt(math.pi) * sigma_px)
-    low = ndimage.minimum_filter(g, size=2 * math.ceil(3.0 * sigma_px) + 1)
-    peak = (g == ndimage.maximum_filter(g, size=size)) & valid & (g - low > MAXIMA_Z * max(sd_g, 1e-12))
-    peak[0, :] = peak[-1, :] = peak[:, 0] = peak[:, -1] = False
-    yy, xx = np.nonzero(peak)
+def _maxima_spacing(g, clear, size):
+    """Median nearest-neighbour distance of the maxima of ``g`` over ``size`` px squares among the ``clear``
+    pixels (significant, off the border), with a parabolic sub-pixel position; ``(spacing_px or None, n)``."""
+    yy, xx = np.nonzero((g == window_max(g, size)) & clear)
     if xx.size < 10:
         return None, int(xx.size)
     # sub-pixel position: vertex of the parabola through each maximum and its two neighbours per axis
@@ -121,6 +119,11 @@ def radial_autocorrelation(image, valid, *, highpass_px: float, r_max_px: float)
 
     Returns (r_px, acf, acf0, n_used): bin centres, mean autocorrelation per bin (pixel pairs only where both
     pixels are valid), the zero-lag value and the number of valid pixels.
+
+    Both transforms run on a grid padded to twice the image (the high-pass Gaussian's wrap-around is then
+    negligible). Only lags up to ``r_max_px`` are used, so the autocorrelation is transformed back on those lags'
+    rows only and binned on those lags only: the same 1-D transforms and sums as the whole grid's, far fewer of
+    them.
     """
     w = valid.astype(np.float64)
     nvalid = float(w.sum())
@@ -128,28 +131,28 @@ def radial_autocorrelation(image, valid, *, highpass_px: float, r_max_px: float)
     f = np.where(valid, image - fill, 0.0)
     h, wd = f.shape
     ph, pw = 2 * h, 2 * wd
-    from scipy import fft as sfft
-
-    ff = sfft.rfft2(f, s=(ph, pw), workers=-1)
     if highpass_px > 0:
         # Gaussian high-pass in Fourier space (masked pixels were set to the mean, i.e. 0 here)
         ky = np.fft.fftfreq(ph)[:, None]
         kx = np.fft.rfftfreq(pw)[None, :]
+        ff = _padded_rfft2(f, ph, pw)
         ff *= 1.0 - np.exp(-2.0 * (math.pi * highpass_px) ** 2 * (kx * kx + ky * ky))
-        f = sfft.irfft2(ff, s=(ph, pw), workers=-1)[:h, :wd]
+        f = _cropped_irfft2(ff, pw, slice(0, h), wd)
         f = np.where(valid, f - f[valid].mean(), 0.0)
-        ff = sfft.rfft2(f, s=(ph, pw), workers=-1)
-    acf = sfft.irfft2(ff * np.conj(ff), s=(ph, pw), workers=-1)
+    lag = min(int(math.floor(r_max_px)), h - 1, wd - 1)
+    rows = np.r_[0:lag + 1, ph - lag:ph]
+    cols = np.r_[0:lag + 1, pw - lag:pw]
+    ff = _padded_rfft2(f, ph, pw)
+    acf = _cropped_irfft2(ff * np.conj(ff), pw, rows, pw)[:, cols]
+    ry, rx = np.where(rows > lag, rows - ph, rows), np.where(cols > lag, cols - pw, cols)
     if valid.all():
-        ty = np.concatenate([h - np.arange(h), [0], np.arange(1, h)[::-1]])[:ph].astype(np.float64)
-        tx = np.concatenate([wd - np.arange(wd), [0], np.arange(1, wd)[::-1]])[:pw].astype(np.float64)
-        pairs = ty[:, None] * tx[None, :]
+        # the pair counts as this function has always taken them: h - lag for lags >= 0, but |lag| for negative
+        # lags, so that (square crops) only the quadrant of non-negative lags passes the pairs test below
+        pairs = np.where(ry >= 0, h - ry, -ry)[:, None].astype(np.float64) * np.where(rx >= 0, wd - rx, -rx)[None, :]
     else:
-        fm = sfft.rfft2(w, s=(ph, pw), workers=-1)
-        pairs = sfft.irfft2(fm * np.conj(fm), s=(ph, pw), workers=-1)
-    ry = np.fft.fftfreq(ph) * ph
-    rx = np.fft.fftfreq(pw) * pw
-    r = np.hypot(ry[:, None], rx[None, :])
+        fm = _padded_rfft2(w, ph, pw)
+        pairs = _cropped_irfft2(fm * np.conj(fm), pw, rows, pw)[:, cols]
+    r = np.hypot(ry[:, None].astype(np.float64), rx[None, :].astype(np.float64))
     sel = (r <= r_max_px) & (pairs > 0.25 * nvalid)
     acf = acf[sel] / pairs[sel]
     b = np.rint(r[sel] / BIN_PX).astype(np.int64)
@@ -158,6 +161,24 @@ def radial_autocorrelation(image, valid, *, highpass_px: float, r_max_px: float)
     rb = np.arange(prof.size) * BIN_PX
     keep = cnt > 0
     return rb[keep], prof[keep], float(prof[0]), nvalid
+
+
+def _padded_rfft2(a, ph, pw):
+    """``rfft2(a, s=(ph, pw))`` of a zero-padded array, transforming the padding rows only where they matter."""
+    rows = sfft.rfft(a, n=pw, axis=1, workers=-1)
+    return sfft.fft(rows, n=ph, axis=0, workers=-1)
+
+
+def _cropped_irfft2(spec, pw, rows, n_cols):
+    """``irfft2(spec, s=(ph, pw))[rows, :n_cols]``, the last axis transformed on the wanted rows only.
+
+    As pocketfft does for the 2-D transform: the first axis unscaled, the last one unscaled too, then every value
+    times 1 / (ph pw) rounded from extended precision (so the values equal ``irfft2``'s bit for bit).
+    """
+    out = sfft.irfft(sfft.ifft(spec, axis=0, norm="forward", workers=-1)[rows], n=pw, axis=1, norm="forward",
+                     workers=-1)[:, :n_cols]
+    out *= np.float64(np.longdouble(1) / np.longdouble(spec.shape[0] * pw))
+    return out
 
 
 def _parabolic(x, y, i):

@@ -69,3 +69,35 @@ def test_disordered_arrangement_still_gives_a_scale():
     assert est.sigma_px == pytest.approx(1.6, rel=0.15)
     nn = cKDTree(xy).query(xy, k=2)[0][:, 1]
     assert est.spacing_px == pytest.approx(np.median(nn), rel=0.05)
+
+
+def test_radial_autocorrelation_equals_a_direct_sum_over_pixel_pairs():
+    # the FFT route (padded grids, lags cropped before the last inverse transform) against the obvious oracle:
+    # sum over all valid pixel pairs at each lag, divided by their number, averaged in 0.5 px radial bins
+    from tenfold.analysis.scale import BIN_PX, radial_autocorrelation
+
+    rng = np.random.default_rng(4)
+    img = rng.normal(size=(23, 31))
+    valid = rng.random(img.shape) > 0.1
+    r_max = 6.5
+    r, acf, acf0, nvalid = radial_autocorrelation(img, valid, highpass_px=0.0, r_max_px=r_max)
+    f = np.where(valid, img - img[valid].mean(), 0.0)
+    w = valid.astype(float)
+    h, wd = img.shape
+    sums, counts = {}, {}
+    for dy in range(-6, 7):
+        for dx in range(-6, 7):
+            d = np.hypot(dy, dx)
+            a = slice(max(0, -dy), h - max(0, dy)), slice(max(0, -dx), wd - max(0, dx))
+            b = slice(max(0, dy), h - max(0, -dy)), slice(max(0, dx), wd - max(0, -dx))
+            pairs = float((w[a] * w[b]).sum())
+            if d > r_max or not pairs > 0.25 * valid.sum():
+                continue
+            k = int(np.rint(d / BIN_PX))
+            sums[k] = sums.get(k, 0.0) + float((f[a] * f[b]).sum()) / pairs
+            counts[k] = counts.get(k, 0) + 1
+    bins = sorted(sums)
+    assert np.allclose(r, np.array(bins) * BIN_PX)
+    assert np.allclose(acf, [sums[k] / counts[k] for k in bins], rtol=1e-9, atol=1e-12)
+    assert acf0 == pytest.approx(sums[0] / counts[0], rel=1e-9)
+    assert nvalid == valid.sum()
