@@ -445,6 +445,15 @@ def _params_with_file(args):
 
 
 def _analyze(args) -> int:
+    from .export import figure_service
+
+    # a process that imports matplotlib and readies the figure makers while the analysis runs (see
+    # export.figure_service); started before the heavy imports, which it does not need
+    with figure_service(enabled=not args.no_figures):
+        return _analyze_here(args)
+
+
+def _analyze_here(args) -> int:
     from .export import write_results
     from .pipeline import run_pipeline
 

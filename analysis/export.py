@@ -33,6 +33,7 @@ import re
 import shutil
 import warnings
 from collections.abc import Callable
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -52,6 +53,7 @@ __all__ = [
     "SPECIES_COLOURS",
     "SPECIES_MARKERS",
     "summary_table",
+    "figure_service",
 ]
 
 #: name -> figure maker. A maker takes the result and returns a matplotlib Figure, or None when it does not apply.
@@ -814,13 +816,20 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
         return [tmp / "results.xlsx"]
 
     job("results.xlsx", workbook)
-    if figures:
-        jobs.extend(_figure_jobs(result, tmp, progress))
+    drawing = None
+    if figures:  # helpers start drawing before the tables are written and are waited for after
+        first, last, drawing = _figure_jobs(result, tmp, progress)
+        jobs = [*first, *jobs, *last]
 
     written: list[Path] = []
-    for i, (label, func) in enumerate(jobs):
-        report(progress, i / len(jobs), f"writing {label}")
-        written.extend(func())
+    try:
+        for i, (label, func) in enumerate(jobs):
+            report(progress, i / len(jobs), f"writing {label}")
+            written.extend(func())
+    except BaseException:
+        if drawing is not None:  # no helper goes on writing into a work folder about to be removed
+            drawing.abort()
+        raise
     report(progress, 1.0, "results written")
     return written
 
@@ -854,32 +863,48 @@ def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:
     return [path]
 
 
-#: draw about half of the figures in a forked helper process while this one draws the rest (Linux, and only when
-#: the caller runs a single Python thread, as the command line does: forking a process with running threads, such
-#: as a GUI, is not safe). The helper writes into the same work folder, so the results stay all-or-nothing; if it
-#: fails in any way its figures are drawn here instead.
+#: draw the figures in forked helper processes while this one writes the tables (Linux, and only when the caller
+#: runs a single Python thread, as the command line does: forking a process with running threads, such as a GUI,
+#: is not safe). The helpers write into the same work folder, so the results stay all-or-nothing; a figure no
+#: helper reports drawn (a helper failed in any way) is drawn here instead.
 BACKGROUND_FIGURES = True
 
-#: seconds to wait for the helper before drawing its figures here instead
+#: seconds to wait for the helpers before drawing their figures here instead
 _BACKGROUND_TIMEOUT_S = 600.0
 
+#: seconds each figure takes on the 1024^2 image of benchmarks/bench_pipeline.py (PNG and SVG): the helpers draw
+#: from one queue, costly figures first, so they finish together; a figure not listed counts as _OTHER_FIGURE_S
+_FIGURE_SECONDS = {"column_diffraction": 0.8, "columns_overlay": 0.75, "power_spectrum": 0.55, "phason_map": 0.5,
+                   "pair_distribution_ladder": 0.4, "species_histogram": 0.2, "cluster_network": 0.15}
+_OTHER_FIGURE_S = 0.3
 
-def _figure_jobs(result: AnalysisResult, tmp: Path, progress) -> list[tuple[str, Callable[[], list[Path]]]]:
-    """The (label, job) list that draws every registered figure into ``tmp/figures``."""
+#: the figure service takes a result through a pipe, image included, up to this size; a larger image goes to a
+#: helper forked when the figures are due, which shares this process's memory instead of copying it
+_SERVICE_MAX_IMAGE_BYTES = 256 * 2**20
+
+#: the running figure service (see :func:`figure_service`), or None
+_SERVICE: _FigureService | None = None
+
+
+def _figure_jobs(result: AnalysisResult, tmp: Path, progress):
+    """Jobs that draw every registered figure into ``tmp/figures``: (first, last, drawing). ``first`` hands the
+    figures to helper processes and runs before the tables are written, ``last`` draws or collects them after;
+    ``drawing`` (or None) is to be aborted if the export fails in between."""
     _load_figure_modules()
-    makers = list(FIGURES.items())
-
-    def draw(name, maker):
-        return lambda: _figure_job(result, name, maker, tmp)
-
+    makers = sorted(FIGURES.items(), key=lambda item: -_FIGURE_SECONDS.get(item[0], _OTHER_FIGURE_S))
+    service = _SERVICE
+    if makers and service is not None and service.takes(result):
+        drawing = _FigureDrawing(result, makers, tmp, progress)
+        return ([("figures (helper processes)", lambda: drawing.send_to(service))],
+                [("figures (helper processes)", drawing.collect)], drawing)
     if not (BACKGROUND_FIGURES and len(makers) >= 2 and _fork_is_safe()):
-        return [(f"figures/{name}", draw(name, maker)) for name, maker in makers]
+        return [], [(f"figures/{name}", lambda name=name, maker=maker: _figure_job(result, name, maker, tmp))
+                    for name, maker in makers], None
     import matplotlib.figure  # noqa: F401  imported before the fork, so the helper does not import it again
 
-    helper = _FigureHelper(result, makers[0::2], tmp, progress)
-    return [("figures (helper process)", helper.start),
-            *[(f"figures/{name}", draw(name, maker)) for name, maker in makers[1::2]],
-            ("figures (helper process)", helper.collect)]
+    drawing = _FigureDrawing(result, makers, tmp, progress)
+    return ([("figures (helper process)", drawing.fork_helper)],
+            [("figures", drawing.draw_here), ("figures (helper process)", drawing.collect)], drawing)
 
 
 def _fork_is_safe() -> bool:
@@ -889,84 +914,304 @@ def _fork_is_safe() -> bool:
     return sys.platform.startswith("linux") and threading.active_count() == 1
 
 
-class _FigureHelper:
-    """A forked process drawing some figures into the work folder; :meth:`collect` waits for it (reporting
-    progress, so a cancel kills it) and returns the files it wrote, or draws its figures here if it failed."""
+def _fork_process(body: Callable[[], dict], *, close: tuple[int, ...] = (), group: bool = False) -> dict:
+    """Fork a process that runs ``body()`` and sends its JSON-safe answer back through a pipe, then leaves without
+    clean-up; returns the state :func:`_wait_for` and :func:`_end_process` take. ``close``: descriptors the child
+    closes first; ``group``: the child leads a process group of its own (and its own helpers), so a kill reaches
+    them all and the terminal's Ctrl-C does not (this process ends it)."""
+    import os
 
-    def __init__(self, result, makers, tmp: Path, progress) -> None:
+    read_fd, write_fd = os.pipe()
+    pid = os.fork()
+    if pid == 0:
+        code = 1
+        try:
+            os.close(read_fd)
+            for fd in close:
+                os.close(fd)
+            if group:
+                os.setpgid(0, 0)
+            msg = json.dumps(body())
+            with os.fdopen(write_fd, "w", encoding="utf-8") as f:
+                f.write(msg)
+            code = 0
+        finally:
+            os._exit(code)
+    os.close(write_fd)
+    if group:
+        try:  # set on both sides, so a kill right after the fork reaches the group
+            os.setpgid(pid, pid)
+        except OSError:
+            pass
+    return {"pid": pid, "fd": read_fd, "group": group}
+
+
+def _end_process(state: dict, kill: bool) -> int | None:
+    """Reap a process of :func:`_fork_process` once (killing it, and its group, first when ``kill``) and close its
+    pipe; its exit status, or None when it was reaped already."""
+    import os
+    import signal
+
+    pid, fd = state.pop("pid", None), state.pop("fd", None)
+    if fd is not None:
+        os.close(fd)
+    if pid is None:
+        return None
+    if kill:
+        try:
+            (os.killpg if state.get("group") else os.kill)(pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    return os.waitpid(pid, 0)[1]
+
+
+def _wait_for(state: dict, progress) -> dict | None:
+    """The answer of a process of :func:`_fork_process` (reporting progress while waiting, so a cancel kills it),
+    reaped; None when it failed or took longer than ``_BACKGROUND_TIMEOUT_S``."""
+    import os
+    import select
+    import time
+
+    if "pid" not in state:
+        return None
+    chunks, t0, done = [], time.monotonic(), False
+    try:
+        while not done and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
+            report(progress, 0.99, "waiting for the figures drawn by the helper process")
+            if select.select([state["fd"]], [], [], 0.1)[0]:
+                data = os.read(state["fd"], 1 << 16)
+                chunks.append(data)
+                done = not data
+    except BaseException:  # cancelled or interrupted: stop the process, then pass the reason on
+        _end_process(state, True)
+        raise
+    status = _end_process(state, not done)
+    try:
+        return json.loads(b"".join(chunks).decode("utf-8")) if done and status == 0 else None
+    except ValueError:
+        return None
+
+
+def _figure_queue(n: int) -> int:
+    """A pipe holding the numbers 0 .. n-1 (two bytes each), read end returned: processes sharing it take the next
+    figure with one two-byte read each, which the pipe hands out whole and once."""
+    import os
+
+    if n > 16384:  # the numbers must fit the pipe's buffer, or writing them would block
+        raise ValueError(f"{n} figures are too many for one queue")
+    read_fd, write_fd = os.pipe()
+    os.write(write_fd, b"".join(k.to_bytes(2, "little") for k in range(n)))
+    os.close(write_fd)
+    return read_fd
+
+
+def _draw_from_queue(result: AnalysisResult, makers: list, tmp: Path, queue: int, *, capture: bool) -> dict:
+    """Draw the figures whose numbers this process takes from ``queue`` until it is empty: {'paths', 'drawn',
+    'warnings'}; ``capture`` records the TenfoldWarnings (for another process to repeat) instead of raising them."""
+    import os
+
+    paths, drawn = [], []
+    with warnings.catch_warnings(record=capture) as caught:
+        if capture:
+            warnings.simplefilter("always", TenfoldWarning)
+        while len(ticket := os.read(queue, 2)) == 2:
+            name, maker = makers[int.from_bytes(ticket, "little")]
+            paths.extend(str(p) for p in _figure_job(result, name, maker, tmp))
+            drawn.append(name)
+    said = [str(w.message) for w in caught or () if issubclass(w.category, TenfoldWarning)]
+    return {"paths": paths, "drawn": drawn, "warnings": said}
+
+
+class _FigureDrawing:
+    """The figures of one export, drawn by helper processes from one queue: a helper forked now
+    (:meth:`fork_helper`, with this process taking figures from the queue too, :meth:`draw_here`) or the figure
+    service (:meth:`send_to`). :meth:`collect` waits for the helpers and draws here whatever they did not report
+    drawn."""
+
+    def __init__(self, result: AnalysisResult, makers: list, tmp: Path, progress) -> None:
         self.result, self.makers, self.tmp, self.progress = result, makers, tmp, progress
         self.state: dict = {}
+        self.queue: int | None = None
+        self.drawn: set[str] = set()
 
-    def start(self) -> list[Path]:
-        import os
+    def fork_helper(self) -> list[Path]:
         import weakref
 
         (self.tmp / "figures").mkdir(exist_ok=True)
-        read_fd, write_fd = os.pipe()
-        pid = os.fork()
-        if pid == 0:  # the helper: draw, report the files and warnings through the pipe, leave without cleanup
-            code = 1
-            try:
-                os.close(read_fd)
-                with warnings.catch_warnings(record=True) as caught:
-                    warnings.simplefilter("always", TenfoldWarning)
-                    paths = [str(p) for p in self._draw()]
-                msg = json.dumps({"paths": paths, "warnings": [str(w.message) for w in caught
-                                                               if issubclass(w.category, TenfoldWarning)]})
-                with os.fdopen(write_fd, "w", encoding="utf-8") as f:
-                    f.write(msg)
-                code = 0
-            finally:
-                os._exit(code)
-        os.close(write_fd)
-        self.state = {"pid": pid, "fd": read_fd}
-        weakref.finalize(self, _FigureHelper._end, self.state, True)  # never left running if the run stops early
+        self.queue = _figure_queue(len(self.makers))
+        self.state = _fork_process(lambda: _draw_from_queue(self.result, self.makers, self.tmp, self.queue,
+                                                            capture=True))
+        weakref.finalize(self, _end_process, self.state, True)  # never left running if the run stops early
         return []
 
-    def _draw(self) -> list[Path]:
-        return [p for name, maker in self.makers for p in _figure_job(self.result, name, maker, self.tmp)]
+    def send_to(self, service: _FigureService) -> list[Path]:
+        (self.tmp / "figures").mkdir(exist_ok=True)
+        self.state = service.state  # from now on this export's to wait for, or to abort
+        service.submit((self.result, self.makers, self.tmp), self.progress)
+        return []
 
-    @staticmethod
-    def _end(state: dict, kill: bool) -> int | None:
-        """Reap the helper once (killing it first when ``kill``) and close the pipe; its exit status or None."""
-        import os
-        import signal
-
-        pid, fd = state.pop("pid", None), state.pop("fd", None)
-        if fd is not None:
-            os.close(fd)
-        if pid is None:
-            return None
-        if kill:
-            os.kill(pid, signal.SIGKILL)
-        return os.waitpid(pid, 0)[1]
+    def draw_here(self) -> list[Path]:
+        got = _draw_from_queue(self.result, self.makers, self.tmp, self.queue, capture=False)
+        self.drawn.update(got["drawn"])
+        return [Path(p) for p in got["paths"]]
 
     def collect(self) -> list[Path]:
+        got = _wait_for(self.state, self.progress) or {}
+        self._close_queue()
+        for msg in got.get("warnings", ()):
+            warnings.warn(msg, TenfoldWarning, stacklevel=2)
+        self.drawn.update(got.get("drawn", ()))
+        paths = [Path(p) for p in got.get("paths", ())]
+        for name, maker in self.makers:  # what a failed helper left undone
+            if name not in self.drawn:
+                paths.extend(_figure_job(self.result, name, maker, self.tmp))
+        return paths
+
+    def abort(self) -> None:
+        """Stop the helpers (the export failed or was cancelled)."""
+        _end_process(self.state, True)
+        self._close_queue()
+
+    def _close_queue(self) -> None:
         import os
+
+        if self.queue is not None:
+            os.close(self.queue)
+            self.queue = None
+
+
+def _warm_up() -> None:
+    """Import matplotlib and the figure makers and draw one small figure of each kind of mark (loads fonts and
+    fills caches), so the first real figure costs no more than the others."""
+    import io
+
+    from matplotlib.backends import backend_svg  # noqa: F401
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    _load_figure_modules()
+    fig = Figure(figsize=(2.0, 2.0), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.imshow(np.zeros((4, 4)), cmap="gray")
+    ax.plot([0, 1], [0, 1], marker="o", label="a")
+    ax.scatter([0, 1], [1, 0], s=4)
+    ax.set(title="t", xlabel="x ($px^2$)", ylabel="y")
+    ax.legend(fontsize="small")
+    fig.colorbar(ax.images[0], ax=ax)
+    fig.savefig(io.BytesIO(), format="png", dpi=FIGURE_DPI)
+    fig.set_layout_engine("none")
+    fig.savefig(io.BytesIO(), format="svg")
+
+
+def _serve(job_fd: int) -> dict:
+    """The figure service's life (in its own process): warm up, wait for one job (a pickled (result, makers, work
+    folder)), draw its figures together with one more forked helper from one queue, answer what both drew."""
+    import os
+    import pickle
+
+    _warm_up()
+    chunks = []
+    while chunk := os.read(job_fd, 1 << 20):
+        chunks.append(chunk)
+    os.close(job_fd)
+    if not chunks:  # the run ended without figures
+        return {}
+    result, makers, tmp = pickle.loads(b"".join(chunks))
+    queue = _figure_queue(len(makers))
+    other = _fork_process(lambda: _draw_from_queue(result, makers, tmp, queue, capture=True))
+    mine = _draw_from_queue(result, makers, tmp, queue, capture=True)
+    got = _wait_for(other, None) or {}
+    return {key: mine[key] + got.get(key, []) for key in mine}
+
+
+class _FigureService:
+    """A process forked early in a command-line run that imports matplotlib and the figure makers while the
+    analysis runs in this one, then waits for the finished result and draws its figures (see
+    :func:`figure_service`)."""
+
+    def __init__(self) -> None:
+        import os
+
+        job_read, job_write = os.pipe()
+        self.state = _fork_process(lambda: _serve(job_read), close=(job_write,), group=True)
+        os.close(job_read)
+        self.job_fd: int | None = job_write
+
+    def takes(self, result: AnalysisResult) -> bool:
+        """Whether this service can still take ``result``'s figures (once, and not for a huge image)."""
+        return self.job_fd is not None and "pid" in self.state and \
+            (result.image is None or np.asarray(result.image).nbytes <= _SERVICE_MAX_IMAGE_BYTES)
+
+    def submit(self, job: tuple, progress) -> dict:
+        """Send ``job`` (pickled) and return the state to wait on. A job that cannot be pickled, or a service that
+        died, leaves the service with an incomplete job: it fails, and the caller draws the figures itself."""
+        import os
+        import pickle
         import select
         import time
 
-        chunks, t0, done = [], time.monotonic(), False
+        fd, self.job_fd = self.job_fd, None
         try:
-            while not done and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
-                report(self.progress, 0.99, "waiting for the figures drawn by the helper process")
-                if select.select([self.state["fd"]], [], [], 0.1)[0]:
-                    data = os.read(self.state["fd"], 1 << 16)
-                    chunks.append(data)
-                    done = not data
-        except BaseException:  # cancelled or interrupted: stop the helper, then pass the reason on
-            self._end(self.state, True)
-            raise
-        status = self._end(self.state, not done)
-        try:
-            got = json.loads(b"".join(chunks).decode("utf-8")) if done and status == 0 else None
-        except ValueError:
-            got = None
-        if got is None:  # the helper failed or hung: draw its figures here
-            return self._draw()
-        for msg in got["warnings"]:
-            warnings.warn(msg, TenfoldWarning, stacklevel=2)
-        return [Path(p) for p in got["paths"]]
+            try:
+                data = memoryview(pickle.dumps(job, protocol=pickle.HIGHEST_PROTOCOL))
+            except Exception:  # e.g. a maker defined inside a function: the service gets no job
+                data = memoryview(b"")
+            os.set_blocking(fd, False)
+            t0 = time.monotonic()
+            while data and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:  # the service may still be warming up
+                if select.select([], [fd], [], 0.1)[1]:
+                    data = data[os.write(fd, data[: 1 << 20]):]
+                else:
+                    report(progress, 0.0, "waiting for the figure process to take the results")
+        except OSError:  # the service died: it answers nothing, and the caller draws every figure
+            pass
+        finally:
+            os.close(fd)
+        return self.state
+
+    def close(self) -> None:
+        """End the service (killing it if it still runs) and reap it."""
+        import os
+
+        if self.job_fd is not None:
+            os.close(self.job_fd)
+            self.job_fd = None
+        _end_process(self.state, True)
+
+
+@contextmanager
+def figure_service(enabled: bool = True):
+    """Start the figure service for the duration of a ``with`` block: :func:`write_results` then hands the
+    figures of one result to it instead of importing matplotlib and drawing them itself.
+
+    The service is a forked process (Linux, and only while this process runs a single Python thread) that
+    imports matplotlib and the figure makers and draws a small figure while the analysis runs here, so that
+    neither the half second of imports nor the first-figure costs wait until the tables are written; with the
+    result it forks one more helper, and both draw the figures from one queue into the results' work folder
+    while this process writes the tables. Nothing is started when ``enabled`` is False, fork is not safe, or a
+    service already runs; the block then runs without one, and figures are drawn as usual.
+
+    Parameters
+    ----------
+    enabled : bool, default True
+        False: start nothing (e.g. ``--no-figures``).
+
+    Yields
+    ------
+    object or None
+        The service, or None when none was started.
+    """
+    global _SERVICE
+    if not (enabled and BACKGROUND_FIGURES and _SERVICE is None and _fork_is_safe()):
+        yield None
+        return
+    service = _SERVICE = _FigureService()
+    try:
+        yield service
+    finally:
+        _SERVICE = None
+        service.close()
 
 
 def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:

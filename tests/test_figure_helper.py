@@ -82,3 +82,92 @@ def test_no_fork_while_other_threads_run():
     finally:
         stop.set()
         t.join()
+
+
+# --------------------------------------------------------------------------------------------------------------
+# the figure service (export.figure_service): a process forked before the analysis that draws the figures
+
+
+@pytest.fixture
+def service_figures(monkeypatch, four_figures):
+    """The four figures of ``four_figures``; FIGURES is changed before the service forks, so it sees the same."""
+    monkeypatch.setattr(export, "_warm_up", lambda: None)  # matplotlib is imported already; keeps the tests quick
+    return four_figures
+
+
+def _no_child_left():
+    with pytest.raises(ChildProcessError):
+        os.waitpid(-1, os.WNOHANG)
+
+
+def _histogram_saying_where(res):
+    """species_histogram, noting the drawing process in the file named by TENFOLD_TEST_PID_FILE."""
+    with open(os.environ["TENFOLD_TEST_PID_FILE"], "a") as fh:
+        fh.write(f"{os.getpid()}\n")
+    return export.species_histogram(res)
+
+
+def test_service_draws_the_same_files_as_serial(tmp_path, monkeypatch, service_figures):
+    res = _demo_result()
+    monkeypatch.setenv("TENFOLD_TEST_PID_FILE", str(tmp_path / "pids"))
+    monkeypatch.setitem(FIGURES, "histogram_copy", _histogram_saying_where)
+    with export.figure_service() as service:
+        assert service is not None and export._SERVICE is service
+        write_results(res, tmp_path / "service")
+    assert export._SERVICE is None
+    assert str(os.getpid()) not in (tmp_path / "pids").read_text().split()  # drawn by the service
+    _no_child_left()  # the service (and its helper) ended with the block
+    monkeypatch.setattr(export, "BACKGROUND_FIGURES", False)
+    write_results(res, tmp_path / "serial")
+    assert _names(tmp_path / "service") == _names(tmp_path / "serial")
+    assert len(_names(tmp_path / "serial")) == 8
+
+
+def test_service_takes_one_result_only(tmp_path, service_figures):
+    res = _demo_result()
+    with export.figure_service() as service:
+        write_results(res, tmp_path / "first")
+        assert not service.takes(res)
+        write_results(res, tmp_path / "second")  # drawn here, as without a service
+    assert _names(tmp_path / "first") == _names(tmp_path / "second")
+
+
+def test_service_that_died_leaves_the_figures_to_this_process(tmp_path, service_figures):
+    with export.figure_service() as service:
+        os.kill(service.state["pid"], 9)
+        write_results(_demo_result(), tmp_path / "out")
+    assert len(_names(tmp_path / "out")) == 8
+    _no_child_left()
+
+
+def test_unpicklable_maker_is_drawn_here(tmp_path, monkeypatch, service_figures):
+    def local_maker(res):  # a function inside a function cannot be sent to another process
+        return export.species_histogram(res)
+
+    monkeypatch.setitem(FIGURES, "local_copy", local_maker)
+    with export.figure_service():
+        write_results(_demo_result(), tmp_path / "out")
+    assert "local_copy.png" in _names(tmp_path / "out") and len(_names(tmp_path / "out")) == 10
+
+
+def test_cancel_while_the_service_draws_leaves_nothing(tmp_path, service_figures):
+    seen = []
+
+    def stop_when_waiting(f, m):
+        seen.append(m)
+        return not m.startswith("waiting for the figures")
+
+    with export.figure_service():
+        with pytest.raises(Cancelled):
+            write_results(_demo_result(), tmp_path / "out", progress=stop_when_waiting)
+        assert seen[-1].startswith("waiting for the figures")
+    assert list(tmp_path.iterdir()) == []
+    _no_child_left()
+
+
+def test_no_service_without_figures_or_while_threads_run(monkeypatch):
+    with export.figure_service(enabled=False) as service:
+        assert service is None and export._SERVICE is None
+    monkeypatch.setattr(export, "_fork_is_safe", lambda: False)
+    with export.figure_service() as service:
+        assert service is None
