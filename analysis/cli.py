@@ -447,13 +447,13 @@ def _params_with_file(args):
 def _analyze(args) -> int:
     from .export import figure_service
 
-    # a process that imports matplotlib and readies the figure makers while the analysis runs (see
-    # export.figure_service); started before the heavy imports, which it does not need
-    with figure_service(enabled=not args.no_figures):
-        return _analyze_here(args)
+    # a process that imports matplotlib and readies the figure makers while the analysis runs, and draws the
+    # figures whose data are final while it goes on (see export.figure_service); started before the heavy imports
+    with figure_service(enabled=not args.no_figures) as service:
+        return _analyze_here(args, service)
 
 
-def _analyze_here(args) -> int:
+def _analyze_here(args, service) -> int:
     from .export import write_results
     from .pipeline import run_pipeline
 
@@ -484,7 +484,8 @@ def _analyze_here(args) -> int:
             reg = parse_region(text, pixel_size_nm=ps, unit=args.region_unit)
             reg.label = k
             regions.append(reg)
-    result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution)
+    result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution,
+                          stage_done=service.stage_done if service is not None else None)
     from ._timing import format_table, with_stage
 
     result.summary["timings_s"] = with_stage(result.summary.get("timings_s"), "read", t_read, first=True)

@@ -554,20 +554,25 @@ FIGURE_DPI = 150
 
 
 def _save_figure(fig, stem: Path) -> list[Path]:
+    png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
+    _render_figure(fig, png, svg)
+    return [png, svg]
+
+
+def _render_figure(fig, png, svg) -> None:
+    """Draw ``fig`` as PNG into ``png`` and as SVG into ``svg`` (paths or binary file objects)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     FigureCanvasAgg(fig)
     _rasterise_dense_layers(fig)
-    png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
     # fastest zlib level: the figure PNGs are written on every run; a third larger files, several times faster.
     # FIGURE_DPI: a 7 inch overlay of a 1k image keeps one pixel per image pixel
-    fig.savefig(png, dpi=FIGURE_DPI, pil_kwargs={"compress_level": 1})
+    fig.savefig(png, format="png", dpi=FIGURE_DPI, pil_kwargs={"compress_level": 1})
     # the layout engine placed the axes while drawing the PNG (in figure fractions, the same at any dpi); freezing
     # it spares the SVG a second pass of text measuring, a third of the figure time
     if fig.get_layout_engine() is not None:
         fig.set_layout_engine("none")
-    fig.savefig(svg)
-    return [png, svg]
+    fig.savefig(svg, format="svg")
 
 
 def _species_colour(species: int) -> tuple[str, str]:
@@ -1104,80 +1109,162 @@ def _warm_up() -> None:
     fig.savefig(io.BytesIO(), format="svg")
 
 
-def _serve(job_fd: int) -> dict:
-    """The figure service's life (in its own process): warm up, wait for one job (a pickled (result, makers, work
-    folder)), draw its figures together with one more forked helper from one queue, answer what both drew."""
+#: figures whose inputs are final once a stage is done (the pipeline's ``stage_done`` names): the figure service
+#: draws them while the analysis goes on, when it is idle
+EARLY_FIGURES = {"columns": ("columns_overlay", "species_histogram"), "ladder": ("pair_distribution_ladder",)}
+
+
+def _send_message(fd: int, obj, progress=None) -> None:
+    """Write ``obj`` pickled, after its length (8 bytes), to the pipe ``fd`` (non-blocking), reporting progress
+    while the reader is busy; raises OSError when the reader is gone or did not read for ``_BACKGROUND_TIMEOUT_S``,
+    and pickle's errors before writing anything."""
+    import os
+    import pickle
+    import select
+    import time
+
+    body = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+    data = memoryview(len(body).to_bytes(8, "little") + body)
+    os.set_blocking(fd, False)
+    t0 = time.monotonic()
+    while data:
+        if time.monotonic() - t0 > _BACKGROUND_TIMEOUT_S:
+            raise OSError("the figure process took nothing for too long")
+        if select.select([], [fd], [], 0.1)[1]:
+            data = data[os.write(fd, data[: 1 << 20]):]
+        else:
+            report(progress, 0.0, "waiting for the figure process to take the results")
+
+
+def _read_message(fd: int):
+    """The next object :func:`_send_message` wrote to ``fd``; None at the end of the pipe."""
     import os
     import pickle
 
+    def exactly(n: int) -> bytes | None:
+        chunks = []
+        while n and (chunk := os.read(fd, min(n, 1 << 20))):
+            chunks.append(chunk)
+            n -= len(chunk)
+        return None if n else b"".join(chunks)
+
+    head = exactly(8)
+    body = exactly(int.from_bytes(head, "little")) if head else None
+    return None if body is None else pickle.loads(body)
+
+
+def _serve(job_fd: int, ready_fd: int) -> dict:
+    """The figure service's life (in its own process): warm up, say so on ``ready_fd``; draw early figures into
+    memory as ('early', result so far, makers) messages arrive on ``job_fd`` (saying ready after each); on the
+    ('final', result, makers, work folder) message write those and draw the rest together with one more forked
+    helper from one queue; answer what was drawn."""
+    import io
+    import os
+
     _warm_up()
-    chunks = []
-    while chunk := os.read(job_fd, 1 << 20):
-        chunks.append(chunk)
+    os.write(ready_fd, b"R")
+    early: dict[str, dict] = {}  # name -> {'.png': bytes, '.svg': bytes} (empty: the figure does not apply)
+    said: list[str] = []
+    while (msg := _read_message(job_fd)) is not None and msg[0] == "early":
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", TenfoldWarning)
+            for name, maker in msg[2]:
+                fig = _make_figure(msg[1], name, maker)
+                files = {".png": io.BytesIO(), ".svg": io.BytesIO()} if fig is not None else {}
+                if fig is not None:
+                    _render_figure(fig, files[".png"], files[".svg"])
+                early[name] = {suffix: f.getvalue() for suffix, f in files.items()}
+        said += [str(w.message) for w in caught if issubclass(w.category, TenfoldWarning)]
+        os.write(ready_fd, b"R")
     os.close(job_fd)
-    if not chunks:  # the run ended without figures
+    if msg is None:  # the run ended without figures
         return {}
-    result, makers, tmp = pickle.loads(b"".join(chunks))
-    queue = _figure_queue(len(makers))
-    other = _fork_process(lambda: _draw_from_queue(result, makers, tmp, queue, capture=True))
-    mine = _draw_from_queue(result, makers, tmp, queue, capture=True)
+    _, result, makers, tmp = msg
+    paths, drawn = [], []
+    for name, _maker in makers:
+        if name in early:
+            for suffix, data in early[name].items():
+                path = (tmp / "figures" / _safe_stem(name)).with_suffix(suffix)
+                path.write_bytes(data)
+                paths.append(str(path))
+            drawn.append(name)
+    rest = [(name, maker) for name, maker in makers if name not in early]
+    queue = _figure_queue(len(rest))
+    other = _fork_process(lambda: _draw_from_queue(result, rest, tmp, queue, capture=True))
+    mine = _draw_from_queue(result, rest, tmp, queue, capture=True)
     got = _wait_for(other, None) or {}
-    return {key: mine[key] + got.get(key, []) for key in mine}
+    return {"paths": paths + mine["paths"] + got.get("paths", []), "drawn": drawn + mine["drawn"] +
+            got.get("drawn", []), "warnings": said + mine["warnings"] + got.get("warnings", [])}
 
 
 class _FigureService:
     """A process forked early in a command-line run that imports matplotlib and the figure makers while the
-    analysis runs in this one, then waits for the finished result and draws its figures (see
-    :func:`figure_service`)."""
+    analysis runs in this one, draws the figures whose data are final while the analysis goes on
+    (:meth:`stage_done`), then waits for the finished result and draws the rest (see :func:`figure_service`)."""
 
     def __init__(self) -> None:
         import os
 
         job_read, job_write = os.pipe()
-        self.state = _fork_process(lambda: _serve(job_read), close=(job_write,), group=True)
+        ready_read, ready_write = os.pipe()
+        self.state = _fork_process(lambda: _serve(job_read, ready_write), close=(job_write, ready_read),
+                                   group=True)
         os.close(job_read)
+        os.close(ready_write)
         self.job_fd: int | None = job_write
+        self.ready_fd = ready_read
 
     def takes(self, result: AnalysisResult) -> bool:
         """Whether this service can still take ``result``'s figures (once, and not for a huge image)."""
-        return self.job_fd is not None and "pid" in self.state and \
-            (result.image is None or np.asarray(result.image).nbytes <= _SERVICE_MAX_IMAGE_BYTES)
+        return self.job_fd is not None and "pid" in self.state and _small_enough(result)
 
-    def submit(self, job: tuple, progress) -> dict:
-        """Send ``job`` (pickled) and return the state to wait on. A job that cannot be pickled, or a service that
-        died, leaves the service with an incomplete job: it fails, and the caller draws the figures itself."""
+    def stage_done(self, stage: str, result: AnalysisResult) -> None:
+        """Hand the figures of ``EARLY_FIGURES[stage]`` to the service, with ``result`` as it is now, when the
+        service is idle (otherwise they are drawn with the rest); for ``run_pipeline(stage_done=...)``."""
         import os
-        import pickle
         import select
-        import time
+
+        names = EARLY_FIGURES.get(stage, ())
+        if not (names and self.takes(result) and select.select([self.ready_fd], [], [], 0)[0]):
+            return
+        os.read(self.ready_fd, 1)
+        _load_figure_modules()
+        makers = [(name, FIGURES[name]) for name in names if name in FIGURES]
+        try:
+            _send_message(self.job_fd, ("early", result, makers))
+        except OSError:  # the service died: the figures are drawn without it
+            self.close()
+        except Exception:  # not picklable: nothing was sent, and these figures are drawn with the rest
+            pass
+
+    def submit(self, job: tuple, progress) -> None:
+        """Send the final ``job`` (result, makers, work folder). A job that cannot be pickled, or a service that
+        died, leaves the service without it: it answers nothing drawn, and the caller draws the figures."""
+        import os
 
         fd, self.job_fd = self.job_fd, None
         try:
-            try:
-                data = memoryview(pickle.dumps(job, protocol=pickle.HIGHEST_PROTOCOL))
-            except Exception:  # e.g. a maker defined inside a function: the service gets no job
-                data = memoryview(b"")
-            os.set_blocking(fd, False)
-            t0 = time.monotonic()
-            while data and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:  # the service may still be warming up
-                if select.select([], [fd], [], 0.1)[1]:
-                    data = data[os.write(fd, data[: 1 << 20]):]
-                else:
-                    report(progress, 0.0, "waiting for the figure process to take the results")
-        except OSError:  # the service died: it answers nothing, and the caller draws every figure
+            _send_message(fd, ("final", *job), progress)
+        except Cancelled:
+            raise
+        except Exception:  # OSError: the service died; anything else: the job could not be pickled
             pass
         finally:
             os.close(fd)
-        return self.state
 
     def close(self) -> None:
         """End the service (killing it if it still runs) and reap it."""
         import os
 
-        if self.job_fd is not None:
-            os.close(self.job_fd)
-            self.job_fd = None
+        for fd in (self.job_fd, self.ready_fd):
+            if fd is not None:
+                os.close(fd)
+        self.job_fd = self.ready_fd = None
         _end_process(self.state, True)
+
+
+def _small_enough(result: AnalysisResult) -> bool:
+    return result.image is None or np.asarray(result.image).nbytes <= _SERVICE_MAX_IMAGE_BYTES
 
 
 @contextmanager
@@ -1214,15 +1301,20 @@ def figure_service(enabled: bool = True):
         service.close()
 
 
-def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:
+def _make_figure(result: AnalysisResult, name: str, maker):
+    """``maker(result)``: a Figure, or None when it does not apply or failed (with a warning)."""
     try:
-        fig = maker(result)
+        return maker(result)
     except (Cancelled, KeyboardInterrupt):
         raise
     except Exception as exc:  # one broken figure must not lose the tables
         warnings.warn(f"figure {name!r} could not be drawn ({type(exc).__name__}: {exc}); other files are written",
-                      TenfoldWarning, stacklevel=4)
-        return []
+                      TenfoldWarning, stacklevel=5)
+        return None
+
+
+def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:
+    fig = _make_figure(result, name, maker)
     if fig is None:
         return []
     (tmp / "figures").mkdir(exist_ok=True)

@@ -171,3 +171,43 @@ def test_no_service_without_figures_or_while_threads_run(monkeypatch):
     monkeypatch.setattr(export, "_fork_is_safe", lambda: False)
     with export.figure_service() as service:
         assert service is None
+
+
+def test_service_draws_a_stage_figure_early_from_the_result_of_then(tmp_path, monkeypatch, service_figures):
+    """After stage_done('columns', ...) the service draws the column figures from the result it was shown; the
+    final job writes those (the pipeline calls stage_done only once the columns are final)."""
+    early = _demo_result()
+    late = _demo_result()
+    late.tables["columns"] = late.tables["columns"].iloc[:3]  # differs from what the service was shown
+    monkeypatch.setattr(export, "BACKGROUND_FIGURES", False)
+    write_results(early, tmp_path / "serial_early")
+    write_results(late, tmp_path / "serial_late")
+    monkeypatch.setattr(export, "BACKGROUND_FIGURES", True)
+    with export.figure_service() as service:
+        import select
+
+        select.select([service.ready_fd], [], [], 30)  # the service is warm: it takes early figures now
+        service.stage_done("columns", early)
+        write_results(late, tmp_path / "service")
+    png = "species_histogram.png"
+    got = (tmp_path / "service" / "figures" / png).read_bytes()
+    assert got == (tmp_path / "serial_early" / "figures" / png).read_bytes()
+    assert got != (tmp_path / "serial_late" / "figures" / png).read_bytes()
+    assert (tmp_path / "service" / "figures" / "histogram_copy.png").read_bytes() == \
+        (tmp_path / "serial_late" / "figures" / "histogram_copy.png").read_bytes()  # not an early figure
+    assert _names(tmp_path / "service") == _names(tmp_path / "serial_late")
+    _no_child_left()
+
+
+def test_busy_or_finished_service_skips_early_figures(tmp_path, service_figures):
+    res = _demo_result()
+    with export.figure_service() as service:
+        import select
+
+        select.select([service.ready_fd], [], [], 30)
+        service.stage_done("motifs", res)  # no early figures for this stage: the service stays ready
+        assert select.select([service.ready_fd], [], [], 0)[0]
+        write_results(res, tmp_path / "out")
+        service.stage_done("columns", res)  # after the final job: nothing is sent
+    assert len(_names(tmp_path / "out")) == 8
+    _no_child_left()

@@ -102,6 +102,30 @@ def test_progress_is_monotone_and_reaches_one(small):
     assert all(b >= a - 1e-9 for a, b in zip(seen, seen[1:]))
 
 
+def test_stage_done_sees_final_columns_and_ladder_tables(small):
+    """What ``stage_done`` is shown after 'columns' and 'ladder' is what the run returns (the command line draws
+    those figures early), and a cropped region run, whose tables are shifted at the end, shows nothing."""
+    seen = {}
+
+    def snapshot(stage, res):
+        keys = {"columns": ("columns",), "ladder": ("ladder", "pair_peaks")}[stage]
+        seen[stage] = ({k: res.tables[k].copy() for k in keys}, dict(res.curves), res.image)
+
+    final = run_pipeline(small, Parameters(fourier=True, correct_distortion=True), stage_done=snapshot)
+    assert list(seen) == ["columns", "ladder"]
+    for tables, curves, image in seen.values():
+        for name, table in tables.items():
+            pd.testing.assert_frame_equal(table, final.tables[name])
+        assert image is final.image
+    assert set(seen["ladder"][1]) == {k for k in final.curves if k.startswith("pair_distribution")}
+    from tenfold.analysis.region import Region
+
+    seen.clear()
+    box = [Region(1, "rectangle", np.array([[100.0, 100.0], [200.0, 200.0]]))]
+    run_pipeline(small, Parameters(fourier=False), regions=box, stage_done=snapshot)
+    assert seen == {}
+
+
 def test_regions_of_a_large_image_are_analysed_in_their_box_and_shifted_back():
     from tenfold.analysis.region import Region
 
