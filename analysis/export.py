@@ -666,7 +666,13 @@ def columns_overlay(result: AnalysisResult):
     ax = fig.add_subplot()
     # pixel centres at integer coordinates, as in the table convention; a block-averaged image keeps pixel centres where the table puts them: block k spans k*step-0.5..(k+1)*step-0.5
     extent = (-0.5, img.shape[1] * step - 0.5, img.shape[0] * step - 0.5, -0.5)
-    ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest", extent=extent)
+    # grey levels looked up once, as the gray colormap would (the same pixels): matplotlib then resamples one
+    # byte image instead of the float image and its mask
+    from matplotlib import colormaps
+    from matplotlib.colors import Normalize
+
+    grey = colormaps["gray"](Normalize(lo, hi if hi > lo else lo + 1)(img), bytes=True)
+    ax.imshow(grey, interpolation="nearest", extent=extent)
     table = result.tables.get("columns")
     n = 0
     if table is not None and not table.empty:
