@@ -7,7 +7,8 @@ fresh process each time, as a user runs it, so the figures include interpreter s
 cache load; the stage table is its ``summary['timings_s']`` plus the export seconds it prints. trackpy.locate is
 timed in this process after its own warm-up, with the diameter the analysis chose (odd, >= 4.5 sigma).
 
-Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a ratio to trackpy.locate.
+Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a ratio to trackpy.locate; with
+``--python`` the ratio of this tree's whole analyze to each other tree's is printed too (fastest and median run).
 The machine's load average is printed beside the figures: on a shared machine compare runs made together.
 
 Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--python OTHER ...]``;
@@ -104,7 +105,8 @@ def main(argv=None) -> None:
         stages["whole"] = wall
         tables[p] = stages
         print(f"#{i} {p}: tenfold analyze, whole {wall:.2f} s (fastest of {len(runs[p])}: "
-              f"{', '.join(f'{r[0]:.2f}' for r in runs[p])}); ratio to trackpy.locate {wall / t_tp:.1f}")
+              f"{', '.join(f'{r[0]:.2f}' for r in runs[p])}; median {np.median([r[0] for r in runs[p]]):.2f}); "
+              f"ratio to trackpy.locate {wall / t_tp:.1f}")
     names = list(dict.fromkeys(k for t in tables.values() for k in t))
     width = max(len(k) for k in names)
     print(f"  {'stage (s)':<{width}}  " + "  ".join(f"{'#' + str(i):>8}" for i in range(len(pythons))))
@@ -112,6 +114,10 @@ def main(argv=None) -> None:
         print(f"  {k:<{width}}  " + "  ".join(f"{tables[p].get(k, float('nan')):8.3f}" for p in pythons))
     print(f"trackpy.locate (diameter {int(np.ceil(diameter or 7.0)) | 1} px, same image): {t_tp:.3f} s, "
           f"{n_tp} features")
+    for i, p in enumerate(pythons[1:], start=1):  # this tree against the others, fastest and median runs
+        mine, theirs = [r[0] for r in runs[pythons[0]]], [r[0] for r in runs[p]]
+        print(f"whole analyze #0 / #{i}: fastest {min(mine) / min(theirs):.2f}, "
+              f"median {np.median(mine) / np.median(theirs):.2f}")
     print(f"load average after: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
 
 
