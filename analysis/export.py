@@ -1116,34 +1116,21 @@ def _warm_up() -> None:
 
 
 #: figures whose inputs are final once a stage is done (the pipeline's ``stage_done`` names): the figure service
-#: draws them while the analysis goes on, when it is idle
-EARLY_FIGURES = {"columns": ("columns_overlay", "species_histogram"), "ladder": ("pair_distribution_ladder",)}
+#: draws them while the analysis goes on
+EARLY_FIGURES = {"columns": ("columns_overlay", "species_histogram"), "ladder": ("pair_distribution_ladder",),
+                 "tiling": ("cluster_network",), "phason": ("phason_map",)}
 
 
-def _send_message(fd: int, obj, progress=None) -> None:
-    """Write ``obj`` pickled, after its length (8 bytes), to the pipe ``fd`` (non-blocking), reporting progress
-    while the reader is busy; raises OSError when the reader is gone or did not read for ``_BACKGROUND_TIMEOUT_S``,
-    and pickle's errors before writing anything."""
-    import os
+def _message(obj) -> bytes:
+    """``obj`` pickled, after its length (8 bytes): one message for :func:`_read_message`."""
     import pickle
-    import select
-    import time
 
     body = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
-    data = memoryview(len(body).to_bytes(8, "little") + body)
-    os.set_blocking(fd, False)
-    t0 = time.monotonic()
-    while data:
-        if time.monotonic() - t0 > _BACKGROUND_TIMEOUT_S:
-            raise OSError("the figure process took nothing for too long")
-        if select.select([], [fd], [], 0.1)[1]:
-            data = data[os.write(fd, data[: 1 << 20]):]
-        else:
-            report(progress, 0.0, "waiting for the figure process to take the results")
+    return len(body).to_bytes(8, "little") + body
 
 
 def _read_message(fd: int):
-    """The next object :func:`_send_message` wrote to ``fd``; None at the end of the pipe."""
+    """The next object a :func:`_message` written to ``fd`` holds; None at the end of the pipe."""
     import os
     import pickle
 
@@ -1159,16 +1146,14 @@ def _read_message(fd: int):
     return None if body is None else pickle.loads(body)
 
 
-def _serve(job_fd: int, ready_fd: int) -> dict:
-    """The figure service's life (in its own process): warm up, say so on ``ready_fd``; draw early figures into
-    memory as ('early', result so far, makers) messages arrive on ``job_fd`` (saying ready after each); on the
-    ('final', result, makers, work folder) message write those and draw the rest together with one more forked
-    helper from one queue; answer what was drawn."""
+def _serve(job_fd: int) -> dict:
+    """The figure service's life (in its own process): warm up; draw early figures into memory as ('early',
+    result so far, makers) messages arrive on ``job_fd``; on the ('final', result, makers, work folder) message
+    write those and draw the rest together with one more forked helper from one queue; answer what was drawn."""
     import io
     import os
 
     _warm_up()
-    os.write(ready_fd, b"R")
     early: dict[str, dict] = {}  # name -> {'.png': bytes, '.svg': bytes} (empty: the figure does not apply)
     said: list[str] = []
     while (msg := _read_message(job_fd)) is not None and msg[0] == "early":
@@ -1181,7 +1166,6 @@ def _serve(job_fd: int, ready_fd: int) -> dict:
                     _render_figure(fig, files[".png"], files[".svg"])
                 early[name] = {suffix: f.getvalue() for suffix, f in files.items()}
         said += [str(w.message) for w in caught if issubclass(w.category, TenfoldWarning)]
-        os.write(ready_fd, b"R")
     os.close(job_fd)
     if msg is None:  # the run ended without figures
         return {}
@@ -1206,67 +1190,92 @@ def _serve(job_fd: int, ready_fd: int) -> dict:
 class _FigureService:
     """A process forked early in a command-line run that imports matplotlib and the figure makers while the
     analysis runs in this one, draws the figures whose data are final while the analysis goes on
-    (:meth:`stage_done`), then waits for the finished result and draws the rest (see :func:`figure_service`)."""
+    (:meth:`stage_done`), then draws the rest of the finished result (see :func:`figure_service`).
+
+    Messages go to it through a pipe, written by a thread of this process so that the analysis never waits for
+    the service to read: it may be busy drawing."""
 
     def __init__(self) -> None:
         import os
+        import queue
 
         job_read, job_write = os.pipe()
-        ready_read, ready_write = os.pipe()
-        self.state = _fork_process(lambda: _serve(job_read, ready_write), close=(job_write, ready_read),
-                                   group=True)
+        self.state = _fork_process(lambda: _serve(job_read), close=(job_write,), group=True)
         os.close(job_read)
-        os.close(ready_write)
         self.job_fd: int | None = job_write
-        self.ready_fd = ready_read
+        self.outbox: queue.SimpleQueue = queue.SimpleQueue()
+        self.sender = None
+        self.final_sent = False
 
     def takes(self, result: AnalysisResult) -> bool:
         """Whether this service can still take ``result``'s figures (once, and not for a huge image)."""
-        return self.job_fd is not None and "pid" in self.state and _small_enough(result)
+        return not self.final_sent and "pid" in self.state and _small_enough(result)
 
     def stage_done(self, stage: str, result: AnalysisResult) -> None:
-        """Hand the figures of ``EARLY_FIGURES[stage]`` to the service, with ``result`` as it is now, when the
-        service is idle (otherwise they are drawn with the rest); for ``run_pipeline(stage_done=...)``."""
-        import os
-        import select
-
+        """Hand the figures of ``EARLY_FIGURES[stage]`` to the service, with ``result`` as it is now; for
+        ``run_pipeline(stage_done=...)``."""
         names = EARLY_FIGURES.get(stage, ())
-        if not (names and self.takes(result) and select.select([self.ready_fd], [], [], 0)[0]):
+        if not (names and self.takes(result)):
             return
-        os.read(self.ready_fd, 1)
         _load_figure_modules()
-        makers = [(name, FIGURES[name]) for name in names if name in FIGURES]
         try:
-            _send_message(self.job_fd, ("early", result, makers))
-        except OSError:  # the service died: the figures are drawn without it
-            self.close()
-        except Exception:  # not picklable: nothing was sent, and these figures are drawn with the rest
+            self._post(_message(("early", result, [(name, FIGURES[name]) for name in names if name in FIGURES])))
+        except Exception:  # not picklable: nothing is sent, and these figures are drawn with the rest
             pass
 
     def submit(self, job: tuple, progress) -> None:
-        """Send the final ``job`` (result, makers, work folder). A job that cannot be pickled, or a service that
-        died, leaves the service without it: it answers nothing drawn, and the caller draws the figures."""
+        """Send the final ``job`` (result, makers, work folder) and wait until it is written. A job that cannot be
+        pickled, or a service that died, leaves the service without it: it answers nothing drawn, and the
+        caller draws the figures."""
+        import time
+
+        self.final_sent = True
+        try:
+            self._post(_message(("final", *job)))
+        except Exception:
+            pass
+        self._post(None)  # the end of the messages: the sender closes the pipe
+        t0 = time.monotonic()
+        while self.sender.is_alive() and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
+            report(progress, 0.0, "waiting for the figure process to take the results")
+            self.sender.join(0.1)
+
+    def _post(self, data: bytes | None) -> None:
+        import threading
+
+        if self.sender is None:
+            self.sender = threading.Thread(target=self._send_all, name="tenfold-figure-messages", daemon=True)
+            self.sender.start()
+        self.outbox.put(data)
+
+    def _send_all(self) -> None:
+        """The sender thread: write the posted messages in order until None; on a broken pipe (the service died)
+        the rest are dropped."""
         import os
 
-        fd, self.job_fd = self.job_fd, None
+        fd = self.job_fd
         try:
-            _send_message(fd, ("final", *job), progress)
-        except Cancelled:
-            raise
-        except Exception:  # OSError: the service died; anything else: the job could not be pickled
+            while (data := self.outbox.get()) is not None:
+                view = memoryview(data)
+                while view:
+                    view = view[os.write(fd, view[: 1 << 20]):]
+        except OSError:
             pass
         finally:
+            self.job_fd = None
             os.close(fd)
 
     def close(self) -> None:
-        """End the service (killing it if it still runs) and reap it."""
+        """End the service (killing it if it still runs) and reap it; the sender thread ends with it."""
         import os
 
-        for fd in (self.job_fd, self.ready_fd):
-            if fd is not None:
-                os.close(fd)
-        self.job_fd = self.ready_fd = None
         _end_process(self.state, True)
+        if self.sender is not None:
+            self.outbox.put(None)
+            self.sender.join(5.0)
+        elif self.job_fd is not None:
+            os.close(self.job_fd)
+            self.job_fd = None
 
 
 def _small_enough(result: AnalysisResult) -> bool:

@@ -192,11 +192,15 @@ def _structure(result: AnalysisResult, params: Parameters, lengths: ResolvedLeng
         n_columns=len(ok), columns_info=result.summary.get("columns"), motifs=motifs, motifs_info=m_info,
         ladder_info=l_info, tiling_info=t_info, pair_peaks=result.tables["pair_peaks"]) if n not in notes)
     _timing.lap("tiling")
+    if stage_done is not None:
+        stage_done("tiling", result)
     if params.phason:
         from .phason import phason_stage
 
         phason_stage(result, rng=params.rng)
         _timing.lap("phason")
+        if stage_done is not None:
+            stage_done("phason", result)
     report(progress, 1.0, "structure done")
 
 
@@ -273,8 +277,9 @@ def run_pipeline(
         up to ``AUTO_TILE_ABOVE_PX`` on a side, tiled above, serial.
     stage_done : callable(stage, result), optional
         Called with the result so far once a stage's outputs are final: 'columns' (the image and the columns
-        table, after any distortion correction) and 'ladder' (the ladder and pair-peak tables and the
-        pair-distribution curves). Front ends use it to start work early (the command line draws those figures
+        table, after any distortion correction), 'ladder' (the ladder and pair-peak tables and the
+        pair-distribution curves), 'tiling' (the motifs, network and tiles tables) and 'phason' (the phason_map
+        table and ``summary['phason']['real_space']``). Front ends use it to start work early (the command line draws those figures
         while the analysis goes on); the result is still being filled, so read it and do not keep it. Not
         called for regions analysed in a crop (their tables are shifted at the end).
 

@@ -184,11 +184,10 @@ def test_service_draws_a_stage_figure_early_from_the_result_of_then(tmp_path, mo
     write_results(late, tmp_path / "serial_late")
     monkeypatch.setattr(export, "BACKGROUND_FIGURES", True)
     with export.figure_service() as service:
-        import select
-
-        select.select([service.ready_fd], [], [], 30)  # the service is warm: it takes early figures now
         service.stage_done("columns", early)
+        service.stage_done("motifs", early)  # no early figures for this stage: nothing is sent
         write_results(late, tmp_path / "service")
+        service.stage_done("columns", late)  # after the final job: nothing is sent
     png = "species_histogram.png"
     got = (tmp_path / "service" / "figures" / png).read_bytes()
     assert got == (tmp_path / "serial_early" / "figures" / png).read_bytes()
@@ -199,15 +198,11 @@ def test_service_draws_a_stage_figure_early_from_the_result_of_then(tmp_path, mo
     _no_child_left()
 
 
-def test_busy_or_finished_service_skips_early_figures(tmp_path, service_figures):
+def test_service_dying_after_early_figures_leaves_them_to_this_process(tmp_path, service_figures):
     res = _demo_result()
     with export.figure_service() as service:
-        import select
-
-        select.select([service.ready_fd], [], [], 30)
-        service.stage_done("motifs", res)  # no early figures for this stage: the service stays ready
-        assert select.select([service.ready_fd], [], [], 0)[0]
+        service.stage_done("columns", res)
+        os.kill(service.state["pid"], 9)
         write_results(res, tmp_path / "out")
-        service.stage_done("columns", res)  # after the final job: nothing is sent
     assert len(_names(tmp_path / "out")) == 8
     _no_child_left()

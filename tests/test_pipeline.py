@@ -1,5 +1,7 @@
 """The orchestrator: parameters, hand correction, cancellation."""
 
+import copy
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -108,16 +110,19 @@ def test_stage_done_sees_final_columns_and_ladder_tables(small):
     seen = {}
 
     def snapshot(stage, res):
-        keys = {"columns": ("columns",), "ladder": ("ladder", "pair_peaks")}[stage]
-        seen[stage] = ({k: res.tables[k].copy() for k in keys}, dict(res.curves), res.image)
+        keys = {"columns": ("columns",), "ladder": ("ladder", "pair_peaks"), "tiling": ("motifs", "network", "tiles"),
+                "phason": ("phason_map",)}[stage]
+        seen[stage] = ({k: res.tables[k].copy() for k in keys}, dict(res.curves), res.image,
+                       copy.deepcopy(res.summary.get("phason", {}).get("real_space")))
 
     final = run_pipeline(small, Parameters(fourier=True, correct_distortion=True), stage_done=snapshot)
-    assert list(seen) == ["columns", "ladder"]
-    for tables, curves, image in seen.values():
+    assert list(seen) == ["columns", "ladder", "tiling", "phason"]
+    for tables, curves, image, _ in seen.values():
         for name, table in tables.items():
             pd.testing.assert_frame_equal(table, final.tables[name])
         assert image is final.image
     assert set(seen["ladder"][1]) == {k for k in final.curves if k.startswith("pair_distribution")}
+    assert seen["phason"][3] == final.summary["phason"]["real_space"]
     from tenfold.analysis.region import Region
 
     seen.clear()
