@@ -11,10 +11,13 @@ Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a
 ``--python`` the ratio of this tree's whole analyze to each other tree's is printed too (fastest and median run).
 The machine's load average is printed beside the figures: on a shared machine compare runs made together.
 
-Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--python OTHER ...]``;
+Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--no-compile]
+[--python OTHER ...]``;
 ``--python`` adds interpreters with another Tenfold installed (e.g. an older tree in its own venv): their runs are
 interleaved with this one's, so a shared machine's load hits both alike. A stage an older tree does not time shows
-as missing; its export seconds come from its ``--debug`` output when it prints them.
+as missing; its export seconds come from its ``--debug`` output when it prints them. Each tree is byte-compiled
+first, as installing it does (``--no-compile``: not; an editable tree under PYTHONDONTWRITEBYTECODE then compiles
+its source at every start).
 """
 
 from __future__ import annotations
@@ -42,6 +45,15 @@ def _image(folder: Path, size: int) -> tuple[Path, np.ndarray]:
     write_tiff(path, img, pixel_size_nm=params["pixel_size_nm"])
     print(f"image: {size} x {size} px, {len(truth)} columns, pixel {params['pixel_size_nm']:.4g} nm")
     return path, img
+
+
+def _compile(python: str) -> None:
+    """Byte-compile the Tenfold tree ``python`` imports, as ``pip install`` does: an editable tree under
+    PYTHONDONTWRITEBYTECODE would otherwise compile some 0.9 MB of source at every start (a few tenths of a s)."""
+    code = "import os, tenfold.analysis as a; print(os.path.dirname(a.__file__))"
+    folder = subprocess.run([python, "-c", code], capture_output=True, text=True, check=True).stdout.strip()
+    subprocess.run([python, "-m", "compileall", "-q", folder], check=True)
+    print(f"byte code compiled: {folder}")
 
 
 def _analyze(python: str, image: Path, out: Path, figures: bool) -> tuple[float, dict, float]:
@@ -84,8 +96,13 @@ def main(argv=None) -> None:
     ap.add_argument("--no-figures", action="store_true", help="pass --no-figures to tenfold analyze")
     ap.add_argument("--python", nargs="+", default=[], metavar="PYTHON",
                     help="other interpreters (other Tenfold trees) to time the same way, interleaved")
+    ap.add_argument("--no-compile", action="store_true",
+                    help="leave the trees' byte code alone (by default each is compiled first, as installing does)")
     args = ap.parse_args(argv)
     pythons = [sys.executable, *args.python]
+    if not args.no_compile:
+        for p in pythons:
+            _compile(p)
     print(f"load average before: {' '.join(f'{v:.2f}' for v in os.getloadavg())} on {os.cpu_count()} CPUs")
     runs: dict[str, list] = {p: [] for p in pythons}
     with tempfile.TemporaryDirectory() as tmp:
