@@ -1016,9 +1016,10 @@ def _figure_queue(n: int) -> int:
     return read_fd
 
 
-def _draw_from_queue(result: AnalysisResult, makers: list, tmp: Path, queue: int, *, capture: bool) -> dict:
-    """Draw the figures whose numbers this process takes from ``queue`` until it is empty: {'paths', 'drawn',
-    'warnings'}; ``capture`` records the TenfoldWarnings (for another process to repeat) instead of raising them."""
+def _draw_from_queue(jobs: list, tmp: Path, queue: int, *, capture: bool) -> dict:
+    """Draw the figures (result, name, maker) of ``jobs`` whose numbers this process takes from ``queue`` until it
+    is empty: {'paths', 'drawn', 'warnings'}; ``capture`` records the TenfoldWarnings (for another process to
+    repeat) instead of raising them."""
     import os
 
     paths, drawn = [], []
@@ -1026,7 +1027,7 @@ def _draw_from_queue(result: AnalysisResult, makers: list, tmp: Path, queue: int
         if capture:
             warnings.simplefilter("always", TenfoldWarning)
         while len(ticket := os.read(queue, 2)) == 2:
-            name, maker = makers[int.from_bytes(ticket, "little")]
+            result, name, maker = jobs[int.from_bytes(ticket, "little")]
             paths.extend(str(p) for p in _figure_job(result, name, maker, tmp))
             drawn.append(name)
     said = [str(w.message) for w in caught or () if issubclass(w.category, TenfoldWarning)]
@@ -1050,8 +1051,8 @@ class _FigureDrawing:
 
         (self.tmp / "figures").mkdir(exist_ok=True)
         self.queue = _figure_queue(len(self.makers))
-        self.state = _fork_process(lambda: _draw_from_queue(self.result, self.makers, self.tmp, self.queue,
-                                                            capture=True))
+        jobs = [(self.result, name, maker) for name, maker in self.makers]
+        self.state = _fork_process(lambda: _draw_from_queue(jobs, self.tmp, self.queue, capture=True))
         weakref.finalize(self, _end_process, self.state, True)  # never left running if the run stops early
         return []
 
@@ -1062,7 +1063,8 @@ class _FigureDrawing:
         return []
 
     def draw_here(self) -> list[Path]:
-        got = _draw_from_queue(self.result, self.makers, self.tmp, self.queue, capture=False)
+        got = _draw_from_queue([(self.result, name, maker) for name, maker in self.makers], self.tmp, self.queue,
+                               capture=False)
         self.drawn.update(got["drawn"])
         return [Path(p) for p in got["paths"]]
 
@@ -1118,7 +1120,8 @@ def _warm_up() -> None:
 #: figures whose inputs are final once a stage is done (the pipeline's ``stage_done`` names): the figure service
 #: draws them while the analysis goes on
 EARLY_FIGURES = {"columns": ("columns_overlay", "species_histogram"), "ladder": ("pair_distribution_ladder",),
-                 "tiling": ("cluster_network",), "phason": ("phason_map",)}
+                 "tiling": ("cluster_network",), "phason": ("phason_map",),
+                 "fourier": ("power_spectrum", "column_diffraction")}
 
 
 def _message(obj) -> bytes:
@@ -1147,41 +1150,57 @@ def _read_message(fd: int):
 
 
 def _serve(job_fd: int) -> dict:
-    """The figure service's life (in its own process): warm up; draw early figures into memory as ('early',
-    result so far, makers) messages arrive on ``job_fd``; on the ('final', result, makers, work folder) message
-    write those and draw the rest together with one more forked helper from one queue; answer what was drawn."""
+    """The figure service's life (in its own process): warm up; as ('early', result so far, makers) messages
+    arrive on ``job_fd``, draw those figures into memory one by one, taking every message waiting before the
+    next figure; on the ('final', result, makers, work folder) message write the ones drawn and draw the rest
+    (the early ones not reached yet with the result they were told with) together with one more forked helper
+    from one queue, costly figures first; answer what was drawn."""
     import io
     import os
+    import select
 
     _warm_up()
     early: dict[str, dict] = {}  # name -> {'.png': bytes, '.svg': bytes} (empty: the figure does not apply)
+    told: list[tuple] = []  # (result, name, maker) not drawn yet
     said: list[str] = []
-    while (msg := _read_message(job_fd)) is not None and msg[0] == "early":
+    final = None
+    while final is None:
+        if not told or select.select([job_fd], [], [], 0)[0]:
+            msg = _read_message(job_fd)  # waits when there is nothing to draw
+            if msg is None:  # the run ended without figures
+                return {}
+            if msg[0] == "final":
+                final = msg
+            else:
+                told += [(msg[1], name, maker) for name, maker in msg[2]]
+            continue
+        result, name, maker = told.pop(0)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", TenfoldWarning)
-            for name, maker in msg[2]:
-                fig = _make_figure(msg[1], name, maker)
-                files = {".png": io.BytesIO(), ".svg": io.BytesIO()} if fig is not None else {}
-                if fig is not None:
-                    _render_figure(fig, files[".png"], files[".svg"])
-                early[name] = {suffix: f.getvalue() for suffix, f in files.items()}
+            fig = _make_figure(result, name, maker)
+            files = {".png": io.BytesIO(), ".svg": io.BytesIO()} if fig is not None else {}
+            if fig is not None:
+                _render_figure(fig, files[".png"], files[".svg"])
+            early[name] = {suffix: f.getvalue() for suffix, f in files.items()}
         said += [str(w.message) for w in caught if issubclass(w.category, TenfoldWarning)]
     os.close(job_fd)
-    if msg is None:  # the run ended without figures
-        return {}
-    _, result, makers, tmp = msg
+    _, result, makers, tmp = final
+    wanted = {name for name, _maker in makers}
     paths, drawn = [], []
-    for name, _maker in makers:
-        if name in early:
-            for suffix, data in early[name].items():
+    for name, files in early.items():
+        if name in wanted:
+            for suffix, data in files.items():
                 path = (tmp / "figures" / _safe_stem(name)).with_suffix(suffix)
                 path.write_bytes(data)
                 paths.append(str(path))
             drawn.append(name)
-    rest = [(name, maker) for name, maker in makers if name not in early]
-    queue = _figure_queue(len(rest))
-    other = _fork_process(lambda: _draw_from_queue(result, rest, tmp, queue, capture=True))
-    mine = _draw_from_queue(result, rest, tmp, queue, capture=True)
+    pending = [job for job in told if job[1] in wanted]
+    pending += [(result, name, maker) for name, maker in makers
+                if name not in early and name not in {job[1] for job in told}]
+    pending.sort(key=lambda job: -_FIGURE_SECONDS.get(job[1], _OTHER_FIGURE_S))
+    queue = _figure_queue(len(pending))
+    other = _fork_process(lambda: _draw_from_queue(pending, tmp, queue, capture=True))
+    mine = _draw_from_queue(pending, tmp, queue, capture=True)
     got = _wait_for(other, None) or {}
     return {"paths": paths + mine["paths"] + got.get("paths", []), "drawn": drawn + mine["drawn"] +
             got.get("drawn", []), "warnings": said + mine["warnings"] + got.get("warnings", [])}

@@ -278,8 +278,9 @@ def run_pipeline(
     stage_done : callable(stage, result), optional
         Called with the result so far once a stage's outputs are final: 'columns' (the image and the columns
         table, after any distortion correction), 'ladder' (the ladder and pair-peak tables and the
-        pair-distribution curves), 'tiling' (the motifs, network and tiles tables) and 'phason' (the phason_map
-        table and ``summary['phason']['real_space']``). Front ends use it to start work early (the command line draws those figures
+        pair-distribution curves), 'tiling' (the motifs, network and tiles tables), 'phason' (the phason_map
+        table and ``summary['phason']['real_space']``) and 'fourier' (the spots table and ``summary['fourier']``).
+        Front ends use it to start work early (the command line draws those figures
         while the analysis goes on); the result is still being filled, so read it and do not keep it. Not
         called for regions analysed in a crop (their tables are shifted at the end).
 
@@ -413,6 +414,8 @@ def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, r
                 f_info = result.summary["fourier"]
                 f_info["notes"] = [*(f_info.get("notes") or []), f_note]
                 f_info["crop_note"] = f_note
+            if stage_done is not None:
+                stage_done("fourier", result)
         report(progress, 1.0, "analysis done")
     result.summary["timings_s"] = clock.as_dict()  # wall seconds per stage of this run
     _timing.stop(clock)

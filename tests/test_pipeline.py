@@ -111,18 +111,20 @@ def test_stage_done_sees_final_columns_and_ladder_tables(small):
 
     def snapshot(stage, res):
         keys = {"columns": ("columns",), "ladder": ("ladder", "pair_peaks"), "tiling": ("motifs", "network", "tiles"),
-                "phason": ("phason_map",)}[stage]
+                "phason": ("phason_map",), "fourier": ("spots", "columns")}[stage]
+        summary = {"phason": res.summary.get("phason", {}).get("real_space"), "fourier": res.summary.get("fourier")}
         seen[stage] = ({k: res.tables[k].copy() for k in keys}, dict(res.curves), res.image,
-                       copy.deepcopy(res.summary.get("phason", {}).get("real_space")))
+                       copy.deepcopy(summary[stage] if stage in summary else None))
 
     final = run_pipeline(small, Parameters(fourier=True, correct_distortion=True), stage_done=snapshot)
-    assert list(seen) == ["columns", "ladder", "tiling", "phason"]
+    assert list(seen) == ["columns", "ladder", "tiling", "phason", "fourier"]
     for tables, curves, image, _ in seen.values():
         for name, table in tables.items():
             pd.testing.assert_frame_equal(table, final.tables[name])
         assert image is final.image
     assert set(seen["ladder"][1]) == {k for k in final.curves if k.startswith("pair_distribution")}
     assert seen["phason"][3] == final.summary["phason"]["real_space"]
+    assert seen["fourier"][3] == final.summary["fourier"]
     from tenfold.analysis.region import Region
 
     seen.clear()
