@@ -883,10 +883,11 @@ BACKGROUND_FIGURES = True
 #: seconds to wait for the helpers before drawing their figures here instead
 _BACKGROUND_TIMEOUT_S = 600.0
 
-#: seconds each figure takes on the 1024^2 image of benchmarks/bench_pipeline.py (PNG and SVG): the helpers draw
-#: from one queue, costly figures first, so they finish together; a figure not listed counts as _OTHER_FIGURE_S
-_FIGURE_SECONDS = {"column_diffraction": 0.8, "columns_overlay": 0.75, "power_spectrum": 0.55, "phason_map": 0.5,
-                   "pair_distribution_ladder": 0.4, "species_histogram": 0.2, "cluster_network": 0.15}
+#: about the seconds each figure takes (made, PNG and SVG) on the 1024^2 image of benchmarks/bench_pipeline.py:
+#: the helpers draw from one queue, costly figures first, so they finish together; a figure not listed counts as
+#: _OTHER_FIGURE_S
+_FIGURE_SECONDS = {"column_diffraction": 0.75, "phason_map": 0.6, "columns_overlay": 0.6, "power_spectrum": 0.5,
+                   "pair_distribution_ladder": 0.45, "species_histogram": 0.2, "cluster_network": 0.15}
 _OTHER_FIGURE_S = 0.3
 
 #: the figure service takes a result through a pipe, image included, up to this size; a larger image goes to a
