@@ -1219,6 +1219,9 @@ class _FigureService:
         import os
         import queue
 
+        # the stages' modules (the figure makers' homes) are imported here first, where the analysis needs them
+        # anyway: the service then shares them and imports matplotlib only
+        _load_figure_modules()
         job_read, job_write = os.pipe()
         self.state = _fork_process(lambda: _serve(job_read), close=(job_write,), group=True)
         os.close(job_read)
@@ -1307,12 +1310,14 @@ def figure_service(enabled: bool = True):
     """Start the figure service for the duration of a ``with`` block: :func:`write_results` then hands the
     figures of one result to it instead of importing matplotlib and drawing them itself.
 
-    The service is a forked process (Linux, and only while this process runs a single Python thread) that
-    imports matplotlib and the figure makers and draws a small figure while the analysis runs here, so that
-    neither the half second of imports nor the first-figure costs wait until the tables are written; with the
-    result it forks one more helper, and both draw the figures from one queue into the results' work folder
-    while this process writes the tables. Nothing is started when ``enabled`` is False, fork is not safe, or a
-    service already runs; the block then runs without one, and figures are drawn as usual.
+    The service is a forked process (Linux, and only while this process runs a single Python thread; the
+    stages' modules are imported here first, so it shares them) that imports matplotlib and draws a small
+    figure while the analysis runs here. Passed as ``run_pipeline(stage_done=service.stage_done)``, it draws
+    the figures of ``EARLY_FIGURES`` as soon as their stage is done, on the second core while the analysis goes
+    on; with the final result it writes them into the results' work folder and draws the rest together with one
+    more forked helper, from one queue, while this process writes the tables. Nothing is started when
+    ``enabled`` is False, fork is not safe, or a service already runs; the block then runs without one, and
+    figures are drawn as usual.
 
     Parameters
     ----------
