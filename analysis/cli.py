@@ -445,7 +445,7 @@ def _params_with_file(args):
 
 
 def _analyze(args) -> int:
-    from .export import write_results
+    from .export import figure_service, write_results
     from .pipeline import run_pipeline
 
     from ._guards import check_lengths
@@ -475,13 +475,17 @@ def _analyze(args) -> int:
             reg = parse_region(text, pixel_size_nm=ps, unit=args.region_unit)
             reg.label = k
             regions.append(reg)
-    result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution)
-    from ._timing import format_table, with_stage
+    # a process forked here imports matplotlib while the columns are found and draws each figure once the
+    # pipeline says its data are final (export.figure_service)
+    with figure_service(enabled=not args.no_figures) as service:
+        result = run_pipeline(mg, params, regions=regions, progress=prog, execution=execution,
+                              stage_done=service.stage_done if service is not None else None)
+        from ._timing import format_table, with_stage
 
-    result.summary["timings_s"] = with_stage(result.summary.get("timings_s"), "read", t_read, first=True)
-    prog(1.0, f"writing {args.out}")
-    t_export = time.perf_counter()
-    write_results(result, args.out, overwrite=args.overwrite, figures=not args.no_figures)
+        result.summary["timings_s"] = with_stage(result.summary.get("timings_s"), "read", t_read, first=True)
+        prog(1.0, f"writing {args.out}")
+        t_export = time.perf_counter()
+        write_results(result, args.out, overwrite=args.overwrite, figures=not args.no_figures)
     if args.debug:  # export is timed here only: summary.json is one of the files it writes
         timings = with_stage(result.summary["timings_s"], "export", time.perf_counter() - t_export)
         print("timings (wall seconds)\n" + format_table(timings), file=sys.stderr)

@@ -33,6 +33,7 @@ import re
 import shutil
 import warnings
 from collections.abc import Callable
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -52,6 +53,7 @@ __all__ = [
     "SPECIES_COLOURS",
     "SPECIES_MARKERS",
     "summary_table",
+    "figure_service",
 ]
 
 #: name -> figure maker. A maker takes the result and returns a matplotlib Figure, or None when it does not apply.
@@ -552,20 +554,25 @@ FIGURE_DPI = 150
 
 
 def _save_figure(fig, stem: Path) -> list[Path]:
+    png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
+    _render_figure(fig, png, svg)
+    return [png, svg]
+
+
+def _render_figure(fig, png, svg) -> None:
+    """Draw ``fig`` as PNG into ``png`` and as SVG into ``svg`` (paths or binary file objects)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     FigureCanvasAgg(fig)
     _rasterise_dense_layers(fig)
-    png, svg = stem.with_suffix(".png"), stem.with_suffix(".svg")
     # fastest zlib level: the figure PNGs are written on every run; a third larger files, several times faster.
     # FIGURE_DPI: a 7 inch overlay of a 1k image keeps one pixel per image pixel
-    fig.savefig(png, dpi=FIGURE_DPI, pil_kwargs={"compress_level": 1})
+    fig.savefig(png, format="png", dpi=FIGURE_DPI, pil_kwargs={"compress_level": 1})
     # the layout engine placed the axes while drawing the PNG (in figure fractions, the same at any dpi); freezing
     # it spares the SVG a second pass of text measuring, a third of the figure time
     if fig.get_layout_engine() is not None:
         fig.set_layout_engine("none")
-    fig.savefig(svg)
-    return [png, svg]
+    fig.savefig(svg, format="svg")
 
 
 def _species_colour(species: int) -> tuple[str, str]:
@@ -659,7 +666,13 @@ def columns_overlay(result: AnalysisResult):
     ax = fig.add_subplot()
     # pixel centres at integer coordinates, as in the table convention; a block-averaged image keeps pixel centres where the table puts them: block k spans k*step-0.5..(k+1)*step-0.5
     extent = (-0.5, img.shape[1] * step - 0.5, img.shape[0] * step - 0.5, -0.5)
-    ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest", extent=extent)
+    # grey levels looked up once, as the gray colormap would (the same pixels): matplotlib then resamples one
+    # byte image instead of the float image and its mask
+    from matplotlib import colormaps
+    from matplotlib.colors import Normalize
+
+    grey = colormaps["gray"](Normalize(lo, hi if hi > lo else lo + 1)(img), bytes=True)
+    ax.imshow(grey, interpolation="nearest", extent=extent)
     table = result.tables.get("columns")
     n = 0
     if table is not None and not table.empty:
@@ -814,13 +827,20 @@ def _write_all(result: AnalysisResult, tmp: Path, *, figures: bool, progress) ->
         return [tmp / "results.xlsx"]
 
     job("results.xlsx", workbook)
-    if figures:
-        jobs.extend(_figure_jobs(result, tmp, progress))
+    drawing = None
+    if figures:  # helpers start drawing before the tables are written and are waited for after
+        first, last, drawing = _figure_jobs(result, tmp, progress)
+        jobs = [*first, *jobs, *last]
 
     written: list[Path] = []
-    for i, (label, func) in enumerate(jobs):
-        report(progress, i / len(jobs), f"writing {label}")
-        written.extend(func())
+    try:
+        for i, (label, func) in enumerate(jobs):
+            report(progress, i / len(jobs), f"writing {label}")
+            written.extend(func())
+    except BaseException:
+        if drawing is not None:  # no helper goes on writing into a work folder about to be removed
+            drawing.abort()
+        raise
     report(progress, 1.0, "results written")
     return written
 
@@ -854,32 +874,49 @@ def _write_parameters(result: AnalysisResult, tmp: Path) -> list[Path]:
     return [path]
 
 
-#: draw about half of the figures in a forked helper process while this one draws the rest (Linux, and only when
-#: the caller runs a single Python thread, as the command line does: forking a process with running threads, such
-#: as a GUI, is not safe). The helper writes into the same work folder, so the results stay all-or-nothing; if it
-#: fails in any way its figures are drawn here instead.
+#: draw the figures in forked helper processes while this one writes the tables (Linux, and only when the caller
+#: runs a single Python thread, as the command line does: forking a process with running threads, such as a GUI,
+#: is not safe). The helpers write into the same work folder, so the results stay all-or-nothing; a figure no
+#: helper reports drawn (a helper failed in any way) is drawn here instead.
 BACKGROUND_FIGURES = True
 
-#: seconds to wait for the helper before drawing its figures here instead
+#: seconds to wait for the helpers before drawing their figures here instead
 _BACKGROUND_TIMEOUT_S = 600.0
 
+#: about the seconds each figure takes (made, PNG and SVG) on the 1024^2 image of benchmarks/bench_pipeline.py:
+#: the helpers draw from one queue, costly figures first, so they finish together; a figure not listed counts as
+#: _OTHER_FIGURE_S
+_FIGURE_SECONDS = {"column_diffraction": 0.75, "phason_map": 0.6, "columns_overlay": 0.6, "power_spectrum": 0.5,
+                   "pair_distribution_ladder": 0.45, "species_histogram": 0.2, "cluster_network": 0.15}
+_OTHER_FIGURE_S = 0.3
 
-def _figure_jobs(result: AnalysisResult, tmp: Path, progress) -> list[tuple[str, Callable[[], list[Path]]]]:
-    """The (label, job) list that draws every registered figure into ``tmp/figures``."""
+#: the figure service takes a result through a pipe, image included, up to this size; a larger image goes to a
+#: helper forked when the figures are due, which shares this process's memory instead of copying it
+_SERVICE_MAX_IMAGE_BYTES = 256 * 2**20
+
+#: the running figure service (see :func:`figure_service`), or None
+_SERVICE: _FigureService | None = None
+
+
+def _figure_jobs(result: AnalysisResult, tmp: Path, progress):
+    """Jobs that draw every registered figure into ``tmp/figures``: (first, last, drawing). ``first`` hands the
+    figures to helper processes and runs before the tables are written, ``last`` draws or collects them after;
+    ``drawing`` (or None) is to be aborted if the export fails in between."""
     _load_figure_modules()
-    makers = list(FIGURES.items())
-
-    def draw(name, maker):
-        return lambda: _figure_job(result, name, maker, tmp)
-
+    makers = sorted(FIGURES.items(), key=lambda item: -_FIGURE_SECONDS.get(item[0], _OTHER_FIGURE_S))
+    service = _SERVICE
+    if makers and service is not None and service.takes(result):
+        drawing = _FigureDrawing(result, makers, tmp, progress)
+        return ([("figures (helper processes)", lambda: drawing.send_to(service))],
+                [("figures (helper processes)", drawing.collect)], drawing)
     if not (BACKGROUND_FIGURES and len(makers) >= 2 and _fork_is_safe()):
-        return [(f"figures/{name}", draw(name, maker)) for name, maker in makers]
+        return [], [(f"figures/{name}", lambda name=name, maker=maker: _figure_job(result, name, maker, tmp))
+                    for name, maker in makers], None
     import matplotlib.figure  # noqa: F401  imported before the fork, so the helper does not import it again
 
-    helper = _FigureHelper(result, makers[0::2], tmp, progress)
-    return [("figures (helper process)", helper.start),
-            *[(f"figures/{name}", draw(name, maker)) for name, maker in makers[1::2]],
-            ("figures (helper process)", helper.collect)]
+    drawing = _FigureDrawing(result, makers, tmp, progress)
+    return ([("figures (helper process)", drawing.fork_helper)],
+            [("figures", drawing.draw_here), ("figures (helper process)", drawing.collect)], drawing)
 
 
 def _fork_is_safe() -> bool:
@@ -889,95 +926,435 @@ def _fork_is_safe() -> bool:
     return sys.platform.startswith("linux") and threading.active_count() == 1
 
 
-class _FigureHelper:
-    """A forked process drawing some figures into the work folder; :meth:`collect` waits for it (reporting
-    progress, so a cancel kills it) and returns the files it wrote, or draws its figures here if it failed."""
+def _fork_process(body: Callable[[], dict], *, close: tuple[int, ...] = (), group: bool = False) -> dict:
+    """Fork a process that runs ``body()`` and sends its JSON-safe answer back through a pipe, then leaves without
+    clean-up; returns the state :func:`_wait_for` and :func:`_end_process` take. ``close``: descriptors the child
+    closes first; ``group``: the child leads a process group of its own (and its own helpers), so a kill reaches
+    them all and the terminal's Ctrl-C does not (this process ends it)."""
+    import os
 
-    def __init__(self, result, makers, tmp: Path, progress) -> None:
+    read_fd, write_fd = os.pipe()
+    pid = os.fork()
+    if pid == 0:
+        code = 1
+        try:
+            os.close(read_fd)
+            for fd in close:
+                os.close(fd)
+            if group:
+                os.setpgid(0, 0)
+            msg = json.dumps(body())
+            with os.fdopen(write_fd, "w", encoding="utf-8") as f:
+                f.write(msg)
+            code = 0
+        finally:
+            os._exit(code)
+    os.close(write_fd)
+    if group:
+        try:  # set on both sides, so a kill right after the fork reaches the group
+            os.setpgid(pid, pid)
+        except OSError:
+            pass
+    return {"pid": pid, "fd": read_fd, "group": group}
+
+
+def _end_process(state: dict, kill: bool) -> int | None:
+    """Reap a process of :func:`_fork_process` once (killing it, and its group, first when ``kill``) and close its
+    pipe; its exit status, or None when it was reaped already."""
+    import os
+    import signal
+
+    pid, fd = state.pop("pid", None), state.pop("fd", None)
+    if fd is not None:
+        os.close(fd)
+    if pid is None:
+        return None
+    if kill:
+        try:
+            (os.killpg if state.get("group") else os.kill)(pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    return os.waitpid(pid, 0)[1]
+
+
+def _wait_for(state: dict, progress) -> dict | None:
+    """The answer of a process of :func:`_fork_process` (reporting progress while waiting, so a cancel kills it),
+    reaped; None when it failed or took longer than ``_BACKGROUND_TIMEOUT_S``."""
+    import os
+    import select
+    import time
+
+    if "pid" not in state:
+        return None
+    chunks, t0, done = [], time.monotonic(), False
+    try:
+        while not done and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
+            report(progress, 0.99, "waiting for the figures drawn by the helper process")
+            if select.select([state["fd"]], [], [], 0.1)[0]:
+                data = os.read(state["fd"], 1 << 16)
+                chunks.append(data)
+                done = not data
+    except BaseException:  # cancelled or interrupted: stop the process, then pass the reason on
+        _end_process(state, True)
+        raise
+    status = _end_process(state, not done)
+    try:
+        return json.loads(b"".join(chunks).decode("utf-8")) if done and status == 0 else None
+    except ValueError:
+        return None
+
+
+def _figure_queue(n: int) -> int:
+    """A pipe holding the numbers 0 .. n-1 (two bytes each), read end returned: processes sharing it take the next
+    figure with one two-byte read each, which the pipe hands out whole and once."""
+    import os
+
+    if n > 16384:  # the numbers must fit the pipe's buffer, or writing them would block
+        raise ValueError(f"{n} figures are too many for one queue")
+    read_fd, write_fd = os.pipe()
+    os.write(write_fd, b"".join(k.to_bytes(2, "little") for k in range(n)))
+    os.close(write_fd)
+    return read_fd
+
+
+def _draw_from_queue(jobs: list, tmp: Path, queue: int, *, capture: bool) -> dict:
+    """Draw the figures (result, name, maker) of ``jobs`` whose numbers this process takes from ``queue`` until it
+    is empty: {'paths', 'drawn', 'warnings'}; ``capture`` records the TenfoldWarnings (for another process to
+    repeat) instead of raising them."""
+    import os
+
+    paths, drawn = [], []
+    with warnings.catch_warnings(record=capture) as caught:
+        if capture:
+            warnings.simplefilter("always", TenfoldWarning)
+        while len(ticket := os.read(queue, 2)) == 2:
+            result, name, maker = jobs[int.from_bytes(ticket, "little")]
+            paths.extend(str(p) for p in _figure_job(result, name, maker, tmp))
+            drawn.append(name)
+    said = [str(w.message) for w in caught or () if issubclass(w.category, TenfoldWarning)]
+    return {"paths": paths, "drawn": drawn, "warnings": said}
+
+
+class _FigureDrawing:
+    """The figures of one export, drawn by helper processes from one queue: a helper forked now
+    (:meth:`fork_helper`, with this process taking figures from the queue too, :meth:`draw_here`) or the figure
+    service (:meth:`send_to`). :meth:`collect` waits for the helpers and draws here whatever they did not report
+    drawn."""
+
+    def __init__(self, result: AnalysisResult, makers: list, tmp: Path, progress) -> None:
         self.result, self.makers, self.tmp, self.progress = result, makers, tmp, progress
         self.state: dict = {}
+        self.queue: int | None = None
+        self.drawn: set[str] = set()
 
-    def start(self) -> list[Path]:
-        import os
+    def fork_helper(self) -> list[Path]:
         import weakref
 
         (self.tmp / "figures").mkdir(exist_ok=True)
-        read_fd, write_fd = os.pipe()
-        pid = os.fork()
-        if pid == 0:  # the helper: draw, report the files and warnings through the pipe, leave without cleanup
-            code = 1
-            try:
-                os.close(read_fd)
-                with warnings.catch_warnings(record=True) as caught:
-                    warnings.simplefilter("always", TenfoldWarning)
-                    paths = [str(p) for p in self._draw()]
-                msg = json.dumps({"paths": paths, "warnings": [str(w.message) for w in caught
-                                                               if issubclass(w.category, TenfoldWarning)]})
-                with os.fdopen(write_fd, "w", encoding="utf-8") as f:
-                    f.write(msg)
-                code = 0
-            finally:
-                os._exit(code)
-        os.close(write_fd)
-        self.state = {"pid": pid, "fd": read_fd}
-        weakref.finalize(self, _FigureHelper._end, self.state, True)  # never left running if the run stops early
+        self.queue = _figure_queue(len(self.makers))
+        jobs = [(self.result, name, maker) for name, maker in self.makers]
+        self.state = _fork_process(lambda: _draw_from_queue(jobs, self.tmp, self.queue, capture=True))
+        weakref.finalize(self, _end_process, self.state, True)  # never left running if the run stops early
         return []
 
-    def _draw(self) -> list[Path]:
-        return [p for name, maker in self.makers for p in _figure_job(self.result, name, maker, self.tmp)]
+    def send_to(self, service: _FigureService) -> list[Path]:
+        (self.tmp / "figures").mkdir(exist_ok=True)
+        self.state = service.state  # from now on this export's to wait for, or to abort
+        service.submit((self.result, self.makers, self.tmp), self.progress)
+        return []
 
-    @staticmethod
-    def _end(state: dict, kill: bool) -> int | None:
-        """Reap the helper once (killing it first when ``kill``) and close the pipe; its exit status or None."""
-        import os
-        import signal
-
-        pid, fd = state.pop("pid", None), state.pop("fd", None)
-        if fd is not None:
-            os.close(fd)
-        if pid is None:
-            return None
-        if kill:
-            os.kill(pid, signal.SIGKILL)
-        return os.waitpid(pid, 0)[1]
-
-    def collect(self) -> list[Path]:
-        import os
-        import select
-        import time
-
-        chunks, t0, done = [], time.monotonic(), False
-        try:
-            while not done and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
-                report(self.progress, 0.99, "waiting for the figures drawn by the helper process")
-                if select.select([self.state["fd"]], [], [], 0.1)[0]:
-                    data = os.read(self.state["fd"], 1 << 16)
-                    chunks.append(data)
-                    done = not data
-        except BaseException:  # cancelled or interrupted: stop the helper, then pass the reason on
-            self._end(self.state, True)
-            raise
-        status = self._end(self.state, not done)
-        try:
-            got = json.loads(b"".join(chunks).decode("utf-8")) if done and status == 0 else None
-        except ValueError:
-            got = None
-        if got is None:  # the helper failed or hung: draw its figures here
-            return self._draw()
-        for msg in got["warnings"]:
-            warnings.warn(msg, TenfoldWarning, stacklevel=2)
+    def draw_here(self) -> list[Path]:
+        got = _draw_from_queue([(self.result, name, maker) for name, maker in self.makers], self.tmp, self.queue,
+                               capture=False)
+        self.drawn.update(got["drawn"])
         return [Path(p) for p in got["paths"]]
 
+    def collect(self) -> list[Path]:
+        got = _wait_for(self.state, self.progress) or {}
+        self._close_queue()
+        for msg in got.get("warnings", ()):
+            warnings.warn(msg, TenfoldWarning, stacklevel=2)
+        self.drawn.update(got.get("drawn", ()))
+        paths = [Path(p) for p in got.get("paths", ())]
+        for name, maker in self.makers:  # what a failed helper left undone
+            if name not in self.drawn:
+                paths.extend(_figure_job(self.result, name, maker, self.tmp))
+        return paths
 
-def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:
+    def abort(self) -> None:
+        """Stop the helpers (the export failed or was cancelled)."""
+        _end_process(self.state, True)
+        self._close_queue()
+
+    def _close_queue(self) -> None:
+        import os
+
+        if self.queue is not None:
+            os.close(self.queue)
+            self.queue = None
+
+
+def _warm_up() -> None:
+    """Import matplotlib and the figure makers and draw one small figure of each kind of mark (loads fonts and
+    fills caches), so the first real figure costs no more than the others."""
+    import io
+
+    from matplotlib.backends import backend_svg  # noqa: F401
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    _load_figure_modules()
+    fig = Figure(figsize=(2.0, 2.0), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.imshow(np.zeros((4, 4)), cmap="gray")
+    ax.plot([0, 1], [0, 1], marker="o", label="a")
+    ax.scatter([0, 1], [1, 0], s=4)
+    ax.set(title="t", xlabel="x ($px^2$)", ylabel="y")
+    ax.legend(fontsize="small")
+    fig.colorbar(ax.images[0], ax=ax)
+    fig.savefig(io.BytesIO(), format="png", dpi=FIGURE_DPI)
+    fig.set_layout_engine("none")
+    fig.savefig(io.BytesIO(), format="svg")
+
+
+#: figures whose inputs are final once a stage is done (the pipeline's ``stage_done`` names): the figure service
+#: draws them while the analysis goes on
+EARLY_FIGURES = {"columns": ("columns_overlay", "species_histogram"), "ladder": ("pair_distribution_ladder",),
+                 "tiling": ("cluster_network",), "phason": ("phason_map",),
+                 "fourier": ("power_spectrum", "column_diffraction")}
+
+
+def _message(obj) -> bytes:
+    """``obj`` pickled, after its length (8 bytes): one message for :func:`_read_message`."""
+    import pickle
+
+    body = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+    return len(body).to_bytes(8, "little") + body
+
+
+def _read_message(fd: int):
+    """The next object a :func:`_message` written to ``fd`` holds; None at the end of the pipe."""
+    import os
+    import pickle
+
+    def exactly(n: int) -> bytes | None:
+        chunks = []
+        while n and (chunk := os.read(fd, min(n, 1 << 20))):
+            chunks.append(chunk)
+            n -= len(chunk)
+        return None if n else b"".join(chunks)
+
+    head = exactly(8)
+    body = exactly(int.from_bytes(head, "little")) if head else None
+    return None if body is None else pickle.loads(body)
+
+
+def _serve(job_fd: int) -> dict:
+    """The figure service's life (in its own process): warm up; as ('early', result so far, makers) messages
+    arrive on ``job_fd``, draw those figures into memory one by one, taking every message waiting before the
+    next figure; on the ('final', result, makers, work folder) message write the ones drawn and draw the rest
+    (the early ones not reached yet with the result they were told with) together with one more forked helper
+    from one queue, costly figures first; answer what was drawn."""
+    import io
+    import os
+    import select
+
+    _warm_up()
+    early: dict[str, dict] = {}  # name -> {'.png': bytes, '.svg': bytes} (empty: the figure does not apply)
+    told: list[tuple] = []  # (result, name, maker) not drawn yet
+    said: list[str] = []
+    final = None
+    while final is None:
+        if not told or select.select([job_fd], [], [], 0)[0]:
+            msg = _read_message(job_fd)  # waits when there is nothing to draw
+            if msg is None:  # the run ended without figures
+                return {}
+            if msg[0] == "final":
+                final = msg
+            else:
+                told += [(msg[1], name, maker) for name, maker in msg[2]]
+            continue
+        result, name, maker = told.pop(0)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", TenfoldWarning)
+            fig = _make_figure(result, name, maker)
+            files = {".png": io.BytesIO(), ".svg": io.BytesIO()} if fig is not None else {}
+            if fig is not None:
+                _render_figure(fig, files[".png"], files[".svg"])
+            early[name] = {suffix: f.getvalue() for suffix, f in files.items()}
+        said += [str(w.message) for w in caught if issubclass(w.category, TenfoldWarning)]
+    os.close(job_fd)
+    _, result, makers, tmp = final
+    wanted = {name for name, _maker in makers}
+    paths, drawn = [], []
+    for name, files in early.items():
+        if name in wanted:
+            for suffix, data in files.items():
+                path = (tmp / "figures" / _safe_stem(name)).with_suffix(suffix)
+                path.write_bytes(data)
+                paths.append(str(path))
+            drawn.append(name)
+    pending = [job for job in told if job[1] in wanted]
+    pending += [(result, name, maker) for name, maker in makers
+                if name not in early and name not in {job[1] for job in told}]
+    pending.sort(key=lambda job: -_FIGURE_SECONDS.get(job[1], _OTHER_FIGURE_S))
+    queue = _figure_queue(len(pending))
+    other = _fork_process(lambda: _draw_from_queue(pending, tmp, queue, capture=True))
+    mine = _draw_from_queue(pending, tmp, queue, capture=True)
+    got = _wait_for(other, None) or {}
+    return {"paths": paths + mine["paths"] + got.get("paths", []), "drawn": drawn + mine["drawn"] +
+            got.get("drawn", []), "warnings": said + mine["warnings"] + got.get("warnings", [])}
+
+
+class _FigureService:
+    """A process forked early in a command-line run that imports matplotlib and the figure makers while the
+    analysis runs in this one, draws the figures whose data are final while the analysis goes on
+    (:meth:`stage_done`), then draws the rest of the finished result (see :func:`figure_service`).
+
+    Messages go to it through a pipe, written by a thread of this process so that the analysis never waits for
+    the service to read: it may be busy drawing."""
+
+    def __init__(self) -> None:
+        import os
+        import queue
+
+        # the stages' modules (the figure makers' homes) are imported here first, where the analysis needs them
+        # anyway: the service then shares them and imports matplotlib only
+        _load_figure_modules()
+        job_read, job_write = os.pipe()
+        self.state = _fork_process(lambda: _serve(job_read), close=(job_write,), group=True)
+        os.close(job_read)
+        self.job_fd: int | None = job_write
+        self.outbox: queue.SimpleQueue = queue.SimpleQueue()
+        self.sender = None
+        self.final_sent = False
+
+    def takes(self, result: AnalysisResult) -> bool:
+        """Whether this service can still take ``result``'s figures (once, and not for a huge image)."""
+        return not self.final_sent and "pid" in self.state and _small_enough(result)
+
+    def stage_done(self, stage: str, result: AnalysisResult) -> None:
+        """Hand the figures of ``EARLY_FIGURES[stage]`` to the service, with ``result`` as it is now; for
+        ``run_pipeline(stage_done=...)``."""
+        names = EARLY_FIGURES.get(stage, ())
+        if not (names and self.takes(result)):
+            return
+        _load_figure_modules()
+        try:
+            self._post(_message(("early", result, [(name, FIGURES[name]) for name in names if name in FIGURES])))
+        except Exception:  # not picklable: nothing is sent, and these figures are drawn with the rest
+            pass
+
+    def submit(self, job: tuple, progress) -> None:
+        """Send the final ``job`` (result, makers, work folder) and wait until it is written. A job that cannot be
+        pickled, or a service that died, leaves the service without it: it answers nothing drawn, and the
+        caller draws the figures."""
+        import time
+
+        self.final_sent = True
+        try:
+            self._post(_message(("final", *job)))
+        except Exception:
+            pass
+        self._post(None)  # the end of the messages: the sender closes the pipe
+        t0 = time.monotonic()
+        while self.sender.is_alive() and time.monotonic() - t0 < _BACKGROUND_TIMEOUT_S:
+            report(progress, 0.0, "waiting for the figure process to take the results")
+            self.sender.join(0.1)
+
+    def _post(self, data: bytes | None) -> None:
+        import threading
+
+        if self.sender is None:
+            self.sender = threading.Thread(target=self._send_all, name="tenfold-figure-messages", daemon=True)
+            self.sender.start()
+        self.outbox.put(data)
+
+    def _send_all(self) -> None:
+        """The sender thread: write the posted messages in order until None; on a broken pipe (the service died)
+        the rest are dropped."""
+        import os
+
+        fd = self.job_fd
+        try:
+            while (data := self.outbox.get()) is not None:
+                view = memoryview(data)
+                while view:
+                    view = view[os.write(fd, view[: 1 << 20]):]
+        except OSError:
+            pass
+        finally:
+            self.job_fd = None
+            os.close(fd)
+
+    def close(self) -> None:
+        """End the service (killing it if it still runs) and reap it; the sender thread ends with it."""
+        import os
+
+        _end_process(self.state, True)
+        if self.sender is not None:
+            self.outbox.put(None)
+            self.sender.join(5.0)
+        elif self.job_fd is not None:
+            os.close(self.job_fd)
+            self.job_fd = None
+
+
+def _small_enough(result: AnalysisResult) -> bool:
+    return result.image is None or np.asarray(result.image).nbytes <= _SERVICE_MAX_IMAGE_BYTES
+
+
+@contextmanager
+def figure_service(enabled: bool = True):
+    """Start the figure service for the duration of a ``with`` block: :func:`write_results` then hands the
+    figures of one result to it instead of importing matplotlib and drawing them itself.
+
+    The service is a forked process (Linux, and only while this process runs a single Python thread; the
+    stages' modules are imported here first, so it shares them) that imports matplotlib and draws a small
+    figure while the analysis runs here. Passed as ``run_pipeline(stage_done=service.stage_done)``, it draws
+    the figures of ``EARLY_FIGURES`` as soon as their stage is done, on the second core while the analysis goes
+    on; with the final result it writes them into the results' work folder and draws the rest together with one
+    more forked helper, from one queue, while this process writes the tables. Nothing is started when
+    ``enabled`` is False, fork is not safe, or a service already runs; the block then runs without one, and
+    figures are drawn as usual.
+
+    Parameters
+    ----------
+    enabled : bool, default True
+        False: start nothing (e.g. ``--no-figures``).
+
+    Yields
+    ------
+    object or None
+        The service, or None when none was started.
+    """
+    global _SERVICE
+    if not (enabled and BACKGROUND_FIGURES and _SERVICE is None and _fork_is_safe()):
+        yield None
+        return
+    service = _SERVICE = _FigureService()
     try:
-        fig = maker(result)
+        yield service
+    finally:
+        _SERVICE = None
+        service.close()
+
+
+def _make_figure(result: AnalysisResult, name: str, maker):
+    """``maker(result)``: a Figure, or None when it does not apply or failed (with a warning)."""
+    try:
+        return maker(result)
     except (Cancelled, KeyboardInterrupt):
         raise
     except Exception as exc:  # one broken figure must not lose the tables
         warnings.warn(f"figure {name!r} could not be drawn ({type(exc).__name__}: {exc}); other files are written",
-                      TenfoldWarning, stacklevel=4)
-        return []
+                      TenfoldWarning, stacklevel=5)
+        return None
+
+
+def _figure_job(result: AnalysisResult, name: str, maker, tmp: Path) -> list[Path]:
+    fig = _make_figure(result, name, maker)
     if fig is None:
         return []
     (tmp / "figures").mkdir(exist_ok=True)

@@ -1331,7 +1331,9 @@ def spectrum_figure(result):
         kx, ky = spots["kx_per_px"].to_numpy() * s, spots["ky_per_px"].to_numpy() * s
         lim = min(lim, 1.15 * float(np.percentile(np.hypot(kx, ky), 95)))
     shown, ext = _shown_part(spec, dk * s, lim)
-    ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(spec, 99.9)))
+    # one figure pixel block per spectrum sample (no smoothing): spots stay the single samples they are, and the
+    # SVG embeds the samples as they are instead of a resampled copy
+    ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(spec, 99.9)), interpolation="none")
     if spots is not None and len(spots):
         ind = spots["indexed"].to_numpy(dtype=bool) if "indexed" in spots else np.zeros(len(spots), bool)
         ax.scatter(kx[~ind], ky[~ind], s=30, facecolors="none", edgecolors="#bbbbbb", linewidths=0.6,
@@ -1472,7 +1474,7 @@ def diffraction_figure(result):
     for ax, img, title in zip(fig.subplots(1, 2), (spec, kin),
                               ("image power spectrum", "kinematic |sum f exp(-2 pi i k.r)|^2 of the found columns")):
         shown, ext = _shown_part(img, dk * s, lim)
-        ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(img, 99.9)))
+        ax.imshow(shown, cmap="gray", extent=ext, vmax=float(np.percentile(img, 99.9)), interpolation="none")
         ax.set(xlim=(-lim, lim), ylim=(lim, -lim), xlabel=f"k_x ({unit})", ylabel=f"k_y ({unit})")
         ax.set_title(title, fontsize=9)
     return fig

@@ -306,8 +306,21 @@ def _curve_fit_one(x: np.ndarray, y: np.ndarray, p0) -> np.ndarray:
     if not (np.isfinite(x).all() and np.isfinite(y).all()):
         return np.full(5, np.nan)
 
+    # MINPACK calls the residual up to 2000 times per fit (a narrow peak that never converges uses them all), and
+    # its finite-difference Jacobian steps a, c0 and c1 with mu and s held: the Gaussian of the last few (mu, s)
+    # is kept. _gauss_bg's operations in its order, on Python floats: the same bits.
+    shapes: dict = {}
+
     def residual(p):
-        return _gauss_bg(x, *p) - y
+        a, mu, s, c0, c1 = p.tolist()
+        shape = shapes.get((mu, s))
+        if shape is None:
+            if len(shapes) > 8:
+                shapes.clear()
+            d = x - mu
+            shape = shapes[mu, s] = (d, np.exp(-0.5 * (d / s) ** 2))
+        d, e = shape
+        return a * e + c0 + c1 * d - y
 
     with np.errstate(all="ignore"):
         p, _, _, _, ier = leastsq(residual, np.atleast_1d(np.asarray(p0, dtype=float)), full_output=1, maxfev=2000)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import warnings
+from collections.abc import Callable
 
 import numpy as np
 import pandas as pd
@@ -98,7 +99,7 @@ def _region_summaries(result: AnalysisResult, regions) -> list[dict]:
 
 
 def _structure(result: AnalysisResult, params: Parameters, lengths: ResolvedLengths, regions,
-               progress: ProgressCallback | None) -> None:
+               progress: ProgressCallback | None, stage_done=None) -> None:
     """Motifs, ladders and tiling from the columns table in ``result`` (fills tables, curves and summary); the
     stages take the lengths in px as ``resolve_lengths`` resolved them."""
     from . import ladder as _ladder
@@ -174,6 +175,8 @@ def _structure(result: AnalysisResult, params: Parameters, lengths: ResolvedLeng
     l_info["agreement"] = _ladder.ladder_agreement(result.tables["ladder"], result.tables["pair_peaks"])
     result.summary["ladder"] = l_info
     _timing.lap("ladder")
+    if stage_done is not None:
+        stage_done("ladder", result)
     report(progress, 0.75, "cluster network and tiling")
     network, tiles, t_info = _tiling.build_network(
         motifs, tiling_edge_px=lengths.px("tiling_edge"), pixel_size_nm=ps,
@@ -189,11 +192,15 @@ def _structure(result: AnalysisResult, params: Parameters, lengths: ResolvedLeng
         n_columns=len(ok), columns_info=result.summary.get("columns"), motifs=motifs, motifs_info=m_info,
         ladder_info=l_info, tiling_info=t_info, pair_peaks=result.tables["pair_peaks"]) if n not in notes)
     _timing.lap("tiling")
+    if stage_done is not None:
+        stage_done("tiling", result)
     if params.phason:
         from .phason import phason_stage
 
         phason_stage(result, rng=params.rng)
         _timing.lap("phason")
+        if stage_done is not None:
+            stage_done("phason", result)
     report(progress, 1.0, "structure done")
 
 
@@ -251,6 +258,7 @@ def run_pipeline(
     regions=None,
     progress: ProgressCallback | None = None,
     execution=None,
+    stage_done: Callable[[str, AnalysisResult], None] | None = None,
 ) -> AnalysisResult:
     """Run every stage on one micrograph.
 
@@ -267,6 +275,14 @@ def run_pipeline(
     execution : parallel.Execution, optional
         Tiles, workers and scheduler for the column finding (:mod:`tenfold.analysis.parallel`); default: untiled
         up to ``AUTO_TILE_ABOVE_PX`` on a side, tiled above, serial.
+    stage_done : callable(stage, result), optional
+        Called with the result so far once a stage's outputs are final: 'columns' (the image and the columns
+        table, after any distortion correction), 'ladder' (the ladder and pair-peak tables and the
+        pair-distribution curves), 'tiling' (the motifs, network and tiles tables), 'phason' (the phason_map
+        table and ``summary['phason']['real_space']``) and 'fourier' (the spots table and ``summary['fourier']``).
+        Front ends use it to start work early (the command line draws those figures
+        while the analysis goes on); the result is still being filled, so read it and do not keep it. Not
+        called for regions analysed in a crop (their tables are shifted at the end).
 
     Returns
     -------
@@ -279,13 +295,13 @@ def run_pipeline(
     _guards.check_lengths(params, micrograph.data.shape, micrograph.meta.pixel_size_nm)
     try:
         lengths = resolve_lengths(params, micrograph.meta.pixel_size_nm)  # once, before any stage runs
-        return _run_regions(micrograph, params, lengths, regions, progress, execution)
+        return _run_regions(micrograph, params, lengths, regions, progress, execution, stage_done)
     except TenfoldInputError as exc:  # the one line names the file, whichever stage raised
         raise _guards.with_file(exc, micrograph.meta.path) from None
 
 
 def _run_regions(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, regions, progress,
-                 execution=None) -> AnalysisResult:
+                 execution=None, stage_done=None) -> AnalysisResult:
     _guards.check_regions(regions, micrograph.data.shape)
     if regions:
         # small regions of a large image: analyse their bounding box (with a margin) and shift the tables back
@@ -298,7 +314,7 @@ def _run_regions(micrograph: Micrograph, params: Parameters, lengths: ResolvedLe
             shift_result(result, micrograph, offset)
             return result
     with _guards.small_image_hint(micrograph.data.shape):
-        return _run(micrograph, params, lengths, regions, progress, execution)
+        return _run(micrograph, params, lengths, regions, progress, execution, stage_done)
 
 
 def _column_finder(micrograph: Micrograph, params: Parameters, execution):
@@ -340,7 +356,7 @@ def _fourier_input(micrograph: Micrograph, tiled: bool):
 
 
 def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, regions, progress,
-         execution=None) -> AnalysisResult:
+         execution=None, stage_done=None) -> AnalysisResult:
     meta = micrograph.meta
     ps = meta.pixel_size_nm
     result = AnalysisResult(meta=meta, parameters=params.to_dict(), image=micrograph.data)
@@ -385,7 +401,9 @@ def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, r
         elif params.correct_distortion:
             result.summary.setdefault("notes", []).append(
                 "correct_distortion needs the Fourier stage (fourier = true): positions were not corrected")
-        _structure(result, params, lengths, regions, sub_progress(progress, 0.55, 0.9))
+        if stage_done is not None:
+            stage_done("columns", result)
+        _structure(result, params, lengths, regions, sub_progress(progress, 0.55, 0.9), stage_done)
         if params.fourier:
             report(progress, 0.9, "power spectrum")
             from .fourier import fourier_stage
@@ -396,6 +414,8 @@ def _run(micrograph: Micrograph, params: Parameters, lengths: ResolvedLengths, r
                 f_info = result.summary["fourier"]
                 f_info["notes"] = [*(f_info.get("notes") or []), f_note]
                 f_info["crop_note"] = f_note
+            if stage_done is not None:
+                stage_done("fourier", result)
         report(progress, 1.0, "analysis done")
     result.summary["timings_s"] = clock.as_dict()  # wall seconds per stage of this run
     _timing.stop(clock)

@@ -7,13 +7,17 @@ fresh process each time, as a user runs it, so the figures include interpreter s
 cache load; the stage table is its ``summary['timings_s']`` plus the export seconds it prints. trackpy.locate is
 timed in this process after its own warm-up, with the diameter the analysis chose (odd, >= 4.5 sigma).
 
-Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a ratio to trackpy.locate.
+Target (issue 15): whole analyze <= 4 s on an idle 2-core machine, reported as a ratio to trackpy.locate; with
+``--python`` the ratio of this tree's whole analyze to each other tree's is printed too (fastest and median run).
 The machine's load average is printed beside the figures: on a shared machine compare runs made together.
 
-Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--python OTHER ...]``;
+Run: ``python benchmarks/bench_pipeline.py [--repeat 3] [--size 1024] [--no-figures] [--no-compile]
+[--python OTHER ...]``;
 ``--python`` adds interpreters with another Tenfold installed (e.g. an older tree in its own venv): their runs are
 interleaved with this one's, so a shared machine's load hits both alike. A stage an older tree does not time shows
-as missing; its export seconds come from its ``--debug`` output when it prints them.
+as missing; its export seconds come from its ``--debug`` output when it prints them. Each tree is byte-compiled
+first, as installing it does (``--no-compile``: not; an editable tree under PYTHONDONTWRITEBYTECODE then compiles
+its source at every start).
 """
 
 from __future__ import annotations
@@ -41,6 +45,15 @@ def _image(folder: Path, size: int) -> tuple[Path, np.ndarray]:
     write_tiff(path, img, pixel_size_nm=params["pixel_size_nm"])
     print(f"image: {size} x {size} px, {len(truth)} columns, pixel {params['pixel_size_nm']:.4g} nm")
     return path, img
+
+
+def _compile(python: str) -> None:
+    """Byte-compile the Tenfold tree ``python`` imports, as ``pip install`` does: an editable tree under
+    PYTHONDONTWRITEBYTECODE would otherwise compile some 0.9 MB of source at every start (a few tenths of a s)."""
+    code = "import os, tenfold.analysis as a; print(os.path.dirname(a.__file__))"
+    folder = subprocess.run([python, "-c", code], capture_output=True, text=True, check=True).stdout.strip()
+    subprocess.run([python, "-m", "compileall", "-q", folder], check=True)
+    print(f"byte code compiled: {folder}")
 
 
 def _analyze(python: str, image: Path, out: Path, figures: bool) -> tuple[float, dict, float]:
@@ -83,8 +96,13 @@ def main(argv=None) -> None:
     ap.add_argument("--no-figures", action="store_true", help="pass --no-figures to tenfold analyze")
     ap.add_argument("--python", nargs="+", default=[], metavar="PYTHON",
                     help="other interpreters (other Tenfold trees) to time the same way, interleaved")
+    ap.add_argument("--no-compile", action="store_true",
+                    help="leave the trees' byte code alone (by default each is compiled first, as installing does)")
     args = ap.parse_args(argv)
     pythons = [sys.executable, *args.python]
+    if not args.no_compile:
+        for p in pythons:
+            _compile(p)
     print(f"load average before: {' '.join(f'{v:.2f}' for v in os.getloadavg())} on {os.cpu_count()} CPUs")
     runs: dict[str, list] = {p: [] for p in pythons}
     with tempfile.TemporaryDirectory() as tmp:
@@ -104,7 +122,8 @@ def main(argv=None) -> None:
         stages["whole"] = wall
         tables[p] = stages
         print(f"#{i} {p}: tenfold analyze, whole {wall:.2f} s (fastest of {len(runs[p])}: "
-              f"{', '.join(f'{r[0]:.2f}' for r in runs[p])}); ratio to trackpy.locate {wall / t_tp:.1f}")
+              f"{', '.join(f'{r[0]:.2f}' for r in runs[p])}; median {np.median([r[0] for r in runs[p]]):.2f}); "
+              f"ratio to trackpy.locate {wall / t_tp:.1f}")
     names = list(dict.fromkeys(k for t in tables.values() for k in t))
     width = max(len(k) for k in names)
     print(f"  {'stage (s)':<{width}}  " + "  ".join(f"{'#' + str(i):>8}" for i in range(len(pythons))))
@@ -112,6 +131,10 @@ def main(argv=None) -> None:
         print(f"  {k:<{width}}  " + "  ".join(f"{tables[p].get(k, float('nan')):8.3f}" for p in pythons))
     print(f"trackpy.locate (diameter {int(np.ceil(diameter or 7.0)) | 1} px, same image): {t_tp:.3f} s, "
           f"{n_tp} features")
+    for i, p in enumerate(pythons[1:], start=1):  # this tree against the others, fastest and median runs
+        mine, theirs = [r[0] for r in runs[pythons[0]]], [r[0] for r in runs[p]]
+        print(f"whole analyze #0 / #{i}: fastest {min(mine) / min(theirs):.2f}, "
+              f"median {np.median(mine) / np.median(theirs):.2f}")
     print(f"load average after: {' '.join(f'{v:.2f}' for v in os.getloadavg())}")
 
 

@@ -252,4 +252,6 @@ def test_ladder_figure(decorated):
 
 def test_figure_registered():
     from tenfold.analysis import export
+
+    export._load_figure_modules()  # the stages' makers join FIGURES when figures are first drawn
     assert export.FIGURES.get("pair_distribution_ladder") is ladder_figure

@@ -1,5 +1,7 @@
 """The orchestrator: parameters, hand correction, cancellation."""
 
+import copy
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -100,6 +102,35 @@ def test_progress_is_monotone_and_reaches_one(small):
     run_pipeline(small, Parameters(fourier=False), progress=lambda f, m: seen.append(f))
     assert seen[-1] == pytest.approx(1.0)
     assert all(b >= a - 1e-9 for a, b in zip(seen, seen[1:]))
+
+
+def test_stage_done_sees_final_columns_and_ladder_tables(small):
+    """What ``stage_done`` is shown after 'columns' and 'ladder' is what the run returns (the command line draws
+    those figures early), and a cropped region run, whose tables are shifted at the end, shows nothing."""
+    seen = {}
+
+    def snapshot(stage, res):
+        keys = {"columns": ("columns",), "ladder": ("ladder", "pair_peaks"), "tiling": ("motifs", "network", "tiles"),
+                "phason": ("phason_map",), "fourier": ("spots", "columns")}[stage]
+        summary = {"phason": res.summary.get("phason", {}).get("real_space"), "fourier": res.summary.get("fourier")}
+        seen[stage] = ({k: res.tables[k].copy() for k in keys}, dict(res.curves), res.image,
+                       copy.deepcopy(summary[stage] if stage in summary else None))
+
+    final = run_pipeline(small, Parameters(fourier=True, correct_distortion=True), stage_done=snapshot)
+    assert list(seen) == ["columns", "ladder", "tiling", "phason", "fourier"]
+    for tables, curves, image, _ in seen.values():
+        for name, table in tables.items():
+            pd.testing.assert_frame_equal(table, final.tables[name])
+        assert image is final.image
+    assert set(seen["ladder"][1]) == {k for k in final.curves if k.startswith("pair_distribution")}
+    assert seen["phason"][3] == final.summary["phason"]["real_space"]
+    assert seen["fourier"][3] == final.summary["fourier"]
+    from tenfold.analysis.region import Region
+
+    seen.clear()
+    box = [Region(1, "rectangle", np.array([[100.0, 100.0], [200.0, 200.0]]))]
+    run_pipeline(small, Parameters(fourier=False), regions=box, stage_done=snapshot)
+    assert seen == {}
 
 
 def test_regions_of_a_large_image_are_analysed_in_their_box_and_shifted_back():
