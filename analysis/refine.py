@@ -11,6 +11,11 @@ pass only). Integrating over the pixel makes ``s`` the width of the continuous c
 fitted to the same pixels returns roughly ``sqrt(s^2 + 1/12)`` instead. The integrated intensity is
 ``2 pi A s^2``.
 
+Real columns have a sharp core and a long tail: with ``tail=(h, k)`` the column profile is
+``(1 - h) gx(u; s) gy(v; s) + h gx(u; k s) gy(v; k s)`` (same centre, peak height still ``A``, intensity
+``2 pi A s^2 ((1 - h) + h k^2)``), ``h`` and ``k`` fixed for the image and learned from it by :func:`learn_tail`;
+``h = 0`` is the Gaussian above, exactly.
+
 The fit is Levenberg-Marquardt on the 5 parameters (x, y, s, A, B). With ``counts=True`` the weights are
 ``1 / max(m, 1)`` and steps are accepted on the Poisson negative log-likelihood, so the iteration is Fisher
 scoring and converges to the Poisson maximum-likelihood estimate; the position uncertainty is then the
@@ -807,14 +812,15 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
 
 #: the tail is learned on at most this many bright voters (the most central ones: one compact window), and not on
 #: fewer than the minimum
-TAIL_LEARN_MAX, TAIL_LEARN_MIN = 150, 10
+TAIL_LEARN_MAX, TAIL_LEARN_MIN = 100, 10
 #: searched range of the tail's width ratio k and of its share of the integrated intensity f
 TAIL_K_RANGE, TAIL_F_MAX = (1.5, 8.0), 0.8
 #: a learned tail is used when it improves the fit of the learning columns at this false-alarm probability (a
 #: likelihood-ratio test with two parameters, the patches' overlap divided out) and holds this share of the light
 TAIL_P_VALUE, TAIL_MIN_FRACTION = 1e-3, 0.05
-#: small trial tails (f, k), a narrow and a wide one: when neither improves the fit the image has no tail
-TAIL_PROBES = ((0.03, 3.0), (0.1, 1.7))
+#: small trial tails (f, k), a narrow and a wide one: when neither improves the fit by a quarter of the test's
+#: threshold the image has no tail worth the search
+TAIL_PROBES, TAIL_PROBE_GATE = ((0.03, 3.0), (0.1, 1.7)), 0.25
 #: neighbour passes of each trial fit while the tail is learned (they converge to TAIL_CONVERGE_PX)
 TAIL_PASSES, TAIL_CONVERGE_PX = 10, 2e-4
 
@@ -834,7 +840,8 @@ def learn_tail(image, table, *, patch_radius_px, votes=None, valid=None, counts=
     or the residual sum of squares over its variance) wins: a two-parameter fit by profile likelihood,
     every column's x, y, s, A, B free in each trial (warm-started from the table, each column's class, free or
     common width, kept). A coarse grid over k and f, then Nelder-Mead from its best point.
-    A Gaussian image stops after two small trial tails (``TAIL_PROBES``) that do not improve the fit.
+    A Gaussian image stops after two small trial tails (``TAIL_PROBES``) that improve the fit by less than
+    ``TAIL_PROBE_GATE`` of the threshold.
 
     Parameters
     ----------
@@ -951,7 +958,7 @@ def learn_tail(image, table, *, patch_radius_px, votes=None, valid=None, counts=
         c = cost((f, math.log(k)))
         if c < best[0]:
             best = (c, f, k)
-    if best[0] < 0.0:
+    if -best[0] >= TAIL_PROBE_GATE * threshold:
         for k in (2.0, 3.5, 6.0):
             for f in (0.15, 0.35):
                 c = cost((f, math.log(k)))
