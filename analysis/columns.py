@@ -7,7 +7,7 @@ Steps of ``find_columns`` (every automatic choice is recorded in the returned in
 2. Settle the image-wide choices on the sample (``_settle``): the ``SETTLE_PX`` window with the most valid pixels.
    Scale (``estimate_scale``, or the overrides), polarity check, noise model (raw counts, scaled counts or white,
    checked on the fit residuals), the detection levels of ``significance_map`` and the 16-bit range of the LoG,
-   and the fits' common width (``_width_votes``). Detection and fits of the sample repeat while the
+   the fits' common width (``_width_votes``) and the column profile's tail (``refine.learn_tail``). Detection and fits of the sample repeat while the
    measured width, spacing or noise model disagree with the ones used (at most ``MAX_SCALE_ROUNDS``).
 3. Windows (``_run_windows``): the whole image, or tiles with a halo of ``TILE_HALO_SPACINGS`` spacings + 8 sigma.
    Each window detects candidates (``_detect_window``): matched-filter significance over a locally linear
@@ -41,7 +41,7 @@ from ._filters import gaussian_fft, window_max, window_min
 from ._errors import TenfoldInputError, TenfoldWarning
 from ._lengths import DIAMETER_PER_SIGMA, check_pixel_size, length_px
 from ._progress import report, sub_progress
-from .refine import FREE_WIDTH_SNR as FREE_WIDTH_Z, joint_position_errors, refine_columns, warm_up
+from .refine import FREE_WIDTH_SNR as FREE_WIDTH_Z, joint_position_errors, learn_tail, refine_columns, warm_up
 from .region import label_points
 from .scale import estimate_scale
 from .species import classify_species
@@ -408,13 +408,19 @@ def mirror_threshold(z_candidates, z_mirror, *, z_max, share=FALSE_SHARE, floor=
                "floor": floor, "z_max_random_field": z_max, "false_share_target": share}
 
 
-def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profile=None) -> np.ndarray:
+def _components(tail):
+    """The column profile as (share of the peak height, width multiple) pairs: one Gaussian, or core and tail."""
+    return ((1.0, 1.0),) if tail is None or not tail[0] > 0 else ((1.0 - tail[0], 1.0), (tail[0], tail[1]))
+
+
+def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profile=None, tail=None) -> np.ndarray:
     """Light of the other fitted columns in the Gaussian-smoothed image at each column's position (vectorised).
 
     A column of amplitude A and width s smoothed by the kernel of width k peaks at A s^2 / (s^2 + k^2) with
     width sqrt(s^2 + k^2); the sum runs over pairs from one KD-tree query. ``profile`` (distances px, light per
     unit of the smoothed peak), measured on the image's own bright columns (``_tail_profile``), replaces the
-    Gaussian fall-off wherever it holds more light: real columns have tails a Gaussian does not.
+    Gaussian fall-off wherever it holds more light: real columns have tails a Gaussian does not. ``tail``: the
+    fits' core + tail profile (``refine_columns``), each component smoothed alike.
     """
     n = len(fit)
     light = np.zeros(n)
@@ -424,9 +430,11 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profil
     x = fit["x_px"].to_numpy()[idx]
     y = fit["y_px"].to_numpy()[idx]
     a = fit["amplitude"].to_numpy()[idx]
-    s2 = fit["sigma_px"].to_numpy()[idx] ** 2 + sigma_k**2
-    peak = a * (s2 - sigma_k**2) / s2
-    reach = 4.0 * float(np.sqrt(np.nanmax(s2)))
+    comps = []
+    for share, mult in _components(tail):
+        s2 = (mult * fit["sigma_px"].to_numpy()[idx]) ** 2 + sigma_k**2
+        comps.append((share * a * (s2 - sigma_k**2) / s2 if share != 1.0 else a * (s2 - sigma_k**2) / s2, s2))
+    reach = 4.0 * float(np.sqrt(max(np.nanmax(c[1]) for c in comps)))
     if profile is not None:
         r_p, p_p = np.asarray(profile[0]), np.asarray(profile[1])
         reach = max(reach, float(r_p[-1]))
@@ -435,12 +443,13 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profil
         return light
     i, j = pairs[:, 0], pairs[:, 1]
     d2 = (x[i] - x[j]) ** 2 + (y[i] - y[j]) ** 2
-    fall_j, fall_i = np.exp(-0.5 * d2 / s2[j]), np.exp(-0.5 * d2 / s2[i])
-    if profile is not None:
-        emp = np.interp(np.sqrt(d2), r_p, p_p, right=0.0)
-        fall_j, fall_i = fall_j + emp, fall_i + emp
-    np.add.at(light, idx[i], peak[j] * fall_j)
-    np.add.at(light, idx[j], peak[i] * fall_i)
+    emp = np.interp(np.sqrt(d2), r_p, p_p, right=0.0) if profile is not None else 0.0
+    for c, (peak, s2) in enumerate(comps):
+        fall_j, fall_i = np.exp(-0.5 * d2 / s2[j]), np.exp(-0.5 * d2 / s2[i])
+        if profile is not None and c == 0:  # the measured extra light, once per column
+            fall_j, fall_i = fall_j + emp, fall_i + emp
+        np.add.at(light, idx[i], peak[j] * fall_j)
+        np.add.at(light, idx[j], peak[i] * fall_i)
     return light
 
 
@@ -449,15 +458,16 @@ def _neighbour_light(fit: pd.DataFrame, good: np.ndarray, sigma_k: float, profil
 TAIL_REACH_SPACINGS, TAIL_ANGLES, TAIL_MIN_COLUMNS = 2.0, 16, 20
 
 
-def _tail_profile(work, fit, good, settings, background):
-    """Light a column adds to the smoothed image beyond its fitted Gaussian, per unit of its smoothed peak.
+def _tail_profile(work, fit, good, settings, background, tail=None):
+    """Light a column adds to the smoothed image beyond its fitted model, per unit of its smoothed peak.
 
     Returns ``[r_px, extra]`` or None when fewer than ``TAIL_MIN_COLUMNS`` bright fits. The Gaussians of every
     fitted column are subtracted from the image; the smoothed residual around the bright columns, less the
     detection's background (``background``: its coarse grid, block size and window origin), median over
     ``TAIL_ANGLES`` directions (a neighbour's misfit sits in a few of them) and over the columns, is the tail a
     Gaussian does not describe (a sharp channelling core with long tails, a probe tail).
-    The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``).
+    The significance test of a candidate subtracts it with the Gaussian (``_neighbour_light``). ``tail``: the fits'
+    core + tail profile (``refine_columns``), part of the fitted model.
     """
     amp = fit["amplitude"].to_numpy()
     bright = good & np.isfinite(amp) & (amp > FREE_WIDTH_Z * fit["amplitude_err"].to_numpy())
@@ -465,15 +475,17 @@ def _tail_profile(work, fit, good, settings, background):
     if idx.size < TAIL_MIN_COLUMNS:
         return None
     k = settings.sigma
-    smooth = _correlate.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good), k)
+    smooth = _correlate.gaussian_filter(work.astype(np.float32) - _model_image(work.shape, fit, good, tail), k)
     idx = idx[np.argsort(amp[idx])[::-1][:400]]
     r = np.arange(0.0, TAIL_REACH_SPACINGS * settings.spacing + 0.5, 0.5)
     th = np.linspace(0.0, 2.0 * np.pi, TAIL_ANGLES, endpoint=False)
     x = fit["x_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.cos(th)[None, None, :]
     y = fit["y_px"].to_numpy()[idx][:, None, None] + r[None, :, None] * np.sin(th)[None, None, :]
     vals = _correlate.bilinear(smooth, y, x)
-    s2 = fit["sigma_px"].to_numpy()[idx] ** 2
-    peak = amp[idx] * s2 / (s2 + k * k)
+    peak = 0.0
+    for share, mult in _components(tail):
+        s2 = (mult * fit["sigma_px"].to_numpy()[idx]) ** 2
+        peak = peak + share * amp[idx] * s2 / (s2 + k * k) if share != 1.0 else amp[idx] * s2 / (s2 + k * k)
     # the residual above the detection's background (estimated away from the columns): a fit's own constant
     # background would have absorbed the tail
     bg = _coarse_background(*background, y.ravel(), x.ravel()).reshape(x.shape)
@@ -483,14 +495,23 @@ def _tail_profile(work, fit, good, settings, background):
     return [r.tolist(), extra.tolist()]
 
 
-def _model_image(shape, fit, good):
-    """The fitted columns as sampled Gaussians (over 4 widths), without background, float32."""
+def _model_image(shape, fit, good, tail=None):
+    """The fitted columns as sampled Gaussians (over 4 widths; core and tail for a ``tail``, see
+    ``refine_columns``), without background, float32."""
     h, w = shape
     model = np.zeros(shape, np.float32)
     xs, ys = fit["x_px"].to_numpy()[good], fit["y_px"].to_numpy()[good]
     a, sg = fit["amplitude"].to_numpy()[good], fit["sigma_px"].to_numpy()[good]
     if not xs.size:
         return model
+    for share, mult in _components(tail):
+        _add_gaussians(model, xs, ys, a if share == 1.0 else share * a, mult * sg)
+    return model
+
+
+def _add_gaussians(model, xs, ys, a, sg):
+    """Add sampled Gaussians of peak ``a`` and width ``sg`` (over 4 widths) to the float32 ``model`` in place."""
+    h, w = model.shape
     r = int(math.ceil(4.0 * np.nanmax(sg)))
     cx, cy = np.rint(xs), np.rint(ys)
     # a footprint whose centre lies more than r px outside the image misses it; every other one fits a canvas with a
@@ -507,7 +528,6 @@ def _model_image(shape, fit, good):
     canvas = np.zeros((h + 2 * m, w + 2 * m))
     _correlate.add_patches(canvas, py[:, 0] + m, px[:, 0] + m, gy, gx)
     model += canvas[m:m + h, m:m + w]
-    return model
 
 
 def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_columns=False,
@@ -670,7 +690,12 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
         "polarity": polarity,
         "counts": counts_tab,
         "refinement": {
-            "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt",
+            "model": "pixel-integrated isotropic Gaussian + constant background, Levenberg-Marquardt"
+                     if not (settings.tail and settings.tail[0] > 0) else
+                     "pixel-integrated core + tail profile (two isotropic Gaussians of one centre, the tail's share "
+                     "of the peak height and width ratio learned on the sample) + constant background, "
+                     "Levenberg-Marquardt",
+            "profile": _profile_info(settings),
             "weighting": "Poisson 1/max(model,1)" if settings.fit_counts else "unweighted",
             "image_is_counts": settings.noise["model"] != "white",
             "noise_model": settings.noise["model"],
@@ -699,6 +724,17 @@ def find_columns(image, *, valid=None, pixel_size_nm=None, regions=None, dark_co
     }
     report(progress, 1.0, f"{len(table)} columns")
     return table, _json_safe(info)
+
+
+def _profile_info(settings):
+    """The column profile for the info dict: tail share of the peak height and of the light, width ratio, how."""
+    rec = dict(settings.tail_record or {})
+    h, k = settings.tail if settings.tail else (0.0, 1.0)
+    return {"tail_peak_share": float(h), "tail_width_ratio": float(k),
+            "tail_light_fraction": float(h * k * k / ((1.0 - h) + h * k * k)),
+            "deviance_gain": rec.get("deviance_gain"), "threshold": rec.get("threshold"),
+            "n_columns_learned_on": rec.get("n_columns"), "trials": rec.get("trials"),
+            "how": rec.get("how", "not learned")}
 
 
 #: The detection and refinement are repeated (at most this many rounds in all) when the width or spacing measured
@@ -754,6 +790,9 @@ class _Settings:
     width_median: float | None = None
     tail_profile: list | None = None
     area_px: float = 0.0
+    #: the column profile's tail [h, k] (``refine_columns``' ``tail``) and how it was learned; None: not yet
+    tail: list | None = None
+    tail_record: dict | None = None
 
     @property
     def diameter(self) -> int:
@@ -785,7 +824,8 @@ class _Settings:
         """A copy that holds the choices a window measured for itself (used by every other window)."""
         return replace(self, noise_sd=detail["noise_sd"], levels=detail["levels"],
                        common_width=detail["common_width"], share_widths=detail["share_widths"],
-                       width_median=detail["width_median"], tail_profile=detail["tail_profile"])
+                       width_median=detail["width_median"], tail_profile=detail["tail_profile"],
+                       tail=detail["tail"], tail_record=detail["tail_record"])
 
 
 def _sample_window(ok) -> tuple[int, int, int, int]:
@@ -826,6 +866,9 @@ def _settle(img, ok, sample, lengths, dark_columns, flatten, auto, notes, *, pro
         fit, counts_tab, detail = _analyse_window(data, okw, settings, origin=(r0, c0), core=core,
                                                   image_shape=img.shape, progress=sub_progress(progress, *span))
         meas = _measured_scale(fit)
+        factor = (detail.get("tail_record") or {}).get("gaussian_width_factor")
+        if factor and meas["sigma_px"]:  # a core + tail fit: the width the scale means is the Gaussian's
+            meas["sigma_px"] *= factor
         new_noise = noise_model(fit, noise, dark_columns=dark_columns)
         rounds.append({"sigma_px": sigma, "spacing_px": spacing, "noise": noise["model"], "gain": noise.get("gain", 1.0),
                        "n_columns": int(len(fit)), "measured": meas, "noise_check": new_noise["check"]})
@@ -1061,8 +1104,26 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     votes = _width_votes(work.shape, xs, ys, s.spacing) if s.common_width is None else None
     fit = refine_columns(work, np.c_[xs, ys], sigma_px=s.sigma, valid=ok, counts=s.fit_counts, patch_radius_px=rad,
                          neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX, common_width_px=s.common_width,
-                         share_widths=s.share_widths, width_votes=votes,
+                         share_widths=s.share_widths, width_votes=votes, tail=s.tail,
                          progress=sub_progress(progress, 0.3, 0.95))
+    if s.tail is None:
+        # the sample learns the column profile from its fitted columns; a significant tail refits it
+        rec = learn_tail(work, fit, patch_radius_px=rad, votes=votes, valid=ok, counts=s.fit_counts,
+                         share_widths=bool(fit.attrs["share_widths"]))
+        s = replace(s, tail=rec["tail"], tail_record=rec)
+        if rec["significant"]:
+            # the settling rounds compare the Gaussian-equivalent width with the scale they used, as without a
+            # tail: the core's width over the Gaussian's (median over the voters with a width of their own)
+            gauss_free = fit["fit_status"].to_numpy() == "ok"
+            gauss_sigma = fit["sigma_px"].to_numpy()
+            fit = refine_columns(work, np.c_[xs, ys], sigma_px=s.sigma, valid=ok, counts=s.fit_counts,
+                                 patch_radius_px=rad, neighbour_passes=NEIGHBOUR_PASSES, converge_px=CONVERGE_PX,
+                                 common_width_px=s.common_width, share_widths=s.share_widths, width_votes=votes,
+                                 tail=s.tail, progress=sub_progress(progress, 0.3, 0.95))
+            both = gauss_free & (fit["fit_status"].to_numpy() == "ok") & (votes if votes is not None else True)
+            if both.sum() >= 5:
+                rec["gaussian_width_factor"] = float(np.median(gauss_sigma[both]) /
+                                                     np.median(fit["sigma_px"].to_numpy()[both]))
     if votes is not None:
         s = _learned_width(fit, votes, s)
     passes = int(fit.attrs.get("neighbour_passes_done", 0))
@@ -1074,7 +1135,7 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
         good = fit["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
         # the detection's image: flattened when asked (the background grid describes that one)
         seen = work - _smooth_surface(work, ok, 3.0 * s.spacing) if s.flatten else work
-        s = replace(s, tail_profile=_tail_profile(seen, fit, good, s, det["background"]))
+        s = replace(s, tail_profile=_tail_profile(seen, fit, good, s, det["background"], s.tail))
     if s.tail_profile is not None:
         auto["tail_profile"] = {"r_px": s.tail_profile[0], "extra_per_peak": s.tail_profile[1],
                                 "how": "smoothed residual around the bright columns beyond their fitted Gaussians, "
@@ -1087,7 +1148,7 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     if len(fit):
         # only the core's columns are kept: a tile's halo columns enter the groups but need no errors of their own
         err = joint_position_errors(work.shape, fit, patch_radius_px=rad, valid=ok, counts=s.fit_counts,
-                                    rows=fit["_core"].to_numpy())
+                                    rows=fit["_core"].to_numpy(), tail=s.tail)
         fit["x_err_px"], fit["y_err_px"] = err[:, 0], err[:, 1]
         fit["pos_err_px"] = 0.5 * (fit["x_err_px"] + fit["y_err_px"])
     if s.noise["model"] == "scaled counts":
@@ -1104,7 +1165,8 @@ def _fit_window(data, ok, settings, det, z_cut, *, progress=None):
     detail = {"auto": auto, "neighbour_passes": passes, "detect_s": det["detect_s"], "refine_s": t_refine,
               "still_moving": int(fit.attrs.get("columns_still_moving", 0)),
               "levels": det["levels"], "noise_sd": det["noise_sd"], "common_width": common, "share_widths": shared,
-              "width_median": width_median, "z_cut": float(z_cut), "tail_profile": s.tail_profile}
+              "width_median": width_median, "z_cut": float(z_cut), "tail_profile": s.tail_profile, "tail": s.tail,
+              "tail_record": s.tail_record}
     return fit, counts_tab, detail
 
 
@@ -1162,7 +1224,7 @@ def _prune(fit, xs, ys, z_cand, sd_cand, settings, z_cut, counts_tab, auto, inne
     counts_tab["slid_off_candidate"] = int((slid & core).sum())
     # Significance given the neighbours: the detection statistic also counts the tails of nearby columns, so a
     # gap between bright columns can look significant; subtract every other fitted column's smoothed light.
-    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma, settings.tail_profile) / sd_cand
+    fit["snr"] = z_cand - _neighbour_light(fit, good, sigma, settings.tail_profile, settings.tail) / sd_cand
     fit = fit[good & (fit["snr"].to_numpy() >= z_cut)].copy()
     counts_tab["after_neighbour_significance"] = int(fit["_core"].sum())
     # Every column is imaged by the same probe: a well-measured fit (significance above 10) far narrower or

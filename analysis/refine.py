@@ -11,6 +11,11 @@ pass only). Integrating over the pixel makes ``s`` the width of the continuous c
 fitted to the same pixels returns roughly ``sqrt(s^2 + 1/12)`` instead. The integrated intensity is
 ``2 pi A s^2``.
 
+Real columns have a sharp core and a long tail: with ``tail=(h, k)`` the column profile is
+``(1 - h) gx(u; s) gy(v; s) + h gx(u; k s) gy(v; k s)`` (same centre, peak height still ``A``, intensity
+``2 pi A s^2 ((1 - h) + h k^2)``), ``h`` and ``k`` fixed for the image and learned from it by :func:`learn_tail`;
+``h = 0`` is the Gaussian above, exactly.
+
 The fit is Levenberg-Marquardt on the 5 parameters (x, y, s, A, B). With ``counts=True`` the weights are
 ``1 / max(m, 1)`` and steps are accepted on the Poisson negative log-likelihood, so the iteration is Fisher
 scoring and converges to the Poisson maximum-likelihood estimate; the position uncertainty is then the
@@ -33,7 +38,8 @@ from scipy.spatial import cKDTree
 from ._errors import TenfoldInputError
 from ._progress import report
 
-__all__ = ["refine_columns", "joint_position_errors", "warm_up", "STATUS_CODES"]
+__all__ = ["refine_columns", "joint_position_errors", "learn_tail", "tail_share", "profile_area", "warm_up",
+           "STATUS_CODES"]
 
 #: fit_status strings by kernel code.
 STATUS_CODES = ("ok", "diverged", "edge", "masked", "fixed_width")
@@ -64,16 +70,24 @@ def _profile(u0, n, x, s, g, dg, ds):
 
 
 @njit(cache=True)
-def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr, want_j, want_obj=True):
+def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tb, th, tk, jtj, jtr, want_j,
+              want_obj=True):
     """Objective at parameters p (and J^T W J, J^T W r when want_j).
 
+    ``th``, ``tk``: the tail's share of the peak height and its width over the core width (``th`` 0: a plain
+    Gaussian, the tail's scratch ``tb`` (6 rows of the patch side) unused).
     Returns (objective, rss, n_pixels, Pearson chi-square with Poisson weights 1 / max(m, 1)); the Poisson
     objective (a logarithm per pixel) only when ``want_obj``, else NaN. The sums run in local scalars (the scratch
     arrays are views of one buffer, so sums kept in them would be stored and reloaded at every pixel).
     """
     x, y, s, a, b = p[0], p[1], p[2], p[3], p[4]
+    tail = th > 0.0
+    cw = 1.0 - th
     _profile(u0, nx, x, s, gx, dgx, dsx)
     _profile(v0, ny, y, s, gy, dgy, dsy)
+    if tail:
+        _profile(u0, nx, x, tk * s, tb[0], tb[1], tb[2])
+        _profile(v0, ny, y, tk * s, tb[3], tb[4], tb[5])
     obj = 0.0
     rss = 0.0
     chi2 = 0.0
@@ -92,7 +106,10 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
             k = r * nx + c
             if not msk[k]:
                 continue
-            gg = gx[c] * gyr
+            if tail:
+                gg = cw * gx[c] * gyr + th * tb[0, c] * tb[3, r]
+            else:
+                gg = gx[c] * gyr
             m = b + a * gg + off[k]
             res = d[k] - m
             rss += res * res
@@ -108,9 +125,14 @@ def _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy
                 obj += res * res
                 w = 1.0
             if want_j:
-                j0 = a * dgx[c] * gyr
-                j1 = a * gx[c] * dgyr
-                j2 = a * (dsx[c] * gyr + gx[c] * dsyr)
+                if tail:  # d/ds of the tail's width k s is k d/d(k s)
+                    j0 = a * (cw * dgx[c] * gyr + th * tb[1, c] * tb[3, r])
+                    j1 = a * (cw * gx[c] * dgyr + th * tb[0, c] * tb[4, r])
+                    j2 = a * (cw * (dsx[c] * gyr + gx[c] * dsyr) + th * tk * (tb[2, c] * tb[3, r] + tb[0, c] * tb[5, r]))
+                else:
+                    j0 = a * dgx[c] * gyr
+                    j1 = a * gx[c] * dgyr
+                    j2 = a * (dsx[c] * gyr + gx[c] * dsyr)
                 j3 = gg
                 wr = w * res
                 r0 += j0 * wr
@@ -197,9 +219,32 @@ def _solve5(a, rhs, out, m):
     return True
 
 
+@njit(cache=True, inline="always")
+def _add_tail(off, u0, u1, v0, v1, nx, x, y, st, at, tb):
+    """Add a neighbour's tail (peak height ``at``, width ``st``) to the patch model ``off`` (rows v0..v1, columns
+    u0..u1), within ``TAIL_BOX_SIGMA`` of its widths; ``tb``: scratch rows of the patch side."""
+    reach = TAIL_BOX_SIGMA * st
+    ua = max(u0, int(math.ceil(x - reach)))
+    ub = min(u1, int(math.floor(x + reach)))
+    va = max(v0, int(math.ceil(y - reach)))
+    vb = min(v1, int(math.floor(y + reach)))
+    if ua > ub or va > vb:
+        return
+    _profile(ua, ub - ua + 1, x, st, tb[0], tb[1], tb[2])
+    _profile(va, vb - va + 1, y, st, tb[3], tb[4], tb[5])
+    for r in range(va, vb + 1):
+        ayr = at * tb[3, r - va]
+        base = (r - v0) * nx - u0
+        for c in range(ua, ub + 1):
+            off[base + c] += ayr * tb[0, c - ua]
+
+
 #: a neighbour's model is added to a patch only within this many of its widths of its centre (per axis): beyond,
 #: its light is below exp(-12.5) = 4e-6 of its peak (the neighbour lists already leave out columns 4 widths away)
 NEIGHBOUR_BOX_SIGMA = 5.0
+#: a neighbour's tail (see ``refine_columns``, ``tail``) enters a patch within this many of the tail's widths: its
+#: light there is below exp(-8) = 3e-4 of the tail's own peak, itself a small share of the column's
+TAIL_BOX_SIGMA = 4.0
 #: a step smaller than this (px; relative for the width) ends a column's fit
 STEP_TOL = 1e-4
 #: an undamped step smaller than this (px for the position; relative to the width, and to the amplitude for the
@@ -208,10 +253,11 @@ TRUST_PX, TRUST_REL = 0.05, 0.02
 
 
 @njit(cache=True, nogil=True)
-def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-             nb_par, start, out, fbuf, msk):
+def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, th, tk, final_obj,
+             nb_ptr, nb_idx, nb_par, start, out, fbuf, msk):
     """Fit column k; writes ``out[k, :_NOUT]`` (see ``_columns_out``). ``start[k]`` (x, y, s, A, B), when finite, is
-    a warm start (a previous pass). ``fbuf`` (``_scratch_size(rad)`` floats) and ``msk`` ((2 rad + 1)^2 bools) are
+    a warm start (a previous pass). ``th``, ``tk``: the column profile's tail (see ``refine_columns``);
+    ``final_obj``: ``out[k, 11]`` is the objective at the final parameters (one more evaluation). ``fbuf`` (``_scratch_size(rad)`` floats) and ``msk`` ((2 rad + 1)^2 bools) are
     the calling thread's scratch: no allocation per column."""
     h, w = img.shape
     side = 2 * rad + 1
@@ -225,6 +271,8 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
     gy = fbuf[o + 3 * side:o + 4 * side]
     dgy = fbuf[o + 4 * side:o + 5 * side]
     dsy = fbuf[o + 5 * side:o + 6 * side]
+    o += 6 * side
+    tb = fbuf[o:o + 6 * side].reshape((6, side))
     o += 6 * side
     p = fbuf[o:o + 5]
     trial = fbuf[o + 5:o + 10]
@@ -299,12 +347,14 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             continue
         _profile(ua, ub - ua + 1, nb_par[j, 0], nb_par[j, 2], gx, dgx, dsx)
         _profile(va, vb - va + 1, nb_par[j, 1], nb_par[j, 2], gy, dgy, dsy)
-        aj = nb_par[j, 3]
+        aj = nb_par[j, 3] * (1.0 - th)
         for r in range(va, vb + 1):
             ayr = aj * gy[r - va]
             base = (r - v0) * nx - u0
             for c in range(ua, ub + 1):
                 off[base + c] += ayr * gx[c - ua]
+        if th > 0.0:
+            _add_tail(off, u0, u1, v0, v1, nx, nb_par[j, 0], nb_par[j, 1], tk * nb_par[j, 2], th * nb_par[j, 3], tb)
     if nvalid < 8:
         out[k, 8] = _DIVERGED
         return
@@ -320,6 +370,9 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
         # linear start for A and B at the initial position and width: regress (d - off) on [g, 1]
         _profile(u0, nx, xi, sk, gx, dgx, dsx)
         _profile(v0, ny, yi, sk, gy, dgy, dsy)
+        if th > 0.0:
+            _profile(u0, nx, xi, tk * sk, tb[0], tb[1], tb[2])
+            _profile(v0, ny, yi, tk * sk, tb[3], tb[4], tb[5])
         sgg = 0.0
         sg = 0.0
         s1 = 0.0
@@ -330,6 +383,8 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
                 kk = r * nx + c
                 if msk[kk]:
                     gg = gx[c] * gy[r]
+                    if th > 0.0:
+                        gg = (1.0 - th) * gg + th * tb[0, c] * tb[3, r]
                     dd = d[kk] - off[kk]
                     sgg += gg * gg
                     sg += gg
@@ -347,8 +402,8 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             p[4] = dmin
     # the objective (a logarithm per pixel) is only needed to judge a trial step: a warm start that has already
     # converged takes its small step without one
-    obj, rss, npx, chi2 = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, jtj, jtr,
-                                    True, False)
+    obj, rss, npx, chi2 = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tb, th, tk,
+                                    jtj, jtr, True, False)
     obj_known = not counts
     lam = 1e-3
     it = 0
@@ -385,10 +440,11 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             and abs(delta[2]) < TRUST_REL * p[2] and abs(delta[3]) < TRUST_REL * p[3] \
             and abs(delta[4]) < TRUST_REL * p[3]
         if not trusted and not obj_known:
-            obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tj, tr, False)[0]
+            obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tb, th, tk, tj, tr,
+                            False)[0]
             obj_known = True
         tobj, trss, tnpx, tchi2 = _evaluate(d, msk, off, nx, ny, u0, v0, trial, counts, gx, dgx, dsx, gy, dgy, dsy,
-                                            tj, tr, True, not trusted)
+                                            tb, th, tk, tj, tr, True, not trusted)
         if trusted or tobj <= obj:
             small = abs(delta[0]) < STEP_TOL and abs(delta[1]) < STEP_TOL and abs(delta[2]) < STEP_TOL * trial[2]
             for i in range(5):
@@ -408,6 +464,9 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
             lam *= 10.0
             if lam > 1e8:
                 break
+    if final_obj:
+        obj = _evaluate(d, msk, off, nx, ny, u0, v0, p, counts, gx, dgx, dsx, gy, dgy, dsy, tb, th, tk, tj, tr,
+                        False)[0]
     # covariance: inverse Fisher information (counts) or scaled (J^T J)^-1 (least squares)
     scale = 1.0
     if not counts:
@@ -465,7 +524,7 @@ def _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
 def _scratch_size(rad):
     """Floats of scratch one ``_fit_one`` call needs."""
     side = 2 * rad + 1
-    return 2 * side * side + 6 * side + 145
+    return 2 * side * side + 12 * side + 145
 
 
 @njit(cache=True, inline="always")
@@ -481,8 +540,8 @@ def _publish(k, out, nb_par, gidx):
 
 
 @njit(parallel=True, cache=True, nogil=True)  # nogil: a GUI thread keeps running while columns fit
-def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx, nb_par,
-             start, out, n_threads, order, cptr, gidx):
+def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, th, tk, final_obj, nb_ptr,
+             nb_idx, nb_par, start, out, n_threads, order, cptr, gidx):
     """Fit every column, one colour class after the other (see ``_colour_classes``), the columns of a class in
     parallel (prange); see ``_fit_one``. After a class is fitted its models replace the old ones in ``nb_par``
     (row ``gidx[k]``, none when negative), so the next classes see them: a Gauss-Seidel sweep of the coupled fits.
@@ -495,14 +554,14 @@ def _fit_all(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo,
         for t in prange(cptr[c], cptr[c + 1]):
             k = order[t]
             tid = get_thread_id()
-            _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr,
-                     nb_idx, nb_par, start, out, fbuf[tid], mbuf[tid])
+            _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, th, tk,
+                     final_obj, nb_ptr, nb_idx, nb_par, start, out, fbuf[tid], mbuf[tid])
             _publish(k, out, nb_par, gidx)
 
 
 @njit(cache=True, nogil=True)
-def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                nb_par, start, out, n_threads, order, cptr, gidx):
+def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, th, tk, final_obj,
+                nb_ptr, nb_idx, nb_par, start, out, n_threads, order, cptr, gidx):
     """``_fit_all`` in the calling thread: for a few columns, waking the worker threads costs more than the fits
     (milliseconds per call on a busy machine)."""
     side = 2 * rad + 1
@@ -510,8 +569,8 @@ def _fit_serial(img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_
     mbuf = np.empty(side * side, dtype=np.bool_)
     for t in range(order.shape[0]):
         k = order[t]
-        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, nb_ptr, nb_idx,
-                 nb_par, start, out, fbuf, mbuf)
+        _fit_one(k, img, valid, x0, y0, s0, fixw, rad, counts, n_iter, max_shift, s_lo, s_hi, touch2, th, tk,
+                 final_obj, nb_ptr, nb_idx, nb_par, start, out, fbuf, mbuf)
         _publish(k, out, nb_par, gidx)
 
 
@@ -577,13 +636,16 @@ JOINT_MAX_NEIGHBOURS = 6
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, idx, wanted, out):
+def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, th, tk, ptr, idx, wanted, out):
     """Per-axis position variance of column k from the Fisher matrix of its local joint model.
 
     The group is column k and its touching neighbours (CSR ``ptr``/``idx``); parameters are (x, y, s, A) of
-    every member and one background; pixels are the union of the members' fit patches. ``out[k] = (var_x,
-    var_y)``; NaN where the matrix is singular or ``wanted[k]`` is False.
+    every member and one background; pixels are the union of the members' fit patches; the column profile has
+    the tail ``th``, ``tk`` (see ``refine_columns``; 0, 1: a plain Gaussian). ``out[k] = (var_x, var_y)``; NaN
+    where the matrix is singular or ``wanted[k]`` is False.
     """
+    tail = th > 0.0
+    cw = 1.0 - th
     n = par.shape[0]
     side = 2 * rad + 1
     for k in prange(n):
@@ -621,10 +683,15 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
         gy = np.empty((m, ny))
         dgy = np.empty((m, ny))
         dsy = np.empty((m, ny))
+        tx = np.empty((3, m, nx if tail else 0))
+        ty = np.empty((3, m, ny if tail else 0))
         for i in range(m):
             j = mem[i]
             _profile(u0, nx, par[j, 0], par[j, 2], gx[i], dgx[i], dsx[i])
             _profile(v0, ny, par[j, 1], par[j, 2], gy[i], dgy[i], dsy[i])
+            if tail:
+                _profile(u0, nx, par[j, 0], tk * par[j, 2], tx[0, i], tx[1, i], tx[2, i])
+                _profile(v0, ny, par[j, 1], tk * par[j, 2], ty[0, i], ty[1, i], ty[2, i])
         npar = 4 * m + 1
         fis = np.zeros((npar, npar))
         # each member only where its light counts (within NEIGHBOUR_BOX_SIGMA widths per axis, the reach of the
@@ -635,7 +702,7 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
         bv1 = np.empty(m, np.int64)
         for i in range(m):
             j = mem[i]
-            reach = NEIGHBOUR_BOX_SIGMA * par[j, 2]
+            reach = max(NEIGHBOUR_BOX_SIGMA, TAIL_BOX_SIGMA * tk) * par[j, 2] if tail else NEIGHBOUR_BOX_SIGMA * par[j, 2]
             bu0[i] = int(math.ceil(par[j, 0] - reach)) - u0
             bu1[i] = int(math.floor(par[j, 0] + reach)) - u0
             bv0[i] = int(math.ceil(par[j, 1] - reach)) - v0
@@ -662,12 +729,24 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
                     a = par[mem[i], 3]
                     gxc = gx[i, c]
                     gyr = gy[i, r]
-                    mu += a * gxc * gyr
-                    jac[4 * i] = a * dgx[i, c] * gyr
-                    jac[4 * i + 1] = a * gxc * dgy[i, r]
-                    if free_s[mem[i]]:
-                        jac[4 * i + 2] = a * (dsx[i, c] * gyr + gxc * dsy[i, r])
-                    jac[4 * i + 3] = gxc * gyr
+                    if tail:  # the same derivatives as the fits' (see _evaluate)
+                        txc = tx[0, i, c]
+                        tyr = ty[0, i, r]
+                        gg = cw * gxc * gyr + th * txc * tyr
+                        mu += a * gg
+                        jac[4 * i] = a * (cw * dgx[i, c] * gyr + th * tx[1, i, c] * tyr)
+                        jac[4 * i + 1] = a * (cw * gxc * dgy[i, r] + th * txc * ty[1, i, r])
+                        if free_s[mem[i]]:
+                            jac[4 * i + 2] = a * (cw * (dsx[i, c] * gyr + gxc * dsy[i, r])
+                                                  + th * tk * (tx[2, i, c] * tyr + txc * ty[2, i, r]))
+                    else:
+                        gg = gxc * gyr
+                        mu += a * gxc * gyr
+                        jac[4 * i] = a * dgx[i, c] * gyr
+                        jac[4 * i + 1] = a * gxc * dgy[i, r]
+                        if free_s[mem[i]]:
+                            jac[4 * i + 2] = a * (dsx[i, c] * gyr + gxc * dsy[i, r])
+                    jac[4 * i + 3] = gg
                 jac[4 * m] = 1.0
                 w = 1.0 / max(mu, 1.0) if counts else 1.0 / noise_var[k]
                 for a_ in range(npar):  # the upper triangle, a contiguous row at a time (vectorised)
@@ -692,7 +771,7 @@ def _joint_var(img_h, img_w, valid, par, free_s, noise_var, counts, rad, ptr, id
 
 
 def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, counts=True,
-                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS, rows=None):
+                          reach_sigma=JOINT_REACH_SIGMA, max_neighbours=JOINT_MAX_NEIGHBOURS, rows=None, tail=None):
     """Per-axis 1-sigma position errors of fitted columns from the Fisher information of their local joint model.
 
     A column fitted with its neighbours' models subtracted inherits the uncertainty of those models: the
@@ -714,6 +793,9 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     rows : (N,) bool array, optional
         The rows whose errors are wanted (default all); the others still enter their neighbours' groups (a tile's
         halo columns, which the tile does not keep), and get NaN.
+    tail : (float, float), optional
+        The column profile's tail as in :func:`refine_columns` (the model the table was fitted with); None: a
+        plain Gaussian.
 
     Returns
     -------
@@ -747,9 +829,185 @@ def joint_position_errors(image_shape, table, *, patch_radius_px, valid=None, co
     free_s = np.ascontiguousarray((table["fit_status"].to_numpy() == "ok")[good])
     wanted = np.ones(good.size, dtype=bool) if rows is None else np.asarray(rows, dtype=bool)[good]
     _joint_var(h, w, vm, gp, free_s, np.ascontiguousarray(np.maximum(noise_var[good], 1e-300)), bool(counts),
-               int(patch_radius_px), ptr, idx, np.ascontiguousarray(wanted), out)
+               int(patch_radius_px), *_tail_pair(tail), ptr, idx, np.ascontiguousarray(wanted), out)
     res[good] = np.sqrt(np.where(out > 0, out, np.nan))
     return res
+
+
+#: the tail is learned on at most this many bright voters (the most central ones: one compact window), and not on
+#: fewer than the minimum
+TAIL_LEARN_MAX, TAIL_LEARN_MIN = 100, 10
+#: searched range of the tail's width ratio k and of its share of the integrated intensity f
+TAIL_K_RANGE, TAIL_F_MAX = (1.5, 8.0), 0.8
+#: a learned tail is used when it improves the fit of the learning columns at this false-alarm probability (a
+#: likelihood-ratio test with two parameters, the patches' overlap divided out) and holds this share of the light
+TAIL_P_VALUE, TAIL_MIN_FRACTION = 1e-3, 0.05
+#: small trial tails (f, k), a narrow and a wide one: when neither improves the fit by a quarter of the test's
+#: threshold the image has no tail worth the search
+TAIL_PROBES, TAIL_PROBE_GATE = ((0.03, 3.0), (0.1, 1.7)), 0.25
+#: neighbour passes of each trial fit while the tail is learned (they converge to TAIL_CONVERGE_PX)
+TAIL_PASSES, TAIL_CONVERGE_PX = 10, 2e-4
+
+
+def tail_share(fraction, ratio):
+    """The tail's share of the peak height ``h`` from its share of the integrated intensity ``f`` and width ratio
+    ``k``: ``f = h k^2 / ((1 - h) + h k^2)``, so ``h = f / (f + k^2 (1 - f))``."""
+    return fraction / (fraction + ratio * ratio * (1.0 - fraction))
+
+
+def learn_tail(image, table, *, patch_radius_px, votes=None, valid=None, counts=True, share_widths=None):
+    """Learn a core + tail column profile (see ``refine_columns``, ``tail``) from the bright columns.
+
+    The central bright columns (amplitude above ``FREE_WIDTH_SNR`` standard errors) among ``votes`` are refitted
+    with everything around them in a window, all columns with one trial profile (tail share of the intensity
+    ``f``, width ratio ``k``); the profile that minimises their summed misfit (Poisson negative log-likelihood,
+    or the residual sum of squares over its variance) wins: a two-parameter fit by profile likelihood,
+    every column's x, y, s, A, B free in each trial (warm-started from the table, each column's class, free or
+    common width, kept). A coarse grid over k and f, then Nelder-Mead from its best point.
+    A Gaussian image stops after two small trial tails (``TAIL_PROBES``) that improve the fit by less than
+    ``TAIL_PROBE_GATE`` of the threshold.
+
+    Parameters
+    ----------
+    image : (H, W) array
+        The image the table was fitted on (bright columns).
+    table : DataFrame
+        Output of :func:`refine_columns` with a plain Gaussian.
+    patch_radius_px : int
+        The fits' patch radius.
+    votes : (N,) bool array, optional
+        Columns that may teach the profile (default all): away from a window's edges.
+    valid : (H, W) bool array, optional
+    counts : bool
+        As in :func:`refine_columns`.
+    share_widths : bool, optional
+        As in :func:`refine_columns`.
+
+    Returns
+    -------
+    dict
+        ``tail`` ([h, k] for ``refine_columns``; [0, 1] when not significant), ``fraction`` (f), ``ratio`` (k),
+        ``significant``, ``deviance_gain`` (twice the log-likelihood gain over the Gaussian, over the patches'
+        overlap), ``threshold``, ``n_columns``, ``trials``, ``how``.
+
+    Notes
+    -----
+    The gain is compared with the chi-square distribution of two degrees of freedom (Wilks 1938) at
+    ``TAIL_P_VALUE``; overlapping patches count pixels more than once, so the gain is divided by the mean number
+    of patches per pixel.
+
+    References
+    ----------
+    S. S. Wilks, Ann. Math. Statist. 9 (1938) 60, doi:10.1214/aoms/1177732360 (likelihood-ratio test).
+    J. A. Nelder & R. Mead, Comput. J. 7 (1965) 308 (simplex search).
+    """
+    from scipy.optimize import minimize
+    from scipy.stats import chi2 as chi2_dist
+
+    img, vmask = _prepare(image, valid)
+    threshold = float(chi2_dist.isf(TAIL_P_VALUE, 2))
+    record = {"tail": [0.0, 1.0], "fraction": 0.0, "ratio": 1.0, "significant": False, "deviance_gain": 0.0,
+              "threshold": threshold, "n_columns": 0, "trials": 0}
+    status = table["fit_status"].to_numpy()
+    par = table[["x_px", "y_px", "sigma_px", "amplitude", "amplitude_err"]].to_numpy(dtype=np.float64)
+    fitted = np.isin(status, ("ok", "fixed_width")) & np.all(np.isfinite(par[:, :4]), axis=1)
+    vote = np.ones(len(table), dtype=bool) if votes is None else np.asarray(votes, dtype=bool)
+    learn = np.flatnonzero(fitted & vote & (par[:, 3] > FREE_WIDTH_SNR * par[:, 4]))
+    if learn.size:
+        centre = np.median(par[learn, :2], axis=0)
+        learn = learn[np.argsort(np.hypot(*(par[learn, :2] - centre).T), kind="stable")[:TAIL_LEARN_MAX]]
+    record["n_columns"] = int(learn.size)
+    n_free = int(np.count_nonzero(status[learn] == "ok"))
+    if learn.size < TAIL_LEARN_MIN or n_free < TAIL_LEARN_MIN:
+        # without free widths the width is a guess, and a tail would only make up for a wrong one
+        record["how"] = (f"not learned: fewer than {TAIL_LEARN_MIN} bright columns with a width of their own; a "
+                         "plain Gaussian")
+        return record
+    rad = int(patch_radius_px)
+    s_med = float(np.median(par[learn, 2]))
+    # a window around the learning columns, wide enough that their neighbours' neighbours are in it
+    margin = _list_reach(rad, s_med, (1.0, TAIL_K_RANGE[1])) + rad + 2.0
+    h, w = img.shape
+    r0 = max(int(np.floor(par[learn, 1].min() - margin)), 0)
+    r1 = min(int(np.ceil(par[learn, 1].max() + margin)) + 1, h)
+    c0 = max(int(np.floor(par[learn, 0].min() - margin)), 0)
+    c1 = min(int(np.ceil(par[learn, 0].max() + margin)) + 1, w)
+    inside = fitted & (par[:, 0] >= c0) & (par[:, 0] <= c1 - 1) & (par[:, 1] >= r0) & (par[:, 1] <= r1 - 1)
+    members = np.flatnonzero(inside)
+    xy = par[members, :2] - np.array([c0, r0], dtype=np.float64)
+    is_learn = np.isin(members, learn)
+    free = status[members] == "ok"  # the Gaussian fit's classes, kept in every trial
+    start = np.c_[xy, table[["sigma_px", "amplitude", "background"]].to_numpy(dtype=np.float64)[members]]
+    crop, cmask = img[r0:r1, c0:c1], vmask[r0:r1, c0:c1]
+    # mean number of learning patches per pixel of their union
+    cx = np.floor(xy[is_learn, 0] + 0.5).astype(np.int64)
+    cy = np.floor(xy[is_learn, 1] + 0.5).astype(np.int64)
+    off = np.arange(-rad, rad + 1)
+    px = np.clip(cx[:, None, None] + off[None, None, :], 0, crop.shape[1] - 1)
+    py = np.clip(cy[:, None, None] + off[None, :, None], 0, crop.shape[0] - 1)
+    flat = (py * crop.shape[1] + px).ravel()
+    overlap = flat.size / max(np.unique(flat).size, 1)
+
+    def misfit(f, k):
+        tail = (tail_share(f, k), k) if f > 0 else None
+        t = refine_columns(crop, xy, sigma_px=s_med, patch_radius_px=rad, valid=cmask, counts=counts,
+                           neighbour_passes=TAIL_PASSES, converge_px=TAIL_CONVERGE_PX, share_widths=share_widths,
+                           width_votes=is_learn, tail=tail, votes_objective=True, free_widths=free,
+                           start_params=start)
+        record["trials"] += 1
+        return t.attrs["objective_by_column"], t.attrs["votes_pixels"]
+
+    m0, npx0 = misfit(0.0, 1.0)
+    # twice the log-likelihood gain: 2 x the Poisson negative log-likelihood's drop, or the drop of the residual
+    # sum of squares over the Gaussian fits' residual variance
+    scale = 0.5 if counts else max(np.nansum(m0) / max(npx0, 1), 1e-300)
+
+    def gain(m):
+        both = np.isfinite(m0) & np.isfinite(m)  # a column whose fit fails in one trial is left out of that one
+        return float(np.sum(m0[both] - m[both])) / scale / overlap * (m0.size and np.isfinite(m0).sum() / max(
+            both.sum(), 1))
+
+    cache: dict = {}
+
+    def cost(q):
+        f = float(np.clip(q[0], 0.0, TAIL_F_MAX))
+        k = float(np.clip(np.exp(q[1]), *TAIL_K_RANGE))
+        key = (round(f, 4), round(k, 3))
+        if key not in cache:
+            cache[key] = -gain(misfit(f, k)[0])
+        return cache[key]
+
+    best = (np.inf, 0.0, 1.0)
+    for f, k in TAIL_PROBES:
+        c = cost((f, math.log(k)))
+        if c < best[0]:
+            best = (c, f, k)
+    if -best[0] >= TAIL_PROBE_GATE * threshold:
+        for k in (2.0, 3.5, 6.0):
+            for f in (0.15, 0.35):
+                c = cost((f, math.log(k)))
+                if c < best[0]:
+                    best = (c, f, k)
+        res = minimize(cost, np.array([best[1], math.log(best[2])]), method="Nelder-Mead",
+                       options={"maxfev": 20, "xatol": 0.01, "fatol": 0.5,
+                                "initial_simplex": np.array([[best[1], math.log(best[2])],
+                                                             [best[1] * 1.3, math.log(best[2])],
+                                                             [best[1], math.log(best[2]) + 0.2]])})
+        if res.fun < best[0]:
+            best = (float(res.fun), float(np.clip(res.x[0], 0.0, TAIL_F_MAX)),
+                    float(np.clip(np.exp(res.x[1]), *TAIL_K_RANGE)))
+    g, f, k = -best[0], best[1], best[2]
+    record.update(deviance_gain=float(g), fraction=float(f), ratio=float(k))
+    if g >= threshold and f >= TAIL_MIN_FRACTION:
+        record.update(tail=[float(tail_share(f, k)), float(k)], significant=True)
+        record["how"] = (f"learned on {learn.size} bright columns: every trial profile refits them "
+                         f"and their neighbours; the best one improves the fit by {g:.1f} (chi-square, over the "
+                         f"patches' overlap {overlap:.2f}) against {threshold:.1f} at p = {TAIL_P_VALUE:g} (2 degrees "
+                         f"of freedom)")
+    else:
+        record["how"] = (f"not significant on {learn.size} bright columns (gain {g:.1f} against "
+                         f"{threshold:.1f}, or tail share of the light under {TAIL_MIN_FRACTION:g}): a plain Gaussian")
+    return record
 
 
 def warm_up() -> float:
@@ -759,12 +1017,13 @@ def warm_up() -> float:
         img = np.random.default_rng(0).poisson(10.0, (16, 16)).astype(dtype)
         for kernel in (_fit_all, _fit_serial):
             kernel(img, np.ones(img.shape, bool), np.array([7.7]), np.array([8.2]), np.array([1.5]),
-                   np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, np.zeros(2, np.int64), np.zeros(0, np.int64),
+                   np.zeros(1, np.bool_), 4, True, 3, 4.0, 0.3, 6.0, 16.0, 0.0, 1.0, False, np.zeros(2, np.int64),
+                   np.zeros(0, np.int64),
                    np.zeros((1, 4)), np.full((1, 5), np.nan), np.empty((1, _NOUT)), int(numba.config.NUMBA_NUM_THREADS),
                    np.zeros(1, np.int64), np.array([0, 1], np.int64), np.zeros(1, np.int64))
     _greedy_colours(np.array([0, 1, 2], np.int64), np.array([1, 0], np.int64))
     _joint_var(16, 16, np.ones((16, 16), bool), np.array([[7.7, 8.2, 1.5, 50.0, 10.0]]), np.ones(1, np.bool_),
-               np.ones(1), True, 4,
+               np.ones(1), True, 4, 0.0, 1.0,
                np.zeros(2, np.int64), np.zeros(0, np.int64), np.ones(1, np.bool_), np.empty((1, 2)))
     return time.perf_counter() - t0
 
@@ -773,11 +1032,31 @@ def warm_up() -> float:
 SERIAL_BELOW = 256
 
 
+def _tail_pair(tail):
+    """(share of the peak height, width ratio) of a profile's tail as floats; (0, 1) for none."""
+    if tail is None:
+        return 0.0, 1.0
+    th, tk = (float(v) for v in tail)
+    if not (0.0 <= th < 1.0 and tk >= 1.0 and math.isfinite(tk)):
+        raise TenfoldInputError(f"tail={tail!r}: the tail's share of the peak height must lie in [0, 1) and its "
+                                "width ratio be at least 1; pass None for a plain Gaussian")
+    return (th, tk) if th > 0.0 else (0.0, 1.0)
+
+
+def profile_area(tail) -> float:
+    """Integral of the unit-peak column profile over 2 pi s^2: ``(1 - h) + h k^2`` (1 for a plain Gaussian)."""
+    th, tk = _tail_pair(tail)
+    return (1.0 - th) + th * tk * tk
+
+
 
 def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_ptr, nb_idx, nb_par, start=None,
-         fixw=None, colour=None, gidx=None):
+         fixw=None, colour=None, gidx=None, tail=None, final_obj=False):
     """Fit the columns (x0, y0); with ``colour`` (one class per column) class after class, each class's models
-    written into ``nb_par`` rows ``gidx`` as it is done (a Gauss-Seidel sweep; ``nb_par`` is updated in place)."""
+    written into ``nb_par`` rows ``gidx`` as it is done (a Gauss-Seidel sweep; ``nb_par`` is updated in place).
+    ``tail``: (share of the peak height, width ratio) of the profile's tail, None for a plain Gaussian;
+    ``final_obj``: the objective (``out[:, 11]``) at the final parameters."""
+    th, tk = _tail_pair(tail)
     n = x0.shape[0]
     if colour is None or n == 0:
         order, cptr = np.arange(n, dtype=np.int64), np.array([0, n], np.int64)
@@ -795,7 +1074,8 @@ def _run(img, valid, x0, y0, s0, rad, counts, n_iter, max_shift, s_lo, s_hi, nb_
         start = np.full((max(n, 1), 5), np.nan)
     kernel = _fit_all if n >= SERIAL_BELOW else _fit_serial
     kernel(img, valid, x0, y0, s_arr, fix_arr, int(rad), bool(counts), int(n_iter), float(max_shift), float(s_lo),
-           float(s_hi), touch2, nb_ptr, nb_idx, nb_par, np.ascontiguousarray(start, dtype=np.float64), out,
+           float(s_hi), touch2, th, tk, bool(final_obj), nb_ptr, nb_idx, nb_par,
+           np.ascontiguousarray(start, dtype=np.float64), out,
            int(numba.config.NUMBA_NUM_THREADS), order, cptr, gidx)
     return out
 
@@ -917,9 +1197,9 @@ def _active_columns(out, prev, ptr, idx, tol_px):
 
 def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, counts=True, n_iter=12,
                    neighbour_passes=1, converge_px=0.005, max_shift_px=None, fixed_width_fallback=True,
-                   joint_errors=False, common_width_px=None, share_widths=None, width_votes=None,
-                   progress=None) -> pd.DataFrame:
-    """Fit a pixel-integrated 2-D Gaussian plus constant background to every column at once.
+                   joint_errors=False, common_width_px=None, share_widths=None, width_votes=None, tail=None,
+                   votes_objective=False, free_widths=None, start_params=None, progress=None) -> pd.DataFrame:
+    """Fit a pixel-integrated 2-D Gaussian (or a core + tail profile) plus constant background to every column.
 
     Parameters
     ----------
@@ -965,6 +1245,23 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     width_votes : (N,) bool array, optional
         The columns whose fits decide the common width and ``share_widths`` (default: all); a window cut out of a
         larger image lets only the columns away from its edges vote (an edge column misses neighbours).
+    tail : (float, float), optional
+        A core + tail column profile ``(h, k)``: ``A [(1 - h) G(s) + h G(k s)]``, two pixel-integrated Gaussians
+        of unit peak height with one centre, the tail ``k`` (>= 1) times wider and ``h`` (in [0, 1)) of the peak
+        height; ``h`` and ``k`` are held fixed (learn them with :func:`learn_tail`), x, y, s, A, B stay free per
+        column, neighbours are modelled alike. None (default) or ``h = 0``: the plain Gaussian, exactly.
+    votes_objective : bool
+        Also return ``attrs['votes_objective']``: the summed objective (Poisson negative log-likelihood without
+        its data-only term, or the residual sum of squares) of the fitted voters at their final parameters, with
+        ``attrs['votes_pixels']``, ``attrs['votes_fitted']`` and ``attrs['objective_by_column']`` (NaN for the
+        others; one more evaluation per fit; default False).
+    free_widths : (N,) bool array, optional
+        The columns that get their own width in the neighbour passes (the others share the common width); default
+        None: decided here from their amplitudes and neighbours. Fixed classes make fits of one image with
+        different profiles comparable (see ``learn_tail``).
+    start_params : (N, 5) array, optional
+        A warm start (x, y, s, A, B per column, e.g. an earlier fit's); the first fit holds each width at its
+        start value instead of ``sigma_px``. Default None: a cold start.
     progress : callable, optional
         ``progress(fraction, message)``; returning False cancels (raises ``Cancelled``).
 
@@ -998,6 +1295,9 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     >>> table = refine_columns(img, candidates[["x", "y"]].to_numpy(), sigma_px=2.0)  # doctest: +SKIP
     """
     img, vmask = _prepare(image, valid)
+    tail = _tail_pair(tail)
+    if free_widths is not None:
+        free_widths = np.asarray(free_widths, dtype=bool)
     xy = np.asarray(xy_px, dtype=np.float64).reshape(-1, 2) if np.size(xy_px) else np.zeros((0, 2))
     if not (np.isfinite(sigma_px) and sigma_px > 0):
         raise TenfoldInputError(f"refine_columns: sigma_px must be a positive number, got {sigma_px!r}")
@@ -1022,8 +1322,11 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     # With neighbour passes the first fit holds every width at the start width: a free width beside a fainter
     # neighbour widens over it and swallows its light, and the faint fit then finds nothing left to fit.
     fixw = np.full(n, joint)
-    out = _run(img, vmask, x0, y0, s0, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
-               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), fixw=fixw)
+    warm = None if start_params is None else np.asarray(start_params, dtype=np.float64).reshape(n, 5)
+    s_first = s0 if warm is None else np.where(np.isfinite(warm[:, 2]) & (warm[:, 2] > 0), warm[:, 2], s0)
+    out = _run(img, vmask, x0, y0, s_first, rad, counts, n_iter, max_shift, 0.25 * s0, 4.0 * s0,
+               np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros((max(n, 1), 4)), start=warm, fixw=fixw,
+               tail=tail, final_obj=votes_objective)
     passes_done = 0
     moving = 0
     prev_par = None
@@ -1033,9 +1336,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     s_common = float(common_width_px) if given_width else _common_width(out[votes], s0)
     crowded = np.zeros(n, dtype=bool)
     shared = share_widths
-    # a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away; 1 px of margin for the fits' moves
     if int(neighbour_passes) > 0:
-        ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+        ptr, idx = _neighbour_lists(np.c_[x0, y0], _list_reach(rad, s0, tail))
         colour = _colour_classes(ptr, idx)
     for p in range(int(neighbour_passes)):
         report(progress, (p + 1) / (neighbour_passes + 1), f"refitting with neighbours subtracted (pass {p + 1})")
@@ -1060,6 +1362,8 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
             # the classes are kept from here on: a column near the line can otherwise flip every pass (a free
             # width's larger amplitude error puts it under the line, the fixed width's smaller one back over it)
             bright = ~fixw
+        if free_widths is not None:
+            bright = free_widths.copy()
         if not given_width:
             s_common = _common_width(out[votes], s0)
         newly = (bright == fixw) | (fixw & (np.abs(s_cols - s_common) > 1e-3 * s0))
@@ -1084,7 +1388,7 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
         start = np.where(fitted[:, None], out[active, :5], np.nan)
         again = _run(img, vmask, x0[active], y0[active], s_cols[active], rad, counts, n_iter if p == 0 else 6,
                      max_shift, 0.25 * s0, 4.0 * s0, sub_ptr, sub_idx, par, start=start, fixw=fixw[active],
-                     colour=colour[active], gidx=active)
+                     colour=colour[active], gidx=active, tail=tail, final_obj=votes_objective)
         again[:, 10] += out[active, 10]
         out[active] = again
         passes_done = p + 1
@@ -1098,18 +1402,19 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     good = (out[:, 8] == _OK) | (out[:, 8] == _FIXED)
     if fixed_width_fallback and redo.size and (given_width or good.sum() >= 5):
         if int(neighbour_passes) == 0:
-            ptr, idx = _neighbour_lists(np.c_[x0, y0], rad * math.sqrt(2.0) + 4.0 * s0 + 1.0)
+            ptr, idx = _neighbour_lists(np.c_[x0, y0], _list_reach(rad, s0, tail))
             colour = _colour_classes(ptr, idx)
         par = _neighbour_params(out)
         sub_ptr, sub_idx = _sub_csr(ptr, idx, redo)
         again = _run(img, vmask, x0[redo], y0[redo], s_common, rad, counts, n_iter, max_shift, s_common, s_common,
-                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool), colour=colour[redo], gidx=redo)
+                     sub_ptr, sub_idx, par, fixw=np.ones(redo.size, dtype=bool), colour=colour[redo], gidx=redo,
+                     tail=tail, final_obj=votes_objective)
         fixed = again[:, 8] == _FIXED
         out[redo[fixed]] = again[fixed]
-    table = _columns_out(out, x0, y0)
+    table = _columns_out(out, x0, y0, tail)
     if joint_errors and len(table):
         report(progress, 0.95, "position errors of the joint model")
-        err = joint_position_errors(img.shape, table, patch_radius_px=rad, valid=vmask, counts=counts)
+        err = joint_position_errors(img.shape, table, patch_radius_px=rad, valid=vmask, counts=counts, tail=tail)
         fitted = table["fit_status"].isin(["ok", "fixed_width"]).to_numpy()
         table.loc[fitted, "x_err_px"] = err[fitted, 0]
         table.loc[fitted, "y_err_px"] = err[fitted, 1]
@@ -1118,11 +1423,25 @@ def refine_columns(image, xy_px, *, sigma_px, patch_radius_px=None, valid=None, 
     table.attrs["columns_still_moving"] = moving
     table.attrs["common_width_px"] = float(s_common)
     table.attrs["share_widths"] = bool(shared) if shared is not None else True
+    table.attrs["tail"] = list(tail)
+    if votes_objective:  # a profile's goodness on fixed patches (see learn_tail)
+        voted = votes & ((out[:, 8] == _OK) | (out[:, 8] == _FIXED))
+        table.attrs["votes_objective"] = float(np.sum(out[voted, 11]))
+        table.attrs["votes_pixels"] = int(np.sum(out[voted, 9]))
+        table.attrs["votes_fitted"] = int(voted.sum())
+        table.attrs["objective_by_column"] = np.where(voted, out[:, 11], np.nan)
     report(progress, 1.0, "refinement done")
     return table
 
 
-def _columns_out(out, x0, y0) -> pd.DataFrame:
+def _list_reach(rad, s0, tail):
+    """Neighbour-list reach, px: a neighbour's model reaches a patch from rad sqrt 2 + 4 widths away (3 of its
+    tail's widths with a tail: beyond, the tail's light is under exp(-4.5) of its small peak); 1 px of margin for
+    the fits' moves."""
+    return rad * math.sqrt(2.0) + max(4.0, 3.0 * tail[1] if tail[0] > 0 else 0.0) * s0 + 1.0
+
+
+def _columns_out(out, x0, y0, tail=None) -> pd.DataFrame:
     status = out[:, 8].astype(np.int64) if out.shape[0] else np.zeros(0, np.int64)
     ok = (status == _OK) | (status == _FIXED)
     vals = out.copy()
@@ -1135,7 +1454,7 @@ def _columns_out(out, x0, y0) -> pd.DataFrame:
         "sigma_px": sigma,
         "amplitude": amp,
         "background": vals[:, 4],
-        "intensity": 2.0 * np.pi * amp * sigma ** 2,
+        "intensity": 2.0 * np.pi * amp * sigma ** 2 * profile_area(tail),
         "residual": vals[:, 7],
         "pos_err_px": 0.5 * (vals[:, 5] + vals[:, 6]),
         "fit_status": np.array(STATUS_CODES, dtype=object)[status],

@@ -163,11 +163,15 @@ def test_bundled_dark_sample_recall_precision():
 
 
 @pytest.mark.parametrize("probe, widened", [("gaussian", False), ("core_tail", True)], ids=["gaussian", "core-tail"])
-def test_errors_widened_only_where_the_model_misfits(probe, widened):
+def test_errors_widened_only_where_the_model_misfits(probe, widened, monkeypatch):
     # A Gaussian column model describes Gaussian columns: Pearson chi2/dof ~ 1, errors untouched. A probe with 30 %
     # of its current in a wide tail is not a Gaussian: chi2/dof of the fits stands significantly above 1 and the
     # errors are scaled by its square root (reduced chi-square scaling; Bevington & Robinson 2003, from memory).
+    # The learned core + tail profile is switched off here (no tail is ever significant): the Gaussian misfits.
+    from tenfold.analysis import refine
     from tenfold.analysis import synthetic as S
+
+    monkeypatch.setattr(refine, "TAIL_MIN_FRACTION", 1.0)
 
     cond = S.StressCondition(structure="decagonal", size_px=384, probe=probe)
     img, truth, params = S.stress_sample(cond, rng=5)
@@ -181,12 +185,16 @@ def test_errors_widened_only_where_the_model_misfits(probe, widened):
         assert abs(rec["chi2_per_dof_median"] - 1.0) < 0.05
 
 
-def test_tail_profile_is_what_the_gaussian_leaves_out():
+def test_tail_profile_is_what_the_gaussian_leaves_out(monkeypatch):
     # Known answers: Gaussian columns leave nothing beyond their fitted Gaussians; a probe with 30 % of its current in
     # a tail 3 and 8 core widths wide (the stress generator's core-tail probe) leaves a clear tail, which the
     # significance test of a candidate then subtracts with the neighbour's Gaussian. The columns are 20 widths
-    # apart: a tail that fills the space between columns is indistinguishable from background.
+    # apart: a tail that fills the space between columns is indistinguishable from background. The learned core +
+    # tail profile is switched off (no tail is ever significant): this is what a Gaussian model leaves.
+    from tenfold.analysis import refine
     from tenfold.analysis import synthetic as S
+
+    monkeypatch.setattr(refine, "TAIL_MIN_FRACTION", 1.0)
 
     tails = {}
     for probe in ("gaussian", "core_tail"):
